@@ -1,0 +1,281 @@
+"""The small interfaces between branchwatch and the outside world.
+
+``monitor/`` talks to data and people only through these three families:
+
+* `ReadingsSource` — where historian readings come from (a folder of CSV exports, a SQL
+  table). Implementations: ``csv`` (`adapters.csv_source`), ``sql``
+  (`adapters.sql_source`).
+* `ResultsStore` — where everything branchwatch learns is kept (ingested readings of file
+  sources, fits, findings, alarms, maintenance events, cursors, quarantine, job runs).
+  Implementation: ``sqlalchemy`` (`adapters.store`).
+* `Notifier` — who is told about alarms (e-mail, webhook). Implementations in
+  `adapters.notify`.
+
+Each implementation registers under a short alias that the site config names
+(``[source] kind = "csv"``); `source_class` and friends look the alias up.
+
+Readings frame
+--------------
+Every source delivers readings as a pandas frame with exactly the columns of
+`READING_COLUMNS`:
+
+=========  ===========================  ==========================================
+column     dtype                        meaning
+=========  ===========================  ==========================================
+time       datetime64[ns, UTC]          sample time, UTC
+tag        str (object)                 the historian tag, e.g. ``"FT-203"``
+value      float64                      value in SI (see `adapters.units`)
+good       bool                         quality after the site's quality-code map
+=========  ===========================  ==========================================
+
+Exceptions
+----------
+::
+
+    BranchwatchAdapterError (Exception)
+    ├── SourceUnavailable (ConnectionError)   the source cannot be reached now; retry later
+    ├── UnknownTagError (KeyError)            a configured tag the source does not have
+    └── StoreError (RuntimeError)             the results store refused a write or read
+"""
+
+from __future__ import annotations
+
+import abc
+import importlib
+from collections.abc import Iterable, Iterator, Mapping
+from dataclasses import dataclass, field
+from datetime import datetime
+from typing import Any, ClassVar
+
+import pandas as pd
+
+__all__ = [
+    "QUARANTINE_COLUMNS",
+    "READING_COLUMNS",
+    "Batch",
+    "BranchwatchAdapterError",
+    "Notifier",
+    "ReadingsSource",
+    "ResultsStore",
+    "SourceUnavailable",
+    "StoreError",
+    "TagSpec",
+    "UnknownTagError",
+    "empty_quarantine",
+    "empty_readings",
+    "notifier_class",
+    "source_class",
+]
+
+READING_COLUMNS: tuple[str, ...] = ("time", "tag", "value", "good")
+#: Rows that could not be read: where they were, why, and the raw text (truncated).
+QUARANTINE_COLUMNS: tuple[str, ...] = ("origin", "line", "reason", "raw")
+
+
+class BranchwatchAdapterError(Exception):
+    """Base of every error raised by an adapter."""
+
+
+class SourceUnavailable(BranchwatchAdapterError, ConnectionError):
+    """The readings source cannot be reached now (database down, folder missing)."""
+
+
+class UnknownTagError(BranchwatchAdapterError, KeyError):
+    """A configured tag that the source does not have."""
+
+    def __init__(self, tag: str, source: str) -> None:
+        super().__init__(tag, source)
+        self.tag = tag
+        self.source = source
+
+    def __str__(self) -> str:
+        return f"tag {self.tag!r} is not in source {self.source!r}"
+
+
+class StoreError(BranchwatchAdapterError, RuntimeError):
+    """The results store refused a read or a write."""
+
+
+def empty_readings() -> pd.DataFrame:
+    """A readings frame with no rows and the right dtypes."""
+    return pd.DataFrame(
+        {
+            "time": pd.Series([], dtype="datetime64[ns, UTC]"),
+            "tag": pd.Series([], dtype=object),
+            "value": pd.Series([], dtype="float64"),
+            "good": pd.Series([], dtype=bool),
+        }
+    )
+
+
+def empty_quarantine() -> pd.DataFrame:
+    """A quarantine frame with no rows."""
+    return pd.DataFrame(
+        {
+            "origin": pd.Series([], dtype=object),
+            "line": pd.Series([], dtype="int64"),
+            "reason": pd.Series([], dtype=object),
+            "raw": pd.Series([], dtype=object),
+        }
+    )
+
+
+@dataclass(frozen=True)
+class TagSpec:
+    """One historian tag as the site config describes it.
+
+    ``unit`` is the plant unit the source reports (``"bar"``, ``"m3/h"``); ``kind`` the
+    quantity kind (a key of `adapters.units.SI_UNITS`) that fixes the SI unit inside.
+    ``low``/``high`` are the instrument range in SI, when configured.
+    """
+
+    tag: str
+    unit: str
+    kind: str
+    low: float | None = None
+    high: float | None = None
+
+
+@dataclass(frozen=True)
+class Batch:
+    """A piece of new data from a source, to be stored in one transaction.
+
+    ``cursor_key``/``cursor`` say how far the source has delivered once this batch is
+    stored (for a CSV file: its path and the byte offset and hash read so far; for a SQL
+    table: its time watermark). The store writes readings, quarantine and cursor together,
+    so a killed ingest resumes exactly where the last stored batch ended.
+    """
+
+    readings: pd.DataFrame
+    quarantined: pd.DataFrame
+    cursor_key: str
+    cursor: Mapping[str, Any]
+    #: counts of what the source passed over, e.g. {"duplicate_rows": 3}
+    notes: Mapping[str, int] = field(default_factory=dict)
+
+
+class ReadingsSource(abc.ABC):
+    """Where historian readings come from.
+
+    Two ways to get data out:
+
+    * `batches` — incremental: everything not yet delivered according to the stored
+      cursors. File sources are ingested this way into the results store.
+    * `read` — a window of readings, for sources that keep their data themselves (SQL).
+      Sources whose data lives only in the store after ingest set
+      ``keeps_readings = False`` and analysis reads the store instead.
+    """
+
+    alias: ClassVar[str] = ""
+    #: True when `read` can serve any window (the data stays at the source).
+    keeps_readings: ClassVar[bool] = False
+    _registry: ClassVar[dict[str, type[ReadingsSource]]] = {}
+
+    def __init_subclass__(cls, **kwargs: Any) -> None:
+        super().__init_subclass__(**kwargs)
+        if cls.alias:
+            ReadingsSource._registry[cls.alias] = cls
+
+    def __init__(self, tags: Iterable[TagSpec], *, name: str = "") -> None:
+        self.tags: dict[str, TagSpec] = {t.tag: t for t in tags}
+        self.name = name or self.alias
+
+    @abc.abstractmethod
+    def batches(self, cursors: Mapping[str, Mapping[str, Any]]) -> Iterator[Batch]:
+        """Yield the data not yet delivered, given the cursors stored so far."""
+
+    def read(self, tags: Iterable[str], start: datetime, end: datetime) -> pd.DataFrame:
+        """Readings of *tags* with ``start <= time < end`` (UTC), as a readings frame."""
+        raise NotImplementedError(
+            f"source {self.name!r} does not keep readings; read them from the store"
+        )
+
+    def check(self) -> list[str]:
+        """Reach the source; return a list of problems (empty when all is well)."""
+        return []
+
+    def close(self) -> None:  # noqa: B027 - optional hook
+        """Release connections and files."""
+
+
+class ResultsStore(abc.ABC):
+    """Where branchwatch keeps what it ingests and what it learns.
+
+    Implementations must make each public write one transaction, and writes keyed on
+    natural keys (tag+time, branch+window, …) idempotent: writing the same thing twice
+    leaves one copy.
+    """
+
+    alias: ClassVar[str] = ""
+
+    # readings and ingest bookkeeping -------------------------------------------------
+    @abc.abstractmethod
+    def store_batch(self, batch: Batch, *, source: str) -> int:
+        """Store a batch's readings, quarantine rows and cursor in one transaction.
+
+        Returns the number of readings newly stored (duplicates of stored readings are
+        not counted).
+        """
+
+    @abc.abstractmethod
+    def cursors(self, source: str) -> dict[str, dict[str, Any]]:
+        """The stored cursors of *source* (cursor key → cursor)."""
+
+    @abc.abstractmethod
+    def read_readings(self, tags: Iterable[str], start: datetime, end: datetime) -> pd.DataFrame:
+        """Stored readings of *tags* with ``start <= time < end``, as a readings frame."""
+
+    @abc.abstractmethod
+    def close(self) -> None:
+        """Release the connection pool."""
+
+
+class Notifier(abc.ABC):
+    """Tells people about alarms and reports."""
+
+    alias: ClassVar[str] = ""
+    _registry: ClassVar[dict[str, type[Notifier]]] = {}
+
+    def __init_subclass__(cls, **kwargs: Any) -> None:
+        super().__init_subclass__(**kwargs)
+        if cls.alias:
+            Notifier._registry[cls.alias] = cls
+
+    @abc.abstractmethod
+    def send(self, subject: str, body: str) -> None:
+        """Deliver one message; raise `SourceUnavailable`-like errors after retries."""
+
+
+#: Where each alias lives; the module is imported on first use, so that an optional
+#: dependency (a database driver) is only needed by the sites that use it.
+_MODULES: dict[str, dict[str, str]] = {
+    "source": {"csv": "adapters.csv_source", "sql": "adapters.sql_source"},
+    "notifier": {"email": "adapters.notify", "webhook": "adapters.notify"},
+}
+
+
+def _lookup(registry: Mapping[str, type[Any]], alias: str, family: str) -> type[Any]:
+    if alias not in registry and alias in _MODULES[family]:
+        module = _MODULES[family][alias]
+        try:
+            importlib.import_module(module)
+        except ImportError as exc:
+            raise ImportError(
+                f"the {alias} {family} needs a package that is not installed ({exc.name}): "
+                f"pip install 'branchwatch[{alias}]' or the driver named in the README"
+            ) from exc
+    try:
+        return registry[alias]
+    except KeyError:
+        known = ", ".join(sorted(_MODULES[family])) or "none"
+        raise KeyError(f"unknown {family} kind {alias!r}; known: {known}") from None
+
+
+def source_class(alias: str) -> type[ReadingsSource]:
+    """The `ReadingsSource` implementation registered under *alias*."""
+    return _lookup(ReadingsSource._registry, alias, "source")
+
+
+def notifier_class(alias: str) -> type[Notifier]:
+    """The `Notifier` implementation registered under *alias*."""
+    return _lookup(Notifier._registry, alias, "notifier")

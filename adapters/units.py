@@ -1,0 +1,125 @@
+"""Plant units to SI, once, where data enters.
+
+Inside branchwatch every quantity is SI: pressure in Pa *gauge*, flow in m³/s, length in
+m, temperature in °C (named ``temperature_c``), density kg/m³, viscosity Pa·s. Plant data
+and config files speak bar, psi, m³/h, gpm, inches, °F; this module turns them into SI
+with `pint`, so the unit arithmetic is done by a library that knows the definitions
+rather than by constants typed from memory.
+
+Gauge pressure: a tag in ``bar`` or ``barg`` is read as gauge (what plant transmitters
+report); ``bara``/``psia`` are absolute and are converted to gauge by subtracting one
+standard atmosphere (101 325 Pa).
+
+>>> parse_quantity("0.5 bar", "Pa")
+50000.0
+>>> round(parse_quantity("140 m3/h", "m3/s"), 6)
+0.038889
+>>> to_si([0.0, 1.0], "bar", "pressure").tolist()
+[0.0, 100000.0]
+>>> to_si([68.0], "degF", "temperature").round(3).tolist()
+[20.0]
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from functools import lru_cache
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+import pint
+
+__all__ = [
+    "SI_UNITS",
+    "UnitError",
+    "converter",
+    "parse_quantity",
+    "to_si",
+    "ureg",
+]
+
+ATMOSPHERE_PA = 101_325.0  # standard atmosphere, exact by definition
+
+ureg: pint.UnitRegistry = pint.UnitRegistry(autoconvert_offset_to_baseunit=True)
+ureg.define("barg = bar")
+ureg.define("psig = psi")
+ureg.define("kPag = kPa")
+ureg.define("mbarg = mbar")
+# Absolute pressure units are only converted to gauge through `to_si`; defined here so
+# that they parse.
+ureg.define("bara = bar")
+ureg.define("psia = psi")
+ureg.define("kPaa = kPa")
+ureg.define("m3 = meter**3")
+ureg.define("gpm = gallon / minute")
+
+#: The SI unit used inside the model for each kind of quantity a tag can carry.
+SI_UNITS: dict[str, str] = {
+    "pressure": "Pa",
+    "flow": "m**3/s",
+    "temperature": "degC",
+    "level": "m",
+    "length": "m",
+    "position": "dimensionless",
+    "speed": "dimensionless",
+    "power": "W",
+}
+
+_ABSOLUTE = {"bara", "psia", "kPaa"}
+
+
+class UnitError(ValueError):
+    """A unit string that does not parse, or does not convert to the quantity asked."""
+
+
+@lru_cache(maxsize=512)
+def converter(unit: str, kind_or_si: str) -> Callable[[npt.ArrayLike], np.ndarray]:
+    """A function that turns values in *unit* into the SI unit of *kind_or_si*.
+
+    *kind_or_si* is a quantity kind from `SI_UNITS` (``"pressure"``) or a unit string.
+    Raises `UnitError` naming both units when they do not convert.
+    """
+    target = SI_UNITS.get(kind_or_si, kind_or_si)
+    unit = unit.strip()
+    if unit in ("%", "percent"):
+        unit = "percent"
+    try:
+        src = ureg.Unit(unit)
+        dst = ureg.Unit(target)
+        ureg.Quantity(1.0, src).to(dst)
+    except (pint.errors.PintError, AttributeError, TypeError, ValueError) as exc:
+        raise UnitError(f"unit {unit!r} does not convert to {target!r} ({exc})") from exc
+    offset = -ATMOSPHERE_PA if unit in _ABSOLUTE and target == "Pa" else 0.0
+
+    def convert(values: npt.ArrayLike) -> np.ndarray:
+        arr = np.asarray(values, dtype=float)
+        out = ureg.Quantity(arr, src).to(dst).magnitude
+        return np.asarray(out, dtype=float) + offset
+
+    return convert
+
+
+def to_si(values: npt.ArrayLike, unit: str, kind_or_si: str) -> np.ndarray:
+    """Convert *values* given in *unit* to the SI unit of *kind_or_si* (see `converter`)."""
+    return converter(unit, kind_or_si)(values)
+
+
+def parse_quantity(text: str | float | int, si_unit: str) -> float:
+    """Parse a config quantity such as ``"110 m"`` or ``"0.5 bar"`` into *si_unit*.
+
+    A bare number is taken as already in *si_unit*. Raises `UnitError` with the text and
+    the expected unit when it does not parse or convert.
+    """
+    if isinstance(text, bool):
+        raise UnitError(f"expected a quantity in {si_unit}, got {text!r}")
+    if isinstance(text, int | float):
+        return float(text)
+    try:
+        q: Any = ureg.Quantity(text.strip())
+    except (pint.errors.PintError, AttributeError, TypeError, ValueError) as exc:
+        raise UnitError(f"{text!r} is not a quantity with a unit ({exc})") from exc
+    try:
+        return float(converter(str(q.units), si_unit)(q.magnitude))
+    except UnitError:
+        raise UnitError(f"{text!r} does not convert to {si_unit!r}") from None
