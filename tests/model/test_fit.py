@@ -1,0 +1,146 @@
+"""Tests of model.fit: the array core (fit_ratio, offset_hypotheses)."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import optimize
+
+from model.fit import fit_ratio, offset_hypotheses
+
+
+def _design(rng: np.random.Generator, n: int, q_lo: float, q_hi: float) -> tuple[np.ndarray, ...]:
+    q = rng.uniform(q_lo, q_hi, n)
+    return q, 4.0e7 * q**2
+
+
+def test_linear_loss_is_ordinary_least_squares() -> None:
+    rng = np.random.default_rng(3)
+    q, x = _design(rng, 200, 0.02, 0.05)
+    y = 1.2 * x + 1.5e4 + rng.normal(0.0, 800.0, q.size)
+    res = fit_ratio(y, x, flow=q, fit_static=True, loss="linear")
+    # Reference: numpy's least-squares polynomial fit (same normal equations).
+    slope, intercept = np.polyfit(x, y, 1)
+    assert res.r == pytest.approx(slope, rel=1e-10)
+    assert res.s_pa == pytest.approx(intercept, rel=1e-8)
+    # Reference: textbook OLS standard error s²(XᵀX)⁻¹ with s² = SSE/(n − 2), t quantile.
+    a = np.column_stack([x, np.ones_like(x)])
+    e = y - a @ np.array([slope, intercept])
+    cov = e @ e / (x.size - 2) * np.linalg.inv(a.T @ a)
+    from scipy import stats
+
+    hw = stats.t.ppf(0.975, x.size - 2) * math.sqrt(cov[0, 0])
+    assert res.r_high - res.r == pytest.approx(hw, rel=1e-8)
+    assert res.corr_rs == pytest.approx(cov[0, 1] / math.sqrt(cov[0, 0] * cov[1, 1]), rel=1e-8)
+
+
+@pytest.mark.parametrize("loss", ["huber", "soft_l1"])
+def test_robust_estimate_matches_scipy_least_squares(loss: str) -> None:
+    rng = np.random.default_rng(5)
+    q, x = _design(rng, 400, 0.02, 0.05)
+    y = 1.3 * x + 2.0e4 + rng.normal(0.0, 1000.0, q.size)
+    y[::37] += 4.0e4  # spikes
+    res = fit_ratio(y, x, flow=q, fit_static=True, loss=loss)  # type: ignore[arg-type]
+    # Reference: scipy.optimize.least_squares with the same loss and the scale the IRLS
+    # converged to (f_scale = 1.345·σ̂) has the same minimiser.
+    ref = optimize.least_squares(
+        lambda b: b[0] * x + b[1] - y,
+        x0=[1.0, 0.0],
+        loss=loss,
+        f_scale=1.345 * res.residual_std_pa,
+        x_scale=[1.0, 1.0e4],
+        xtol=1e-14,
+        ftol=1e-14,
+        gtol=1e-14,
+    )
+    assert res.r == pytest.approx(ref.x[0], rel=1e-5)
+    assert res.s_pa == pytest.approx(ref.x[1], rel=1e-4)
+    # Spikes do not pull the robust fit: within 1 % of the truth (ordinary LS is off more).
+    assert abs(res.r - 1.3) < 0.013
+    assert res.status == "ok" and res.identifiable
+
+
+def test_interval_coverage_near_nominal() -> None:
+    """95 % intervals cover the true r in about 95 % of independent noisy windows."""
+    rng = np.random.default_rng(11)
+    hits_r = hits_s = 0
+    trials = 200
+    for _ in range(trials):
+        q, x = _design(rng, 300, 0.02, 0.05)
+        y = 1.3 * x + 2.0e4 + rng.normal(0.0, 1000.0, q.size)
+        res = fit_ratio(y, x, flow=q, fit_static=True, loss="huber")
+        hits_r += res.r_low <= 1.3 <= res.r_high
+        hits_s += res.s_low_pa <= 2.0e4 <= res.s_high_pa
+    # Binomial(200, 0.95) has σ ≈ 3 %: accept 88–99 % (common practice: ±2σ plus margin).
+    assert 0.88 <= hits_r / trials <= 0.995
+    assert 0.88 <= hits_s / trials <= 0.995
+
+
+def test_narrow_flow_range_not_identifiable_falls_back() -> None:
+    rng = np.random.default_rng(2)
+    q, x = _design(rng, 500, 0.047, 0.05)
+    y = 1.3 * x + 2.0e4 + rng.normal(0.0, 500.0, q.size)
+    res = fit_ratio(y, x, flow=q, fit_static=True, static_pa=2.0e4)
+    assert res.status == "not_identifiable" and not res.identifiable
+    assert math.isnan(res.s_pa) and math.isnan(res.s_low_pa)
+    assert res.s_fixed_pa == 2.0e4
+    assert abs(res.corr_rs) > 0.99
+    assert res.r_low <= 1.3 <= res.r_high
+    assert "cannot be separated" in res.message
+
+    bare = fit_ratio(y, x, flow=q, fit_static=True, static_pa=None)
+    assert bare.status == "not_identifiable" and math.isnan(bare.r)
+
+
+def test_fixed_static_fit_and_statuses() -> None:
+    q = np.linspace(0.03, 0.04, 30)
+    x = 4.0e7 * q**2
+    res = fit_ratio(1.1 * x + 5.0e3, x, static_pa=5.0e3)
+    assert res.r == pytest.approx(1.1, rel=1e-12)
+    assert math.isnan(res.corr_rs) and math.isnan(res.s_pa)
+    assert res.status == "ok" and res.identifiable and res.usable
+
+    assert fit_ratio(np.ones(20), np.zeros(20)).status == "no_flow"
+    few = fit_ratio(x[:5], x[:5])
+    assert few.status == "too_few_samples" and few.samples == 5 and not few.usable
+    y = 1.1 * x
+    y[:3] = np.nan
+    w = np.ones_like(x)
+    w[3] = 0.0
+    assert fit_ratio(y, x, weights=w).samples == 26
+
+
+def test_bad_input_names_the_argument() -> None:
+    x = np.linspace(1.0, 2.0, 20)
+    with pytest.raises(ValueError, match="loss"):
+        fit_ratio(x, x, loss="cubic")  # type: ignore[arg-type]
+    with pytest.raises(ValueError, match="x has 19"):
+        fit_ratio(x, x[:-1])
+    with pytest.raises(ValueError, match="static_pa"):
+        fit_ratio(x, x, static_pa=None)
+    with pytest.raises(ValueError, match="confidence"):
+        fit_ratio(x, x, confidence=1.5)
+
+
+def test_offset_hypotheses_tell_static_from_resistance() -> None:
+    rng = np.random.default_rng(7)
+    q, x = _design(rng, 600, 0.02, 0.05)
+    noise = rng.normal(0.0, 700.0, q.size)
+    base = 1.1 * x + 1.0e4
+    stepped = offset_hypotheses(base + 2.0e4 + noise, x, r_baseline=1.1, s_baseline_pa=1.0e4)
+    assert stepped.preferred == "static"
+    assert stepped.static_offset_pa == pytest.approx(2.0e4, rel=0.02)
+    assert stepped.bp_sse_static < stepped.bp_sse_resistance < stepped.bp_sse_baseline
+
+    restricted = offset_hypotheses(1.5 * x + 1.0e4 + noise, x, r_baseline=1.1, s_baseline_pa=1.0e4)
+    assert restricted.preferred == "resistance"
+    assert restricted.ratio_if_resistance == pytest.approx(1.5, rel=0.01)
+
+    _, narrow_x = _design(rng, 600, 0.0498, 0.05)  # flow held steady
+    narrow = offset_hypotheses(
+        1.1 * narrow_x + 3.0e4 + noise, narrow_x, r_baseline=1.1, s_baseline_pa=1.0e4
+    )
+    assert narrow.preferred == "undecided"
+    assert offset_hypotheses(x[:3], x[:3], r_baseline=1.0, s_baseline_pa=0.0).preferred == "none"
