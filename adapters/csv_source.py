@@ -1,0 +1,644 @@
+"""Readings from a folder of CSV exports (alias ``csv``).
+
+A historian job drops exports into a folder; `CsvSource.batches` reads what is new.
+
+Layouts (chosen by ``layout``, or detected from the header line when ``"auto"``):
+
+* **wide** — ``timestamp,<tag>,<tag>,…``: one row per instant, one column per tag. An
+  empty cell means "not sampled" and yields no reading. Columns of tags the config does
+  not know are skipped and reported once per file.
+* **long** — ``timestamp,tag,value[,quality]``: one row per reading. Detected when the
+  header names a ``tag`` and a ``value`` column.
+
+Timestamps are ISO-8601. With an offset or ``Z`` they are exact. Without, they are wall
+clock time in the site zone (``timezone``) and daylight-saving changes follow this rule:
+
+* **missing hour** (spring forward): a wall time that does not exist is quarantined with
+  reason ``nonexistent local time``; it is never shifted.
+* **repeated hour** (fall back): for each tag, in file order, wall times inside the
+  repeated hour are read as daylight time (the first pass of the clock) until the wall
+  clock steps back inside that hour; from the step back on they are standard time (the
+  second pass). A file that holds only one copy of the repeated hour is therefore read
+  as daylight time: exports that drop a copy must carry offsets. The state of this rule
+  is kept in the cursor, so a file read in several chunks is resolved the same way.
+
+Ledger: the cursor of a file (key: its path relative to the folder) holds the bytes and
+lines consumed, the SHA-256 of those bytes, and, once the file has been read to its end,
+``complete_sha256``. Hence: the same file twice yields nothing new; a file that grew is
+read from where it stopped (whole lines only: an unterminated last line waits for its
+newline); a file whose consumed part changed is read again from the start and counted as
+``file_changed``; a new file whose bytes equal a completely read one is counted as
+``duplicate_file`` and not read. Files whose modification time is younger than
+``settle_seconds`` are still being written and are skipped (``files_unsettled``).
+
+Bad input never stops a scan: each bad row (or, in the wide layout, each bad cell) goes
+to the batch's quarantine frame with file, line, reason and raw text; blank lines are
+counted (``blank_lines``); duplicate (time, tag) pairs keep the last row
+(``duplicate_rows``); rows of unknown tags in the long layout are counted
+(``unknown_tag_rows``) and quarantined once per tag and chunk with the count in the
+reason. Large files stream in chunks of about ``chunk_rows`` readings, one `Batch` each.
+
+>>> CsvSource([TagSpec("FT-1", "m3/h", "flow")], path=".").name
+'csv'
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+import logging
+import time
+from collections import Counter
+from collections.abc import Iterable, Iterator, Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+import numpy as np
+import numpy.typing as npt
+import pandas as pd
+import pyarrow as pa
+import pyarrow.csv as pacsv
+
+from adapters.base import (
+    Batch,
+    ReadingsSource,
+    SourceUnavailable,
+    TagSpec,
+    empty_quarantine,
+    empty_readings,
+)
+from adapters.source_tools import (
+    DEFAULT_QUALITY_MAP,
+    TIME_REASONS,
+    parse_times,
+    quality_good,
+    quarantine_frame,
+    readings_frame,
+    si_scale_offset,
+    text_cells,
+    to_float,
+)
+
+__all__ = ["CsvSource"]
+
+log = logging.getLogger(__name__)
+
+_TIME_NAMES = ("timestamp", "time", "datetime", "date_time", "ts")
+_TAG_NAMES = ("tag", "tagname", "tag_name", "point", "name")
+_VALUE_NAMES = ("value", "val", "reading")
+_QUALITY_NAMES = ("quality", "q", "status")
+
+
+# --------------------------------------------------------------------------- layout
+@dataclass(frozen=True)
+class _Layout:
+    """What the header line of one file says."""
+
+    kind: str  # "wide" | "long"
+    n_fields: int
+    time_col: int
+    tag_cols: tuple[tuple[int, str], ...]  # wide: (column, tag) of known tags
+    unknown: tuple[str, ...]  # wide: header names the config does not know
+    tag_col: int = -1  # long
+    value_col: int = -1
+    quality_col: int = -1
+
+
+def _find(names: Sequence[str], wanted: Sequence[str]) -> int:
+    low = [n.strip().lower() for n in names]
+    return next((low.index(w) for w in wanted if w in low), -1)
+
+
+@dataclass
+class _Chunk:
+    """Parsed columns of one chunk; ``lines`` are file line numbers per row."""
+
+    lines: npt.NDArray[np.int64]
+    cols: dict[int, npt.NDArray[Any]]  # column index → float or text array
+    bad_rows: list[tuple[int, str, str]]  # (line, reason, raw) found while splitting
+    blank: int
+
+
+class CsvSource(ReadingsSource):
+    """Folder of CSV exports; see the module docstring for layouts, rules and ledger.
+
+    *timezone* is the site zone of naive timestamps; *quality_map* maps quality codes
+    (case-insensitive) to good/bad (default `DEFAULT_QUALITY_MAP`; unmapped codes are
+    bad); *settle_seconds* [s] is how long a file must stay unmodified before it is read;
+    *chunk_rows* is the number of readings per batch, about.
+    """
+
+    alias = "csv"
+    keeps_readings = False
+
+    def __init__(
+        self,
+        tags: Iterable[TagSpec],
+        *,
+        path: str | Path,
+        layout: str = "auto",
+        delimiter: str = ",",
+        decimal: str = ".",
+        timezone: str = "UTC",
+        quality_map: Mapping[str, bool] | None = None,
+        pattern: str = "*.csv",
+        settle_seconds: float = 5.0,
+        chunk_rows: int = 200_000,
+        name: str = "",
+    ) -> None:
+        super().__init__(tags, name=name)
+        if layout not in ("auto", "wide", "long"):
+            raise ValueError(f"layout must be 'auto', 'wide' or 'long', got {layout!r}")
+        if len(delimiter) != 1 or delimiter in ('"', "\n", "\r"):
+            raise ValueError(f"delimiter must be one character, got {delimiter!r}")
+        if decimal not in (".", ","):
+            raise ValueError(f"decimal must be '.' or ',', got {decimal!r}")
+        if decimal == delimiter:
+            raise ValueError(f"decimal and delimiter are both {decimal!r}")
+        if chunk_rows < 1:
+            raise ValueError(f"chunk_rows must be at least 1, got {chunk_rows}")
+        if settle_seconds < 0:
+            raise ValueError(f"settle_seconds must be >= 0, got {settle_seconds}")
+        try:
+            self.zone = ZoneInfo(timezone)
+        except (ZoneInfoNotFoundError, ValueError) as exc:
+            raise ValueError(f"timezone {timezone!r} is not an IANA time zone name") from exc
+        self.path = Path(path)
+        self.layout = layout
+        self.delimiter = delimiter
+        self.decimal = decimal
+        self.pattern = pattern
+        self.settle_seconds = float(settle_seconds)
+        self.chunk_rows = int(chunk_rows)
+        self.quality_map: Mapping[str, bool] = dict(quality_map or DEFAULT_QUALITY_MAP)
+        # Units are checked here, once: a unit that does not convert is a config error.
+        self._si = {tag: si_scale_offset(spec) for tag, spec in self.tags.items()}
+
+    # ----------------------------------------------------------------- public API
+    def check(self) -> list[str]:
+        """Problems with the folder and the configured tags (empty when all is well)."""
+        if not self.path.is_dir():
+            return [f"folder {str(self.path)!r} does not exist or is not a folder"]
+        files = sorted(self.path.glob(self.pattern))
+        if not files:
+            return [f"no files matching {self.pattern!r} in {str(self.path)!r} yet"]
+        newest = max(files, key=lambda p: p.stat().st_mtime)
+        with open(newest, "rb") as fh:
+            head = fh.read(1 << 20)
+        header, _, body = head.partition(b"\n")
+        layout = self._layout(header)
+        if isinstance(layout, str):
+            return [f"{newest.name}: {layout}"]
+        seen = {t for _, t in layout.tag_cols}
+        if layout.kind == "long":
+            text = body.decode("utf-8", errors="replace").splitlines()
+            rows = csv.reader(text, delimiter=self.delimiter)
+            seen = {r[layout.tag_col].strip() for r in rows if len(r) > layout.tag_col}
+        return [
+            f"configured tag {t!r} does not appear in {newest.name}"
+            for t in self.tags
+            if t not in seen
+        ]
+
+    def batches(self, cursors: Mapping[str, Mapping[str, Any]]) -> Iterator[Batch]:
+        """Yield what is new in the folder, file by file (sorted), chunk by chunk."""
+        if not self.path.is_dir():
+            raise SourceUnavailable(
+                f"CSV folder {str(self.path)!r} does not exist: create it or fix [source] path"
+            )
+        for file in sorted(p for p in self.path.glob(self.pattern) if p.is_file()):
+            key = file.relative_to(self.path).as_posix()
+            yield from self._scan(file, key, cursors.get(key) or {}, cursors)
+
+    # ----------------------------------------------------------------- one file
+    def _scan(
+        self,
+        file: Path,
+        key: str,
+        cursor: Mapping[str, Any],
+        cursors: Mapping[str, Mapping[str, Any]],
+    ) -> Iterator[Batch]:
+        st = file.stat()
+        age = time.time() - st.st_mtime
+        if age < self.settle_seconds:
+            log.info("%s: skipped, modified %.1f s ago (still being written?)", key, age)
+            yield self._batch(key, dict(cursor), {"files_unsettled": 1})
+            return
+        size, mtime_ns = st.st_size, st.st_mtime_ns
+        if cursor.get("size") == size and cursor.get("mtime_ns") == mtime_ns:
+            return  # ledger quick check: unchanged since last read
+        notes: Counter[str] = Counter()
+        with open(file, "rb") as fh:
+            offset, line, digest, fold = self._resume(fh, key, cursor, size, notes)
+            if offset == 0 and not cursor:
+                twin = self._twin(fh, size, cursors)
+                if twin is not None:
+                    log.info("%s: same bytes as %s, not read again", key, twin[0])
+                    done = dict(twin[1], size=size, mtime_ns=mtime_ns)
+                    yield self._batch(key, done, {"duplicate_file": 1})
+                    return
+            fh.seek(0)
+            header = fh.readline()
+            if not header.endswith(b"\n"):
+                note = {"empty_file": 1} if size == 0 else {"unterminated_last_line": 1}
+                cur = self._cursor(0, 0, hashlib.sha256(), size, mtime_ns, {})
+                yield self._batch(key, cur if size == 0 else dict(cursor), note)
+                return
+            layout = self._layout(header)
+            if isinstance(layout, str):
+                log.warning("%s: %s; file skipped", key, layout)
+                fh.seek(0)
+                whole = hashlib.sha256(fh.read())
+                quarantine = quarantine_frame([(key, 1, layout, header)])
+                yield self._batch(
+                    key,
+                    self._cursor(size, 0, whole, size, mtime_ns, {}),
+                    {"bad_header": 1},
+                    quarantine,
+                )
+                return
+            first: pd.DataFrame | None = None
+            if offset == 0:
+                digest.update(header)
+                offset, line = len(header), 1
+                if layout.unknown:
+                    log.info("%s: columns of unknown tags skipped: %s", key, layout.unknown)
+                    notes["unknown_tag_columns"] += len(layout.unknown)
+                    first = quarantine_frame(
+                        [
+                            (key, 1, f"unknown tag {t!r}: column skipped", header)
+                            for t in layout.unknown
+                        ]
+                    )
+            yield from self._stream(fh, key, layout, (offset, line), digest, fold, notes, st, first)
+
+    def _resume(
+        self,
+        fh: io.BufferedReader,
+        key: str,
+        cursor: Mapping[str, Any],
+        size: int,
+        notes: Counter[str],
+    ) -> tuple[int, int, Any, dict[str, list[Any]]]:
+        """Where to start in the file: (offset, line, running hash, repeated-hour state)."""
+        offset = int(cursor.get("offset", 0))
+        digest = hashlib.sha256()
+        if offset <= 0:
+            return 0, 0, digest, {}
+        if size >= offset:
+            remaining = offset
+            while remaining:
+                block = fh.read(min(remaining, 1 << 22))
+                if not block:
+                    break
+                digest.update(block)
+                remaining -= len(block)
+            if digest.hexdigest() == cursor.get("sha256_prefix"):
+                fold = {k: list(v) for k, v in (cursor.get("fold") or {}).items()}
+                return offset, int(cursor.get("line", 0)), digest, fold
+        log.warning("%s: the part read before has changed; reading it again from the start", key)
+        notes["file_changed"] += 1
+        return 0, 0, hashlib.sha256(), {}
+
+    def _twin(
+        self, fh: io.BufferedReader, size: int, cursors: Mapping[str, Mapping[str, Any]]
+    ) -> tuple[str, Mapping[str, Any]] | None:
+        """A completely read file with the same bytes as this new one, if any."""
+        same_size = [
+            (k, c) for k, c in cursors.items() if c.get("complete_sha256") and c.get("size") == size
+        ]
+        if not same_size or size == 0:
+            return None
+        fh.seek(0)
+        digest = hashlib.sha256()
+        for block in iter(lambda: fh.read(1 << 22), b""):
+            digest.update(block)
+        hexd = digest.hexdigest()
+        return next(((k, c) for k, c in same_size if c["complete_sha256"] == hexd), None)
+
+    def _stream(
+        self,
+        fh: io.BufferedReader,
+        key: str,
+        layout: _Layout,
+        start: tuple[int, int],
+        digest: Any,
+        fold: dict[str, list[Any]],
+        notes: Counter[str],
+        st: Any,
+        header_quarantine: pd.DataFrame | None,
+    ) -> Iterator[Batch]:
+        """Chunks of whole lines from *start* (offset, line), one batch each."""
+        offset, line = start
+        per_line = max(1, len(layout.tag_cols)) if layout.kind == "wide" else 1
+        fh.seek(offset)
+        sample = fh.read(1 << 16)
+        line_len = max(8.0, len(sample) / max(1, sample.count(b"\n")))
+        chunk_bytes = max(64, int(self.chunk_rows / per_line * line_len))
+        fh.seek(offset)
+        rest = b""
+        yielded = False
+        while True:
+            block = fh.read(chunk_bytes)
+            data = rest + block
+            cut = data.rfind(b"\n")
+            if cut < 0:
+                if block:
+                    rest = data  # one line longer than a chunk: read on
+                    continue
+                if data:
+                    notes["unterminated_last_line"] += 1
+                    log.info("%s: last line has no newline yet; left for the next scan", key)
+                break
+            whole, rest = data[: cut + 1], data[cut + 1 :]
+            readings, quarantine, chunk_notes = self._parse(whole, line + 1, key, layout, fold)
+            notes.update(chunk_notes)
+            if header_quarantine is not None:
+                quarantine = pd.concat([header_quarantine, quarantine], ignore_index=True)
+                header_quarantine = None
+            digest.update(whole)
+            offset += len(whole)
+            line += whole.count(b"\n")
+            cursor = self._cursor(offset, line, digest, st.st_size, st.st_mtime_ns, fold)
+            yield self._batch(key, cursor, dict(notes), quarantine, readings)
+            yielded = True
+            notes = Counter()
+            if not block:
+                break
+        if notes or not yielded:
+            cursor = self._cursor(offset, line, digest, st.st_size, st.st_mtime_ns, fold)
+            yield self._batch(key, cursor, dict(notes), header_quarantine)
+
+    @staticmethod
+    def _cursor(
+        offset: int, line: int, digest: Any, size: int, mtime_ns: int, fold: dict[str, list[Any]]
+    ) -> dict[str, Any]:
+        prefix = digest.hexdigest()
+        cursor: dict[str, Any] = {
+            "offset": offset,
+            "line": line,
+            "sha256_prefix": prefix,
+            "complete_sha256": prefix if offset == size else None,
+            "size": size if offset == size else None,
+            "mtime_ns": mtime_ns if offset == size else None,
+        }
+        if fold:
+            cursor["fold"] = {k: list(v) for k, v in fold.items()}
+        return cursor
+
+    @staticmethod
+    def _batch(
+        key: str,
+        cursor: Mapping[str, Any],
+        notes: Mapping[str, int],
+        quarantine: pd.DataFrame | None = None,
+        readings: pd.DataFrame | None = None,
+    ) -> Batch:
+        return Batch(
+            readings=empty_readings() if readings is None else readings,
+            quarantined=empty_quarantine() if quarantine is None else quarantine,
+            cursor_key=key,
+            cursor=cursor,
+            notes={k: int(v) for k, v in notes.items() if v},
+        )
+
+    # ----------------------------------------------------------------- parsing
+    def _layout(self, header: bytes) -> _Layout | str:
+        """Read the header line; a string is the reason it cannot be used."""
+        text = header.decode("utf-8", errors="replace").lstrip("\ufeff").rstrip("\r\n")
+        names = [n.strip() for n in next(csv.reader([text], delimiter=self.delimiter), [])]
+        if len(names) < 2:
+            return "no usable header line (need a time column and at least one more)"
+        tag_col, value_col = _find(names, _TAG_NAMES), _find(names, _VALUE_NAMES)
+        kind = self.layout
+        if kind == "auto":
+            kind = "long" if tag_col >= 0 and value_col >= 0 else "wide"
+        time_col = max(0, _find(names, _TIME_NAMES))
+        if kind == "long":
+            if tag_col < 0 or value_col < 0:  # explicit long without names: by position
+                if len(names) < 3:
+                    return "long layout needs timestamp, tag and value columns"
+                time_col, tag_col, value_col = 0, 1, 2
+            q = _find(names, _QUALITY_NAMES)
+            return _Layout("long", len(names), time_col, (), (), tag_col, value_col, q)
+        known = tuple((i, n) for i, n in enumerate(names) if i != time_col and n in self.tags)
+        unknown = tuple(n for i, n in enumerate(names) if i != time_col and n not in self.tags)
+        return _Layout("wide", len(names), time_col, known, unknown)
+
+    def _split(self, data: bytes, first_line: int, layout: _Layout) -> _Chunk:
+        """Columns of a chunk: pyarrow when every line is a row, else line by line."""
+        wanted = [layout.time_col]
+        types: dict[str, pa.DataType] = {f"c{layout.time_col}": pa.string()}
+        if layout.kind == "wide":
+            for col, _ in layout.tag_cols:
+                wanted.append(col)
+                types[f"c{col}"] = pa.float64()
+        else:
+            wanted += [c for c in (layout.tag_col, layout.value_col, layout.quality_col) if c >= 0]
+            types.update({f"c{layout.tag_col}": pa.string(), f"c{layout.value_col}": pa.float64()})
+            if layout.quality_col >= 0:
+                types[f"c{layout.quality_col}"] = pa.string()
+        invalid: list[int] = []
+
+        def on_invalid(_row: Any) -> str:
+            invalid.append(1)
+            return "skip"
+
+        for typed in (True, False):
+            try:
+                table = pacsv.read_csv(
+                    io.BytesIO(data),
+                    read_options=pacsv.ReadOptions(
+                        column_names=[f"c{i}" for i in range(layout.n_fields)]
+                    ),
+                    parse_options=pacsv.ParseOptions(
+                        delimiter=self.delimiter,
+                        ignore_empty_lines=False,
+                        invalid_row_handler=on_invalid,
+                    ),
+                    convert_options=pacsv.ConvertOptions(
+                        column_types=types if typed else {k: pa.string() for k in types},
+                        include_columns=[f"c{i}" for i in wanted],
+                        decimal_point=self.decimal,
+                        strings_can_be_null=False,
+                    ),
+                )
+            except pa.ArrowInvalid:
+                invalid.clear()
+                continue  # a cell that is not a number: read the columns as text
+            if invalid:
+                break
+            lines = np.arange(first_line, first_line + table.num_rows, dtype=np.int64)
+            cols = {i: _column(table.column(f"c{i}")) for i in wanted}
+            return _Chunk(lines, cols, [], 0)
+        return self._split_slowly(data, first_line, layout, wanted)
+
+    def _split_slowly(
+        self, data: bytes, first_line: int, layout: _Layout, wanted: list[int]
+    ) -> _Chunk:
+        """Line by line, for chunks with lines pyarrow cannot place (wrong field count)."""
+        text = data.decode("utf-8", errors="replace").split("\n")[:-1]
+        raw = [t.rstrip("\r") for t in text]
+        lines: list[int] = []
+        rows: list[list[str]] = []
+        bad: list[tuple[int, str, str]] = []
+        blank = 0
+        for i, fields in enumerate(csv.reader(raw, delimiter=self.delimiter, strict=False)):
+            number = first_line + i
+            if not fields or all(not f.strip() for f in fields):
+                blank += 1
+            elif len(fields) != layout.n_fields:
+                reason = f"expected {layout.n_fields} fields, found {len(fields)}"
+                bad.append((number, reason, raw[i] if i < len(raw) else ""))
+            else:
+                lines.append(number)
+                rows.append(fields)
+        arr = np.array(rows, dtype=object).reshape(len(rows), layout.n_fields)
+        cols = {i: arr[:, i] for i in wanted}
+        return _Chunk(np.asarray(lines, dtype=np.int64), cols, bad, blank)
+
+    def _parse(
+        self, data: bytes, first_line: int, key: str, layout: _Layout, fold: dict[str, list[Any]]
+    ) -> tuple[pd.DataFrame, pd.DataFrame, Counter[str]]:
+        """Readings, quarantine and notes of one chunk of whole lines."""
+        chunk = self._split(data, first_line, layout)
+        notes: Counter[str] = Counter(blank_lines=chunk.blank)
+        bad: list[tuple[int, str]] = [(ln, r) for ln, r, _ in chunk.bad_rows]
+        known_raw = {ln: raw for ln, _, raw in chunk.bad_rows}
+        tcol = chunk.cols[layout.time_col]
+        value_cols = [c for c in chunk.cols if c != layout.time_col]
+        is_blank = _blank_rows(tcol, [chunk.cols[c] for c in value_cols])
+        notes["blank_lines"] += int(is_blank.sum())
+        keep = ~is_blank
+        if layout.kind == "long":
+            tags = text_cells(chunk.cols[layout.tag_col])
+            times, status = parse_times(tcol, self.zone, keys=tags, fold=fold)
+        else:
+            tags = None
+            times, status = parse_times(tcol, self.zone, fold=fold)
+        for code, reason in TIME_REASONS.items():
+            hit = keep & (status == code)
+            bad += [(int(ln), reason) for ln in chunk.lines[hit]]
+            keep &= ~hit
+        if layout.kind == "wide":
+            readings = self._wide(chunk, layout, times, keep, bad, notes)
+        else:
+            assert tags is not None
+            readings = self._long(chunk, layout, times, tags, keep, bad, notes)
+        # Wide rows can only repeat a (time, tag) pair through a repeated time: check the
+        # cheap condition first, the full drop costs more than the whole parse.
+        if layout.kind == "long" or times[keep].has_duplicates:
+            before = len(readings)
+            readings = readings.drop_duplicates(["time", "tag"], keep="last", ignore_index=True)
+            notes["duplicate_rows"] += before - len(readings)
+        steps = np.diff(times[keep].asi8)
+        notes["out_of_order_rows"] += int(np.count_nonzero(steps < 0))
+        notes["quarantined"] += len(bad)
+        return readings, self._quarantine_rows(data, first_line, key, bad, known_raw), notes
+
+    def _wide(
+        self,
+        chunk: _Chunk,
+        layout: _Layout,
+        times: pd.DatetimeIndex,
+        keep: npt.NDArray[np.bool_],
+        bad: list[tuple[int, str]],
+        notes: Counter[str],
+    ) -> pd.DataFrame:
+        t = times.asi8
+        parts_t, parts_v, names, counts = [], [], [], []
+        for col, tag in layout.tag_cols:
+            values = chunk.cols[col]
+            if values.dtype != np.float64:
+                values, wrong = to_float(values, self.decimal)
+                hit = wrong & keep
+                bad += [(int(ln), f"value of {tag} is not a number") for ln in chunk.lines[hit]]
+            ok = keep & np.isfinite(values)
+            scale, offset = self._si[tag]
+            parts_t.append(t[ok])
+            parts_v.append(values[ok] * scale + offset)
+            names.append(tag)
+            counts.append(int(ok.sum()))
+        if not names:
+            return empty_readings()
+        tag_col = np.repeat(np.array(names, dtype=object), counts)
+        return readings_frame(np.concatenate(parts_t), tag_col, np.concatenate(parts_v), None)
+
+    def _long(
+        self,
+        chunk: _Chunk,
+        layout: _Layout,
+        times: pd.DatetimeIndex,
+        tags: npt.NDArray[Any],
+        keep: npt.NDArray[np.bool_],
+        bad: list[tuple[int, str]],
+        notes: Counter[str],
+    ) -> pd.DataFrame:
+        values = chunk.cols[layout.value_col]
+        wrong = np.zeros(len(values), dtype=bool)
+        if values.dtype != np.float64:
+            values, wrong = to_float(values, self.decimal)
+        for mask, reason in (
+            (keep & (tags == ""), "blank tag"),
+            (keep & wrong, "value is not a number"),
+            (keep & ~wrong & ~np.isfinite(values), "blank value"),
+        ):
+            bad += [(int(ln), reason) for ln in chunk.lines[mask]]
+            keep &= ~mask
+        ids, uniques = pd.factorize(tags)
+        scale = np.full(len(uniques), np.nan)
+        offset = np.zeros(len(uniques))
+        for i, name in enumerate(uniques):
+            if name in self._si:
+                scale[i], offset[i] = self._si[name]
+            elif name:
+                rows = keep & (ids == i)
+                count = int(rows.sum())
+                if count:
+                    notes["unknown_tag_rows"] += count
+                    first = int(chunk.lines[np.argmax(rows)])
+                    bad.append((first, f"unknown tag {name!r} ({count} rows in this chunk)"))
+                    keep &= ~rows
+        good = np.ones(len(values), dtype=bool)
+        if layout.quality_col >= 0:
+            good, unmapped = quality_good(chunk.cols[layout.quality_col], self.quality_map)
+            notes["unmapped_quality"] += unmapped
+        si = values * scale[ids] + offset[ids]
+        return readings_frame(times.asi8[keep], tags[keep], si[keep], good[keep])
+
+    @staticmethod
+    def _quarantine_rows(
+        data: bytes, first_line: int, key: str, bad: list[tuple[int, str]], known: dict[int, str]
+    ) -> pd.DataFrame:
+        if not bad:
+            return empty_quarantine()
+        lines = data.split(b"\n")
+        rows = []
+        for number, reason in sorted(bad):
+            raw = known.get(number)
+            if raw is None:
+                raw = lines[number - first_line].decode("utf-8", errors="replace").rstrip("\r")
+            rows.append((key, number, reason, raw))
+        return quarantine_frame(rows)
+
+
+def _column(arr: pa.ChunkedArray) -> npt.NDArray[Any]:
+    if pa.types.is_floating(arr.type):
+        return arr.to_numpy().astype(np.float64, copy=False)
+    return np.asarray(arr.to_numpy(zero_copy_only=False), dtype=object)
+
+
+def _blank_rows(times: npt.NDArray[Any], others: list[npt.NDArray[Any]]) -> npt.NDArray[np.bool_]:
+    """Rows where every read cell is empty (blank lines, or lines of bare delimiters)."""
+    blank = text_cells(times) == ""
+    for col in others:
+        if not blank.any():
+            break
+        if col.dtype == np.float64:
+            blank &= np.isnan(col)
+        else:
+            blank &= text_cells(col) == ""
+    return np.asarray(blank, dtype=bool)
