@@ -66,11 +66,16 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy import stats
 
+from model import water
+from model.branch import Branch, HeldHeader, ReturnHeader, Tank
+
 __all__ = [
     "LOSSES",
     "FitResult",
     "OffsetComparison",
+    "compare_offset_hypotheses",
     "fit_ratio",
+    "fit_resistance",
     "offset_hypotheses",
 ]
 
@@ -516,3 +521,208 @@ def offset_hypotheses(
         flow_max_m3s=float(qb.max()), flow_span=float((q95 - q5) / q50) if q50 > 0 else nan,
         message=msg,
     )  # fmt: skip
+
+
+# --------------------------------------------------------------------------- branch level
+
+
+@dataclass(frozen=True)
+class _Window:
+    y: NDArray[np.float64]
+    x: NDArray[np.float64]
+    q: NDArray[np.float64]
+    w: NDArray[np.float64]
+    fit_static: bool
+    static_pa: float | None
+
+
+def _termination_logged(branch: Branch, level_m: Any, end_pressure_pa: Any) -> bool:
+    term = branch.termination
+    if isinstance(term, Tank):
+        return level_m is not None
+    if isinstance(term, HeldHeader | ReturnHeader):
+        return end_pressure_pa is not None
+    return True  # an open discharge has no termination pressure to log
+
+
+def _window(
+    branch: Branch,
+    *,
+    header_pressure_pa: ArrayLike,
+    flow_m3s: ArrayLike,
+    temperature_c: ArrayLike,
+    level_m: ArrayLike | None,
+    end_pressure_pa: ArrayLike | None,
+    valve_position: ArrayLike | None,
+    weights: ArrayLike | None,
+    fit_static: bool | None,
+    configured_static_pa: float | None,
+    min_flow_m3s: float,
+) -> _Window:
+    """The fit's y and x for one branch-window (module docstring)."""
+    if not isinstance(branch, Branch):
+        raise TypeError(f"branch must be a model.branch.Branch, got {type(branch).__name__}")
+    if not (math.isfinite(min_flow_m3s) and min_flow_m3s >= 0.0):
+        raise ValueError(f"min_flow_m3s must be a finite number >= 0, got {min_flow_m3s!r}")
+    p = _as_1d("header_pressure_pa", header_pressure_pa)
+    n = p.shape[0]
+    q = _as_1d("flow_m3s", flow_m3s, n)
+    t = _as_1d("temperature_c", temperature_c, n)
+    lvl = None if level_m is None else _as_1d("level_m", level_m, n)
+    pe = None if end_pressure_pa is None else _as_1d("end_pressure_pa", end_pressure_pa, n)
+    u = None if valve_position is None else _as_1d("valve_position", valve_position, n)
+    w = np.ones(n) if weights is None else _as_1d("weights", weights, n)
+    ok = np.isfinite(p) & np.isfinite(q) & np.isfinite(t) & np.isfinite(w) & (w > 0.0)
+    for arr in (lvl, pe, u):
+        if arr is not None:
+            ok &= np.isfinite(arr)
+    ok &= q > min_flow_m3s
+    p, q, t, w = p[ok], q[ok], t[ok], w[ok]
+    lvl = None if lvl is None else lvl[ok]
+    pe = None if pe is None else pe[ok]
+    u = None if u is None else u[ok]
+
+    logged = _termination_logged(branch, lvl, pe)
+    do_static = (not logged) if fit_static is None else bool(fit_static)
+    term = branch.termination
+    static_cfg: float | None
+    if do_static and not logged:
+        # The termination pressure is unknown: take it out of the known static part
+        # (zero level or end pressure) and let s stand for it.
+        zeros = np.zeros(p.shape[0])
+        if isinstance(term, Tank):
+            known = branch.static_pressure(temperature_c=t, level_m=zeros)
+            rho = water.density(float(np.median(t))) if t.size else water.density(20.0)
+            static_cfg = None if term.level_m is None else float(rho * water.G * term.level_m)
+        else:
+            known = branch.static_pressure(temperature_c=t, end_pressure_pa=zeros)
+            assert isinstance(term, HeldHeader | ReturnHeader)
+            static_cfg = (
+                term.set_pressure_pa if isinstance(term, HeldHeader) else term.pressure_pa
+            )
+    else:
+        known = branch.static_pressure(temperature_c=t, level_m=lvl, end_pressure_pa=pe)
+        static_cfg = 0.0
+    if configured_static_pa is not None:
+        if not math.isfinite(configured_static_pa):
+            raise ValueError(f"configured_static_pa must be finite, got {configured_static_pa}")
+        static_cfg = float(configured_static_pa)
+    rest, valve = branch.dp_dynamic_parts(q, temperature_c=t, valve_position=u)
+    y = np.asarray(p - known - valve, dtype=float)
+    return _Window(y, np.asarray(rest, dtype=float), q, w, do_static, static_cfg)
+
+
+def fit_resistance(
+    branch: Branch,
+    *,
+    header_pressure_pa: ArrayLike,
+    flow_m3s: ArrayLike,
+    temperature_c: ArrayLike,
+    level_m: ArrayLike | None = None,
+    end_pressure_pa: ArrayLike | None = None,
+    valve_position: ArrayLike | None = None,
+    weights: ArrayLike | None = None,
+    fit_static: bool | None = None,
+    configured_static_pa: float | None = None,
+    loss: Loss = "soft_l1",
+    min_flow_m3s: float = 0.0,
+    **options: Any,
+) -> FitResult:
+    """Fit the resistance ratio of one branch over one window of screened samples.
+
+    ``s`` is the part of the static back-pressure that the data do not give: the
+    termination pressure (tank ``ρ·g·level``, header pressure) when it is not logged.
+    Fitting ``s`` is automatic (``fit_static=None``) exactly then; ``fit_static=True`` with a
+    logged termination fits an extra constant offset on top of it.
+
+    Parameters
+    ----------
+    branch : the branch model (`model.branch.Branch`)
+    header_pressure_pa : supply header pressure per sample [Pa gauge]
+    flow_m3s : branch flow per sample [m^3/s]
+    temperature_c : water temperature per sample [°C]
+    level_m : logged tank level per sample [m], or None
+    end_pressure_pa : logged termination pressure per sample [Pa gauge], or None
+    valve_position : logged control-valve position per sample [-] (0–1), or None
+    weights : relative sample weights [-], or None
+    fit_static : fit ``s`` [Pa]; None = when the termination pressure is not logged
+    configured_static_pa : back-pressure ``s`` [Pa] to fall back to; default the
+        termination's configured value (tank ``ρ·g·level_m``, header set point)
+    loss : "soft_l1", "huber" or "linear"
+    min_flow_m3s : flow floor [m^3/s]; samples at or below it are left out
+    options : passed to `fit_ratio` (``min_samples``, ``max_corr``, ``min_flow_span``,
+        ``max_r_rel_halfwidth``, ``confidence``)
+
+    Samples with a NaN in any input are left out. Returns a `FitResult`.
+    """
+    win = _window(
+        branch,
+        header_pressure_pa=header_pressure_pa,
+        flow_m3s=flow_m3s,
+        temperature_c=temperature_c,
+        level_m=level_m,
+        end_pressure_pa=end_pressure_pa,
+        valve_position=valve_position,
+        weights=weights,
+        fit_static=fit_static,
+        configured_static_pa=configured_static_pa,
+        min_flow_m3s=min_flow_m3s,
+    )
+    return fit_ratio(
+        win.y,
+        win.x,
+        flow=win.q,
+        weights=win.w,
+        fit_static=win.fit_static,
+        static_pa=win.static_pa,
+        loss=loss,
+        **options,
+    )
+
+
+def compare_offset_hypotheses(
+    branch: Branch,
+    *,
+    header_pressure_pa: ArrayLike,
+    flow_m3s: ArrayLike,
+    temperature_c: ArrayLike,
+    r_baseline: float,
+    s_baseline_pa: float,
+    level_m: ArrayLike | None = None,
+    end_pressure_pa: ArrayLike | None = None,
+    valve_position: ArrayLike | None = None,
+    weights: ArrayLike | None = None,
+    fit_static: bool | None = None,
+    min_flow_m3s: float = 0.0,
+    **options: Any,
+) -> OffsetComparison:
+    """Back-pressure change or resistance change? One branch, one window.
+
+    ``y`` and ``x`` are built as in `fit_resistance` with the same *fit_static* choice, so
+    *s_baseline_pa* [Pa] is in the sense of ``FitResult.s_pa`` (or ``s_fixed_pa``) of the
+    baseline fit; *r_baseline* [-] is the baseline ratio. *options* go to
+    `offset_hypotheses` (``min_samples``, ``evidence_threshold``). Other parameters as
+    in `fit_resistance`.
+    """
+    win = _window(
+        branch,
+        header_pressure_pa=header_pressure_pa,
+        flow_m3s=flow_m3s,
+        temperature_c=temperature_c,
+        level_m=level_m,
+        end_pressure_pa=end_pressure_pa,
+        valve_position=valve_position,
+        weights=weights,
+        fit_static=fit_static,
+        configured_static_pa=None,
+        min_flow_m3s=min_flow_m3s,
+    )
+    return offset_hypotheses(
+        win.y,
+        win.x,
+        r_baseline=r_baseline,
+        s_baseline_pa=s_baseline_pa,
+        flow=win.q,
+        weights=win.w,
+        **options,
+    )

@@ -8,7 +8,9 @@ import numpy as np
 import pytest
 from scipy import optimize
 
-from model.fit import fit_ratio, offset_hypotheses
+from model.branch import Branch, HeldHeader, Tank
+from model.elements import ControlValve, Equipment, Fittings, Pipe
+from model.fit import compare_offset_hypotheses, fit_ratio, fit_resistance, offset_hypotheses
 
 
 def _design(rng: np.random.Generator, n: int, q_lo: float, q_hi: float) -> tuple[np.ndarray, ...]:
@@ -144,3 +146,169 @@ def test_offset_hypotheses_tell_static_from_resistance() -> None:
     )
     assert narrow.preferred == "undecided"
     assert offset_hypotheses(x[:3], x[:3], r_baseline=1.0, s_baseline_pa=0.0).preferred == "none"
+
+
+# --------------------------------------------------------------------------- branch level
+# Data below come from the branch model's own inverse (Branch.flow) at a true r, with
+# instrument noise added; the fit must find r again through the forward model.
+
+
+BAR = 1.0e5
+
+
+def _tank_branch(level_m: float | None = None) -> Branch:
+    pipe = Pipe.from_nominal(110.0, 5)
+    return Branch(
+        "CW-3",
+        [
+            pipe,
+            Fittings(pipe.inner_diameter_m, {"elbow_90": 8, "gate_valve": 2, "exit": 1}),
+            Equipment(0.5 * BAR, 140.0 / 3600.0),
+        ],
+        Tank(6.0, level_m=level_m),
+    )
+
+
+def _header_branch(set_pressure_pa: float | None = 1.5 * BAR) -> Branch:
+    pipe = Pipe.from_nominal(80.0, 4)
+    return Branch(
+        "CW-5",
+        [pipe, Fittings(pipe.inner_diameter_m, {"elbow_90": 6}), Equipment(0.4 * BAR, 0.025)],
+        HeldHeader(set_pressure_pa),
+    )
+
+
+def _noisy(rng: np.random.Generator, v: np.ndarray, rel: float, absolute: float) -> np.ndarray:
+    return np.asarray(
+        v * (1.0 + rel * rng.standard_normal(v.size)) + absolute * rng.standard_normal(v.size)
+    )
+
+
+def test_fit_recovers_known_ratio_with_logged_level() -> None:
+    rng = np.random.default_rng(21)
+    b = _tank_branch()
+    n = 1440  # one day of 1-minute samples
+    p = rng.uniform(1.6 * BAR, 3.0 * BAR, n)
+    t = 18.0 + 2.0 * np.sin(np.linspace(0.0, 2.0 * np.pi, n))
+    lvl = 2.0 + 0.5 * np.sin(np.linspace(0.0, 6.0, n))
+    q = b.flow(p, temperature_c=t, level_m=lvl, resistance_ratio=1.30)
+    res = fit_resistance(
+        b,
+        header_pressure_pa=_noisy(rng, p, 0.0, 500.0),
+        flow_m3s=_noisy(rng, q, 0.005, 0.0),
+        temperature_c=t,
+        level_m=lvl,
+    )
+    assert res.status == "ok" and not res.fit_static and math.isnan(res.s_pa)
+    assert res.r_low <= 1.30 <= res.r_high
+    assert abs(res.r - 1.30) < 0.01
+    assert res.samples == n and res.flow_min_m3s == pytest.approx(float(q.min()), rel=0.05)
+
+
+def test_fit_with_unlogged_header_pressure_wide_and_narrow_range() -> None:
+    rng = np.random.default_rng(8)
+    b = _header_branch()
+    n = 1440
+    p_true_end = 1.8 * BAR  # the real set point; the config still says 1.5 bar
+    b_true = _header_branch(p_true_end)
+    p = rng.uniform(2.2 * BAR, 4.5 * BAR, n)
+    q = b_true.flow(p, temperature_c=25.0, resistance_ratio=1.2)
+    res = fit_resistance(
+        b, header_pressure_pa=_noisy(rng, p, 0.0, 300.0), flow_m3s=_noisy(rng, q, 0.003, 0.0),
+        temperature_c=25.0,
+    )  # fmt: skip
+    assert res.fit_static and res.identifiable and res.status == "ok"
+    assert res.s_low_pa <= p_true_end <= res.s_high_pa
+    assert res.r_low <= 1.2 <= res.r_high
+    assert res.corr_rs < -0.5  # s and r trade off against each other
+
+    p_narrow = rng.uniform(3.9 * BAR, 4.0 * BAR, n)
+    q_narrow = b_true.flow(p_narrow, temperature_c=25.0, resistance_ratio=1.2)
+    narrow = fit_resistance(
+        b, header_pressure_pa=_noisy(rng, p_narrow, 0.0, 300.0),
+        flow_m3s=_noisy(rng, q_narrow, 0.003, 0.0), temperature_c=25.0,
+    )  # fmt: skip
+    assert narrow.status == "not_identifiable" and math.isnan(narrow.s_pa)
+    assert narrow.s_fixed_pa == 1.5 * BAR  # the configured set point
+    # With 0.3 bar too little back-pressure assumed, r absorbs it: biased, but a number.
+    assert narrow.r > 1.2
+
+
+def test_seasonal_temperature_alone_leaves_ratio_at_one() -> None:
+    """Clean branch all year, water 8–30 °C: r stays within 1 % of 1 in every season."""
+    rng = np.random.default_rng(4)
+    b = _tank_branch(level_m=2.0)
+    worst = 0.0
+    for temp in (8.0, 12.0, 17.0, 22.0, 26.0, 30.0):
+        n = 720
+        p = rng.uniform(1.8 * BAR, 3.0 * BAR, n)
+        t = temp + 1.0 * np.sin(np.linspace(0.0, 2.0 * np.pi, n))  # daily swing
+        q = b.flow(p, temperature_c=t)
+        res = fit_resistance(
+            b, header_pressure_pa=_noisy(rng, p, 0.0, 500.0),
+            flow_m3s=_noisy(rng, q, 0.005, 0.0), temperature_c=t + 0.1 * rng.standard_normal(n),
+        )  # fmt: skip
+        worst = max(worst, abs(res.r - 1.0))
+    assert worst < 0.01
+
+
+def test_logged_valve_position_is_taken_out() -> None:
+    rng = np.random.default_rng(6)
+    pipe = Pipe.from_nominal(60.0, 4)
+    b = Branch(
+        "CW-7",
+        [pipe, Fittings(pipe.inner_diameter_m, {"elbow_90": 4, "exit": 1}),
+         ControlValve(150.0, "equal_percentage", position=0.7)],
+        HeldHeader(1.0 * BAR),
+    )  # fmt: skip
+    n = 1000
+    u = rng.uniform(0.5, 0.95, n)
+    p = rng.uniform(2.5 * BAR, 4.0 * BAR, n)
+    q = b.flow(p, temperature_c=20.0, valve_position=u, resistance_ratio=1.4)
+    res = fit_resistance(
+        b, header_pressure_pa=p, flow_m3s=_noisy(rng, q, 0.003, 0.0), temperature_c=20.0,
+        valve_position=u, end_pressure_pa=np.full(n, 1.0 * BAR),
+    )  # fmt: skip
+    assert res.r_low <= 1.4 <= res.r_high and abs(res.r - 1.4) < 0.02
+    # Ignoring the logged position would blame the valve's throttling on the branch.
+    blind = fit_resistance(
+        b, header_pressure_pa=p, flow_m3s=q, temperature_c=20.0,
+        end_pressure_pa=np.full(n, 1.0 * BAR),
+    )  # fmt: skip
+    assert abs(blind.r - 1.4) > 0.1
+
+
+def test_nan_samples_and_flow_floor_are_left_out() -> None:
+    b = _tank_branch(level_m=1.0)
+    p = np.linspace(1.8 * BAR, 3.0 * BAR, 100)
+    q = b.flow(p, temperature_c=20.0)
+    t = np.full(100, 20.0)
+    t[:10] = np.nan
+    q_in = q.copy()
+    q_in[10:20] = 0.0  # pump tripped
+    res = fit_resistance(b, header_pressure_pa=p, flow_m3s=q_in, temperature_c=t)
+    assert res.samples == 80 and res.r == pytest.approx(1.0, abs=1e-9)
+    with pytest.raises(ValueError, match="flow_m3s"):
+        fit_resistance(b, header_pressure_pa=p, flow_m3s=q[:5], temperature_c=20.0)
+    with pytest.raises(TypeError, match="branch"):
+        fit_resistance("CW-3", header_pressure_pa=p, flow_m3s=q, temperature_c=20.0)  # type: ignore[arg-type]
+
+
+def test_offset_comparison_on_branch_back_pressure_step_and_restriction() -> None:
+    rng = np.random.default_rng(12)
+    b = _header_branch()
+    n = 1440
+    p = rng.uniform(2.2 * BAR, 4.5 * BAR, n)
+    kw = {"temperature_c": 20.0, "fit_static": True}
+    # Baseline: the configured set point, r = 1.1.
+    stepped = _header_branch(1.5 * BAR + 0.3 * BAR).flow(
+        p, temperature_c=20.0, resistance_ratio=1.1
+    )
+    restricted = b.flow(p, temperature_c=20.0, resistance_ratio=1.45)
+    for q, kind in ((stepped, "static"), (restricted, "resistance")):
+        cmp_ = compare_offset_hypotheses(
+            b, header_pressure_pa=_noisy(rng, p, 0.0, 300.0), flow_m3s=_noisy(rng, q, 0.004, 0.0),
+            r_baseline=1.1, s_baseline_pa=1.5 * BAR, **kw,  # type: ignore[arg-type]
+        )  # fmt: skip
+        assert cmp_.preferred == kind
+    assert cmp_.ratio_if_resistance == pytest.approx(1.45, rel=0.02)
