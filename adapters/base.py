@@ -203,10 +203,46 @@ class ResultsStore(abc.ABC):
 
     Implementations must make each public write one transaction, and writes keyed on
     natural keys (tag+time, branch+window, …) idempotent: writing the same thing twice
-    leaves one copy.
+    leaves one copy. Times in and out are aware UTC (frames: ``datetime64[ns, UTC]``);
+    naive times are refused with `ValueError`. Reads return pandas frames; missing
+    numbers are NaN. Implementations register under ``alias``; `ResultsStore.by_alias`
+    finds them (``sqlalchemy`` → `adapters.store.SqlStore`).
     """
 
     alias: ClassVar[str] = ""
+    _registry: ClassVar[dict[str, type[ResultsStore]]] = {}
+    #: Where each alias lives; imported on first use (a driver may be optional).
+    _modules: ClassVar[dict[str, str]] = {"sqlalchemy": "adapters.store"}
+
+    def __init_subclass__(cls, **kwargs: Any) -> None:
+        super().__init_subclass__(**kwargs)
+        if cls.alias:
+            ResultsStore._registry[cls.alias] = cls
+
+    @staticmethod
+    def by_alias(alias: str) -> type[ResultsStore]:
+        """The `ResultsStore` implementation registered under *alias*."""
+        if alias not in ResultsStore._registry and alias in ResultsStore._modules:
+            importlib.import_module(ResultsStore._modules[alias])
+        try:
+            return ResultsStore._registry[alias]
+        except KeyError:
+            known = ", ".join(sorted(ResultsStore._modules))
+            raise KeyError(f"unknown store kind {alias!r}; known: {known}") from None
+
+    @dataclass(frozen=True)
+    class Watermarks:
+        """How far everything has got, for the ``status`` command.
+
+        ``readings``: tag, last (newest stored reading time) · ``cursors``: source, key,
+        updated · ``fits``: branch, last_window_end · ``jobs``: job, last_started,
+        status (of that last run).
+        """
+
+        readings: pd.DataFrame
+        cursors: pd.DataFrame
+        fits: pd.DataFrame
+        jobs: pd.DataFrame
 
     # readings and ingest bookkeeping -------------------------------------------------
     @abc.abstractmethod
@@ -224,6 +260,92 @@ class ResultsStore(abc.ABC):
     @abc.abstractmethod
     def read_readings(self, tags: Iterable[str], start: datetime, end: datetime) -> pd.DataFrame:
         """Stored readings of *tags* with ``start <= time < end``, as a readings frame."""
+
+    @abc.abstractmethod
+    def quarantine_counts(
+        self, source: str | None = None, since: datetime | None = None
+    ) -> dict[str, int]:
+        """Quarantined rows by reason (of one *source* or all, stored at or after *since*)."""
+
+    # fits and findings ---------------------------------------------------------------
+    @abc.abstractmethod
+    def upsert_fits(self, rows: Iterable[Mapping[str, Any]]) -> int:
+        """Store fit results keyed on (branch, window_start, window_end), replacing any."""
+
+    @abc.abstractmethod
+    def read_fits(
+        self,
+        branch: str | None = None,
+        start: datetime | None = None,
+        end: datetime | None = None,
+    ) -> pd.DataFrame:
+        """Fits (of one branch) whose window starts in ``[start, end)``, oldest first."""
+
+    @abc.abstractmethod
+    def upsert_findings(self, rows: Iterable[Mapping[str, Any]]) -> int:
+        """Store findings keyed on (branch, kind, start), replacing any."""
+
+    @abc.abstractmethod
+    def read_findings(
+        self,
+        branch: str | None = None,
+        *,
+        kind: str | None = None,
+        since: datetime | None = None,
+        open_only: bool = False,
+    ) -> pd.DataFrame:
+        """Findings, filtered; columns as in the findings file (DESIGN §5) plus ``updated``."""
+
+    # alarms ---------------------------------------------------------------------------
+    @abc.abstractmethod
+    def upsert_alarms(self, rows: Iterable[Mapping[str, Any]]) -> int:
+        """Write alarm states keyed on (branch, condition); state changes are journalled."""
+
+    @abc.abstractmethod
+    def read_alarms(self, branch: str | None = None, *, active_only: bool = False) -> pd.DataFrame:
+        """Alarms and their ISA-18.2 states."""
+
+    @abc.abstractmethod
+    def alarm_events(
+        self, branch: str | None = None, since: datetime | None = None
+    ) -> pd.DataFrame:
+        """The alarm journal: every state change, oldest first."""
+
+    # maintenance, job runs, data health, status ----------------------------------------
+    @abc.abstractmethod
+    def add_maintenance(self, branch: str, kind: str, time: datetime, note: str = "") -> None:
+        """Log a maintenance event (idempotent on branch, kind, time)."""
+
+    @abc.abstractmethod
+    def maintenance(self, branch: str | None = None) -> pd.DataFrame:
+        """Maintenance events (branch, kind, time, note), oldest first."""
+
+    @abc.abstractmethod
+    def record_job_run(
+        self,
+        job: str,
+        started: datetime,
+        finished: datetime | None,
+        status: str,
+        detail: Mapping[str, Any] | None = None,
+    ) -> None:
+        """Record a job run (idempotent on job, started: a later call updates it)."""
+
+    @abc.abstractmethod
+    def job_runs(self, limit: int = 20, job: str | None = None) -> pd.DataFrame:
+        """The newest job runs, newest first."""
+
+    @abc.abstractmethod
+    def add_data_health(self, frame: pd.DataFrame) -> int:
+        """Store screening counts (tag, day, flag, count), replacing stored days."""
+
+    @abc.abstractmethod
+    def data_health(self, start: datetime, end: datetime) -> pd.DataFrame:
+        """Screening counts (tag, day, flag, count) of UTC days in ``[start, end)``."""
+
+    @abc.abstractmethod
+    def watermarks(self) -> ResultsStore.Watermarks:
+        """How far readings, cursors, fits and jobs have got."""
 
     @abc.abstractmethod
     def close(self) -> None:

@@ -1,0 +1,1 @@
+"""Alembic migrations of the branchwatch results store (run by `adapters.store`)."""

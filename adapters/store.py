@@ -1,0 +1,860 @@
+"""The SQLAlchemy results store: everything branchwatch ingests and learns, in one database.
+
+`SqlStore` (alias ``sqlalchemy``) takes any SQLAlchemy URL: SQLite is the embedded
+default (WAL journal, busy timeout, ``BEGIN IMMEDIATE`` for writes, so a report reading
+while the daemon writes neither blocks nor deadlocks), PostgreSQL serves shared
+installations, MariaDB/MySQL work too. The schema is created and upgraded by the
+packaged Alembic migrations (``adapters/migrations``) each time a store is opened; an
+up-to-date database makes that a no-op.
+
+Tables
+------
+``readings`` (tag, time) · ``cursors`` (source, key) · ``quarantine`` · ``fits`` (branch,
+window_start, window_end) · ``findings`` (branch, kind, start) · ``alarms`` (branch,
+condition) and its journal ``alarm_events`` · ``maintenance`` · ``job_runs`` ·
+``data_health`` (tag, day, flag). The natural key of each is in brackets.
+
+Writes
+------
+Every public write is one transaction. Upserts on natural keys use each dialect's own
+statement — ``INSERT … ON CONFLICT`` on SQLite and PostgreSQL, ``INSERT … ON DUPLICATE
+KEY UPDATE`` on MariaDB/MySQL — and a delete-then-insert inside the same transaction on
+any other dialect. Readings are never overwritten: a (tag, time) already stored keeps its
+first value, and `SqlStore.store_batch` counts only the readings it newly stored (the
+batch is anti-joined against what is stored before the insert; the insert itself still
+ignores conflicts, so a concurrent writer cannot make it fail).
+
+Times
+-----
+UTC throughout: ``timestamptz`` on PostgreSQL, naive UTC ``DATETIME(6)`` on
+MariaDB/MySQL, ISO text on SQLite; every read returns aware UTC (``datetime64[ns, UTC]``
+in frames). Readings times are kept to the microsecond (finer parts are dropped).
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import math
+import re
+from collections.abc import Iterable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
+from datetime import UTC, date, datetime
+from pathlib import Path
+from typing import Any, ClassVar
+
+import numpy as np
+import pandas as pd
+import sqlalchemy as sa
+from sqlalchemy.dialects.mysql import insert as mysql_insert
+from sqlalchemy.dialects.postgresql import insert as pg_insert
+from sqlalchemy.dialects.sqlite import insert as sqlite_insert
+
+from adapters.base import (
+    QUARANTINE_COLUMNS,
+    READING_COLUMNS,
+    Batch,
+    ResultsStore,
+    StoreError,
+    empty_readings,
+)
+from adapters.migrations.tables import (
+    ALARM_COLUMNS,
+    FINDING_COLUMNS,
+    FIT_COLUMNS,
+    FIT_FLOATS,
+    UTCDateTime,
+    alarm_events_t,
+    alarms_t,
+    cursors_t,
+    data_health_t,
+    findings_t,
+    fits_t,
+    job_runs_t,
+    maintenance_t,
+    quarantine_t,
+    readings_raw,
+    readings_t,
+    utc_datetime,
+)
+
+__all__ = [
+    "ALARM_STATES",
+    "FINDING_COLUMNS",
+    "FIT_COLUMNS",
+    "MAINTENANCE_KINDS",
+    "SqlStore",
+    "Watermarks",
+]
+
+log = logging.getLogger(__name__)
+
+_MIGRATIONS = Path(__file__).resolve().parent / "migrations"
+#: ISA-18.2 alarm states as the store spells them.
+ALARM_STATES: tuple[str, ...] = (
+    "normal",
+    "unack",
+    "ack",
+    "rtn_unack",
+    "shelved",
+    "out_of_service",
+)
+#: Maintenance events the diagnosis understands (``cleaned`` resets the fouling baseline).
+MAINTENANCE_KINDS: tuple[str, ...] = (
+    "cleaned",
+    "valve_set",
+    "meter_calibrated",
+    "repaired",
+    "inspected",
+)
+_CHUNK = 20_000  # rows per executemany: bounds the parameter lists held in memory
+_IDENT = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,62}$")
+
+
+#: What `SqlStore.watermarks` returns (defined with the interface).
+Watermarks = ResultsStore.Watermarks
+
+
+def _json_default(value: Any) -> Any:
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, datetime | pd.Timestamp | date):
+        return value.isoformat()
+    raise TypeError(f"cannot store a {type(value).__name__} as JSON")
+
+
+def _finite(value: Any) -> Any:
+    """NaN and ±inf become JSON null (PostgreSQL's json type rejects the bare tokens)."""
+    if isinstance(value, float | np.floating):
+        return float(value) if math.isfinite(value) else None
+    if isinstance(value, Mapping):
+        return {str(k): _finite(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_finite(v) for v in value]
+    return value
+
+
+def _dumps(value: Any) -> str:
+    return json.dumps(_finite(value), default=_json_default, allow_nan=False)
+
+
+def _num(value: Any) -> float | None:
+    """A float for a Double column; NaN/None become NULL (MariaDB refuses NaN)."""
+    if value is None:
+        return None
+    out = float(value)
+    return out if math.isfinite(out) else None
+
+
+def _name(value: Any, name: str, limit: int) -> str:
+    if not isinstance(value, str) or not value or len(value) > limit:
+        raise ValueError(f"{name} must be a non-empty string of at most {limit} characters")
+    return value
+
+
+def _to_utc_index(values: Any) -> pd.DatetimeIndex:
+    """Vectorised: stored times (ISO text, naive UTC or aware datetimes) → ns UTC."""
+    idx = pd.DatetimeIndex(pd.to_datetime(pd.Series(values, dtype=object), utc=True,
+                                          format="ISO8601"))
+    return idx.as_unit("ns")
+
+
+def _nullable(values: pd.Series) -> list[float | None]:
+    """Floats with NaN/inf as None (NULL), vectorised."""
+    arr = values.to_numpy("float64")
+    out: list[float | None] = arr.tolist()
+    for i in np.flatnonzero(~np.isfinite(arr)):
+        out[i] = None
+    return out
+
+
+def _native_times(times: pd.Series, dialect: str) -> list[Any]:
+    """Driver-native UTC times for the bulk insert, formatted with numpy, not per row."""
+    if dialect == "postgresql":
+        return list(times.dt.to_pydatetime())
+    text = np.datetime_as_string(times.dt.tz_localize(None).to_numpy("datetime64[us]"), "us")
+    # SQLAlchemy's SQLite storage format (space, 6 decimals), which MariaDB parses too.
+    return list(np.char.replace(text, "T", " "))
+
+
+def _time_text(column: sa.ColumnElement[Any], dialect: str) -> sa.ColumnElement[Any]:
+    """A time column as ISO-like text: pandas parses text in C, datetime objects per row."""
+    if dialect == "sqlite":  # stored as text already
+        return sa.type_coerce(column, sa.types.NullType())
+    return sa.cast(column, sa.String())
+
+
+def _raw_rows(conn: sa.Connection, query: sa.Select[Any]) -> list[Any]:
+    """All rows as the driver returns them (no per-row Row objects: bulk reads)."""
+    result = conn.execute(query)
+    try:
+        return list(result.cursor.fetchall())
+    finally:
+        result.close()
+
+
+def _copy_readings_pg(conn: sa.Connection, columns: Mapping[str, list[Any]]) -> None:
+    """PostgreSQL with psycopg 3: COPY into a session temp table, then one INSERT … SELECT
+    that skips stored keys — several times faster than a parameterised executemany."""
+    driver = conn.connection.driver_connection
+    assert driver is not None
+    with driver.cursor() as cur:
+        cur.execute(
+            "CREATE TEMP TABLE IF NOT EXISTS bw_readings_stage "
+            "(LIKE readings INCLUDING DEFAULTS) ON COMMIT DELETE ROWS"
+        )
+        with cur.copy("COPY bw_readings_stage (tag, time, value, good) FROM STDIN") as copy:
+            for row in zip(*(columns[c] for c in ("tag", "time", "value", "good")),
+                           strict=True):
+                copy.write_row(row)
+        cur.execute(
+            "INSERT INTO readings (tag, time, value, good) "
+            "SELECT tag, time, value, good FROM bw_readings_stage "
+            "ON CONFLICT (tag, time) DO NOTHING"
+        )
+
+
+def _upsert_statement(
+    dialect: str, table: sa.Table, keys: Sequence[str], cols: Sequence[str], *, replace: bool
+) -> Any:
+    """The dialect's insert that replaces (or keeps) a row on a natural-key conflict."""
+    if dialect in ("sqlite", "postgresql"):
+        ins = (sqlite_insert if dialect == "sqlite" else pg_insert)(table)
+        if replace and cols:
+            return ins.on_conflict_do_update(
+                index_elements=list(keys), set_={c: ins.excluded[c] for c in cols}
+            )
+        return ins.on_conflict_do_nothing(index_elements=list(keys))
+    if dialect in ("mysql", "mariadb"):
+        mins = mysql_insert(table)
+        if replace and cols:
+            return mins.on_duplicate_key_update({c: mins.inserted[c] for c in cols})
+        # assigning a key column to itself keeps the stored row unchanged
+        return mins.on_duplicate_key_update({keys[0]: table.c[keys[0]]})
+    return None
+
+
+def _upsert(
+    conn: sa.Connection,
+    table: sa.Table,
+    rows: Sequence[Mapping[str, Any]],
+    keys: Sequence[str],
+    *,
+    replace: bool,
+) -> None:
+    """Insert *rows*; on a natural-key conflict replace the row (or keep it if not *replace*)."""
+    if not rows:
+        return
+    # One row per key (last wins): a statement may not touch the same row twice.
+    unique = list({tuple(r[k] for k in keys): r for r in rows}.values())
+    cols = [c for c in unique[0] if c not in keys]
+    stmt = _upsert_statement(conn.dialect.name, table, keys, cols, replace=replace)
+    if stmt is None:  # no dialect upsert: delete (or look) then insert, same transaction
+        for row in unique:
+            match = sa.and_(*(table.c[k] == row[k] for k in keys))
+            if replace:
+                conn.execute(table.delete().where(match))
+            elif conn.execute(sa.select(sa.literal(1)).where(match)).first():
+                continue
+            conn.execute(table.insert(), [row])
+        return
+    for i in range(0, len(unique), _CHUNK):
+        conn.execute(stmt, unique[i : i + _CHUNK])
+
+
+class SqlStore(ResultsStore):
+    """Results store on any SQLAlchemy database.
+
+    Parameters
+    ----------
+    url
+        SQLAlchemy URL, e.g. ``sqlite:///var/branchwatch.db`` or
+        ``postgresql+psycopg://branchwatch@db/plant`` (credentials belong in the
+        environment, not the config file).
+    schema
+        Keep the tables in this schema (PostgreSQL) or database (MariaDB/MySQL), created
+        if missing; not available on SQLite (use another file).
+    migrate
+        Bring the schema up to date on open (default). With ``False`` the store trusts
+        that someone else did.
+    busy_timeout_s
+        SQLite only: how long a writer waits for another writer's lock [s].
+    """
+
+    alias: ClassVar[str] = "sqlalchemy"
+
+    def __init__(
+        self,
+        url: str,
+        *,
+        schema: str | None = None,
+        migrate: bool = True,
+        busy_timeout_s: float = 30.0,
+    ) -> None:
+        try:
+            parsed = sa.engine.make_url(url)
+        except sa.exc.ArgumentError as exc:
+            raise ValueError(f"url is not a SQLAlchemy URL: {exc}") from None
+        if schema is not None and not _IDENT.match(schema):
+            raise ValueError(
+                f"schema must be a plain identifier ([A-Za-z_][A-Za-z0-9_]*), got {schema!r}"
+            )
+        self.url = parsed
+        self.schema = schema
+        self.dialect = parsed.get_backend_name()
+        if self.dialect == "sqlite":
+            if schema is not None:
+                raise ValueError("schema is not supported on SQLite; use another database file")
+            if parsed.database and parsed.database != ":memory:":
+                Path(parsed.database).parent.mkdir(parents=True, exist_ok=True)
+        elif schema is not None:
+            self._create_schema(parsed, schema)
+        self.engine = sa.create_engine(
+            parsed, json_serializer=_dumps, pool_pre_ping=self.dialect != "sqlite"
+        )
+        self._install_hooks(busy_timeout_s)
+        if migrate:
+            self.migrate()
+
+    # setup ---------------------------------------------------------------------------
+    def _create_schema(self, url: sa.URL, schema: str) -> None:
+        boot = sa.create_engine(url)
+        try:
+            quoted = boot.dialect.identifier_preparer.quote_identifier(schema)
+            word = "SCHEMA" if self.dialect == "postgresql" else "DATABASE"
+            with boot.begin() as conn:
+                conn.exec_driver_sql(f"CREATE {word} IF NOT EXISTS {quoted}")
+        except sa.exc.SQLAlchemyError as exc:
+            raise StoreError(f"cannot create schema {schema!r} at {url!r}: {exc}") from exc
+        finally:
+            boot.dispose()
+
+    def _install_hooks(self, busy_timeout_s: float) -> None:
+        schema, dialect = self.schema, self.dialect
+
+        if dialect == "sqlite":
+
+            @sa.event.listens_for(self.engine, "connect")
+            def _sqlite_connect(dbapi_conn: Any, _record: Any) -> None:
+                # Let SQLAlchemy, not the driver, open transactions (pysqlite's own
+                # handling would defer BEGIN and break one-transaction writes).
+                dbapi_conn.isolation_level = None
+                cur = dbapi_conn.cursor()
+                cur.execute("PRAGMA journal_mode=WAL")
+                cur.execute(f"PRAGMA busy_timeout={int(busy_timeout_s * 1000)}")
+                cur.execute("PRAGMA synchronous=NORMAL")  # durable enough with WAL
+                cur.close()
+
+            @sa.event.listens_for(self.engine, "begin")
+            def _sqlite_begin(conn: sa.Connection) -> None:
+                # A write takes the lock at BEGIN: a deferred read-then-write upgrade
+                # would fail at once under contention instead of waiting.
+                write = conn.get_execution_options().get("bw_write", False)
+                conn.exec_driver_sql("BEGIN IMMEDIATE" if write else "BEGIN")
+
+        elif schema is not None:
+            statement = (
+                f'SET search_path TO "{schema}"' if dialect == "postgresql" else f"USE `{schema}`"
+            )
+
+            @sa.event.listens_for(self.engine, "connect", insert=True)
+            def _use_schema(dbapi_conn: Any, _record: Any) -> None:
+                autocommit = getattr(dbapi_conn, "autocommit", None)
+                if dialect == "postgresql":
+                    dbapi_conn.autocommit = True
+                cur = dbapi_conn.cursor()
+                cur.execute(statement)
+                cur.close()
+                if dialect == "postgresql":
+                    dbapi_conn.autocommit = autocommit
+
+    def migrate(self) -> None:
+        """Upgrade the schema to the newest packaged migration (no-op when current)."""
+        from alembic import command
+        from alembic.config import Config
+
+        cfg = Config()
+        cfg.set_main_option("script_location", str(_MIGRATIONS).replace("%", "%%"))
+        try:
+            with self._write() as conn:
+                cfg.attributes["connection"] = conn
+                command.upgrade(cfg, "head")
+        except sa.exc.SQLAlchemyError as exc:
+            raise StoreError(f"cannot migrate the results store schema: {exc}") from exc
+
+    @contextmanager
+    def _write(self) -> Iterator[sa.Connection]:
+        """One write transaction; database errors come out as `StoreError`."""
+        try:
+            with self.engine.connect() as conn:
+                conn = conn.execution_options(bw_write=True)
+                with conn.begin():
+                    yield conn
+        except sa.exc.SQLAlchemyError as exc:
+            raise StoreError(f"results store write failed: {exc}") from exc
+
+    @contextmanager
+    def _read(self) -> Iterator[sa.Connection]:
+        try:
+            with self.engine.connect() as conn:
+                yield conn
+        except sa.exc.SQLAlchemyError as exc:
+            raise StoreError(f"results store read failed: {exc}") from exc
+
+    def close(self) -> None:
+        """Release the connection pool."""
+        self.engine.dispose()
+
+    def __enter__(self) -> SqlStore:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def __repr__(self) -> str:
+        return f"SqlStore({self.url.render_as_string(hide_password=True)!r})"
+
+
+    # readings and ingest bookkeeping -------------------------------------------------
+    def store_batch(self, batch: Batch, *, source: str) -> int:
+        """Store a batch's readings, quarantine rows and cursor in one transaction.
+
+        Readings whose (tag, time) is already stored are skipped, not overwritten, and
+        not counted; within the batch a repeated (tag, time) keeps its last row.
+
+        Parameters
+        ----------
+        batch
+            Readings frame (see `adapters.base`), quarantine frame and cursor.
+        source
+            Name of the source the cursor belongs to [-].
+
+        Returns
+        -------
+        int
+            Number of readings newly stored [-].
+        """
+        _name(source, "source", 100)
+        _name(batch.cursor_key, "batch.cursor_key", 400)
+        frame = _prepare_readings(batch.readings)
+        quarantined = _quarantine_rows(batch.quarantined, source)
+        now = datetime.now(UTC)
+        with self._write() as conn:
+            stored = self._insert_readings(conn, frame)
+            _upsert(conn, quarantine_t, [dict(q, stored_at=now) for q in quarantined],
+                    ("source", "origin", "line", "reason"), replace=False)
+            _upsert(conn, cursors_t, [{"source": source, "key": batch.cursor_key,
+                                       "cursor": dict(batch.cursor), "updated": now}],
+                    ("source", "key"), replace=True)
+        log.debug("stored %d of %d readings from %s", stored, len(frame), source)
+        return stored
+
+    def _insert_readings(self, conn: sa.Connection, frame: pd.DataFrame) -> int:
+        if frame.empty:
+            return 0
+        t_ns = frame["time"].to_numpy("datetime64[ns]").view("int64")
+        lo, hi = frame["time"].min(), frame["time"].max()
+        raw_time = _time_text(readings_t.c.time, conn.dialect.name)
+        query = sa.select(readings_t.c.tag, raw_time).where(
+            readings_t.c.tag.in_(sorted(set(frame["tag"]))),
+            readings_t.c.time >= lo, readings_t.c.time <= hi,
+        )
+        have = _raw_rows(conn, query)
+        if have:
+            stored_ns = _to_utc_index([h[1] for h in have]).asi8
+            known = pd.MultiIndex.from_arrays([[h[0] for h in have], stored_ns])
+            fresh = ~pd.MultiIndex.from_arrays([frame["tag"].to_numpy(), t_ns]).isin(known)
+            frame = frame[fresh]
+        if frame.empty:
+            return 0
+        columns = {
+            "tag": frame["tag"].tolist(),
+            "time": _native_times(frame["time"], conn.dialect.name),
+            "value": _nullable(frame["value"]),
+            "good": frame["good"].tolist(),
+        }
+        if conn.dialect.name == "postgresql" and conn.dialect.driver == "psycopg":
+            _copy_readings_pg(conn, columns)
+            return len(frame)
+        # Compiled once, executed by the driver on plain tuples: SQLAlchemy's per-row
+        # parameter handling would cost more than the database's own work.
+        stmt = _upsert_statement(conn.dialect.name, readings_raw, ("tag", "time"), [],
+                                 replace=False)
+        compiled = stmt.compile(dialect=conn.dialect)
+        sql = str(compiled)
+        if compiled.positional:
+            order = [columns[name] for name in compiled.positiontup or ()]
+            params: list[Any] = list(zip(*order, strict=True))
+        else:
+            names = list(compiled.params)
+            params = [dict(zip(names, row, strict=True))
+                      for row in zip(*(columns[n] for n in names), strict=True)]
+        for i in range(0, len(params), _CHUNK):
+            conn.exec_driver_sql(sql, params[i : i + _CHUNK])
+        return len(frame)
+
+    def cursors(self, source: str) -> dict[str, dict[str, Any]]:
+        """The stored cursors of *source* (cursor key → cursor)."""
+        with self._read() as conn:
+            rows = conn.execute(
+                sa.select(cursors_t.c.key, cursors_t.c.cursor).where(cursors_t.c.source == source)
+            ).all()
+        return {key: dict(cursor) for key, cursor in rows}
+
+    def read_readings(self, tags: Iterable[str], start: datetime, end: datetime) -> pd.DataFrame:
+        """Stored readings of *tags* with ``start <= time < end``, as a readings frame.
+
+        Sorted by time, then tag. Times are aware UTC [datetime64[ns, UTC]], values SI.
+        """
+        tag_list = sorted(set(tags))
+        start, end = utc_datetime(start, "start"), utc_datetime(end, "end")
+        if not tag_list or end <= start:
+            return empty_readings()
+        raw_time = _time_text(readings_t.c.time, self.dialect)
+        raw_good = sa.type_coerce(readings_t.c.good, sa.types.NullType())
+        query = (
+            sa.select(raw_time.label("time"), readings_t.c.tag, readings_t.c.value, raw_good)
+            .where(readings_t.c.tag.in_(tag_list), readings_t.c.time >= start,
+                   readings_t.c.time < end)
+            .order_by(readings_t.c.time, readings_t.c.tag)
+        )
+        with self._read() as conn:
+            rows = _raw_rows(conn, query)
+        if not rows:
+            return empty_readings()
+        time, tag, value, good = zip(*rows, strict=True)
+        return pd.DataFrame(
+            {
+                "time": _to_utc_index(time),
+                "tag": pd.Series(tag, dtype=object),
+                "value": pd.Series(value, dtype=object).astype("float64"),
+                "good": pd.Series(good, dtype=object).astype(bool),
+            }
+        )
+
+    def quarantine_counts(
+        self, source: str | None = None, since: datetime | None = None
+    ) -> dict[str, int]:
+        """Quarantined rows by reason, of one *source* or all, stored at or after *since*."""
+        query = sa.select(quarantine_t.c.reason, sa.func.count()).group_by(quarantine_t.c.reason)
+        if source is not None:
+            query = query.where(quarantine_t.c.source == source)
+        if since is not None:
+            query = query.where(quarantine_t.c.stored_at >= utc_datetime(since, "since"))
+        with self._read() as conn:
+            return {reason: int(n) for reason, n in conn.execute(query).all()}
+
+    # fits and findings ---------------------------------------------------------------
+    def upsert_fits(self, rows: Iterable[Mapping[str, Any]]) -> int:
+        """Store fit results, one per (branch, window_start, window_end), replacing any.
+
+        Each row has the keys of `FIT_COLUMNS` (``computed_at`` defaults to now; the
+        optional numbers may be missing or NaN, stored as NULL). Returns the rows written.
+        """
+        now = datetime.now(UTC)
+        out = []
+        for row in rows:
+            rec = _record(row, FIT_COLUMNS, ("branch", "window_start", "window_end",
+                                             "samples", "status"), "fit")
+            rec["computed_at"] = rec.get("computed_at") or now
+            for col in FIT_FLOATS:
+                rec[col] = _num(rec[col])
+            if rec["identifiable"] is not None:
+                rec["identifiable"] = bool(rec["identifiable"])
+            rec["samples"] = int(rec["samples"])
+            out.append(rec)
+        with self._write() as conn:
+            _upsert(conn, fits_t, out, ("branch", "window_start", "window_end"), replace=True)
+        return len(out)
+
+    def read_fits(
+        self,
+        branch: str | None = None,
+        start: datetime | None = None,
+        end: datetime | None = None,
+    ) -> pd.DataFrame:
+        """Fits of one branch or all, windows starting in ``[start, end)``, oldest first."""
+        query = sa.select(fits_t).order_by(fits_t.c.branch, fits_t.c.window_start)
+        if branch is not None:
+            query = query.where(fits_t.c.branch == branch)
+        if start is not None:
+            query = query.where(fits_t.c.window_start >= utc_datetime(start, "start"))
+        if end is not None:
+            query = query.where(fits_t.c.window_start < utc_datetime(end, "end"))
+        return self._frame(query, fits_t)
+
+    def upsert_findings(self, rows: Iterable[Mapping[str, Any]]) -> int:
+        """Store findings keyed on (branch, kind, start), replacing any stored one.
+
+        Keys as in `FINDING_COLUMNS` (DESIGN §5): ``end`` may be None (still open),
+        ``evidence`` a mapping of numbers; ``updated`` defaults to now.
+        """
+        now = datetime.now(UTC)
+        out = []
+        for row in rows:
+            rec = _record(row, FINDING_COLUMNS, ("branch", "kind", "start", "detected",
+                                                 "confidence", "message"), "finding")
+            rec["confidence"] = float(rec["confidence"])
+            if not 0.0 <= rec["confidence"] <= 1.0:
+                raise ValueError(f"finding confidence must be in [0, 1], got {rec['confidence']}")
+            rec["evidence"] = dict(rec["evidence"] or {})
+            rec["updated"] = rec.get("updated") or now
+            out.append(rec)
+        with self._write() as conn:
+            _upsert(conn, findings_t, out, ("branch", "kind", "start"), replace=True)
+        return len(out)
+
+    def read_findings(
+        self,
+        branch: str | None = None,
+        *,
+        kind: str | None = None,
+        since: datetime | None = None,
+        open_only: bool = False,
+    ) -> pd.DataFrame:
+        """Findings (of a branch, of a kind, detected at or after *since*, still open)."""
+        query = sa.select(findings_t).order_by(findings_t.c.detected, findings_t.c.branch)
+        if branch is not None:
+            query = query.where(findings_t.c.branch == branch)
+        if kind is not None:
+            query = query.where(findings_t.c.kind == kind)
+        if since is not None:
+            query = query.where(findings_t.c.detected >= utc_datetime(since, "since"))
+        if open_only:
+            query = query.where(findings_t.c.end.is_(None))
+        return self._frame(query, findings_t)
+
+    # alarms ---------------------------------------------------------------------------
+    def upsert_alarms(self, rows: Iterable[Mapping[str, Any]]) -> int:
+        """Write the current state of alarms, one per (branch, condition).
+
+        A row whose ``state`` differs from the stored one also appends an entry to the
+        alarm journal (`alarm_events`), in the same transaction. ``state`` is one of
+        `ALARM_STATES` (ISA-18.2); ``updated`` (the time of the change) defaults to now.
+        """
+        now = datetime.now(UTC)
+        recs = []
+        for row in rows:
+            rec = _record(row, ALARM_COLUMNS, ("branch", "condition", "state"), "alarm")
+            if rec["state"] not in ALARM_STATES:
+                raise ValueError(f"alarm state must be one of {ALARM_STATES}, got {rec['state']!r}")
+            rec["updated"] = rec.get("updated") or now
+            rec["value"], rec["limit_value"] = _num(rec["value"]), _num(rec["limit_value"])
+            recs.append(rec)
+        with self._write() as conn:
+            keys = [(r["branch"], r["condition"]) for r in recs]
+            before = {
+                (b, c): s
+                for b, c, s in conn.execute(
+                    sa.select(alarms_t.c.branch, alarms_t.c.condition, alarms_t.c.state)
+                ).all()
+                if (b, c) in set(keys)
+            }
+            events = [
+                {"branch": r["branch"], "condition": r["condition"], "time": r["updated"],
+                 "from_state": before.get(k), "to_state": r["state"], "message": r["message"]}
+                for k, r in zip(keys, recs, strict=True)
+                if before.get(k) != r["state"]
+            ]
+            _upsert(conn, alarms_t, recs, ("branch", "condition"), replace=True)
+            if events:
+                conn.execute(alarm_events_t.insert(), events)
+        return len(recs)
+
+    def read_alarms(self, branch: str | None = None, *, active_only: bool = False) -> pd.DataFrame:
+        """Alarms and their states; *active_only* leaves out those in ``normal``."""
+        query = sa.select(alarms_t).order_by(alarms_t.c.branch, alarms_t.c.condition)
+        if branch is not None:
+            query = query.where(alarms_t.c.branch == branch)
+        if active_only:
+            query = query.where(alarms_t.c.state != "normal")
+        return self._frame(query, alarms_t)
+
+    def alarm_events(
+        self, branch: str | None = None, since: datetime | None = None
+    ) -> pd.DataFrame:
+        """The alarm journal: every state change, oldest first."""
+        query = sa.select(alarm_events_t).order_by(alarm_events_t.c.time, alarm_events_t.c.id)
+        if branch is not None:
+            query = query.where(alarm_events_t.c.branch == branch)
+        if since is not None:
+            query = query.where(alarm_events_t.c.time >= utc_datetime(since, "since"))
+        return self._frame(query, alarm_events_t)
+
+    # maintenance, job runs, data health ----------------------------------------------
+    def add_maintenance(self, branch: str, kind: str, time: datetime, note: str = "") -> None:
+        """Log a maintenance event; logging the same (branch, kind, time) again updates the note."""
+        if kind not in MAINTENANCE_KINDS:
+            raise ValueError(f"kind must be one of {MAINTENANCE_KINDS}, got {kind!r}")
+        row = {"branch": _name(branch, "branch", 100), "kind": kind,
+               "time": utc_datetime(time, "time"), "note": note}
+        with self._write() as conn:
+            _upsert(conn, maintenance_t, [row], ("branch", "kind", "time"), replace=True)
+
+    def maintenance(self, branch: str | None = None) -> pd.DataFrame:
+        """Maintenance events (branch, kind, time, note), oldest first."""
+        query = sa.select(maintenance_t.c.branch, maintenance_t.c.kind, maintenance_t.c.time,
+                          maintenance_t.c.note).order_by(maintenance_t.c.time)
+        if branch is not None:
+            query = query.where(maintenance_t.c.branch == branch)
+        return self._frame(query, maintenance_t)
+
+    def record_job_run(
+        self,
+        job: str,
+        started: datetime,
+        finished: datetime | None,
+        status: str,
+        detail: Mapping[str, Any] | None = None,
+    ) -> None:
+        """Record a job run; the same (job, started) again replaces it (e.g. when it ends)."""
+        row = {"job": _name(job, "job", 100), "started": utc_datetime(started, "started"),
+               "finished": None if finished is None else utc_datetime(finished, "finished"),
+               "status": _name(status, "status", 20), "detail": dict(detail or {})}
+        with self._write() as conn:
+            _upsert(conn, job_runs_t, [row], ("job", "started"), replace=True)
+
+    def job_runs(self, limit: int = 20, job: str | None = None) -> pd.DataFrame:
+        """The newest *limit* job runs (of one *job* or all), newest first."""
+        if limit < 1:
+            raise ValueError(f"limit must be at least 1, got {limit}")
+        query = sa.select(job_runs_t).order_by(job_runs_t.c.started.desc()).limit(limit)
+        if job is not None:
+            query = query.where(job_runs_t.c.job == job)
+        return self._frame(query, job_runs_t)
+
+    def add_data_health(self, frame: pd.DataFrame) -> int:
+        """Store screening counts (columns tag, day, flag, count); a stored day is replaced.
+
+        ``day`` is the UTC day (a date, or a timestamp at UTC midnight).
+        """
+        missing = {"tag", "day", "flag", "count"} - set(frame.columns)
+        if missing:
+            raise ValueError(f"frame lacks data-health columns {sorted(missing)}")
+        days = pd.to_datetime(frame["day"], utc=True).dt.date
+        rows = [
+            {"tag": t, "day": d, "flag": f, "count": int(n)}
+            for t, d, f, n in zip(frame["tag"], days, frame["flag"], frame["count"], strict=True)
+        ]
+        with self._write() as conn:
+            _upsert(conn, data_health_t, rows, ("tag", "day", "flag"), replace=True)
+        return len(rows)
+
+    def data_health(self, start: datetime, end: datetime) -> pd.DataFrame:
+        """Counts of UTC days in ``[start, end)``: tag, day (UTC midnight), flag, count."""
+        lo, hi = utc_datetime(start, "start").date(), utc_datetime(end, "end")
+        query = (
+            sa.select(data_health_t)
+            .where(data_health_t.c.day >= lo, data_health_t.c.day < _ceil_day(hi))
+            .order_by(data_health_t.c.day, data_health_t.c.tag, data_health_t.c.flag)
+        )
+        out = self._frame(query, data_health_t)
+        out["day"] = pd.to_datetime(out["day"]).dt.tz_localize("UTC").dt.as_unit("ns")
+        out["count"] = out["count"].astype("int64")
+        return out
+
+    def watermarks(self) -> Watermarks:
+        """How far readings, cursors, fits and jobs have got (for ``status``)."""
+        raw_last = _time_text(sa.func.max(readings_t.c.time), self.dialect)
+        with self._read() as conn:
+            last = conn.execute(
+                sa.select(readings_t.c.tag, raw_last).group_by(readings_t.c.tag)
+                .order_by(readings_t.c.tag)
+            ).all()
+        readings = pd.DataFrame(
+            {"tag": pd.Series([r[0] for r in last], dtype=object),
+             "last": _to_utc_index([r[1] for r in last])}
+        )
+        cur = self._frame(sa.select(cursors_t.c.source, cursors_t.c.key, cursors_t.c.updated)
+                          .order_by(cursors_t.c.source, cursors_t.c.key), cursors_t)
+        last_fit = sa.func.max(fits_t.c.window_end).label("last_window_end")
+        fits = self._frame(sa.select(fits_t.c.branch, last_fit).group_by(fits_t.c.branch)
+                           .order_by(fits_t.c.branch), fits_t, extra_times=("last_window_end",))
+        newest = (sa.select(job_runs_t.c.job, sa.func.max(job_runs_t.c.started).label("s"))
+                  .group_by(job_runs_t.c.job).subquery())
+        jobs = self._frame(
+            sa.select(job_runs_t.c.job, job_runs_t.c.started.label("last_started"),
+                      job_runs_t.c.status)
+            .join(newest, sa.and_(newest.c.job == job_runs_t.c.job,
+                                  newest.c.s == job_runs_t.c.started))
+            .order_by(job_runs_t.c.job),
+            job_runs_t, extra_times=("last_started",),
+        )
+        return Watermarks(readings=readings, cursors=cur, fits=fits, jobs=jobs)
+
+    def _frame(
+        self, query: sa.Select[Any], table: sa.Table, extra_times: Sequence[str] = ()
+    ) -> pd.DataFrame:
+        """Run *query*; time columns become ``datetime64[ns, UTC]``, NULL numbers NaN."""
+        with self._read() as conn:
+            result = conn.execute(query)
+            names = list(result.keys())
+            frame = pd.DataFrame(result.all(), columns=names, dtype=object)
+        times = {c.name for c in table.columns if isinstance(c.type, UTCDateTime)}
+        for col in names:
+            if col in times or col in extra_times:
+                frame[col] = _to_utc_index(frame[col].to_numpy())
+            elif col in table.c and isinstance(table.c[col].type, sa.Double):
+                frame[col] = frame[col].astype("float64")
+            elif col in table.c and isinstance(table.c[col].type, sa.Integer):
+                frame[col] = frame[col].astype("int64")
+        return frame
+
+
+def _ceil_day(t: datetime) -> date:
+    """The first UTC day that starts at or after *t*."""
+    return pd.Timestamp(t).ceil("D").date()
+
+
+def _record(
+    row: Mapping[str, Any], columns: Sequence[str], required: Sequence[str], what: str
+) -> dict[str, Any]:
+    """*row* with every column present (None where absent); unknown keys are refused."""
+    unknown = set(row) - set(columns)
+    if unknown:
+        raise ValueError(f"{what} has unknown keys {sorted(unknown)}; allowed: {list(columns)}")
+    missing = [k for k in required if row.get(k) is None]
+    if missing:
+        raise ValueError(f"{what} lacks required keys {missing}")
+    rec = {c: row.get(c) for c in columns}
+    for col in columns:
+        if isinstance(rec[col], datetime | pd.Timestamp):
+            rec[col] = utc_datetime(rec[col], f"{what} {col}")
+    return rec
+
+
+def _prepare_readings(frame: pd.DataFrame) -> pd.DataFrame:
+    """Validate a readings frame; times to µs UTC; one row per (tag, time), the last."""
+    missing = set(READING_COLUMNS) - set(frame.columns)
+    if missing:
+        raise ValueError(f"batch.readings lacks columns {sorted(missing)}")
+    if frame.empty:
+        return frame.loc[:, list(READING_COLUMNS)]
+    time = frame["time"]
+    if not isinstance(time.dtype, pd.DatetimeTZDtype):
+        raise ValueError("batch.readings time must be timezone-aware (datetime64[ns, UTC])")
+    too_long = frame["tag"].astype(str).str.len() > 100
+    if too_long.any():
+        first = frame["tag"][too_long].iloc[0]
+        raise ValueError(f"batch.readings has a tag longer than 100 characters: {first!r}")
+    out = pd.DataFrame(
+        {
+            "time": time.dt.tz_convert("UTC").dt.floor("us"),
+            "tag": frame["tag"].astype(str).astype(object),
+            "value": pd.to_numeric(frame["value"], errors="coerce").astype("float64"),
+            "good": frame["good"].astype(bool),
+        }
+    )
+    return out.drop_duplicates(["tag", "time"], keep="last")
+
+
+def _quarantine_rows(frame: pd.DataFrame, source: str) -> list[dict[str, Any]]:
+    missing = set(QUARANTINE_COLUMNS) - set(frame.columns)
+    if missing:
+        raise ValueError(f"batch.quarantined lacks columns {sorted(missing)}")
+    return [
+        {"source": source, "origin": str(o)[:400], "line": int(n), "reason": str(r)[:200],
+         "raw": None if raw is None else str(raw)[:2000]}
+        for o, n, r, raw in zip(frame["origin"], frame["line"], frame["reason"], frame["raw"],
+                                strict=True)
+    ]

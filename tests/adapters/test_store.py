@@ -1,0 +1,312 @@
+"""Results store: the same suite on SQLite, PostgreSQL and MariaDB.
+
+Every server test works in a schema (PostgreSQL) or database (MariaDB) of its own, named
+by `unique_name` and dropped afterwards, so runs never see each other's rows.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterator
+from datetime import UTC, datetime, timedelta
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pytest
+import sqlalchemy as sa
+from alembic.autogenerate import compare_metadata
+from alembic.migration import MigrationContext
+
+from adapters import store as store_module
+from adapters.base import Batch, ResultsStore
+from adapters.migrations import tables
+from adapters.store import SqlStore
+
+T0 = datetime(2025, 3, 1, tzinfo=UTC)
+ALL_TABLES = {
+    "readings",
+    "cursors",
+    "quarantine",
+    "fits",
+    "findings",
+    "alarms",
+    "alarm_events",
+    "maintenance",
+    "job_runs",
+    "data_health",
+    "branchwatch_schema_version",
+}
+
+
+def _drop(url: str, schema: str) -> None:
+    engine = sa.create_engine(url)
+    quoted = engine.dialect.identifier_preparer.quote_identifier(schema)
+    with engine.begin() as conn:
+        if engine.dialect.name == "postgresql":
+            conn.exec_driver_sql(f"DROP SCHEMA IF EXISTS {quoted} CASCADE")
+        else:
+            conn.exec_driver_sql(f"DROP DATABASE IF EXISTS {quoted}")
+    engine.dispose()
+
+
+@pytest.fixture(
+    params=[
+        "sqlite",
+        pytest.param("postgresql", marks=pytest.mark.server),
+        pytest.param("mariadb", marks=pytest.mark.server),
+    ]
+)
+def opener(request: pytest.FixtureRequest, tmp_path: Any, unique_name: str) -> Iterator[Any]:
+    """A function that opens (another) store on this test's own database."""
+    opened: list[SqlStore] = []
+    if request.param == "sqlite":
+        url, schema = f"sqlite:///{tmp_path / 'branchwatch.db'}", None
+    else:
+        fixture = "postgres_url" if request.param == "postgresql" else "mariadb_url"
+        url, schema = request.getfixturevalue(fixture), unique_name
+
+    def open_store() -> SqlStore:
+        opened.append(SqlStore(url, schema=schema))
+        return opened[-1]
+
+    yield open_store
+    for s in opened:
+        s.close()
+    if schema is not None:
+        _drop(url, schema)
+
+
+@pytest.fixture
+def store(opener: Any) -> SqlStore:
+    opened: SqlStore = opener()
+    return opened
+
+
+def _readings(n_minutes: int, tags: list[str], start: datetime = T0) -> pd.DataFrame:
+    times = pd.date_range(start, periods=n_minutes, freq="min", tz="UTC")
+    frame = pd.DataFrame(
+        {
+            "time": np.repeat(times, len(tags)),
+            "tag": tags * n_minutes,
+            "value": np.arange(n_minutes * len(tags), dtype=float) * 0.5,
+            "good": True,
+        }
+    )
+    frame["tag"] = frame["tag"].astype(object)
+    return frame
+
+
+def _batch(readings: pd.DataFrame, key: str = "inbox/a.csv", offset: int = 100) -> Batch:
+    quarantined = pd.DataFrame(
+        {"origin": [key, key], "line": [7, 9], "reason": ["bad_number", "bad_time"],
+         "raw": ["2025-03-01T00:07Z,FT-203,abc", "yesterday,FT-203,1.0"]}
+    )
+    return Batch(readings, quarantined, key, {"offset": offset, "sha256": "ab" * 32})
+
+
+def _all(store: SqlStore, tags: list[str]) -> pd.DataFrame:
+    return store.read_readings(tags, T0 - timedelta(days=1), T0 + timedelta(days=30))
+
+
+def test_migrations_create_schema_and_reopen_is_a_noop(opener: Any) -> None:
+    first = opener()
+    inspector = sa.inspect(first.engine)
+    assert set(inspector.get_table_names()) >= ALL_TABLES
+    with first.engine.connect() as conn:
+        assert MigrationContext.configure(
+            conn, opts={"version_table": "branchwatch_schema_version"}
+        ).get_current_revision() == "0001_initial"
+        # The tables the store queries through agree with what the migration built.
+        diff = compare_metadata(MigrationContext.configure(conn), tables.metadata)
+    # Only our version table is not in the metadata; no table, column, type or index differs.
+    assert [d[1].name for d in diff] == ["branchwatch_schema_version"]
+    first.store_batch(_batch(_readings(3, ["FT-203"])), source="csv")
+    second = opener()  # migrating an up-to-date schema changes nothing, loses nothing
+    assert len(_all(second, ["FT-203"])) == 3
+    with second.engine.connect() as conn:
+        versions = conn.execute(sa.text("SELECT version_num FROM branchwatch_schema_version"))
+        assert [v for (v,) in versions] == ["0001_initial"]
+
+
+def test_store_batch_is_idempotent(store: SqlStore) -> None:
+    assert isinstance(store, ResultsStore)
+    tags = ["FT-203", "PT-100"]
+    batch = _batch(_readings(60, tags))
+    assert store.store_batch(batch, source="csv") == 120
+    first = _all(store, tags)
+    assert store.store_batch(batch, source="csv") == 0  # same batch again: nothing new
+    pd.testing.assert_frame_equal(_all(store, tags), first)
+    assert store.quarantine_counts() == {"bad_number": 1, "bad_time": 1}
+    assert store.cursors("csv") == {"inbox/a.csv": {"offset": 100, "sha256": "ab" * 32}}
+    assert store.cursors("historian") == {}
+
+
+def test_overlapping_batch_counts_only_new_readings(store: SqlStore) -> None:
+    tags = ["FT-203"]
+    store.store_batch(_batch(_readings(10, tags)), source="csv")
+    grown = _readings(15, tags)  # the file grew: the first 10 minutes come again
+    grown.loc[0, "value"] = -99.0  # a stored reading is kept, not overwritten
+    doubled = pd.concat([grown, grown.tail(2)], ignore_index=True)  # repeats in the batch
+    assert store.store_batch(_batch(doubled, offset=150), source="csv") == 5
+    out = _all(store, tags)
+    assert len(out) == 15 and out["value"].iloc[0] == 0.0
+    assert store.cursors("csv")["inbox/a.csv"]["offset"] == 150
+
+
+def test_failure_inside_store_batch_leaves_nothing(
+    store: SqlStore, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    real = store_module._upsert
+
+    def failing(conn: sa.Connection, table: sa.Table, *args: Any, **kw: Any) -> None:
+        if table is tables.cursors_t:  # readings and quarantine are written by now
+            raise RuntimeError("disk full (injected)")
+        real(conn, table, *args, **kw)
+
+    monkeypatch.setattr(store_module, "_upsert", failing)
+    with pytest.raises(RuntimeError, match="injected"):
+        store.store_batch(_batch(_readings(30, ["FT-203"])), source="csv")
+    monkeypatch.undo()
+    assert _all(store, ["FT-203"]).empty
+    assert store.quarantine_counts() == {}
+    assert store.cursors("csv") == {}
+    assert store.store_batch(_batch(_readings(30, ["FT-203"])), source="csv") == 30
+
+
+def test_read_readings_types_window_and_precision(store: SqlStore) -> None:
+    frame = pd.DataFrame(
+        {
+            "time": pd.to_datetime(
+                ["2025-03-01T00:00:00.123456Z", "2025-03-01T01:00:00+01:00",
+                 "2025-03-01T00:00:01Z", "2025-03-01T02:00:00Z"],
+                utc=True, format="ISO8601",
+            ),
+            "tag": pd.Series(["FT-203", "FT-203", "PT-100", "FT-203"], dtype=object),
+            "value": [1.25, np.nan, 3.5e5, 7.0],
+            "good": [True, False, True, True],
+        }
+    )
+    store.store_batch(_batch(frame), source="csv")
+    out = store.read_readings(["FT-203", "PT-100"], T0, T0 + timedelta(hours=2))
+    assert str(out["time"].dtype) == "datetime64[ns, UTC]"
+    assert list(out.columns) == ["time", "tag", "value", "good"]
+    # 01:00+01:00 is 00:00 UTC; the end of the window is excluded (02:00 is not read).
+    assert list(out["tag"]) == ["FT-203", "FT-203", "PT-100"]
+    assert out["time"].iloc[1] == pd.Timestamp("2025-03-01T00:00:00.123456Z")  # µs kept
+    assert math.isnan(out["value"].iloc[0]) and not out["good"].iloc[0]
+    assert out["value"].iloc[2] == 3.5e5
+    assert store.read_readings(["FT-999"], T0, T0 + timedelta(hours=2)).empty
+
+
+def test_naive_times_are_refused(store: SqlStore) -> None:
+    frame = _readings(2, ["FT-203"])
+    frame["time"] = frame["time"].dt.tz_localize(None)
+    with pytest.raises(ValueError, match="timezone-aware"):
+        store.store_batch(_batch(frame), source="csv")
+    with pytest.raises(ValueError, match="start must be timezone-aware"):
+        store.read_readings(["FT-203"], datetime(2025, 3, 1), T0)
+
+
+def _fit(r: float, day: int, **extra: Any) -> dict[str, Any]:
+    start = T0 + timedelta(days=day)
+    row = {"branch": "CW-3", "window_start": start, "window_end": start + timedelta(days=1),
+           "r": r, "r_low": r - 0.02, "r_high": r + 0.02, "s_pa": math.nan,
+           "identifiable": True, "samples": 1200, "flow_min_m3s": 0.02,
+           "flow_max_m3s": 0.04, "status": "ok"}
+    row.update(extra)
+    return row
+
+
+def test_upsert_fits_replaces_on_branch_and_window(store: SqlStore) -> None:
+    assert store.upsert_fits([_fit(1.05, 0), _fit(1.07, 1)]) == 2
+    store.upsert_fits([_fit(1.10, 1, message="recomputed")])  # same window again
+    fits = store.read_fits("CW-3")
+    assert len(fits) == 2
+    assert list(fits["r"]) == [1.05, 1.10]
+    assert fits["message"].iloc[1] == "recomputed"
+    assert math.isnan(fits["s_pa"].iloc[0])  # NaN stored as NULL, read back as NaN
+    assert str(fits["window_start"].dtype) == "datetime64[ns, UTC]"
+    assert len(store.read_fits(start=T0 + timedelta(days=1))) == 1
+    with pytest.raises(ValueError, match="unknown keys"):
+        store.upsert_fits([_fit(1.0, 2, colour="red")])
+
+
+def test_findings_alarms_maintenance_jobs_health(store: SqlStore) -> None:
+    finding = {"branch": "CW-3", "kind": "fouling", "start": T0, "detected": T0,
+               "end": None, "confidence": 0.8, "evidence": {"slope_per_day": 0.004,
+               "p": np.float64(0.01), "bad": math.nan}, "message": "CW-3 is fouling."}
+    store.upsert_findings([finding])
+    store.upsert_findings([dict(finding, confidence=0.9)])
+    found = store.read_findings(open_only=True)
+    assert len(found) == 1 and found["confidence"].iloc[0] == 0.9
+    assert found["evidence"].iloc[0] == {"slope_per_day": 0.004, "p": 0.01, "bad": None}
+    store.upsert_findings([dict(finding, end=T0 + timedelta(days=3))])
+    assert store.read_findings(open_only=True).empty
+
+    alarm = {"branch": "CW-3", "condition": "low_flow", "state": "unack", "updated": T0,
+             "activated": T0, "value": 0.01, "limit_value": 0.0167}
+    store.upsert_alarms([alarm])
+    store.upsert_alarms([alarm])  # no state change: no new journal entry
+    store.upsert_alarms([dict(alarm, state="ack", acknowledged=T0 + timedelta(minutes=5),
+                              updated=T0 + timedelta(minutes=5))])
+    assert list(store.read_alarms(active_only=True)["state"]) == ["ack"]
+    events = store.alarm_events("CW-3")
+    assert list(zip(events["from_state"], events["to_state"], strict=True)) == [
+        (None, "unack"), ("unack", "ack")]
+    with pytest.raises(ValueError, match="alarm state"):
+        store.upsert_alarms([dict(alarm, state="silenced")])
+
+    store.add_maintenance("CW-3", "cleaned", T0, "hydro-jetted")
+    store.add_maintenance("CW-3", "cleaned", T0, "hydro-jetted, both passes")
+    log = store.maintenance("CW-3")
+    assert len(log) == 1 and log["note"].iloc[0] == "hydro-jetted, both passes"
+    with pytest.raises(ValueError, match="kind must be one of"):
+        store.add_maintenance("CW-3", "washed", T0)
+
+    store.record_job_run("fit", T0, None, "running")
+    store.record_job_run("fit", T0, T0 + timedelta(seconds=40), "ok", {"branches": 12})
+    runs = store.job_runs()
+    assert len(runs) == 1 and runs["status"].iloc[0] == "ok"
+    assert runs["detail"].iloc[0] == {"branches": 12}
+
+    health = pd.DataFrame({"tag": ["FT-203", "FT-203"],
+                           "day": pd.to_datetime(["2025-03-01", "2025-03-02"], utc=True),
+                           "flag": ["spike", "spike"], "count": [3, 1]})
+    store.add_data_health(health)
+    store.add_data_health(health.assign(count=[4, 1]))  # a day recounted replaces
+    out = store.data_health(T0, T0 + timedelta(days=1))
+    assert out[["tag", "flag", "count"]].values.tolist() == [["FT-203", "spike", 4]]
+    assert out["day"].iloc[0] == pd.Timestamp("2025-03-01", tz="UTC")
+
+    store.store_batch(_batch(_readings(5, ["FT-203"])), source="csv")
+    store.upsert_fits([_fit(1.0, 0)])
+    marks = store.watermarks()
+    assert marks.readings["last"].iloc[0] == T0 + timedelta(minutes=4)
+    assert marks.fits["last_window_end"].iloc[0] == T0 + timedelta(days=1)
+    assert list(marks.jobs["status"]) == ["ok"]
+    assert list(marks.cursors["key"]) == ["inbox/a.csv"]
+
+
+def test_bad_arguments_name_themselves(tmp_path: Any) -> None:
+    with pytest.raises(ValueError, match="url"):
+        SqlStore("not a url")
+    with pytest.raises(ValueError, match="schema"):
+        SqlStore(f"sqlite:///{tmp_path / 'x.db'}", schema="plant")
+    with pytest.raises(ValueError, match="schema must be a plain identifier"):
+        SqlStore("postgresql+psycopg://u@127.0.0.1/x", schema="a; drop")
+    store = SqlStore(f"sqlite:///{tmp_path / 'y.db'}")
+    with pytest.raises(ValueError, match="source"):
+        store.store_batch(_batch(_readings(1, ["FT-1"])), source="")
+    with pytest.raises(ValueError, match=r"batch.readings lacks columns \['good'\]"):
+        store.store_batch(_batch(_readings(1, ["FT-1"]).drop(columns="good")), source="csv")
+    with pytest.raises(ValueError, match="confidence"):
+        store.upsert_findings([{"branch": "b", "kind": "fouling", "start": T0, "detected": T0,
+                                "confidence": 1.5, "evidence": {}, "message": "m"}])
+    store.close()
+
+
+def test_alias_finds_the_store() -> None:
+    assert ResultsStore.by_alias("sqlalchemy") is SqlStore
+    with pytest.raises(KeyError, match="unknown store kind 'excel'; known: sqlalchemy"):
+        ResultsStore.by_alias("excel")
