@@ -31,6 +31,8 @@ __all__ = [
     "cusum",
     "mann_kendall",
     "mean_shift",
+    "robust_sigma",
+    "sen_slope",
     "theil_sen",
 ]
 
@@ -92,6 +94,60 @@ def theil_sen(t: ArrayLike, y: ArrayLike, *, confidence: float = 0.95) -> TheilS
         confidence=confidence,
         n=int(tt.size),
     )
+
+
+def sen_slope(t: ArrayLike, y: ArrayLike) -> tuple[float, float]:
+    """Theil–Sen slope and intercept only (no interval): a fast path for short series.
+
+    Same estimator as `theil_sen`: slope = median of pairwise slopes, intercept =
+    median(y) − slope·median(t) (the convention of scipy.stats.theilslopes).
+
+    Parameters
+    ----------
+    t : abscissa [d]
+    y : values [unit]
+
+    Returns
+    -------
+    (slope [unit/d], intercept [unit])
+
+    >>> slope, intercept = sen_slope([0.0, 1.0, 2.0, 3.0], [1.0, 1.2, 1.4, 1.6])
+    >>> round(slope, 9), round(intercept, 9)
+    (0.2, 1.0)
+    """
+    tt = np.asarray(t, dtype=float)
+    yy = np.asarray(y, dtype=float)
+    if tt.shape != yy.shape or tt.ndim != 1 or tt.size < 2:
+        raise ValueError("t and y must be 1-D arrays of the same length >= 2")
+    i, j = np.triu_indices(tt.size, 1)
+    dt = tt[j] - tt[i]
+    ok = dt != 0
+    if not ok.any():
+        raise ValueError("t must hold at least two distinct values")
+    slope = float(np.median((yy[j] - yy[i])[ok] / dt[ok]))
+    return slope, float(np.median(yy) - slope * np.median(tt))
+
+
+def robust_sigma(values: ArrayLike) -> float:
+    """Scatter of a short series [unit of values].
+
+    The larger of 1.4826·MAD of the levels and 1.4826·MAD of successive differences / √2:
+    the first is not fooled by smooth (positively correlated) series, the second not by
+    a slow drift. NaNs are ignored; fewer than 3 values give 0.
+
+    >>> round(robust_sigma([1.0, 1.1, 0.9, 1.0, 1.1, 0.9]), 4)
+    0.1483
+    """
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v)]
+    if v.size < 3:
+        return 0.0
+    mad = 1.4826 * float(np.median(np.abs(v - np.median(v))))
+    dmad = 1.4826 * float(np.median(np.abs(np.diff(v)))) / math.sqrt(2.0)
+    return max(mad, dmad)
+
+
+_Z_975 = 1.959963984540054  # standard normal 97.5 % quantile
 
 
 @dataclass(frozen=True)
@@ -177,11 +233,12 @@ def mann_kendall(
     if hamed_rao:
         lag = n - 1 if max_lag is None else max(1, min(int(max_lag), n - 1))
         tt = np.arange(n, dtype=float)
-        slope = float(stats.theilslopes(yy, tt).slope)
+        slope, _ = sen_slope(tt, yy)
         ranks = stats.rankdata(yy - slope * tt)
         rho = _acf(ranks, lag)
         k = np.arange(1, lag + 1)
-        bound = stats.norm.ppf(1.0 - acf_alpha / 2.0) / math.sqrt(n)
+        zq = _Z_975 if acf_alpha == 0.05 else float(stats.norm.ppf(1.0 - acf_alpha / 2.0))
+        bound = zq / math.sqrt(n)
         sig = np.abs(rho[1:]) > bound
         weights = (n - k) * (n - k - 1) * (n - k - 2)
         total = float(np.sum(weights[sig] * rho[1:][sig]))
@@ -195,7 +252,7 @@ def mann_kendall(
         z = (s + 1.0) / math.sqrt(var_corr)
     else:
         z = 0.0
-    p = float(2.0 * stats.norm.sf(abs(z)))
+    p = math.erfc(abs(z) / math.sqrt(2.0))  # two-sided normal p-value
     return MannKendall(
         s=s,
         var_s=var_s,

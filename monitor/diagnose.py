@@ -1,0 +1,1063 @@
+"""Drift diagnosis over the history of branch fits: what changed, since when, how sure.
+
+`diagnose` replays the history window by window in time order and decides at each window
+with only the data up to it. A finding's ``start`` and ``kind`` are fixed in the window
+that first reports it, so running on the history up to day d and then up to day d+1 gives
+the same findings (plus updated evidence and ``end``): the store can upsert on
+``(branch, kind, start)``.
+
+Causes and how they are told apart (DESIGN §3)
+----------------------------------------------
+* **instrument** — windows whose screening flagged a tag of the branch (frozen,
+  out of range, too many spikes), or an ``r`` step that the header mass balance shows to
+  be the meter's and not the water's. Flagged windows never enter the ``r`` analyses, so
+  a frozen meter is never called fouling.
+* **restriction** — a step up in ``r``: the window's ``r`` stands ``step_z`` σ above the
+  level predicted from the recent windows (Theil–Sen extrapolation, so a fouling ramp is
+  not mistaken for a step) and at least ``min_step_rel`` above it; or a tabular CUSUM
+  (Page 1954) on those prediction errors passes ``cusum_h`` and a single mean shift
+  explains the recent windows better than a line.
+* **back_pressure** — the logged termination pressure (``end_pressure_pa``) or the fitted
+  static pressure (``s_pa`` on identifiable windows) steps; or an ``r`` step whose window
+  says "constant offset" rather than "offset ∝ Q²" (the comparison of the two one-parameter
+  hypotheses against the baseline model; from per-window sums, see `HISTORY_COLUMNS`).
+  A window that cannot tell them apart (a step part-way through it) defers the decision to
+  the next window.
+* **fouling** — a slow rise: Theil–Sen slope, Mann–Kendall test with the Hamed–Rao
+  correction at ``trend_alpha``, and a fitted rise of at least ``min_rise_r``; the date
+  ``r`` reaches the cleaning limit is forecast with an interval.
+* **low_flow** — window mean flow below the branch minimum (the near-real-time alarm
+  is `monitor.alarms`; this is its daily record).
+* **imbalance** — |Σ branch − total| beyond its combined uncertainty for
+  ``imbalance_windows`` windows in a row.
+
+Baselines come from the commissioning period of the branch settings, else from the first
+``baseline_windows`` good windows after the start of the history or after the last
+maintenance event (any event starts a new baseline; ``cleaned`` also ends fouling and
+restriction findings).
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import datetime
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from monitor.trend import (
+    TheilSen,
+    crossing_forecast,
+    mann_kendall,
+    mean_shift,
+    robust_sigma,
+    sen_slope,
+    theil_sen,
+)
+
+__all__ = [
+    "BALANCE_COLUMNS",
+    "HISTORY_COLUMNS",
+    "KINDS",
+    "SCREENING_COLUMNS",
+    "BranchSettings",
+    "DiagnosisSettings",
+    "Finding",
+    "FindingCost",
+    "diagnose",
+    "finding_cost",
+]
+
+logger = logging.getLogger(__name__)
+
+KINDS: tuple[str, ...] = (
+    "fouling", "restriction", "back_pressure", "low_flow", "instrument", "imbalance",
+)  # fmt: skip
+#: Which open findings a maintenance event ends (any event starts a new baseline).
+END_BY_EVENT: dict[str, frozenset[str]] = {
+    "cleaned": frozenset({"fouling", "restriction"}),
+    "valve_set": frozenset({"restriction", "back_pressure"}),
+    "meter_calibrated": frozenset({"instrument"}),
+}
+
+
+@dataclass(frozen=True)
+class Finding:
+    """One diagnosed condition of a branch (or of the header for ``imbalance``).
+
+    ``start`` is the estimated onset, ``detected`` the end of the window in which it was
+    first reported, ``end`` when it cleared (None while open); all UTC. ``evidence`` holds
+    numbers only (slopes per day, test statistics, steps in σ and in the series' unit).
+    """
+
+    branch: str
+    kind: str
+    start: datetime
+    detected: datetime
+    end: datetime | None
+    confidence: float
+    evidence: Mapping[str, float]
+    message: str
+
+    def __post_init__(self) -> None:
+        if self.kind not in KINDS:
+            raise ValueError(f"kind must be one of {KINDS}, got {self.kind!r}")
+        if not 0.0 <= self.confidence <= 1.0:
+            raise ValueError(f"confidence must be in [0, 1], got {self.confidence}")
+
+    def to_json_dict(self) -> dict[str, Any]:
+        """The object of the findings file (DESIGN §5): ISO times, numbers, null."""
+
+        def iso(t: datetime | None) -> str | None:
+            return None if t is None else pd.Timestamp(t).tz_convert("UTC").isoformat()
+
+        def num(v: float) -> float | None:
+            return float(v) if math.isfinite(float(v)) else None
+
+        return {
+            "branch": self.branch,
+            "kind": self.kind,
+            "start": iso(self.start),
+            "detected": iso(self.detected),
+            "end": iso(self.end),
+            "confidence": round(float(self.confidence), 3),
+            "evidence": {k: num(v) for k, v in self.evidence.items()},
+            "message": self.message,
+        }
+
+
+@dataclass(frozen=True)
+class BranchSettings:
+    """Per-branch settings.
+
+    cleaning_limit_r : resistance ratio at which cleaning is due [-]; 1.5 by default
+        (cleaning is commonly planned at ~1.5–2× clean pressure drop, from memory)
+    min_flow_m3s : branch minimum flow [m^3/s]; None = no low-flow check
+    commissioning : (start, end) UTC of the baseline period; None = the first
+        ``baseline_windows`` good windows of the history
+    """
+
+    cleaning_limit_r: float = 1.5
+    min_flow_m3s: float | None = None
+    commissioning: tuple[datetime, datetime] | None = None
+
+    def __post_init__(self) -> None:
+        if not self.cleaning_limit_r > 1.0:
+            raise ValueError(f"cleaning_limit_r must be > 1, got {self.cleaning_limit_r}")
+        if self.min_flow_m3s is not None and not self.min_flow_m3s >= 0:
+            raise ValueError(f"min_flow_m3s must be >= 0, got {self.min_flow_m3s}")
+
+
+@dataclass(frozen=True)
+class DiagnosisSettings:
+    """Thresholds of the diagnosis. σ is the day-to-day scatter of the baseline.
+
+    The defaults keep false findings below 0.5 per clean branch-year on daily windows with
+    1–2 % scatter and AR(1) correlation up to 0.6 (tests/monitor/test_diagnose.py).
+    """
+
+    branches: Mapping[str, BranchSettings] = field(default_factory=dict)
+    default_branch: BranchSettings = field(default_factory=BranchSettings)
+    header_name: str = "header"
+    baseline_windows: int = 14  # [windows]
+    min_sigma_r: float = 0.004  # floor of σ_r: fits are never better than ~0.4 % [-]
+    level_windows: int = 14  # windows that predict the next one [windows]
+    step_z: float = 6.0  # jump of one window to call a step [σ]
+    min_step_rel: float = 0.08  # and at least this relative rise of r [-]
+    cusum_k: float = 1.0  # CUSUM reference value [σ]
+    cusum_h: float = 12.0  # CUSUM decision interval [σ]
+    trend_alpha: float = 0.001  # Mann–Kendall (Hamed–Rao) two-sided level [-]
+    min_rise_r: float = 0.05  # fitted rise needed to call fouling [-]
+    min_trend_windows: int = 30  # [windows]
+    trend_persistence: int = 3  # consecutive windows the trend test must pass [windows]
+    min_rise_sigma: float = 4.0  # fitted level above the reference, in σ [-]
+    max_trend_windows: int = 180  # [windows]
+    trend_lookbacks: tuple[int, ...] = (30, 60, 120, 180)  # trailing windows tested
+    min_bp_step_pa: float = 1.0e4  # smallest back-pressure step reported (0.1 bar) [Pa]
+    min_sigma_pa: float = 500.0  # floor of σ of pressures [Pa]
+    bp_step_z: float = 6.0  # [σ]
+    offset_evidence: float = 3.0  # |log-likelihood ratio| to decide static vs Q² [-]
+    max_effective_samples: int = 30  # samples of a window are serially correlated [-]
+    imbalance_windows: int = 3  # [windows]
+    spike_fraction: float = 0.02  # spikes per sample that make a window suspect [-]
+    spike_count: int = 30  # same, when the sample count is not given [-]
+    low_flow_deadband: float = 0.05  # fraction of the minimum to clear low flow [-]
+
+    def __post_init__(self) -> None:
+        for name in ("baseline_windows", "level_windows", "min_trend_windows"):
+            if getattr(self, name) < 3:
+                raise ValueError(f"{name} must be at least 3, got {getattr(self, name)}")
+        for name in ("step_z", "cusum_h", "min_rise_r", "min_sigma_r", "bp_step_z"):
+            if not getattr(self, name) > 0:
+                raise ValueError(f"{name} must be positive, got {getattr(self, name)}")
+        if not 0 < self.trend_alpha < 1:
+            raise ValueError(f"trend_alpha must be in (0, 1), got {self.trend_alpha}")
+
+    def for_branch(self, name: str) -> BranchSettings:
+        """The settings of branch *name* (the default ones when not configured)."""
+        return self.branches.get(name, self.default_branch)
+
+
+#: History columns: required first, then optional ones the diagnosis uses when present.
+#: ``sum_w, sum_x, sum_y, sum_xx, sum_xy, sum_yy`` are the weighted sums over the samples
+#: of the window's fit (``x`` = clean dynamic ΔP [Pa], ``y`` = P_s − P_static,known [Pa],
+#: weights [-]); from them the diagnosis compares "constant offset" with "offset ∝ Q²"
+#: against its own baseline. Without them it uses ``bp_sse_static`` and
+#: ``bp_sse_resistance`` (the same comparison made by the fit against its baseline).
+HISTORY_COLUMNS: dict[str, tuple[str, ...]] = {
+    "required": ("branch", "window_start", "window_end", "r"),
+    "optional": (
+        "r_low", "r_high", "s_pa", "s_fixed_pa", "identifiable", "samples",
+        "mean_flow_m3s", "end_pressure_pa", "residual_std_pa",
+        "sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy",
+        "bp_sse_static", "bp_sse_resistance",
+    ),
+}  # fmt: skip
+#: Screening counts per window and tag; ``branch`` names the branch the tag belongs to
+#: (the header's tags use `DiagnosisSettings.header_name`). ``first_flagged`` (optional)
+#: is the time of the first flagged sample.
+SCREENING_COLUMNS: tuple[str, ...] = (
+    "branch", "window_start", "window_end", "tag", "frozen", "out_of_range", "spikes",
+)  # fmt: skip
+#: Header mass balance per window: residual = Σ branch flows − total flow [m^3/s] and its
+#: combined expanded (95 %) uncertainty [m^3/s]. Optional ``header`` names the group.
+BALANCE_COLUMNS: tuple[str, ...] = (
+    "window_start", "window_end", "residual_m3s", "uncertainty_m3s",
+)  # fmt: skip
+
+
+def _check_frame(name: str, frame: pd.DataFrame, columns: Sequence[str]) -> pd.DataFrame:
+    if not isinstance(frame, pd.DataFrame):
+        raise TypeError(f"{name} must be a pandas DataFrame, got {type(frame).__name__}")
+    missing = [c for c in columns if c not in frame.columns]
+    if missing:
+        raise ValueError(f"{name} lacks column(s) {missing}; needs {list(columns)}")
+    out = frame.copy()
+    for col in ("window_start", "window_end", "time"):
+        if col in out.columns:
+            times = pd.to_datetime(out[col])
+            if times.dt.tz is None:
+                raise ValueError(f"{name}.{col} must be timezone-aware (UTC)")
+            out[col] = times.dt.tz_convert("UTC")
+    return out
+
+
+def _as_utc(name: str, when: datetime) -> pd.Timestamp:
+    ts = pd.Timestamp(when)
+    if ts.tzinfo is None:
+        raise ValueError(f"{name} must be timezone-aware (UTC), got {when!r}")
+    return ts.tz_convert("UTC")
+
+
+def diagnose(
+    history: pd.DataFrame,
+    *,
+    maintenance: pd.DataFrame | None = None,
+    settings: DiagnosisSettings | None = None,
+    now: datetime,
+    screening: pd.DataFrame | None = None,
+    balance: pd.DataFrame | None = None,
+) -> list[Finding]:
+    """All findings on the history of fits up to ``now``.
+
+    Parameters
+    ----------
+    history : one row per branch-window, columns `HISTORY_COLUMNS` (times UTC-aware,
+        ``r`` [-], pressures [Pa], flows [m^3/s])
+    maintenance : events with columns ``branch``, ``kind`` (``cleaned``, ``valve_set``,
+        ``meter_calibrated`` or any other), ``time`` (UTC-aware)
+    settings : thresholds and per-branch settings (defaults when None)
+    now : the analysis time; windows ending after it and later events are ignored
+    screening : instrument screening counts, columns `SCREENING_COLUMNS`
+    balance : header mass balance, columns `BALANCE_COLUMNS`
+
+    Returns
+    -------
+    Findings sorted by ``start``, ``branch``, ``kind``.
+    """
+    cfg = settings if settings is not None else DiagnosisSettings()
+    t_now = _as_utc("now", now)
+    hist = _check_frame("history", history, HISTORY_COLUMNS["required"])
+    hist = hist[hist["window_end"] <= t_now].sort_values(["branch", "window_start"])
+    events = (
+        _check_frame("maintenance", maintenance, ("branch", "kind", "time"))
+        if maintenance is not None
+        else pd.DataFrame(
+            {"branch": [], "kind": [], "time": pd.Series([], dtype="datetime64[ns, UTC]")}
+        )
+    )
+    events = events[events["time"] <= t_now].sort_values("time")
+    flags, last_screened = _flag_windows(screening, cfg, t_now)
+    bal = None
+    if balance is not None:
+        bal = _check_frame("balance", balance, BALANCE_COLUMNS)
+        bal = bal[bal["window_end"] <= t_now].sort_values("window_start")
+
+    findings: list[Finding] = []
+    header = flags.get(cfg.header_name, pd.DataFrame({"window_start": []}))
+    for name, rows in hist.groupby("branch", sort=True):
+        branch = str(name)
+        own = flags.get(branch, pd.DataFrame({"window_start": []}))
+        excluded = set(own["window_start"]) | set(header["window_start"])
+        replay = _Replay(branch, rows.reset_index(drop=True), excluded, bal,
+                         cfg.for_branch(branch), cfg)  # fmt: skip
+        findings.extend(replay.run(events[events["branch"] == branch]))
+    for name, fl in flags.items():
+        findings.extend(_instrument_findings(name, fl, last_screened[name]))
+    if bal is not None:
+        findings.extend(_imbalance_findings(bal, cfg))
+    findings.sort(key=lambda f: (f.start, f.branch, f.kind))
+    logger.debug("diagnosis up to %s: %d findings", t_now, len(findings))
+    return findings
+
+
+def _flag_windows(
+    screening: pd.DataFrame | None, cfg: DiagnosisSettings, t_now: pd.Timestamp
+) -> tuple[dict[str, pd.DataFrame], dict[str, pd.Timestamp]]:
+    """Per branch: the flagged windows (start, end, first flagged time, counts), and the
+    end of the last screened window (to tell a cleared fault from an ongoing one)."""
+    if screening is None:
+        return {}, {}
+    scr = _check_frame("screening", screening, SCREENING_COLUMNS)
+    scr = scr[scr["window_end"] <= t_now]
+    last = {str(k): v for k, v in scr.groupby("branch")["window_end"].max().items()}
+    counts = scr[["frozen", "out_of_range", "spikes"]].astype(float).fillna(0.0)
+    if "samples" in scr.columns:
+        spike_bad = counts["spikes"] > cfg.spike_fraction * scr["samples"].astype(float)
+    else:
+        spike_bad = counts["spikes"] > cfg.spike_count
+    bad = (counts["frozen"] > 0) | (counts["out_of_range"] > 0) | spike_bad
+    scr = scr.assign(
+        frozen=counts["frozen"], out_of_range=counts["out_of_range"], spikes=counts["spikes"]
+    )[bad]
+    if "first_flagged" not in scr.columns:
+        scr = scr.assign(first_flagged=scr["window_start"])
+    else:
+        scr = scr.assign(
+            first_flagged=pd.to_datetime(scr["first_flagged"]).fillna(scr["window_start"])
+        )
+    out: dict[str, pd.DataFrame] = {}
+    for name, rows in scr.groupby("branch", sort=True):
+        agg = (
+            rows.groupby(["window_start", "window_end"], as_index=False)
+            .agg(
+                first_flagged=("first_flagged", "min"),
+                frozen=("frozen", "sum"),
+                out_of_range=("out_of_range", "sum"),
+                spikes=("spikes", "sum"),
+                tags=("tag", lambda s: ",".join(sorted(set(map(str, s))))),
+            )
+            .sort_values("window_start")
+        )
+        out[str(name)] = agg.reset_index(drop=True)
+    return out, last
+
+
+# -- cost ------------------------------------------------------------------------------
+
+#: Assumed pump (wire-to-water) efficiency when the site config gives none [-]. A typical
+#: figure for a centrifugal pump with motor on a drive (common practice); labelled
+#: "assumed" on every result that uses it.
+DEFAULT_PUMP_EFFICIENCY = 0.70
+
+
+@dataclass(frozen=True)
+class FindingCost:
+    """What a finding costs at today's operating point.
+
+    Attributes
+    ----------
+    lost_flow_m3s : clean-curve flow minus today's flow at today's header pressure [m^3/s]
+    lost_flow_fraction : lost flow over the clean-curve flow [-]
+    extra_dp_pa : pressure drop the added resistance takes at today's flow [Pa]
+    extra_power_w : hydraulic power of that drop divided by the pump efficiency [W]
+    extra_energy_kwh_per_day : extra_power × ``hours_per_day`` [kWh/d]
+    pump_efficiency : the efficiency used [-]
+    efficiency_assumed : True when it is `DEFAULT_PUMP_EFFICIENCY`, not a site figure
+    """
+
+    lost_flow_m3s: float
+    lost_flow_fraction: float
+    extra_dp_pa: float
+    extra_power_w: float
+    extra_energy_kwh_per_day: float
+    pump_efficiency: float
+    efficiency_assumed: bool
+    notes: tuple[str, ...] = field(default=())
+
+
+def finding_cost(
+    *,
+    flow_clean_m3s: float,
+    flow_now_m3s: float,
+    dp_dynamic_clean_pa: float,
+    r_now: float,
+    r_baseline: float = 1.0,
+    pump_efficiency: float | None = None,
+    hours_per_day: float = 24.0,
+) -> FindingCost:
+    """Lost flow and extra pump energy of a resistance increase.
+
+    The caller computes, with the branch model at today's header pressure and
+    temperature, the flow the clean (or baseline) branch would carry and the clean
+    dynamic pressure drop at today's flow. Then
+
+        ΔP_extra = (r_now − r_baseline)·ΔP_dyn,clean(Q_now)        [Pa]
+        P_extra  = ΔP_extra·Q_now/η                                [W]
+        E        = P_extra·hours/1000                              [kWh/d]
+
+    Parameters
+    ----------
+    flow_clean_m3s : flow of the clean/baseline branch at today's header pressure [m^3/s]
+    flow_now_m3s : today's flow [m^3/s]
+    dp_dynamic_clean_pa : clean dynamic pressure drop at today's flow [Pa]
+    r_now : today's resistance ratio [-]
+    r_baseline : resistance ratio of the reference state (1.0 = as designed) [-]
+    pump_efficiency : wire-to-water efficiency [-]; None uses the assumed 0.70
+    hours_per_day : running hours per day [h]
+
+    >>> c = finding_cost(flow_clean_m3s=0.040, flow_now_m3s=0.034,
+    ...                  dp_dynamic_clean_pa=1.0e5, r_now=1.4)
+    >>> round(c.extra_dp_pa), round(c.extra_power_w), round(c.extra_energy_kwh_per_day, 2)
+    (40000, 1943, 46.63)
+    """
+    values = {
+        "flow_clean_m3s": flow_clean_m3s,
+        "flow_now_m3s": flow_now_m3s,
+        "dp_dynamic_clean_pa": dp_dynamic_clean_pa,
+        "r_now": r_now,
+        "r_baseline": r_baseline,
+        "hours_per_day": hours_per_day,
+    }
+    for key, val in values.items():
+        if not math.isfinite(val) or val < 0:
+            raise ValueError(f"{key} must be a finite number >= 0, got {val}")
+    if hours_per_day > 24.0:
+        raise ValueError(f"hours_per_day must be at most 24, got {hours_per_day}")
+    assumed = pump_efficiency is None
+    eta = DEFAULT_PUMP_EFFICIENCY if pump_efficiency is None else float(pump_efficiency)
+    if not 0.0 < eta <= 1.0:
+        raise ValueError(f"pump_efficiency must be in (0, 1], got {pump_efficiency}")
+    notes: list[str] = []
+    if assumed:
+        notes.append(f"pump efficiency {eta:.2f} assumed (not in the site config)")
+    extra_dp = max(r_now - r_baseline, 0.0) * dp_dynamic_clean_pa
+    power = extra_dp * flow_now_m3s / eta
+    lost = max(flow_clean_m3s - flow_now_m3s, 0.0)
+    frac = lost / flow_clean_m3s if flow_clean_m3s > 0 else 0.0
+    return FindingCost(
+        lost_flow_m3s=lost,
+        lost_flow_fraction=frac,
+        extra_dp_pa=extra_dp,
+        extra_power_w=power,
+        extra_energy_kwh_per_day=power * hours_per_day / 1000.0,
+        pump_efficiency=eta,
+        efficiency_assumed=assumed,
+        notes=tuple(notes),
+    )
+
+
+def findings_to_json(findings: Sequence[Finding]) -> list[dict[str, Any]]:
+    """The findings file of DESIGN §5: a list of JSON-ready dicts."""
+    return [f.to_json_dict() for f in findings]
+
+
+# -- per-branch replay -------------------------------------------------------------------
+
+_DAY = pd.Timedelta(days=1)
+
+
+@dataclass
+class _Open:
+    kind: str
+    start: pd.Timestamp
+    detected: pd.Timestamp
+    confidence: float
+    evidence: dict[str, float]
+    message: str
+    ref: float = math.nan  # level before the change (for the return to normal)
+    step: float = math.nan  # size of the change in the series' unit
+
+    def close(self, branch: str, end: pd.Timestamp | None) -> Finding:
+        return Finding(
+            branch=branch,
+            kind=self.kind,
+            start=self.start.to_pydatetime(),
+            detected=self.detected.to_pydatetime(),
+            end=None if end is None else end.to_pydatetime(),
+            confidence=float(min(max(self.confidence, 0.0), 1.0)),
+            evidence={k: float(v) for k, v in self.evidence.items()},
+            message=self.message,
+        )
+
+
+@dataclass
+class _Baseline:
+    r0: float
+    sigma_r: float
+    s_b: float
+    pe: float
+    sigma_pe: float
+    s: float
+    sigma_s: float
+
+
+def _offset_comparison(
+    row: pd.Series, r0: float, s_b: float, cfg: DiagnosisSettings
+) -> dict[str, float] | None:
+    """Constant offset vs offset ∝ Q² against the baseline ``y = r0·x + s_b`` on one window.
+
+    Log-likelihood ratio ``(n_eff/2)·ln(SSE_resistance/SSE_static)``: positive favours a
+    back-pressure change. ``n_eff`` caps the sample count because a window's samples are
+    serially correlated.
+    """
+    sums = ("sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy")
+    if all(c in row.index and np.isfinite(row[c]) for c in sums) and row["sum_w"] > 0:
+        w, sx, sy, sxx, sxy, syy = (float(row[c]) for c in sums)
+        sd = sy - r0 * sx - w * s_b
+        sdd = syy + r0 * r0 * sxx + w * s_b * s_b - 2 * r0 * sxy - 2 * s_b * sy + 2 * r0 * s_b * sx
+        sse_s = max(sdd - sd * sd / w, 0.0)
+        sxys = sxy - s_b * sx
+        syys = syy - 2 * s_b * sy + w * s_b * s_b
+        sse_r = max(syys - sxys * sxys / sxx, 0.0) if sxx > 0 else math.nan
+        offset, ratio = sd / w, (sxys / sxx if sxx > 0 else math.nan)
+        n = float(row["samples"]) if "samples" in row.index and np.isfinite(row["samples"]) else w
+    elif all(
+        c in row.index and np.isfinite(row[c]) for c in ("bp_sse_static", "bp_sse_resistance")
+    ):
+        sse_s, sse_r = float(row["bp_sse_static"]), float(row["bp_sse_resistance"])
+        offset = ratio = math.nan
+        n = float(row["samples"]) if "samples" in row.index and np.isfinite(row["samples"]) else 2
+    else:
+        return None
+    if not (math.isfinite(sse_s) and math.isfinite(sse_r)):
+        return None
+    tiny = 1e-30 + 1e-12 * max(sse_s, sse_r)
+    n_eff = min(n, float(cfg.max_effective_samples))
+    llr = 0.5 * n_eff * math.log((sse_r + tiny) / (sse_s + tiny))
+    return {"offset_llr": llr, "static_offset_pa": offset, "ratio_if_resistance": ratio,
+            "sse_static": sse_s, "sse_resistance": sse_r}  # fmt: skip
+
+
+class _Replay:
+    """Walks one branch's windows in time order; see the module docstring."""
+
+    def __init__(
+        self, name: str, rows: pd.DataFrame, flagged: set[pd.Timestamp],
+        balance: pd.DataFrame | None, bs: BranchSettings, cfg: DiagnosisSettings,
+    ) -> None:  # fmt: skip
+        self.name, self.rows, self.flagged, self.bs, self.cfg = name, rows, flagged, bs, cfg
+        self.balance = None
+        if balance is not None and not balance.empty:
+            self.balance = balance.drop_duplicates("window_start").set_index("window_start")
+        self.col = {c: self._col(c) for c in HISTORY_COLUMNS["optional"] if c != "identifiable"}
+        self.ident = (
+            rows["identifiable"].fillna(False).astype(bool).to_numpy()
+            if "identifiable" in rows.columns
+            else np.zeros(len(rows), dtype=bool)
+        )
+        self.r = np.array(rows["r"], dtype=float)  # a copy: back-pressure shifts edit it
+        self.ws = list(rows["window_start"])
+        self.we = list(rows["window_end"])
+        self.t0 = self.ws[0] if self.ws else pd.Timestamp(0, tz="UTC")
+        self.open: dict[str, _Open] = {}
+        self.done: list[Finding] = []
+        self.first_segment = True
+        self.s_shift = 0.0  # back-pressure change found from r, taken out of later r [Pa]
+        self._new_segment()
+
+    def _col(self, c: str) -> np.ndarray:
+        if c in self.rows.columns:
+            return np.asarray(pd.to_numeric(self.rows[c], errors="coerce"), dtype=float)
+        return np.full(len(self.rows), np.nan)
+
+    def _shift_static(self, j: int, offset: float) -> None:
+        """Take a back-pressure change of ``offset`` [Pa] out of r from window j on: the
+        least-squares r of ``y − c`` is r − c·Σx/Σx² (the window's sums)."""
+        sx, sxx = self.col["sum_x"][j:], self.col["sum_xx"][j:]
+        ok = np.isfinite(sx) & np.isfinite(sxx) & (sxx > 0)
+        self.r[j:][ok] -= offset * sx[ok] / sxx[ok]
+        self.s_shift += offset
+
+    def _days(self, t: pd.Timestamp) -> float:
+        return float((t - self.t0) / _DAY)
+
+    def _new_segment(self) -> None:
+        self.base: _Baseline | None = None
+        self.base_idx: list[int] = []
+        self._reset_level()
+
+    def _reset_level(self) -> None:
+        self.level: list[int] = []  # accepted windows predicting the next one
+        self.trend: list[int] = []  # accepted windows of the fouling trend
+        self.cusum = 0.0
+        self.trend_hits = 0
+        self.pending: tuple[int, float, float] | None = None  # deferred step (i, z, e)
+        self.recent_pe: list[float] = []
+        self.recent_s: list[float] = []
+
+    def _end(self, kind: str, when: pd.Timestamp) -> None:
+        f = self.open.pop(kind, None)
+        if f is not None:
+            self.done.append(f.close(self.name, when))
+
+    def _open(self, f: _Open) -> None:
+        if f.kind not in self.open:
+            self.open[f.kind] = f
+            logger.info("%s: %s from %s", self.name, f.kind, f.start)
+
+    # -- main loop -------------------------------------------------------------------
+    def run(self, events: pd.DataFrame) -> list[Finding]:
+        ev = list(zip(events["time"], events["kind"], strict=True))
+        k = 0
+        for i in range(len(self.rows)):
+            while k < len(ev) and ev[k][0] <= self.ws[i]:
+                when, kind = ev[k]
+                for ended in END_BY_EVENT.get(str(kind), frozenset()):
+                    self._end(ended, when)
+                self.first_segment = False
+                self._new_segment()
+                k += 1
+            if self.ws[i] not in self.flagged and math.isfinite(self.r[i]):
+                if self.base is None:
+                    self._collect_baseline(i)
+                else:
+                    self._pressures(i)
+                    self._steps(i)
+                    self._fouling(i)
+            self._low_flow(i)
+        return self.done + [f.close(self.name, None) for f in self.open.values()]
+
+    def _collect_baseline(self, i: int) -> None:
+        period = self.bs.commissioning if self.first_segment else None
+        if period is not None:
+            lo, hi = pd.Timestamp(period[0]), pd.Timestamp(period[1])
+            if lo <= self.ws[i] and self.we[i] <= hi:
+                self.base_idx.append(i)
+            ready = self.ws[i] >= hi and len(self.base_idx) >= 3
+            if not ready:
+                return
+        else:
+            self.base_idx.append(i)
+            if len(self.base_idx) < self.cfg.baseline_windows:
+                return
+        idx = np.array(self.base_idx)
+        rb = self.r[idx]
+        r0 = float(np.median(rb))
+        sig = max(robust_sigma(rb), self.cfg.min_sigma_r * r0)
+        pe = self.col["end_pressure_pa"][idx]
+        s = self.col["s_pa"][idx][self.ident[idx]]
+        s_fixed = self.col["s_fixed_pa"][idx]
+        s_b = (
+            float(np.median(s)) if np.isfinite(s).sum() >= 3
+            else float(np.nanmedian(s_fixed)) if np.isfinite(s_fixed).any() else 0.0
+        )  # fmt: skip
+        self.base = _Baseline(
+            r0=r0, sigma_r=sig, s_b=s_b,
+            pe=float(np.nanmedian(pe)) if np.isfinite(pe).any() else math.nan,
+            sigma_pe=max(robust_sigma(pe), self.cfg.min_sigma_pa),
+            s=float(np.median(s)) if np.isfinite(s).sum() >= 3 else math.nan,
+            sigma_s=max(robust_sigma(s), self.cfg.min_sigma_pa),
+        )  # fmt: skip
+        self.level = [j for j in self.base_idx if self.ws[j] >= self.ws[self.base_idx[0]]]
+        self.trend = list(self.level)
+        if period is None:  # the baseline windows of a segment are its first windows
+            self.level, self.trend = list(self.base_idx), list(self.base_idx)
+
+    # -- back-pressure from logged termination pressure or fitted s ------------------
+    def _pressures(self, i: int) -> None:
+        assert self.base is not None
+        for series, recent, sigma in (
+            (self.col["end_pressure_pa"], self.recent_pe, self.base.sigma_pe),
+            (self.col["s_pa"] if self.ident[i] else None, self.recent_s, self.base.sigma_s),
+        ):
+            if series is None or not math.isfinite(series[i]):
+                continue
+            v = float(series[i])
+            ref = float(np.median(recent[-7:])) if recent else math.nan
+            bp = self.open.get("back_pressure")
+            if bp is not None and math.isfinite(bp.ref) and abs(v - bp.ref) < abs(bp.step) / 2:
+                self._end("back_pressure", self.ws[i])
+                recent.clear()
+            elif math.isfinite(ref):
+                delta = v - ref
+                if abs(delta) >= max(self.cfg.bp_step_z * sigma, self.cfg.min_bp_step_pa):
+                    self._open(_Open(
+                        "back_pressure", self.ws[i], self.we[i], 0.95,
+                        {"step_pa": delta, "step_sigma": delta / sigma, "before_pa": ref,
+                         "after_pa": v},
+                        f"{self.name}: the back-pressure at its end moved by "
+                        f"{delta / 1e5:+.2f} bar on {self.ws[i]:%Y-%m-%d} "
+                        f"(from {ref / 1e5:.2f} to {v / 1e5:.2f} bar gauge).",
+                        ref=ref, step=delta,
+                    ))  # fmt: skip
+                    recent.clear()
+            recent.append(v)
+
+    # -- steps in r ----------------------------------------------------------------------
+    def _predict(self, i: int) -> float | None:
+        pts = self.level[-self.cfg.level_windows :]
+        if len(pts) < 2:
+            return None
+        y = self.r[pts]
+        if len(pts) < 7:
+            return float(np.median(y))
+        t = np.array([self._days(self.ws[j]) for j in pts])
+        slope, _ = sen_slope(t, y)
+        # a falling level is not extrapolated: r does not foul backwards
+        return float(np.median(y) + max(slope, 0.0) * (self._days(self.ws[i]) - np.median(t)))
+
+    def _steps(self, i: int) -> None:
+        assert self.base is not None
+        # prediction error of a window [-]; the scatter of r is relative, so it grows
+        # with the level
+        sigma_e = (
+            1.25 * self.base.sigma_r * max(self.r[self.level[-1]] / self.base.r0, 1.0)
+            if self.level
+            else 1.25 * self.base.sigma_r
+        )
+        if self.pending is not None:
+            self._decide_step(i)
+            return
+        rst = self.open.get("restriction")
+        if rst is not None and self.r[i] < rst.ref + rst.step / 2:
+            self._end("restriction", self.ws[i])
+            self._reset_level()
+            self.level, self.trend = [i], [i]
+            return
+        pred = self._predict(i)
+        if pred is None:
+            self.level.append(i)
+            self.trend.append(i)
+            return
+        e = float(self.r[i] - pred)
+        z = e / sigma_e
+        self.cusum = max(0.0, self.cusum + z - self.cfg.cusum_k)
+        jump = z >= self.cfg.step_z and e >= self.cfg.min_step_rel * pred
+        if not jump and self.cusum > self.cfg.cusum_h:
+            jump = self._cusum_step(i)
+        if jump:
+            self.pending = (i, z, e)
+            self._decide_step(i)
+            return
+        if z <= -self.cfg.step_z and -e >= self.cfg.min_step_rel * pred:
+            bp = self.open.get("back_pressure")
+            if bp is not None and math.isfinite(bp.evidence.get("static_offset_pa", math.nan)):
+                kind, _, cmp = self._classify(i)
+                if kind == "back_pressure" or "restriction" not in self.open:
+                    self._end("back_pressure", self.ws[i])
+                    self._shift_static(i, cmp.get("static_offset_pa", -self.s_shift))
+                else:
+                    self._end("restriction", self.ws[i])
+            else:
+                self._end("restriction", self.ws[i])
+            self._reset_level()
+            self.level, self.trend = [i], [i]
+            return
+        self.level.append(i)
+        self.trend.append(i)
+
+    def _cusum_step(self, i: int) -> bool:
+        """A CUSUM alarm counts as a step when one mean shift fits the recent windows
+        clearly better than a straight line (a fouling ramp also drives the CUSUM)."""
+        pts = [*self.level[-2 * self.cfg.level_windows :], i]
+        if len(pts) < 8:
+            return False
+        y = self.r[pts]
+        t = np.array([self._days(self.ws[j]) for j in pts])
+        ms = mean_shift(y, min_size=3)
+        line = np.polyfit(t, y, 1)
+        sse_line = float(np.sum((y - np.polyval(line, t)) ** 2))
+        sse_step = ms.sigma**2 * max(len(y) - 2, 1)
+        return ms.step > 0 and sse_step < 0.5 * sse_line
+
+    def _decide_step(self, i: int) -> None:
+        assert self.base is not None and self.pending is not None
+        j, z, e = self.pending
+        kind, conf, extra = self._classify(j)
+        if kind is None and i == j:
+            return  # undecided window: a step part-way through it; the next one decides
+        if kind is None:
+            kind, conf, extra = self._classify(i)
+        if kind is None:
+            kind, conf = "restriction", 0.5
+        start = self.ws[j]
+        ref = float(self.r[j] - e)
+        e = float(self.r[i] - ref)  # the full step (window i is past a deferred one)
+        evidence = {"step_r": e, "step_sigma": z, "r_before": ref, "r_after": float(self.r[i]),
+                    "cusum": self.cusum, "sigma_r": self.base.sigma_r, **extra}  # fmt: skip
+        day = f"{start:%Y-%m-%d}"
+        if kind == "back_pressure":
+            c = extra.get("static_offset_pa", math.nan)
+            size = f" by about {c / 1e5:+.2f} bar" if math.isfinite(c) else ""
+            msg = (
+                f"{self.name}: the back-pressure at its end changed{size} on {day}; the "
+                f"offset is the same at every flow (it reads as r {ref:.2f} → {self.r[i]:.2f})."
+            )
+        else:
+            words = {
+                "restriction": "a restriction (valve throttled or closed, debris)",
+                "instrument": "its flow meter (the header mass balance moved with it)",
+            }[kind]
+            msg = (
+                f"{self.name}: resistance ratio stepped from {ref:.2f} to {self.r[i]:.2f} "
+                f"({100 * e / ref:+.0f} %) on {day}; most likely {words}."
+            )
+        self._open(_Open(kind, start, self.we[i], conf, evidence, msg, ref=ref, step=e))
+        if kind == "back_pressure" and math.isfinite(extra.get("static_offset_pa", math.nan)):
+            self._shift_static(i, extra["static_offset_pa"])
+        self._reset_level()
+        self.level = [i] if i != j else []
+        self.trend = list(self.level)
+
+    def _classify(self, j: int) -> tuple[str | None, float, dict[str, float]]:
+        assert self.base is not None
+        meter = self._meter_disagrees(j)
+        if meter is not None:
+            return "instrument", 0.8, meter
+        cmp = _offset_comparison(
+            self.rows.iloc[j], self.base.r0, self.base.s_b + self.s_shift, self.cfg
+        )
+        if cmp is None:
+            return "restriction", 0.5, {}
+        llr = cmp["offset_llr"]
+        if abs(llr) < self.cfg.offset_evidence:
+            return None, 0.0, cmp
+        conf = 1.0 / (1.0 + math.exp(-abs(llr)))
+        return ("back_pressure" if llr > 0 else "restriction"), conf, cmp
+
+    def _meter_disagrees(self, j: int) -> dict[str, float] | None:
+        """A real restriction leaves Σ branch − total unchanged (both meters see the
+        water go); a meter fault moves the balance by the meter's own change."""
+        if self.balance is None or self.ws[j] not in self.balance.index:
+            return None
+        flow = self.col["mean_flow_m3s"]
+        before = [p for p in self.level[-7:] if self.ws[p] in self.balance.index]
+        if not before or not math.isfinite(flow[j]):
+            return None
+        dq = float(flow[j] - np.nanmedian(flow[before]))
+        res = self.balance["residual_m3s"]
+        dres = float(res.loc[self.ws[j]] - np.median(res.loc[[self.ws[p] for p in before]]))
+        u = float(self.balance["uncertainty_m3s"].loc[self.ws[j]])
+        if abs(dres) > u and dq * dres > 0 and abs(dres - dq) < 0.5 * abs(dq):
+            return {"meter_change_m3s": dq, "balance_change_m3s": dres, "balance_u_m3s": u}
+        return None
+
+    # -- fouling ---------------------------------------------------------------------------
+    def _fouling(self, i: int) -> None:
+        assert self.base is not None
+        if len(self.trend) < self.cfg.min_trend_windows or self.trend[-1] != i:
+            return
+        fouling = self.open.get("fouling")
+        if fouling is None:
+            found = self._trend_test()
+            self.trend_hits = self.trend_hits + 1 if found is not None else 0
+            if found is None or self.trend_hits < self.cfg.trend_persistence:
+                return
+            pts, fit = found
+            ref = self._trend_ref(pts)
+            t_on = self._onset([self._days(self.ws[j]) for j in pts], self.r[pts])
+            fouling = _Open("fouling", self.t0 + t_on * _DAY, self.we[i], 0.0, {}, "", ref=ref)
+            self._open(fouling)
+        # evidence from the windows since the onset (at least 6 of them)
+        pts = [j for j in self.trend if self.ws[j] >= fouling.start]
+        if len(pts) < 6:
+            pts = self.trend[-6:]
+        pts = pts[-self.cfg.max_trend_windows :]
+        t = np.array([self._days(self.ws[j]) for j in pts])
+        y = self.r[pts]
+        fit = theil_sen(t, y)
+        mk = mann_kendall(y)
+        rise = max(fit.intercept + fit.slope * t[-1] - fouling.ref, 0.0)
+        # Theil–Sen's slope interval assumes independent windows: widen it by the
+        # Hamed–Rao variance factor so the forecast interval is honest.
+        widen = math.sqrt(max(mk.correction, 1.0))
+        wide = TheilSen(
+            slope=fit.slope, intercept=fit.intercept,
+            slope_low=fit.slope - widen * (fit.slope - fit.slope_low),
+            slope_high=fit.slope + widen * (fit.slope_high - fit.slope),
+            confidence=fit.confidence, n=fit.n,
+        )  # fmt: skip
+        limit = self.bs.cleaning_limit_r
+        cross = crossing_forecast(wide, limit=limit, t_now=t[-1])
+        horizon = 3650.0  # forecasts beyond ten years are "not in sight" [d]
+        if cross.eta is not None and cross.eta > horizon:
+            cross = type(cross)(cross.level_now, None, cross.eta_low, None, False)
+        if cross.eta_low is not None and cross.eta_low > horizon:
+            cross = type(cross)(cross.level_now, cross.eta, None, cross.eta_high, False)
+        if cross.eta_high is not None and cross.eta_high > horizon:
+            cross = type(cross)(cross.level_now, cross.eta, cross.eta_low, None, False)
+        nan = math.nan
+        fouling.evidence = {
+            "slope_per_day": fit.slope, "slope_low_per_day": wide.slope_low,
+            "slope_high_per_day": wide.slope_high, "mk_z": mk.z, "mk_p": mk.p,
+            "hamed_rao_factor": mk.correction, "windows": float(len(pts)),
+            "r_baseline": fouling.ref, "r_now": cross.level_now, "rise_r": rise,
+            "cleaning_limit_r": limit,
+            "days_to_limit": nan if cross.eta is None else cross.eta,
+            "days_to_limit_low": nan if cross.eta_low is None else cross.eta_low,
+            "days_to_limit_high": nan if cross.eta_high is None else cross.eta_high,
+        }  # fmt: skip
+        fouling.confidence = (1.0 - mk.p) * (1.0 - math.exp(-rise / self.cfg.min_rise_r))
+        t_last = self.ws[i]
+        if cross.reached:
+            when = f"it is at or past the cleaning limit {limit:.2f}"
+        elif cross.eta is None:
+            when = "the rate is too uncertain to forecast the cleaning date"
+        else:
+            lo = "now" if cross.eta_low is None else f"{t_last + cross.eta_low * _DAY:%Y-%m-%d}"
+            hi = "later" if cross.eta_high is None else f"{t_last + cross.eta_high * _DAY:%Y-%m-%d}"
+            when = (f"at this rate it reaches the cleaning limit {limit:.2f} about "
+                    f"{t_last + cross.eta * _DAY:%Y-%m-%d} (between {lo} and {hi})")  # fmt: skip
+        fouling.message = (
+            f"{self.name} is fouling: resistance ratio {fouling.ref:.2f} → "
+            f"{cross.level_now:.2f}, rising {fit.slope * 30:.3f} per month; {when}."
+        )
+
+    def _trend_ref(self, pts: Sequence[int]) -> float:
+        """Reference level of a rise: the baseline, or the level after the last step."""
+        assert self.base is not None
+        if self.trend and self.trend[0] in self.base_idx:
+            return self.base.r0
+        return float(np.median(self.r[self.trend[:5]]))
+
+    @staticmethod
+    def _onset(t_list: Sequence[float], y: np.ndarray) -> float:
+        """Onset of a rise: the knot of the best "flat, then straight line" fit [d]."""
+        t = np.asarray(t_list, dtype=float)
+        best, t_best = math.inf, float(t[0])
+        for knot in t[:-5]:
+            a = np.column_stack([np.ones_like(t), np.clip(t - knot, 0.0, None)])
+            coef, *_ = np.linalg.lstsq(a, y, rcond=None)
+            sse = float(np.sum((y - a @ coef) ** 2))
+            if coef[1] > 0 and sse < best:
+                best, t_best = sse, float(knot)
+        return t_best
+
+    def _trend_test(self) -> tuple[list[int], TheilSen] | None:
+        """Test the trailing windows for a rise, over several look-backs.
+
+        One look-back over the whole segment would see "flat, then rising": the single
+        Theil–Sen line leaves a V-shaped residual that the Hamed–Rao correction reads as
+        strong autocorrelation, and the test loses its power. The trailing look-backs
+        catch a ramp while it is still nearly straight; each must also show a fitted rise
+        of ``min_rise_r``, which keeps the multiple looks from adding false findings.
+        """
+        n = len(self.trend)
+        for look in self.cfg.trend_lookbacks:
+            if look > n and look != self.cfg.trend_lookbacks[0]:
+                break
+            pts = self.trend[-min(look, n) :]
+            if len(pts) < self.cfg.min_trend_windows:
+                continue
+            t = np.array([self._days(self.ws[j]) for j in pts])
+            y = self.r[pts]
+            slope, _ = sen_slope(t, y)
+            if slope * (t[-1] - t[0]) < self.cfg.min_rise_r * float(np.median(y[:5])):
+                continue
+            ref = self._trend_ref(pts)
+            level = float(np.median(y) + slope * (t[-1] - np.median(t)))
+            assert self.base is not None
+            scale = self.base.sigma_r * max(ref / self.base.r0, 1.0)
+            if level - ref < max(self.cfg.min_rise_r * ref, self.cfg.min_rise_sigma * scale):
+                continue
+            mk = mann_kendall(y)
+            if mk.z > 0 and mk.p < self.cfg.trend_alpha:
+                return pts, theil_sen(t, y)
+        return None
+
+    # -- low flow (daily record) -------------------------------------------------------
+    def _low_flow(self, i: int) -> None:
+        qmin = self.bs.min_flow_m3s
+        q = self.col["mean_flow_m3s"][i]
+        if qmin is None or not math.isfinite(q) or self.ws[i] in self.flagged:
+            return
+        lf = self.open.get("low_flow")
+        if lf is None and q < qmin:
+            self._open(_Open("low_flow", self.ws[i], self.we[i], 0.9, {}, ""))
+            lf = self.open["low_flow"]
+        if lf is not None and q < qmin * (1.0 + self.cfg.low_flow_deadband):
+            # the likely cause is whatever else is open on the branch, as it stands now
+            causes = [k.replace("_", "-") for k in self.open if k != "low_flow"]
+            cause = f"; likely cause: {', '.join(causes)}" if causes else ""
+            lf.evidence = {"mean_flow_m3s": q, "min_flow_m3s": qmin}
+            lf.message = (
+                f"{self.name}: mean flow {q * 3600:.1f} m3/h below its minimum "
+                f"{qmin * 3600:.1f} m3/h{cause}."
+            )
+        elif lf is not None and q >= qmin * (1.0 + self.cfg.low_flow_deadband):
+            self._end("low_flow", self.ws[i])
+
+
+def _runs(starts: Sequence[pd.Timestamp], ends: Sequence[pd.Timestamp], bad: Sequence[bool],
+          needed: int) -> list[tuple[int, int | None, int]]:  # fmt: skip
+    """Runs of ``bad`` windows at least ``needed`` long: (first, first good after or None,
+    index at which the run became long enough)."""
+    out: list[tuple[int, int | None, int]] = []
+    i, n = 0, len(bad)
+    while i < n:
+        if not bad[i]:
+            i += 1
+            continue
+        j = i
+        while j + 1 < n and bad[j + 1] and starts[j + 1] <= ends[j] + pd.Timedelta(seconds=1):
+            j += 1
+        if j - i + 1 >= needed:
+            out.append((i, j + 1 if j + 1 < n else None, i + needed - 1))
+        i = j + 1
+    return out
+
+
+def _instrument_findings(name: str, flagged: pd.DataFrame, last_end: pd.Timestamp
+                         ) -> list[Finding]:  # fmt: skip
+    starts, ends = list(flagged["window_start"]), list(flagged["window_end"])
+    out = []
+    for a, b, _ in _runs(starts, ends, [True] * len(starts), 1):
+        last = (b if b is not None else len(starts)) - 1
+        run = flagged.iloc[a : last + 1]
+        counts = {c: float(run[c].sum()) for c in ("frozen", "out_of_range", "spikes")}
+        what = [c.replace("_", " ") for c, v in counts.items() if v > 0]
+        end = ends[last] if ends[last] < last_end else None
+        out.append(Finding(
+            branch=name, kind="instrument",
+            start=pd.Timestamp(run["first_flagged"].iloc[0]).to_pydatetime(),
+            detected=ends[a].to_pydatetime(),
+            end=None if end is None else end.to_pydatetime(),
+            confidence=0.9 if counts["frozen"] or counts["out_of_range"] else 0.7,
+            evidence={**counts, "windows": float(len(run))},
+            message=f"{name}: instrument {', '.join(sorted(set(run['tags'])))} looks faulty "
+            f"({', '.join(what)}); its windows are left out of the resistance analysis.",
+        ))  # fmt: skip
+    return out
+
+
+def _imbalance_findings(bal: pd.DataFrame, cfg: DiagnosisSettings) -> list[Finding]:
+    out = []
+    groups = bal.groupby("header") if "header" in bal.columns else [(cfg.header_name, bal)]
+    for name, rows in groups:
+        rows = rows.reset_index(drop=True)
+        res = rows["residual_m3s"].astype(float).to_numpy()
+        u = rows["uncertainty_m3s"].astype(float).to_numpy()
+        bad = list(np.abs(res) > u)
+        starts, ends = list(rows["window_start"]), list(rows["window_end"])
+        for a, b, det in _runs(starts, ends, bad, cfg.imbalance_windows):
+            last = (b if b is not None else len(bad)) - 1
+            ratio = float(np.mean(np.abs(res[a : last + 1]) / u[a : last + 1]))
+            mean = float(np.mean(res[a : last + 1]))
+            sign = "more" if mean > 0 else "less"
+            out.append(Finding(
+                branch=str(name), kind="imbalance", start=starts[a].to_pydatetime(),
+                detected=ends[det].to_pydatetime(),
+                end=None if b is None else starts[b].to_pydatetime(),
+                confidence=float(min(0.99, 1.0 - math.exp(-(ratio - 1.0) * (last - a + 1)))),
+                evidence={"mean_residual_m3s": mean, "uncertainty_m3s": float(np.mean(u)),
+                          "ratio_to_uncertainty": ratio, "windows": float(last - a + 1)},
+                message=f"{name}: the branch meters add up to {abs(mean) * 3600:.1f} m3/h "
+                f"{sign} than the total meter, {ratio:.1f}× their combined uncertainty "
+                "(leak, unmetered draw or meter drift).",
+            ))  # fmt: skip
+    return out

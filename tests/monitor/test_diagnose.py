@@ -1,0 +1,302 @@
+"""Tests of monitor.diagnose on synthetic fit histories.
+
+The little generator below makes, per daily window, 96 samples (every 15 min) of a
+branch: a day/night flow swing, the clean dynamic ΔP ``x = a·Q²``, and the observed
+``y = r·x + (s_true − s_configured) + noise``. ``r`` carries day-to-day AR(1) scatter
+(the unmodelled day-to-day variation of a real branch), and the window's ``r`` is the
+least-squares fit with the back-pressure held at its configured value, as the fit does
+when the termination pressure is not logged. It is a stand-in for the site simulator.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from datetime import UTC, datetime, timedelta
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from monitor.diagnose import (
+    BranchSettings,
+    DiagnosisSettings,
+    Finding,
+    diagnose,
+    finding_cost,
+)
+
+T0 = datetime(2025, 1, 1, tzinfo=UTC)
+SAMPLES = 96
+
+
+@dataclass(frozen=True)
+class Fault:
+    kind: str  # "ramp", "step", "bp_step"
+    day: float  # onset [d]
+    size: float  # ramp: r reached at day+length; step: relative rise; bp_step: [Pa]
+    length: float = 0.0  # ramp duration [d]
+
+
+def make_history(
+    days: int,
+    *,
+    seed: int,
+    branch: str = "CW-3",
+    sigma: float = 0.015,
+    rho: float = 0.6,
+    faults: tuple[Fault, ...] = (),
+    logged_end_pressure: bool = False,
+    seasonal_error: float = 0.0,
+) -> pd.DataFrame:
+    rng = np.random.default_rng(seed)
+    tk = np.arange(days)[:, None] + (np.arange(SAMPLES)[None, :] + 0.5) / SAMPLES
+    q0 = 0.04  # design flow [m^3/s]
+    # day/night load swing and a seasonal one (more cooling in summer) [m^3/s]
+    q = q0 * (0.8 + 0.2 * np.sin(2 * np.pi * (tk - 0.3))) * (
+        1 + 0.1 * np.sin(2 * np.pi * tk / 365.0)
+    )
+    x = 1.0e5 * (q / q0) ** 2  # clean dynamic ΔP [Pa]
+    eps = np.empty(days)
+    eps[0] = rng.normal(0, sigma)
+    for d in range(1, days):
+        eps[d] = rho * eps[d - 1] + rng.normal(0, sigma * np.sqrt(1 - rho**2))
+    r = np.ones_like(tk) * (1 + eps[:, None]) * (1 + seasonal_error * np.sin(2 * np.pi * tk / 365))
+    s = np.zeros_like(tk)  # true back-pressure minus configured [Pa]
+    for f in faults:
+        if f.kind == "ramp":
+            frac = np.clip((tk - f.day) / f.length, 0.0, 1.0)
+            r = r * (1 + (f.size - 1) * frac)
+        elif f.kind == "step":
+            r = r * np.where(tk >= f.day, 1 + f.size, 1.0)
+        elif f.kind == "bp_step":
+            s = s + np.where(tk >= f.day, f.size, 0.0)
+    end_pressure = 3.0e4 + s
+    if logged_end_pressure:
+        s = np.zeros_like(s)  # the fit knows the logged pressure: y carries no offset
+    y = r * x + s + rng.normal(0, 1000.0, tk.shape)
+    r_fit = (y * x).sum(1) / (x * x).sum(1)
+    start = pd.Timestamp(T0) + pd.to_timedelta(np.arange(days), unit="D")
+    hist = pd.DataFrame(
+        {
+            "branch": branch,
+            "window_start": start,
+            "window_end": start + pd.Timedelta(days=1),
+            "r": r_fit,
+            "samples": SAMPLES,
+            "mean_flow_m3s": q.mean(1),
+            "sum_w": float(SAMPLES),
+            "sum_x": x.sum(1),
+            "sum_y": y.sum(1),
+            "sum_xx": (x * x).sum(1),
+            "sum_xy": (x * y).sum(1),
+            "sum_yy": (y * y).sum(1),
+        }
+    )
+    if logged_end_pressure:
+        hist["end_pressure_pa"] = end_pressure.mean(1)
+    return hist
+
+
+def run(hist: pd.DataFrame, **kw: object) -> list[Finding]:
+    now = hist["window_end"].max()
+    return diagnose(hist, now=now, **kw)  # type: ignore[arg-type]
+
+
+def days_after_t0(t: datetime) -> float:
+    return (pd.Timestamp(t) - pd.Timestamp(T0)) / pd.Timedelta(days=1)
+
+
+def test_clean_branch_gives_nothing() -> None:
+    assert run(make_history(365, seed=1)) == []
+
+
+def test_seasonal_temperature_alone_gives_nothing() -> None:
+    # The model carries temperature, so r stays flat; a 0.5 % seasonal model error and
+    # a ±10 % seasonal load swing must not read as fouling.
+    assert run(make_history(365, seed=2, seasonal_error=0.005)) == []
+
+
+@pytest.mark.parametrize(("seed", "length"), [(3, 60), (4, 120), (5, 200)])
+def test_fouling_ramp_found_before_1_25_with_forecast(seed: int, length: float) -> None:
+    onset = 60.0
+    hist = make_history(300, seed=seed, faults=(Fault("ramp", onset, 1.5, length),))
+    fouling = [f for f in run(hist) if f.kind == "fouling"]
+    assert len(fouling) == 1, run(hist)
+    f = fouling[0]
+    # issue 4 goal: found before r passes 1.25 (halfway up a linear ramp to 1.5)
+    r_at_detect = 1 + 0.5 * (days_after_t0(f.detected) - onset) / length
+    assert r_at_detect < 1.25
+    assert abs(days_after_t0(f.start) - onset) < 0.35 * length
+    # The forecast made at detection: the limit 1.5 is reached at onset + length.
+    cut = hist[hist["window_end"] <= pd.Timestamp(f.detected)]
+    at_detect = next(g for g in run(cut) if g.kind == "fouling")
+    eta = days_after_t0(at_detect.detected) - 1 + at_detect.evidence["days_to_limit"]
+    assert abs(eta - (onset + length)) < 0.3 * length
+    assert at_detect.evidence["days_to_limit_low"] <= at_detect.evidence["days_to_limit"]
+    assert "cleaning limit" in at_detect.message
+
+
+@pytest.mark.parametrize("seed", [6, 7, 8, 9])
+def test_restriction_step_found_within_a_day(seed: int) -> None:
+    day = 100.0 + (seed % 4) * 0.2  # steps part-way through the morning
+    hist = make_history(160, seed=seed, faults=(Fault("step", day, 0.30),))
+    found = run(hist)
+    assert [f.kind for f in found] == ["restriction"], found
+    f = found[0]
+    # issue 4 goal: within 1 day. With daily windows a step late in a window is decided
+    # at the end of the next one (the mixed window cannot tell the cause): at most one
+    # day after the end of the window holding the step.
+    assert days_after_t0(f.detected) <= np.floor(day) + 2.0
+    assert np.floor(day) <= days_after_t0(f.start) <= day
+    assert f.evidence["step_sigma"] > 6
+
+
+@pytest.mark.parametrize("seed", [10, 11, 12])
+def test_back_pressure_step_unlogged_is_not_a_restriction(seed: int) -> None:
+    hist = make_history(160, seed=seed, faults=(Fault("bp_step", 100.0, 2.0e4),))
+    found = run(hist)
+    assert [f.kind for f in found] == ["back_pressure"], found
+    assert days_after_t0(found[0].detected) - 100.0 <= 1.0
+    assert found[0].evidence["static_offset_pa"] == pytest.approx(2.0e4, rel=0.15)
+
+
+def test_back_pressure_step_logged() -> None:
+    hist = make_history(160, seed=13, faults=(Fault("bp_step", 100.3, 2.0e4),),
+                        logged_end_pressure=True)  # fmt: skip
+    found = run(hist)
+    assert [f.kind for f in found] == ["back_pressure"], found
+    assert days_after_t0(found[0].detected) - 100.3 <= 1.0
+    assert found[0].evidence["step_pa"] == pytest.approx(2.0e4 * 0.7, rel=0.2)
+
+
+def test_cleaning_ends_fouling_and_resets_baseline() -> None:
+    hist = make_history(300, seed=14, faults=(Fault("ramp", 40.0, 1.5, 90.0),))
+    # cleaning on day 150: the generator's r after it returns to clean
+    r = hist["r"].to_numpy().copy()
+    day = np.arange(len(r))
+    clean_r = make_history(300, seed=14)["r"].to_numpy()
+    r[day >= 150] = clean_r[day >= 150]
+    hist = hist.assign(r=r).drop(columns=[c for c in hist.columns if c.startswith("sum_")])
+    events = pd.DataFrame(
+        {"branch": ["CW-3"], "kind": ["cleaned"], "time": [pd.Timestamp(T0) + timedelta(150)]}
+    )
+    found = run(hist, maintenance=events)
+    assert [f.kind for f in found] == ["fouling"], found
+    assert found[0].end == T0 + timedelta(150)
+
+
+def test_frozen_meter_is_instrument_never_fouling() -> None:
+    hist = make_history(200, seed=15)
+    # a frozen flow meter: the fit sees a constant flow while the pressure moves; make
+    # its windows rise like fouling to prove they are excluded
+    frozen = (hist.index >= 120) & (hist.index < 170)
+    hist.loc[frozen, "r"] = np.linspace(1.0, 1.6, int(frozen.sum()))
+    screening = pd.DataFrame(
+        {
+            "branch": "CW-3",
+            "window_start": hist["window_start"],
+            "window_end": hist["window_end"],
+            "tag": "FT-203",
+            "frozen": np.where(frozen, 96, 0),
+            "out_of_range": 0,
+            "spikes": 0,
+            "samples": 96,
+        }
+    )
+    found = run(hist, screening=screening)
+    assert [f.kind for f in found] == ["instrument"], found
+    assert days_after_t0(found[0].start) == 120
+    assert found[0].end is not None and days_after_t0(found[0].end) == 170
+    assert "FT-203" in found[0].message
+
+
+def test_meter_step_with_balance_is_instrument() -> None:
+    # The meter reads 12 % low from day 90: the fitted r rises by 1/0.88² ≈ +29 %, and
+    # Σ branch − total moves by the meter's change (a real restriction would not move it).
+    hist = make_history(130, seed=16)
+    bad = hist.index >= 90
+    hist.loc[bad, "r"] = hist.loc[bad, "r"] / 0.88**2
+    hist.loc[bad, "mean_flow_m3s"] = hist.loc[bad, "mean_flow_m3s"] * 0.88
+    hist = hist.drop(columns=[c for c in hist.columns if c.startswith("sum_")])
+    residual = np.where(bad, -0.12 * hist["mean_flow_m3s"] / 0.88, 0.0)
+    balance = pd.DataFrame(
+        {
+            "window_start": hist["window_start"],
+            "window_end": hist["window_end"],
+            "residual_m3s": residual + np.random.default_rng(1).normal(0, 2e-4, len(hist)),
+            "uncertainty_m3s": 1.5e-3,
+        }
+    )
+    kinds = sorted(f.kind for f in run(hist, balance=balance))
+    assert kinds == ["imbalance", "instrument"]
+
+
+def test_incremental_runs_agree() -> None:
+    hist = make_history(200, seed=17, faults=(Fault("step", 80.5, 0.3),
+                                              Fault("ramp", 120.0, 1.5, 80.0)))  # fmt: skip
+    keys_seen: dict[tuple[str, str, datetime], datetime] = {}
+    for d in range(60, 201, 7):
+        for f in run(hist.iloc[:d]):
+            key = (f.branch, f.kind, f.start)
+            keys_seen.setdefault(key, f.detected)
+            assert keys_seen[key] == f.detected
+    final = {(f.branch, f.kind, f.start) for f in run(hist)}
+    assert final == set(keys_seen)
+
+
+def test_low_flow_and_json() -> None:
+    hist = make_history(60, seed=18, faults=(Fault("step", 40.2, 0.6),))
+    hist.loc[hist.index >= 40, "mean_flow_m3s"] *= 0.75
+    settings = DiagnosisSettings(branches={"CW-3": BranchSettings(min_flow_m3s=0.030)})
+    found = run(hist, settings=settings)
+    kinds = {f.kind for f in found}
+    assert kinds == {"restriction", "low_flow"}
+    low = next(f for f in found if f.kind == "low_flow")
+    assert "restriction" in low.message
+    doc = json.loads(json.dumps([f.to_json_dict() for f in found]))
+    assert set(doc[0]) == {"branch", "kind", "start", "detected", "end", "confidence",
+                           "evidence", "message"}  # fmt: skip  # DESIGN §5
+    assert doc[0]["start"].endswith("+00:00")
+
+
+def test_bad_input_names_the_argument() -> None:
+    hist = make_history(20, seed=1)
+    with pytest.raises(ValueError, match="history lacks"):
+        diagnose(hist.drop(columns="r"), now=T0)
+    with pytest.raises(ValueError, match="now"):
+        diagnose(hist, now=datetime(2025, 2, 1))
+    with pytest.raises(ValueError, match="cleaning_limit_r"):
+        BranchSettings(cleaning_limit_r=0.9)
+
+
+def test_false_findings_on_clean_branch_years() -> None:
+    # issue 4 goal: at most 0.5 false findings per clean branch-year. 20 branch-years,
+    # σ 1–2 %, AR(1) rho 0.3–0.7 day to day.
+    rng = np.random.default_rng(2026)
+    false = 0
+    for k in range(20):
+        hist = make_history(365, seed=100 + k, sigma=float(rng.uniform(0.01, 0.02)),
+                            rho=float(rng.uniform(0.3, 0.7)),
+                            seasonal_error=float(rng.uniform(0, 0.005)))  # fmt: skip
+        false += len(run(hist))
+    rate = false / 20
+    print(f"false findings per clean branch-year: {rate:.2f}")
+    assert rate <= 0.5
+
+
+def test_finding_cost() -> None:
+    # ΔP_extra·Q/η: 0.4 bar extra at 0.034 m³/s through a 0.70-efficient pump
+    # = 40 000·0.034/0.7 = 1942.9 W → 46.63 kWh/d (hand calculation, P = ΔP·Q/η).
+    c = finding_cost(flow_clean_m3s=0.040, flow_now_m3s=0.034, dp_dynamic_clean_pa=1.0e5,
+                     r_now=1.4)  # fmt: skip
+    assert c.extra_power_w == pytest.approx(40_000 * 0.034 / 0.7)
+    assert c.extra_energy_kwh_per_day == pytest.approx(40_000 * 0.034 / 0.7 * 24 / 1000)
+    assert c.lost_flow_fraction == pytest.approx(0.15)
+    assert c.efficiency_assumed and c.notes
+    site = finding_cost(flow_clean_m3s=0.04, flow_now_m3s=0.04, dp_dynamic_clean_pa=1.0e5,
+                        r_now=1.0, pump_efficiency=0.8)  # fmt: skip
+    assert site.extra_power_w == 0 and not site.efficiency_assumed
+    with pytest.raises(ValueError, match="pump_efficiency"):
+        finding_cost(flow_clean_m3s=0.04, flow_now_m3s=0.04, dp_dynamic_clean_pa=1.0e5,
+                     r_now=1.2, pump_efficiency=1.5)  # fmt: skip
