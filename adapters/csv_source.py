@@ -486,13 +486,15 @@ class CsvSource(ReadingsSource):
         rows: list[list[str]] = []
         bad: list[tuple[int, str, str]] = []
         blank = 0
-        for i, fields in enumerate(csv.reader(raw, delimiter=self.delimiter, strict=False)):
+        for i, text_line in enumerate(raw):
+            # One reader per line: an unclosed quote must not swallow the good lines after it.
+            fields = next(csv.reader([text_line], delimiter=self.delimiter, strict=False), [])
             number = first_line + i
             if not fields or all(not f.strip() for f in fields):
                 blank += 1
             elif len(fields) != layout.n_fields:
                 reason = f"expected {layout.n_fields} fields, found {len(fields)}"
-                bad.append((number, reason, raw[i] if i < len(raw) else ""))
+                bad.append((number, reason, text_line))
             else:
                 lines.append(number)
                 rows.append(fields)

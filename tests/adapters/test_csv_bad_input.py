@@ -52,6 +52,17 @@ def test_garbage_lines_and_wrong_types(tmp_path: Path) -> None:
     assert got.quarantined.loc[1, "raw"] == "2026-05-01T00:01:00Z,oops,7.2"
 
 
+def test_unclosed_quote_loses_no_following_line(tmp_path: Path) -> None:
+    write(
+        tmp_path / "a.csv",
+        HEADER + '2026-05-01T00:00:00Z,"1,3.6\n2026-05-01T00:01:00Z,2,7.2\n'
+        "2026-05-01T00:02:00Z,3,10.8\n",
+    )
+    got = ingest(source(tmp_path), {})
+    assert reasons(got.quarantined) == {2: "expected 3 fields, found 2"}
+    assert len(got.readings) == 4
+
+
 def test_blank_and_duplicate_timestamps_and_out_of_order_rows(tmp_path: Path) -> None:
     write(
         tmp_path / "a.csv",
