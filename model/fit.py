@@ -24,9 +24,13 @@ re-estimated at each iteration from the normalised median absolute deviation
     K   = 1 + (p/n) · var ψ'(u) / [mean ψ'(u)]²
 
 with ``u`` the scaled residuals. 95 % intervals use Student's t with ``n − p`` degrees of
-freedom. Samples in one day of 1-minute data are serially correlated, so the intervals are
-narrower than the true uncertainty of a day's ``r``; the day-to-day scatter of ``r`` is the
-honest measure and the diagnosis uses it.
+freedom. Samples of one window are in time order and their residuals are often serially
+correlated (an unlogged back-pressure that wanders, a small model error that follows the
+daily cycle): with ``serial=True`` (default) the covariance is also estimated from the
+block sums of the scores over ``blocks`` contiguous stretches of the window (cluster-
+robust sandwich, Cameron & Miller 2015) and the wider of the two is used, with t on
+``blocks − 1`` degrees of freedom. The day-to-day scatter of ``r`` remains the
+diagnosis' measure of noise.
 
 Identifiability of ``s``
 ------------------------
@@ -108,6 +112,8 @@ class FitResult:
     flow_min_m3s, flow_max_m3s : flow range covered [m^3/s].
     flow_span : relative flow span (Q₉₅ − Q₅)/Q₅₀ [-].
     residual_std_pa : robust residual scatter 1.4826·MAD [Pa].
+    residual_autocorr : lag-1 autocorrelation of the residuals [-] (a diagnostic: near 1
+        the residuals drift rather than scatter).
     corr_rs : correlation of the ``s`` and ``r`` estimates [-] (NaN when ``s`` not fitted).
     iterations : IRLS iterations of the final fit.
     status : ``"ok"``, ``"not_identifiable"`` (``r`` valid with ``s`` fixed, or NaN when
@@ -136,6 +142,7 @@ class FitResult:
     status: str
     message: str
     loss: str
+    residual_autocorr: float = math.nan
 
     @property
     def usable(self) -> bool:
@@ -150,6 +157,8 @@ class _Irls:
     scale: float
     iterations: int
     converged: bool
+    psi: NDArray[np.float64]  # ψ of the scaled residuals at the solution, sample order
+    dpsi: NDArray[np.float64]  # ψ' of the same
 
 
 def _psi(u: NDArray[np.float64], loss: str, k: float) -> tuple[NDArray[np.float64], ...]:
@@ -210,6 +219,8 @@ def _irls(
     scale = _robust_scale(e)
     if scale <= 0.0:
         scale = float(np.sqrt(np.mean(e**2)))
+    psi = np.zeros(n)
+    dpsi = np.zeros(n)
     if scale <= 0.0 or n <= p:
         cov = np.zeros((p, p))
     else:
@@ -223,8 +234,52 @@ def _irls(
             factor = kk**2 * float(np.sum(psi**2)) / (n - p) / m**2 * scale**2
             cov = factor * np.linalg.pinv(a.T @ a)
     return _Irls(
-        beta=np.asarray(beta, dtype=float), cov=cov, scale=scale, iterations=it, converged=converged
+        beta=np.asarray(beta, dtype=float),
+        cov=cov,
+        scale=scale,
+        iterations=it,
+        converged=converged,
+        psi=np.asarray(psi, dtype=float),
+        dpsi=np.asarray(dpsi, dtype=float),
     )
+
+
+def _lag1(psi: NDArray[np.float64]) -> float:
+    """Lag-1 autocorrelation of the residual series [-] (NaN when undefined)."""
+    if psi.size < 3:
+        return math.nan
+    a = psi - float(np.mean(psi))
+    den = float(np.dot(a, a))
+    return float(np.dot(a[1:], a[:-1]) / den) if den > 0.0 else math.nan
+
+
+def _serial_cov(
+    a: NDArray[np.float64], fit: _Irls, blocks: int
+) -> tuple[NDArray[np.float64], int]:
+    """Covariance that allows for serially correlated residuals, and its degrees of freedom.
+
+    The window is cut into *blocks* contiguous stretches and the M-estimator's sandwich
+    is built from the block sums of the scores ψ(u)·a — the cluster-robust covariance
+    with time blocks as clusters (Cameron & Miller 2015, J. Human Resources 50, 317,
+    §VI), with the small-sample factor G/(G − 1) and t with G − 1 degrees of freedom.
+    Residuals that drift together (an unlogged pressure wandering, a model error that
+    follows the daily cycle) carry less information than independent ones; this widens
+    the interval for them. The wider of this and Huber's covariance is returned.
+    """
+    n, p = a.shape
+    g = min(blocks, n // 5)
+    if g < 4 or fit.scale <= 0.0:
+        return fit.cov, n - p
+    m = (a * fit.dpsi[:, None]).T @ a
+    if not np.all(np.isfinite(m)) or np.linalg.matrix_rank(m) < p:
+        return fit.cov, n - p
+    starts = np.array([c[0] for c in np.array_split(np.arange(n), g)])
+    sums = np.add.reduceat(a * fit.psi[:, None], starts, axis=0)
+    m_inv = np.linalg.inv(m)
+    cov = g / (g - 1.0) * fit.scale**2 * (m_inv @ (sums.T @ sums) @ m_inv)
+    if cov[0, 0] > fit.cov[0, 0]:
+        return cov, g - 1
+    return fit.cov, n - p
 
 
 def _as_1d(name: str, value: ArrayLike, n: int | None = None) -> NDArray[np.float64]:
@@ -265,6 +320,8 @@ def fit_ratio(
     min_flow_span: float = 0.2,
     max_r_rel_halfwidth: float = 0.10,
     confidence: float = 0.95,
+    serial: bool = True,
+    blocks: int = 12,
 ) -> FitResult:
     """Fit ``y ≈ r·x (+ s)`` robustly on arrays.
 
@@ -284,6 +341,9 @@ def fit_ratio(
     max_corr, min_flow_span, max_r_rel_halfwidth : identifiability thresholds [-]
         (module docstring)
     confidence : level of the intervals [-]
+    serial : the samples are in time order: allow for serially correlated residuals in
+        the intervals (block covariance, module docstring)
+    blocks : contiguous time blocks for that covariance [-] (12: two hours of a day)
 
     Returns
     -------
@@ -334,16 +394,24 @@ def fit_ratio(
             **common,
         )
     sw = np.sqrt(w_u / float(np.mean(w_u)))  # mean weight 1: residuals stay in Pa
-    tq = float(stats.t.ppf(0.5 + confidence / 2.0, max(n - 2, 1)))
+
+    def t_quantile(dof: int) -> float:
+        return float(stats.t.ppf(0.5 + confidence / 2.0, max(dof, 1)))
 
     corr = math.nan
     reasons: list[str] = []
     if fit_static:
         a = np.column_stack([x_u * sw, sw])
         two = _irls(a, y_u * sw, loss)
-        var_r, var_s = float(two.cov[0, 0]), float(two.cov[1, 1])
-        if var_r > 0 and var_s > 0:
-            corr = float(two.cov[0, 1] / math.sqrt(var_r * var_s))
+        common["residual_autocorr"] = _lag1(two.psi)
+        cov2, dof2 = _serial_cov(a, two, blocks) if serial else (two.cov, n - 2)
+        tq = t_quantile(dof2)
+        var_r, var_s = float(cov2[0, 0]), float(cov2[1, 1])
+        v_r0, v_s0 = float(two.cov[0, 0]), float(two.cov[1, 1])
+        if v_r0 > 0 and v_s0 > 0:
+            # The correlation of the estimates from the design (Huber's covariance): the
+            # block estimate of it is too noisy to judge identifiability by.
+            corr = float(two.cov[0, 1] / math.sqrt(v_r0 * v_s0))
         else:
             # Exact data: the correlation is set by the design matrix alone.
             xm, xs = float(np.mean(x_u * sw**2)), float(np.mean((x_u * sw) ** 2))
@@ -385,7 +453,10 @@ def fit_ratio(
     assert static_pa is not None
     one = _irls((x_u * sw)[:, None], (y_u - static_pa) * sw, loss)
     r1 = float(one.beta[0])
-    hw1 = tq * math.sqrt(max(float(one.cov[0, 0]), 0.0))
+    common["residual_autocorr"] = _lag1(one.psi)
+    a1 = (x_u * sw)[:, None]
+    cov1, dof1 = _serial_cov(a1, one, blocks) if serial else (one.cov, n - 1)
+    hw1 = t_quantile(dof1) * math.sqrt(max(float(cov1[0, 0]), 0.0))
     if fit_static:
         status = "not_identifiable"
         message = (

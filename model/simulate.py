@@ -1,0 +1,879 @@
+"""Simulated historian data for a configured site, with injected faults and ground truth.
+
+A site here is a `model.network.ParallelHeader` (branches from one supply header) fed by
+a `model.network.PumpCurve`, and a `SiteTags` naming the tags a historian would log.
+`simulate` makes a time series of what that historian would hold:
+
+* the pump on a speed drive: day/night load (speed ratio), slow wander, and trips
+  (pump off: no flow, header at 0 gauge);
+* water temperature: an annual sine (about 12–30 °C by default) plus a daily swing;
+* tank levels that fill and draw down, held/return header pressures that wander,
+  control valves that move;
+* at every sample the operating point of the network — the header pressure where the
+  pump's delivery equals the sum of the branch flows at that speed and those conditions;
+* instrument noise, quantisation, missing samples (NaN) and spikes;
+* faults with their ground truth (`Fault` classes below).
+
+Speed: the operating point is solved for all timestamps at once. Each branch's curve is
+written ``Q_i = c_i·√(P − P_static,i)``; with the ``c_i`` frozen, the header balance
+``P = P_pump(Σ Q_i)`` is a cheap scalar problem per timestamp (Illinois false position
+on a guaranteed bracket); then ``c_i`` is recomputed from the branch's true curve at the
+new flow. ``c_i`` depends on Q only through the friction factor and exponents below 2, so
+this fixed point contracts by a factor ``1 − n/2`` ≈ 0–0.1 per round and needs a handful
+of rounds. A year of 1-minute samples for five branches takes seconds.
+
+Conventions: times are numpy ``datetime64[ns]`` in UTC; values are SI (Pa gauge, m^3/s,
+°C, m, 0–1). The module does no I/O and needs no pandas: callers build frames.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import zlib
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from typing import ClassVar, Literal
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy.signal import lfilter
+
+from model import water
+from model.branch import Branch, HeldHeader, OpenDischarge, ReturnHeader, Tank
+from model.network import ParallelHeader, PumpCurve
+
+__all__ = [
+    "BackPressureStep",
+    "BranchTags",
+    "Cleaning",
+    "DriftingMeter",
+    "Fault",
+    "FoulingRamp",
+    "FrozenMeter",
+    "NoiseSpec",
+    "OperatingSpec",
+    "Simulation",
+    "SiteTags",
+    "StepRestriction",
+    "Truth",
+    "simulate",
+]
+
+logger = logging.getLogger(__name__)
+
+TimeLike = datetime | np.datetime64 | str
+F64 = NDArray[np.float64]
+_NS_PER_DAY = 86_400 * 10**9
+_DAYS_PER_YEAR = 365.2425
+
+
+def to_datetime64(value: TimeLike, name: str = "time") -> np.datetime64:
+    """A UTC ``datetime64[ns]`` from an aware or naive (taken as UTC) time or ISO string."""
+    if isinstance(value, datetime):
+        if value.tzinfo is not None:
+            value = value.astimezone(UTC).replace(tzinfo=None)
+        return np.datetime64(value, "ns")
+    if isinstance(value, np.datetime64):
+        return value.astype("datetime64[ns]")
+    if isinstance(value, str):
+        text = value.strip()
+        if text.endswith("Z"):
+            text = text[:-1]
+        elif text.endswith("+00:00"):
+            text = text[:-6]
+        try:
+            return np.datetime64(text, "ns")
+        except ValueError as exc:
+            raise ValueError(f"{name}: {value!r} is not an ISO time (UTC or naive)") from exc
+    raise TypeError(f"{name} must be a datetime, numpy datetime64 or ISO string")
+
+
+# --------------------------------------------------------------------------- faults
+
+
+@dataclass(frozen=True)
+class FoulingRamp:
+    """Fouling of *branch* from *start*: r rises to *r_end* [-].
+
+    ``shape="linear"``: r = 1 + (r_end − 1)·min(1, t/days).
+    ``shape="asymptotic"`` (Kern & Seaton 1959): r = 1 + (r_end − 1)·(1 − e^(−t/τ)),
+    τ = days/3, so 95 % of the rise is reached after *days*. A `Cleaning` of the branch
+    ends the ramp.
+    """
+
+    branch: str
+    start: TimeLike
+    days: float
+    r_end: float
+    shape: Literal["linear", "asymptotic"] = "linear"
+    kind: ClassVar[str] = "fouling"
+
+    def __post_init__(self) -> None:
+        if not (self.days > 0 and math.isfinite(self.days)):
+            raise ValueError(f"days must be > 0, got {self.days!r}")
+        if not (self.r_end > 0 and math.isfinite(self.r_end)):
+            raise ValueError(f"r_end must be > 0, got {self.r_end!r}")
+        if self.shape not in ("linear", "asymptotic"):
+            raise ValueError(f"shape must be 'linear' or 'asymptotic', got {self.shape!r}")
+
+
+@dataclass(frozen=True)
+class StepRestriction:
+    """A restriction (valve left throttled, debris) from *time*: r multiplied by *ratio*.
+
+    Cleared at *end* (None: stays).
+    """
+
+    branch: str
+    time: TimeLike
+    ratio: float
+    end: TimeLike | None = None
+    kind: ClassVar[str] = "restriction"
+
+    def __post_init__(self) -> None:
+        if not (self.ratio > 0 and math.isfinite(self.ratio)):
+            raise ValueError(f"ratio must be > 0, got {self.ratio!r}")
+
+
+@dataclass(frozen=True)
+class BackPressureStep:
+    """The termination pressure of *branch* moves by *delta_pa* [Pa] from *time*.
+
+    A held or return header's pressure, or a tank's gas blanket. Not for open
+    discharges. When the termination pressure is logged the tag shows the change; a
+    tank's level tag does not (the gas pressure is not logged). Reverts at *end*.
+    """
+
+    branch: str
+    time: TimeLike
+    delta_pa: float
+    end: TimeLike | None = None
+    kind: ClassVar[str] = "back_pressure"
+
+
+@dataclass(frozen=True)
+class FrozenMeter:
+    """The reading of *tag* (a tag, or a branch name: its flow meter) holds its last
+    value from *start* until *end* (None: to the end)."""
+
+    tag: str
+    start: TimeLike
+    end: TimeLike | None = None
+    kind: ClassVar[str] = "instrument"
+
+
+@dataclass(frozen=True)
+class DriftingMeter:
+    """The reading of *tag* (or a branch's flow meter) drifts from *start*.
+
+    reading = true·(1 + gain_per_day·d) + offset_per_day·d, d the days since *start*
+    (*gain_per_day* [1/day], *offset_per_day* [SI unit of the tag per day]); the drift
+    stops growing at *end* (recalibrated: None means never).
+    """
+
+    tag: str
+    start: TimeLike
+    gain_per_day: float = 0.0
+    offset_per_day: float = 0.0
+    end: TimeLike | None = None
+    kind: ClassVar[str] = "instrument"
+
+
+@dataclass(frozen=True)
+class Cleaning:
+    """*branch* cleaned at *time*: ends every fouling ramp of the branch begun before."""
+
+    branch: str
+    time: TimeLike
+    kind: ClassVar[str] = "cleaning"
+
+
+Fault = FoulingRamp | StepRestriction | BackPressureStep | FrozenMeter | DriftingMeter | Cleaning
+
+
+# --------------------------------------------------------------------------- specs
+
+
+@dataclass(frozen=True)
+class BranchTags:
+    """Tags logged for one branch; None where not logged (an unmetered branch)."""
+
+    flow: str | None = None
+    level: str | None = None
+    end_pressure: str | None = None
+    valve_position: str | None = None
+
+
+@dataclass(frozen=True)
+class SiteTags:
+    """Tag names of a site: header, pump and per-branch (`BranchTags` by branch name)."""
+
+    header_pressure: str
+    temperature: str
+    branches: Mapping[str, BranchTags]
+    total_flow: str | None = None
+    pump_speed: str | None = None
+
+    def all_tags(self) -> tuple[str, ...]:
+        """Every tag name, in a fixed order."""
+        out = [self.header_pressure, self.temperature]
+        out += [t for t in (self.total_flow, self.pump_speed) if t is not None]
+        for name in sorted(self.branches):
+            bt = self.branches[name]
+            out += [
+                t for t in (bt.flow, bt.level, bt.end_pressure, bt.valve_position) if t is not None
+            ]
+        return tuple(out)
+
+
+@dataclass(frozen=True)
+class OperatingSpec:
+    """How the site is run (all times in UTC hours).
+
+    speed_day, speed_night : pump speed ratio by day and by night [-]
+    day_start_h, day_end_h : the day shift [h UTC]; transitions take about speed_ramp_h [h]
+    weekend_factor : speed ratio multiplier on Saturdays and Sundays [-]
+    speed_wander : standard deviation of slow speed variation [-] (correlation speed_tau_h)
+    trips_per_year : mean number of pump trips [1/year]; each lasts trip_hours [h]
+    temperature_mean_c, temperature_annual_amplitude_c, warmest_day : annual sine
+        [°C], [°C], [day of year]
+    temperature_daily_swing_c : half the daily swing, warmest at 15:00 [°C]
+    level_range_m : tank levels move within this range [m]
+    level_period_h : fill/draw cycle [h]
+    end_pressure_wander_pa : standard deviation of held/return header wander [Pa]
+    default_end_pressure_pa : header pressure where the config gives none [Pa]
+    valve_range : control valves move within this travel range [-]
+    """
+
+    speed_day: float = 1.0
+    speed_night: float = 0.75
+    day_start_h: float = 6.0
+    day_end_h: float = 20.0
+    speed_ramp_h: float = 0.5
+    weekend_factor: float = 0.9
+    speed_wander: float = 0.015
+    speed_tau_h: float = 2.0
+    trips_per_year: float = 4.0
+    trip_hours: tuple[float, float] = (0.5, 6.0)
+    temperature_mean_c: float = 21.0
+    temperature_annual_amplitude_c: float = 9.0
+    warmest_day: float = 200.0
+    temperature_daily_swing_c: float = 1.5
+    level_range_m: tuple[float, float] = (1.0, 4.0)
+    level_period_h: float = 11.0
+    end_pressure_wander_pa: float = 1500.0
+    default_end_pressure_pa: float = 1.5e5
+    valve_range: tuple[float, float] = (0.55, 0.95)
+
+
+@dataclass(frozen=True)
+class NoiseSpec:
+    """Instrument noise (standard deviations), quantisation steps and data defects.
+
+    Set everything to zero (``NoiseSpec.none()``) for exact data.
+    """
+
+    pressure_pa: float = 300.0
+    flow_rel: float = 0.004
+    flow_m3s: float = 2.0e-5
+    temperature_c: float = 0.05
+    level_m: float = 0.003
+    position: float = 0.003
+    speed: float = 0.001
+    pressure_step_pa: float = 100.0  # 1 mbar historian resolution
+    flow_step_m3s: float = 1.0e-5  # 0.036 m^3/h
+    temperature_step_c: float = 0.1
+    level_step_m: float = 0.001
+    position_step: float = 0.001
+    nan_fraction: float = 0.001
+    spike_fraction: float = 0.0003
+    spike_rel: float = 0.3
+
+    @classmethod
+    def none(cls) -> NoiseSpec:
+        """No noise, no quantisation, no NaNs, no spikes."""
+        return cls(**{f: 0.0 for f in cls.__dataclass_fields__})
+
+
+# --------------------------------------------------------------------------- results
+
+
+@dataclass(frozen=True)
+class Truth:
+    """What really happened (noise-free, fault-free instruments).
+
+    resistance_ratio : r per branch over time [-]
+    static_pressure_pa : true static back-pressure P_e + ρ·g·Δz per branch [Pa]
+    end_pressure_pa : true termination pressure per branch [Pa gauge]
+    flow_m3s : true flow per branch [m^3/s]
+    header_pressure_pa, temperature_c, speed_ratio : [Pa], [°C], [-]
+    pump_running : bool per sample
+    instrument_fault : per faulted tag, True where its reading is frozen or drifting
+    faults : the injected faults
+    """
+
+    resistance_ratio: Mapping[str, F64]
+    static_pressure_pa: Mapping[str, F64]
+    end_pressure_pa: Mapping[str, F64]
+    flow_m3s: Mapping[str, F64]
+    header_pressure_pa: F64
+    temperature_c: F64
+    speed_ratio: F64
+    pump_running: NDArray[np.bool_]
+    instrument_fault: Mapping[str, NDArray[np.bool_]]
+    faults: tuple[Fault, ...]
+
+
+@dataclass(frozen=True)
+class Simulation:
+    """Simulated historian data: ``values[tag]`` [SI] at ``times`` (datetime64[ns] UTC)."""
+
+    times: NDArray[np.datetime64]
+    values: Mapping[str, F64]
+    truth: Truth
+    tags: SiteTags
+    unconverged: int = field(default=0)
+
+
+# --------------------------------------------------------------------------- profiles
+
+
+def _rng(seed: int, name: str) -> np.random.Generator:
+    # One stream per named component: adding a branch or a fault does not reshuffle
+    # the noise of the others.
+    return np.random.default_rng([seed, zlib.crc32(name.encode())])
+
+
+def _ar1(rng: np.random.Generator, n: int, tau_samples: float) -> F64:
+    """Stationary AR(1) series of unit variance with correlation time *tau_samples*."""
+    if n == 0:
+        return np.zeros(0)
+    a = math.exp(-1.0 / max(tau_samples, 1e-9))
+    e = rng.standard_normal(n) * math.sqrt(1.0 - a * a)
+    x0 = rng.standard_normal()
+    y, _ = lfilter([1.0], [1.0, -a], e, zi=[a * x0])
+    return np.asarray(y, dtype=float)
+
+
+def _sigmoid(z: F64) -> F64:
+    return np.asarray(0.5 * (1.0 + np.tanh(0.5 * z)))
+
+
+@dataclass(frozen=True)
+class _Clock:
+    days: F64  # since start [day]
+    hour: F64  # of day, UTC [h]
+    day_of_year: F64  # [day]
+    weekend: NDArray[np.bool_]
+    step_s: float
+
+
+def _clock(times: NDArray[np.datetime64], step_s: float) -> _Clock:
+    ns = times.astype("datetime64[ns]").astype(np.int64)
+    days = (ns - ns[0]) / _NS_PER_DAY if ns.size else np.zeros(0)
+    day_ns = times.astype("datetime64[D]").astype("datetime64[ns]").astype(np.int64)
+    hour = (ns - day_ns) / 3.6e12
+    year_start = times.astype("datetime64[Y]").astype("datetime64[ns]").astype(np.int64)
+    doy = (ns - year_start) / _NS_PER_DAY
+    weekday = (times.astype("datetime64[D]").astype(np.int64) + 3) % 7  # 1970-01-01: Thu
+    return _Clock(np.asarray(days, float), hour, doy, weekday >= 5, step_s)
+
+
+def _speed(spec: OperatingSpec, clock: _Clock, seed: int) -> tuple[F64, NDArray[np.bool_]]:
+    w = max(spec.speed_ramp_h / 4.0, 1e-3)
+    day = _sigmoid((clock.hour - spec.day_start_h) / w) - _sigmoid(
+        (clock.hour - spec.day_end_h) / w
+    )
+    s = spec.speed_night + (spec.speed_day - spec.speed_night) * day
+    s = np.where(clock.weekend, s * spec.weekend_factor, s)
+    n = clock.days.size
+    tau = spec.speed_tau_h * 3600.0 / clock.step_s
+    s = s + spec.speed_wander * _ar1(_rng(seed, "speed"), n, tau)
+    s = np.clip(s, 0.3, 1.2)
+    running = np.ones(n, dtype=bool)
+    rng = _rng(seed, "trips")
+    span_years = (float(clock.days[-1]) if n else 0.0) / _DAYS_PER_YEAR
+    n_trips = int(rng.poisson(max(spec.trips_per_year, 0.0) * span_years))
+    if n_trips and n:
+        starts = rng.uniform(0.0, float(clock.days[-1]), n_trips)
+        lengths = rng.uniform(spec.trip_hours[0], spec.trip_hours[1], n_trips) / 24.0
+        for t0, dt in zip(starts, lengths, strict=True):
+            running &= ~((clock.days >= t0) & (clock.days < t0 + dt))
+    return np.asarray(s, float), running
+
+
+def _temperature(spec: OperatingSpec, clock: _Clock, seed: int) -> F64:
+    annual = np.cos(2.0 * np.pi * (clock.day_of_year - spec.warmest_day) / _DAYS_PER_YEAR)
+    daily = np.cos(2.0 * np.pi * (clock.hour - 15.0) / 24.0)
+    tau = 6.0 * 3600.0 / clock.step_s
+    wander = 0.3 * _ar1(_rng(seed, "temperature"), clock.days.size, tau)
+    t = (
+        spec.temperature_mean_c
+        + spec.temperature_annual_amplitude_c * annual
+        + spec.temperature_daily_swing_c * daily
+        + wander
+    )
+    return np.asarray(np.clip(t, 0.5, 95.0), float)
+
+
+def _level(spec: OperatingSpec, clock: _Clock, seed: int, name: str) -> F64:
+    lo, hi = spec.level_range_m
+    rng = _rng(seed, f"level:{name}")
+    phase = rng.uniform(0.0, 2.0 * np.pi)
+    cycle = np.sin(2.0 * np.pi * clock.days * 24.0 / spec.level_period_h + phase)
+    slow = _ar1(rng, clock.days.size, 24.0 * 3600.0 / clock.step_s)
+    z = np.clip(0.7 * cycle + 0.3 * slow, -1.0, 1.0)
+    return np.asarray(0.5 * (lo + hi) + 0.5 * (hi - lo) * z, float)
+
+
+def _valve(spec: OperatingSpec, clock: _Clock, seed: int, name: str) -> F64:
+    lo, hi = spec.valve_range
+    z = np.clip(
+        0.6 * _ar1(_rng(seed, f"valve:{name}"), clock.days.size, 4 * 3600 / clock.step_s), -1, 1
+    )
+    return np.asarray(0.5 * (lo + hi) + 0.5 * (hi - lo) * z, float)
+
+
+# --------------------------------------------------------------------------- fault effects
+
+
+def _active(
+    times: NDArray[np.datetime64], start: TimeLike, end: TimeLike | None
+) -> NDArray[np.bool_]:
+    t0 = to_datetime64(start, "start")
+    on = times >= t0
+    if end is not None:
+        on &= times < to_datetime64(end, "end")
+    return np.asarray(on)
+
+
+def _ratio_truth(name: str, faults: Sequence[Fault], times: NDArray[np.datetime64]) -> F64:
+    """True r(t) of one branch: (1 + Σ fouling excess)·Π restriction ratios."""
+    n = times.size
+    cleanings = sorted(
+        to_datetime64(f.time, "time")
+        for f in faults
+        if isinstance(f, Cleaning) and f.branch == name
+    )
+    excess = np.zeros(n)
+    factor = np.ones(n)
+    for f in faults:
+        if isinstance(f, FoulingRamp) and f.branch == name:
+            t0 = to_datetime64(f.start, "start")
+            stop = next((c for c in cleanings if c > t0), None)
+            on = _active(times, t0, stop)
+            d = (times - t0).astype("timedelta64[ns]").astype(np.int64) / _NS_PER_DAY
+            if f.shape == "linear":
+                grow = np.clip(d / f.days, 0.0, 1.0)
+            else:
+                grow = 1.0 - np.exp(-3.0 * np.clip(d, 0.0, None) / f.days)
+            excess += np.where(on, (f.r_end - 1.0) * grow, 0.0)
+        elif isinstance(f, StepRestriction) and f.branch == name:
+            factor *= np.where(_active(times, f.time, f.end), f.ratio, 1.0)
+    return np.asarray((1.0 + excess) * factor)
+
+
+def _back_pressure_delta(name: str, faults: Sequence[Fault], times: NDArray[np.datetime64]) -> F64:
+    delta = np.zeros(times.size)
+    for f in faults:
+        if isinstance(f, BackPressureStep) and f.branch == name:
+            delta += np.where(_active(times, f.time, f.end), f.delta_pa, 0.0)
+    return delta
+
+
+def _meter_faults(
+    tag: str, faults: Sequence[Fault], times: NDArray[np.datetime64], clean: F64, reading: F64
+) -> tuple[F64, NDArray[np.bool_]]:
+    """Apply drifts (to the clean value, before noise is added in *reading*) and freezes."""
+    out = reading.copy()
+    bad = np.zeros(times.size, dtype=bool)
+    for f in faults:
+        if isinstance(f, DriftingMeter) and f.tag == tag:
+            t0 = to_datetime64(f.start, "start")
+            d = (times - t0).astype("timedelta64[ns]").astype(np.int64) / _NS_PER_DAY
+            if f.end is not None:
+                d_end = (to_datetime64(f.end, "end") - t0).astype("timedelta64[ns]").astype(
+                    np.int64
+                ) / _NS_PER_DAY
+                d = np.minimum(d, d_end)
+            d = np.clip(d, 0.0, None)
+            out = out + clean * f.gain_per_day * d + f.offset_per_day * d
+            bad |= d > 0
+    for f in faults:
+        if isinstance(f, FrozenMeter) and f.tag == tag:
+            on = _active(times, f.start, f.end)
+            idx = np.flatnonzero(on)
+            if idx.size:
+                held = out[idx[0] - 1] if idx[0] > 0 else out[idx[0]]
+                out[on] = held
+                bad |= on
+    return out, bad
+
+
+# --------------------------------------------------------------------------- operating point
+
+
+@dataclass(frozen=True)
+class _Conditions:
+    """Per-branch true conditions for the samples being solved."""
+
+    static: F64
+    temperature_c: F64
+    valve_position: F64 | None
+    ratio: F64
+
+
+def _dynamic(branch: Branch, q: F64, c: _Conditions, idx: NDArray[np.intp]) -> F64:
+    """r·rest + valve [Pa] at flows q for the samples idx."""
+    u = None if c.valve_position is None else c.valve_position[idx]
+    rest, valve = branch.dp_dynamic_parts(q, temperature_c=c.temperature_c[idx], valve_position=u)
+    return np.asarray(c.ratio[idx] * rest + valve)
+
+
+def _illinois(
+    func: Callable[[F64], F64],
+    a: F64,
+    b: F64,
+    fa: F64,
+    fb: F64,
+    *,
+    rtol: float,
+    max_iter: int = 200,
+) -> F64:
+    """Vectorised Illinois false position for a decreasing func with fa > 0 ≥ fb."""
+    a, b, fa, fb = a.copy(), b.copy(), fa.copy(), fb.copy()
+    x = b.copy()
+    done = fb == 0.0
+    for _ in range(max_iter):
+        if done.all():
+            break
+        denom = fb - fa
+        with np.errstate(divide="ignore", invalid="ignore"):
+            x_new = np.where(denom != 0.0, b - fb * (b - a) / denom, 0.5 * (a + b))
+        x_new = np.where(done, x, x_new)
+        fx = func(x_new)
+        cross = fx * fb < 0.0
+        a = np.where(~done & cross, b, a)
+        fa = np.where(~done & cross, fb, np.where(~done, 0.5 * fa, fa))
+        b = np.where(done, b, x_new)
+        fb = np.where(done, fb, fx)
+        x = np.where(done, x, x_new)
+        scale = np.maximum(np.maximum(np.abs(a), np.abs(b)), 1.0)
+        done |= (fx == 0.0) | (np.abs(b - a) <= rtol * scale)
+    return x
+
+
+def _solve_operating_points(
+    branches: Sequence[Branch],
+    conds: Sequence[_Conditions],
+    pump_pressure: Callable[[F64, F64, F64], F64],
+    speed: F64,
+    rho: F64,
+    idx: NDArray[np.intp],
+    *,
+    rtol: float = 1e-11,
+    max_rounds: int = 60,
+) -> tuple[F64, list[F64], int]:
+    """Header pressure and branch flows at the samples *idx* (module docstring).
+
+    *pump_pressure(q_total, speed, rho)* is the pressure rise the pump(s) give [Pa].
+    Returns (P [Pa], flows [m^3/s] per branch, number of samples not converged).
+    """
+    m = idx.size
+    sp, rh = speed[idx], rho[idx]
+    statics = [c.static[idx] for c in conds]
+    coef = []
+    for b, c in zip(branches, conds, strict=True):
+        d = b.pipe_diameter_m
+        q0 = np.full(m, 1.5 * math.pi * d * d / 4.0 if d is not None else 0.01)
+        dyn = _dynamic(b, q0, c, idx)
+        with np.errstate(divide="ignore"):
+            coef.append(np.asarray(q0 / np.sqrt(dyn)))
+    shutoff = pump_pressure(np.zeros(m), sp, rh)
+    p_lo = np.minimum(np.min(np.vstack(statics), axis=0), 0.0) - 1.0
+    flows = [np.zeros(m) for _ in branches]
+    p = shutoff.copy()
+    converged = np.zeros(m, dtype=bool)
+    for _ in range(max_rounds):
+
+        def balance(pp: F64, k: Sequence[F64] = tuple(coef)) -> F64:
+            total = np.zeros(m)
+            for ki, si in zip(k, statics, strict=True):
+                total += ki * np.sqrt(np.clip(pp - si, 0.0, None))
+            return np.asarray(pump_pressure(total, sp, rh) - pp)
+
+        p = _illinois(balance, p_lo, shutoff, balance(p_lo), balance(shutoff), rtol=rtol)
+        worst = np.zeros(m)
+        for i, (b, c) in enumerate(zip(branches, conds, strict=True)):
+            q = coef[i] * np.sqrt(np.clip(p - statics[i], 0.0, None))
+            flows[i] = q
+            on = q > 0.0
+            if not on.any():
+                continue
+            dyn = _dynamic(b, q[on], c, idx[on])
+            new = coef[i].copy()
+            with np.errstate(divide="ignore"):
+                new[on] = q[on] / np.sqrt(dyn)
+            change = np.zeros(m)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                change[on] = np.abs(new[on] / coef[i][on] - 1.0)
+            worst = np.maximum(worst, np.nan_to_num(change, nan=0.0))
+            coef[i] = new
+        converged = worst <= 1e-10
+        if converged.all():
+            break
+    return p, flows, int(m - converged.sum())
+
+
+# --------------------------------------------------------------------------- simulate
+
+
+def _pump_pressure_fn(pump: PumpCurve) -> Callable[[F64, F64, F64], F64]:
+    def rise(q_total: F64, speed: F64, rho: F64) -> F64:
+        head = pump.head(q_total, speed_ratio=speed)
+        return np.asarray(rho * water.G * np.clip(head, 0.0, None))
+
+    return rise
+
+
+def _resolve_tag(tag: str, tags: SiteTags) -> str:
+    if tag in tags.branches:
+        flow = tags.branches[tag].flow
+        if flow is None:
+            raise ValueError(f"faults: branch {tag!r} has no flow meter to fault")
+        return flow
+    if tag not in tags.all_tags():
+        raise ValueError(f"faults: tag {tag!r} is not a tag of the site (see SiteTags)")
+    return tag
+
+
+def _check(
+    branches: Sequence[Branch], tags: SiteTags, faults: Sequence[Fault]
+) -> tuple[Fault, ...]:
+    names = {b.name for b in branches}
+    unknown = sorted(set(tags.branches) - names)
+    if unknown:
+        raise ValueError(f"tags: branches {unknown} are not in the header")
+    by_name = {b.name: b for b in branches}
+    out: list[Fault] = []
+    for f in faults:
+        if isinstance(f, FrozenMeter | DriftingMeter):
+            # Store the resolved tag so the truth names the meter, not the branch.
+            resolved = _resolve_tag(f.tag, tags)
+            f = (
+                FrozenMeter(resolved, f.start, f.end)
+                if isinstance(f, FrozenMeter)
+                else DriftingMeter(resolved, f.start, f.gain_per_day, f.offset_per_day, f.end)
+            )
+        elif f.branch not in names:
+            raise ValueError(f"faults: branch {f.branch!r} is not in the header")
+        elif isinstance(f, BackPressureStep) and isinstance(
+            by_name[f.branch].termination, OpenDischarge
+        ):
+            raise ValueError(
+                f"faults: branch {f.branch!r} ends in an open discharge; a back-pressure "
+                "step needs a tank or a header"
+            )
+        out.append(f)
+    return tuple(out)
+
+
+def _measure(rng: np.random.Generator, v: F64, sd_abs: float, sd_rel: float) -> F64:
+    out = v.copy()
+    if sd_rel > 0.0:
+        out = out * (1.0 + sd_rel * rng.standard_normal(v.size))
+    if sd_abs > 0.0:
+        out = out + sd_abs * rng.standard_normal(v.size)
+    return np.asarray(out)
+
+
+def _defects(
+    rng: np.random.Generator, v: F64, keep: NDArray[np.bool_], noise: NoiseSpec, step: float
+) -> F64:
+    """Spikes, quantisation to *step* and missing samples (none in the frozen *keep*)."""
+    out = v.copy()
+    n = v.size
+    if noise.spike_fraction > 0.0:
+        spikes = (rng.random(n) < noise.spike_fraction) & ~keep
+        sign = np.where(rng.random(n) < 0.5, -1.0, 1.0)
+        scale = np.maximum(np.abs(out), np.nanmedian(np.abs(out)) if n else 0.0)
+        out = np.where(spikes, out + sign * noise.spike_rel * scale, out)
+    if step > 0.0:
+        out = np.round(out / step) * step
+    if noise.nan_fraction > 0.0:
+        out[(rng.random(n) < noise.nan_fraction) & ~keep] = np.nan
+    return out
+
+
+def simulate(
+    header: ParallelHeader,
+    pump: PumpCurve,
+    tags: SiteTags,
+    *,
+    start: TimeLike,
+    end: TimeLike,
+    step_s: float = 60.0,
+    faults: Sequence[Fault] = (),
+    seed: int = 0,
+    noise: NoiseSpec | None = None,
+    operation: OperatingSpec | None = None,
+    chunk: int = 50_000,
+) -> Simulation:
+    """Simulate what the site's historian would log from *start* to *end* (exclusive).
+
+    Parameters
+    ----------
+    header : the branches (`model.network.ParallelHeader`)
+    pump : the pump(s) feeding the header from a basin at the header's level
+    tags : tag names to produce (`SiteTags`)
+    start, end : period [UTC]
+    step_s : sample interval [s]
+    faults : injected faults (`FoulingRamp`, `StepRestriction`, `BackPressureStep`,
+        `FrozenMeter`, `DriftingMeter`, `Cleaning`)
+    seed : random seed; the same seed gives the same data [-]
+    noise : instrument noise and defects (default `NoiseSpec()`)
+    operation : how the site is run (default `OperatingSpec()`)
+    chunk : samples solved at once (memory bound) [-]
+
+    Returns
+    -------
+    Simulation
+    """
+    noise = NoiseSpec() if noise is None else noise
+    operation = OperatingSpec() if operation is None else operation
+    if not (step_s > 0 and math.isfinite(step_s)):
+        raise ValueError(f"step_s must be > 0, got {step_s!r}")
+    if chunk < 1:
+        raise ValueError(f"chunk must be >= 1, got {chunk!r}")
+    t0, t1 = to_datetime64(start, "start"), to_datetime64(end, "end")
+    if not t1 > t0:
+        raise ValueError(f"end ({t1}) must be after start ({t0})")
+    branches = list(header.branches)
+    checked = _check(branches, tags, faults)
+    times = np.arange(t0, t1, np.timedelta64(round(step_s * 1e9), "ns"))
+    n = times.size
+    clock = _clock(times, step_s)
+    speed, running = _speed(operation, clock, seed)
+    temp = _temperature(operation, clock, seed)
+    rho = np.asarray(water.density(temp))
+
+    conds: list[_Conditions] = []
+    r_true: dict[str, F64] = {}
+    static_true: dict[str, F64] = {}
+    end_true: dict[str, F64] = {}
+    levels: dict[str, F64] = {}
+    end_logged: dict[str, F64] = {}
+    positions: dict[str, F64] = {}
+    for b in branches:
+        bt = tags.branches.get(b.name, BranchTags())
+        term = b.termination
+        delta = _back_pressure_delta(b.name, checked, times)
+        if isinstance(term, Tank):
+            lvl = (
+                _level(operation, clock, seed, b.name)
+                if bt.level is not None or term.level_m is None
+                else np.full(n, float(term.level_m))
+            )
+            levels[b.name] = lvl
+            # The gas blanket's change enters as an equivalent level: same ρ·g·Δh.
+            static = b.static_pressure(temperature_c=temp, level_m=lvl + delta / (rho * water.G))
+            p_end = term.gas_pressure_pa + rho * water.G * lvl + delta
+        elif isinstance(term, HeldHeader | ReturnHeader):
+            base = term.set_pressure_pa if isinstance(term, HeldHeader) else term.pressure_pa
+            base = operation.default_end_pressure_pa if base is None else base
+            wander = operation.end_pressure_wander_pa * _ar1(
+                _rng(seed, f"end:{b.name}"), n, 3.0 * 3600.0 / step_s
+            )
+            p_end = base + wander + delta
+            end_logged[b.name] = p_end
+            static = b.static_pressure(temperature_c=temp, end_pressure_pa=p_end)
+        else:
+            p_end = np.zeros(n)
+            static = b.static_pressure(temperature_c=temp)
+        u = None
+        if bt.valve_position is not None and b.has_control_valve:
+            u = _valve(operation, clock, seed, b.name)
+            positions[b.name] = u
+        r = _ratio_truth(b.name, checked, times)
+        r_true[b.name] = r
+        static_true[b.name] = np.asarray(static, float)
+        end_true[b.name] = np.asarray(p_end, float)
+        conds.append(_Conditions(static_true[b.name], temp, u, r))
+
+    p_true = np.zeros(n)
+    q_true = {b.name: np.zeros(n) for b in branches}
+    rise = _pump_pressure_fn(pump)
+    run_idx = np.flatnonzero(running)
+    unconverged = 0
+    for lo in range(0, run_idx.size, chunk):
+        idx = run_idx[lo : lo + chunk]
+        p, flows, n_bad = _solve_operating_points(branches, conds, rise, speed, rho, idx)
+        p_true[idx] = p
+        for b, q in zip(branches, flows, strict=True):
+            q_true[b.name][idx] = q
+        unconverged += n_bad
+    if unconverged:
+        logger.warning("simulate: %d samples did not converge to 1e-10", unconverged)
+    speed_true = np.where(running, speed, 0.0)
+    total = np.sum([q_true[b.name] for b in branches], axis=0) if branches else np.zeros(n)
+
+    clean: dict[str, tuple[F64, float, float, float]] = {}  # tag -> (value, sd, rel, step)
+    ns = noise
+    clean[tags.header_pressure] = (p_true, ns.pressure_pa, 0.0, ns.pressure_step_pa)
+    clean[tags.temperature] = (temp, ns.temperature_c, 0.0, ns.temperature_step_c)
+    if tags.total_flow is not None:
+        clean[tags.total_flow] = (total, ns.flow_m3s, ns.flow_rel, ns.flow_step_m3s)
+    if tags.pump_speed is not None:
+        clean[tags.pump_speed] = (speed_true, ns.speed, 0.0, 0.0)
+    for b in branches:
+        logged = tags.branches.get(b.name)
+        if logged is None:
+            continue
+        bt = logged
+        if bt.flow is not None:
+            clean[bt.flow] = (q_true[b.name], ns.flow_m3s, ns.flow_rel, ns.flow_step_m3s)
+        if bt.level is not None:
+            if b.name not in levels:
+                raise ValueError(f"tags: branch {b.name!r} has a level tag but no tank")
+            clean[bt.level] = (levels[b.name], ns.level_m, 0.0, ns.level_step_m)
+        if bt.end_pressure is not None:
+            if b.name not in end_logged:
+                raise ValueError(f"tags: branch {b.name!r} has an end-pressure tag but no header")
+            clean[bt.end_pressure] = (end_logged[b.name], ns.pressure_pa, 0.0, ns.pressure_step_pa)
+        if bt.valve_position is not None:
+            if b.name not in positions:
+                raise ValueError(f"tags: branch {b.name!r} has a valve tag but no control valve")
+            clean[bt.valve_position] = (positions[b.name], ns.position, 0.0, ns.position_step)
+
+    values: dict[str, F64] = {}
+    instrument: dict[str, NDArray[np.bool_]] = {}
+    for tag, (v, sd, rel, step) in clean.items():
+        rng = _rng(seed, f"noise:{tag}")
+        noisy = _measure(rng, v, sd, rel)
+        faulted, bad = _meter_faults(tag, checked, times, v, noisy)
+        if bad.any():
+            instrument[tag] = bad
+        frozen = np.zeros(n, dtype=bool)
+        for f in checked:
+            if isinstance(f, FrozenMeter) and f.tag == tag:
+                frozen |= _active(times, f.start, f.end)
+        out = _defects(rng, faulted, frozen, noise, step)
+        if tag in {bt.valve_position for bt in tags.branches.values()}:
+            out = np.clip(out, 0.0, 1.0)
+        values[tag] = out
+
+    truth = Truth(
+        resistance_ratio=r_true,
+        static_pressure_pa=static_true,
+        end_pressure_pa=end_true,
+        flow_m3s=q_true,
+        header_pressure_pa=p_true,
+        temperature_c=temp,
+        speed_ratio=speed_true,
+        pump_running=running,
+        instrument_fault=instrument,
+        faults=checked,
+    )
+    return Simulation(times=times, values=values, truth=truth, tags=tags, unconverged=unconverged)
