@@ -33,9 +33,7 @@ in frames). Readings times are kept to the microsecond (finer parts are dropped)
 
 from __future__ import annotations
 
-import json
 import logging
-import math
 import re
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
@@ -43,20 +41,29 @@ from datetime import UTC, date, datetime
 from pathlib import Path
 from typing import Any, ClassVar
 
-import numpy as np
 import pandas as pd
 import sqlalchemy as sa
-from sqlalchemy.dialects.mysql import insert as mysql_insert
-from sqlalchemy.dialects.postgresql import insert as pg_insert
-from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 
 from adapters.base import (
-    QUARANTINE_COLUMNS,
-    READING_COLUMNS,
     Batch,
     ResultsStore,
     StoreError,
     empty_readings,
+)
+from adapters.migrations.dialects import (
+    CHUNK,
+    copy_readings_pg,
+    dumps,
+    native_times,
+    nullable,
+    num,
+    prepare_readings,
+    quarantine_rows,
+    raw_rows,
+    time_text,
+    to_utc_index,
+    upsert,
+    upsert_statement,
 )
 from adapters.migrations.tables import (
     ALARM_COLUMNS,
@@ -107,7 +114,6 @@ MAINTENANCE_KINDS: tuple[str, ...] = (
     "repaired",
     "inspected",
 )
-_CHUNK = 20_000  # rows per executemany: bounds the parameter lists held in memory
 _IDENT = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,62}$")
 
 
@@ -115,151 +121,10 @@ _IDENT = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,62}$")
 Watermarks = ResultsStore.Watermarks
 
 
-def _json_default(value: Any) -> Any:
-    if isinstance(value, np.generic):
-        return value.item()
-    if isinstance(value, datetime | pd.Timestamp | date):
-        return value.isoformat()
-    raise TypeError(f"cannot store a {type(value).__name__} as JSON")
-
-
-def _finite(value: Any) -> Any:
-    """NaN and ±inf become JSON null (PostgreSQL's json type rejects the bare tokens)."""
-    if isinstance(value, float | np.floating):
-        return float(value) if math.isfinite(value) else None
-    if isinstance(value, Mapping):
-        return {str(k): _finite(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_finite(v) for v in value]
-    return value
-
-
-def _dumps(value: Any) -> str:
-    return json.dumps(_finite(value), default=_json_default, allow_nan=False)
-
-
-def _num(value: Any) -> float | None:
-    """A float for a Double column; NaN/None become NULL (MariaDB refuses NaN)."""
-    if value is None:
-        return None
-    out = float(value)
-    return out if math.isfinite(out) else None
-
-
 def _name(value: Any, name: str, limit: int) -> str:
     if not isinstance(value, str) or not value or len(value) > limit:
         raise ValueError(f"{name} must be a non-empty string of at most {limit} characters")
     return value
-
-
-def _to_utc_index(values: Any) -> pd.DatetimeIndex:
-    """Vectorised: stored times (ISO text, naive UTC or aware datetimes) → ns UTC."""
-    idx = pd.DatetimeIndex(pd.to_datetime(pd.Series(values, dtype=object), utc=True,
-                                          format="ISO8601"))
-    return idx.as_unit("ns")
-
-
-def _nullable(values: pd.Series) -> list[float | None]:
-    """Floats with NaN/inf as None (NULL), vectorised."""
-    arr = values.to_numpy("float64")
-    out: list[float | None] = arr.tolist()
-    for i in np.flatnonzero(~np.isfinite(arr)):
-        out[i] = None
-    return out
-
-
-def _native_times(times: pd.Series, dialect: str) -> list[Any]:
-    """Driver-native UTC times for the bulk insert, formatted with numpy, not per row."""
-    if dialect == "postgresql":
-        return list(times.dt.to_pydatetime())
-    text = np.datetime_as_string(times.dt.tz_localize(None).to_numpy("datetime64[us]"), "us")
-    # SQLAlchemy's SQLite storage format (space, 6 decimals), which MariaDB parses too.
-    return list(np.char.replace(text, "T", " "))
-
-
-def _time_text(column: sa.ColumnElement[Any], dialect: str) -> sa.ColumnElement[Any]:
-    """A time column as ISO-like text: pandas parses text in C, datetime objects per row."""
-    if dialect == "sqlite":  # stored as text already
-        return sa.type_coerce(column, sa.types.NullType())
-    return sa.cast(column, sa.String())
-
-
-def _raw_rows(conn: sa.Connection, query: sa.Select[Any]) -> list[Any]:
-    """All rows as the driver returns them (no per-row Row objects: bulk reads)."""
-    result = conn.execute(query)
-    try:
-        return list(result.cursor.fetchall())
-    finally:
-        result.close()
-
-
-def _copy_readings_pg(conn: sa.Connection, columns: Mapping[str, list[Any]]) -> None:
-    """PostgreSQL with psycopg 3: COPY into a session temp table, then one INSERT … SELECT
-    that skips stored keys — several times faster than a parameterised executemany."""
-    driver = conn.connection.driver_connection
-    assert driver is not None
-    with driver.cursor() as cur:
-        cur.execute(
-            "CREATE TEMP TABLE IF NOT EXISTS bw_readings_stage "
-            "(LIKE readings INCLUDING DEFAULTS) ON COMMIT DELETE ROWS"
-        )
-        with cur.copy("COPY bw_readings_stage (tag, time, value, good) FROM STDIN") as copy:
-            for row in zip(*(columns[c] for c in ("tag", "time", "value", "good")),
-                           strict=True):
-                copy.write_row(row)
-        cur.execute(
-            "INSERT INTO readings (tag, time, value, good) "
-            "SELECT tag, time, value, good FROM bw_readings_stage "
-            "ON CONFLICT (tag, time) DO NOTHING"
-        )
-
-
-def _upsert_statement(
-    dialect: str, table: sa.Table, keys: Sequence[str], cols: Sequence[str], *, replace: bool
-) -> Any:
-    """The dialect's insert that replaces (or keeps) a row on a natural-key conflict."""
-    if dialect in ("sqlite", "postgresql"):
-        ins = (sqlite_insert if dialect == "sqlite" else pg_insert)(table)
-        if replace and cols:
-            return ins.on_conflict_do_update(
-                index_elements=list(keys), set_={c: ins.excluded[c] for c in cols}
-            )
-        return ins.on_conflict_do_nothing(index_elements=list(keys))
-    if dialect in ("mysql", "mariadb"):
-        mins = mysql_insert(table)
-        if replace and cols:
-            return mins.on_duplicate_key_update({c: mins.inserted[c] for c in cols})
-        # assigning a key column to itself keeps the stored row unchanged
-        return mins.on_duplicate_key_update({keys[0]: table.c[keys[0]]})
-    return None
-
-
-def _upsert(
-    conn: sa.Connection,
-    table: sa.Table,
-    rows: Sequence[Mapping[str, Any]],
-    keys: Sequence[str],
-    *,
-    replace: bool,
-) -> None:
-    """Insert *rows*; on a natural-key conflict replace the row (or keep it if not *replace*)."""
-    if not rows:
-        return
-    # One row per key (last wins): a statement may not touch the same row twice.
-    unique = list({tuple(r[k] for k in keys): r for r in rows}.values())
-    cols = [c for c in unique[0] if c not in keys]
-    stmt = _upsert_statement(conn.dialect.name, table, keys, cols, replace=replace)
-    if stmt is None:  # no dialect upsert: delete (or look) then insert, same transaction
-        for row in unique:
-            match = sa.and_(*(table.c[k] == row[k] for k in keys))
-            if replace:
-                conn.execute(table.delete().where(match))
-            elif conn.execute(sa.select(sa.literal(1)).where(match)).first():
-                continue
-            conn.execute(table.insert(), [row])
-        return
-    for i in range(0, len(unique), _CHUNK):
-        conn.execute(stmt, unique[i : i + _CHUNK])
 
 
 class SqlStore(ResultsStore):
@@ -310,7 +175,7 @@ class SqlStore(ResultsStore):
         elif schema is not None:
             self._create_schema(parsed, schema)
         self.engine = sa.create_engine(
-            parsed, json_serializer=_dumps, pool_pre_ping=self.dialect != "sqlite"
+            parsed, json_serializer=dumps, pool_pre_ping=self.dialect != "sqlite"
         )
         self._install_hooks(busy_timeout_s)
         if migrate:
@@ -436,14 +301,14 @@ class SqlStore(ResultsStore):
         """
         _name(source, "source", 100)
         _name(batch.cursor_key, "batch.cursor_key", 400)
-        frame = _prepare_readings(batch.readings)
-        quarantined = _quarantine_rows(batch.quarantined, source)
+        frame = prepare_readings(batch.readings)
+        quarantined = quarantine_rows(batch.quarantined, source)
         now = datetime.now(UTC)
         with self._write() as conn:
             stored = self._insert_readings(conn, frame)
-            _upsert(conn, quarantine_t, [dict(q, stored_at=now) for q in quarantined],
+            upsert(conn, quarantine_t, [dict(q, stored_at=now) for q in quarantined],
                     ("source", "origin", "line", "reason"), replace=False)
-            _upsert(conn, cursors_t, [{"source": source, "key": batch.cursor_key,
+            upsert(conn, cursors_t, [{"source": source, "key": batch.cursor_key,
                                        "cursor": dict(batch.cursor), "updated": now}],
                     ("source", "key"), replace=True)
         log.debug("stored %d of %d readings from %s", stored, len(frame), source)
@@ -454,14 +319,14 @@ class SqlStore(ResultsStore):
             return 0
         t_ns = frame["time"].to_numpy("datetime64[ns]").view("int64")
         lo, hi = frame["time"].min(), frame["time"].max()
-        raw_time = _time_text(readings_t.c.time, conn.dialect.name)
+        raw_time = time_text(readings_t.c.time, conn.dialect.name)
         query = sa.select(readings_t.c.tag, raw_time).where(
             readings_t.c.tag.in_(sorted(set(frame["tag"]))),
             readings_t.c.time >= lo, readings_t.c.time <= hi,
         )
-        have = _raw_rows(conn, query)
+        have = raw_rows(conn, query)
         if have:
-            stored_ns = _to_utc_index([h[1] for h in have]).asi8
+            stored_ns = to_utc_index([h[1] for h in have]).asi8
             known = pd.MultiIndex.from_arrays([[h[0] for h in have], stored_ns])
             fresh = ~pd.MultiIndex.from_arrays([frame["tag"].to_numpy(), t_ns]).isin(known)
             frame = frame[fresh]
@@ -469,16 +334,16 @@ class SqlStore(ResultsStore):
             return 0
         columns = {
             "tag": frame["tag"].tolist(),
-            "time": _native_times(frame["time"], conn.dialect.name),
-            "value": _nullable(frame["value"]),
+            "time": native_times(frame["time"], conn.dialect.name),
+            "value": nullable(frame["value"]),
             "good": frame["good"].tolist(),
         }
         if conn.dialect.name == "postgresql" and conn.dialect.driver == "psycopg":
-            _copy_readings_pg(conn, columns)
+            copy_readings_pg(conn, columns)
             return len(frame)
         # Compiled once, executed by the driver on plain tuples: SQLAlchemy's per-row
         # parameter handling would cost more than the database's own work.
-        stmt = _upsert_statement(conn.dialect.name, readings_raw, ("tag", "time"), [],
+        stmt = upsert_statement(conn.dialect.name, readings_raw, ("tag", "time"), [],
                                  replace=False)
         compiled = stmt.compile(dialect=conn.dialect)
         sql = str(compiled)
@@ -489,8 +354,8 @@ class SqlStore(ResultsStore):
             names = list(compiled.params)
             params = [dict(zip(names, row, strict=True))
                       for row in zip(*(columns[n] for n in names), strict=True)]
-        for i in range(0, len(params), _CHUNK):
-            conn.exec_driver_sql(sql, params[i : i + _CHUNK])
+        for i in range(0, len(params), CHUNK):
+            conn.exec_driver_sql(sql, params[i : i + CHUNK])
         return len(frame)
 
     def cursors(self, source: str) -> dict[str, dict[str, Any]]:
@@ -510,7 +375,7 @@ class SqlStore(ResultsStore):
         start, end = utc_datetime(start, "start"), utc_datetime(end, "end")
         if not tag_list or end <= start:
             return empty_readings()
-        raw_time = _time_text(readings_t.c.time, self.dialect)
+        raw_time = time_text(readings_t.c.time, self.dialect)
         raw_good = sa.type_coerce(readings_t.c.good, sa.types.NullType())
         query = (
             sa.select(raw_time.label("time"), readings_t.c.tag, readings_t.c.value, raw_good)
@@ -519,13 +384,13 @@ class SqlStore(ResultsStore):
             .order_by(readings_t.c.time, readings_t.c.tag)
         )
         with self._read() as conn:
-            rows = _raw_rows(conn, query)
+            rows = raw_rows(conn, query)
         if not rows:
             return empty_readings()
         time, tag, value, good = zip(*rows, strict=True)
         return pd.DataFrame(
             {
-                "time": _to_utc_index(time),
+                "time": to_utc_index(time),
                 "tag": pd.Series(tag, dtype=object),
                 "value": pd.Series(value, dtype=object).astype("float64"),
                 "good": pd.Series(good, dtype=object).astype(bool),
@@ -558,13 +423,13 @@ class SqlStore(ResultsStore):
                                              "samples", "status"), "fit")
             rec["computed_at"] = rec.get("computed_at") or now
             for col in FIT_FLOATS:
-                rec[col] = _num(rec[col])
+                rec[col] = num(rec[col])
             if rec["identifiable"] is not None:
                 rec["identifiable"] = bool(rec["identifiable"])
             rec["samples"] = int(rec["samples"])
             out.append(rec)
         with self._write() as conn:
-            _upsert(conn, fits_t, out, ("branch", "window_start", "window_end"), replace=True)
+            upsert(conn, fits_t, out, ("branch", "window_start", "window_end"), replace=True)
         return len(out)
 
     def read_fits(
@@ -601,7 +466,7 @@ class SqlStore(ResultsStore):
             rec["updated"] = rec.get("updated") or now
             out.append(rec)
         with self._write() as conn:
-            _upsert(conn, findings_t, out, ("branch", "kind", "start"), replace=True)
+            upsert(conn, findings_t, out, ("branch", "kind", "start"), replace=True)
         return len(out)
 
     def read_findings(
@@ -639,7 +504,7 @@ class SqlStore(ResultsStore):
             if rec["state"] not in ALARM_STATES:
                 raise ValueError(f"alarm state must be one of {ALARM_STATES}, got {rec['state']!r}")
             rec["updated"] = rec.get("updated") or now
-            rec["value"], rec["limit_value"] = _num(rec["value"]), _num(rec["limit_value"])
+            rec["value"], rec["limit_value"] = num(rec["value"]), num(rec["limit_value"])
             recs.append(rec)
         with self._write() as conn:
             keys = [(r["branch"], r["condition"]) for r in recs]
@@ -656,7 +521,7 @@ class SqlStore(ResultsStore):
                 for k, r in zip(keys, recs, strict=True)
                 if before.get(k) != r["state"]
             ]
-            _upsert(conn, alarms_t, recs, ("branch", "condition"), replace=True)
+            upsert(conn, alarms_t, recs, ("branch", "condition"), replace=True)
             if events:
                 conn.execute(alarm_events_t.insert(), events)
         return len(recs)
@@ -689,7 +554,7 @@ class SqlStore(ResultsStore):
         row = {"branch": _name(branch, "branch", 100), "kind": kind,
                "time": utc_datetime(time, "time"), "note": note}
         with self._write() as conn:
-            _upsert(conn, maintenance_t, [row], ("branch", "kind", "time"), replace=True)
+            upsert(conn, maintenance_t, [row], ("branch", "kind", "time"), replace=True)
 
     def maintenance(self, branch: str | None = None) -> pd.DataFrame:
         """Maintenance events (branch, kind, time, note), oldest first."""
@@ -712,7 +577,7 @@ class SqlStore(ResultsStore):
                "finished": None if finished is None else utc_datetime(finished, "finished"),
                "status": _name(status, "status", 20), "detail": dict(detail or {})}
         with self._write() as conn:
-            _upsert(conn, job_runs_t, [row], ("job", "started"), replace=True)
+            upsert(conn, job_runs_t, [row], ("job", "started"), replace=True)
 
     def job_runs(self, limit: int = 20, job: str | None = None) -> pd.DataFrame:
         """The newest *limit* job runs (of one *job* or all), newest first."""
@@ -737,7 +602,7 @@ class SqlStore(ResultsStore):
             for t, d, f, n in zip(frame["tag"], days, frame["flag"], frame["count"], strict=True)
         ]
         with self._write() as conn:
-            _upsert(conn, data_health_t, rows, ("tag", "day", "flag"), replace=True)
+            upsert(conn, data_health_t, rows, ("tag", "day", "flag"), replace=True)
         return len(rows)
 
     def data_health(self, start: datetime, end: datetime) -> pd.DataFrame:
@@ -755,7 +620,7 @@ class SqlStore(ResultsStore):
 
     def watermarks(self) -> Watermarks:
         """How far readings, cursors, fits and jobs have got (for ``status``)."""
-        raw_last = _time_text(sa.func.max(readings_t.c.time), self.dialect)
+        raw_last = time_text(sa.func.max(readings_t.c.time), self.dialect)
         with self._read() as conn:
             last = conn.execute(
                 sa.select(readings_t.c.tag, raw_last).group_by(readings_t.c.tag)
@@ -763,7 +628,7 @@ class SqlStore(ResultsStore):
             ).all()
         readings = pd.DataFrame(
             {"tag": pd.Series([r[0] for r in last], dtype=object),
-             "last": _to_utc_index([r[1] for r in last])}
+             "last": to_utc_index([r[1] for r in last])}
         )
         cur = self._frame(sa.select(cursors_t.c.source, cursors_t.c.key, cursors_t.c.updated)
                           .order_by(cursors_t.c.source, cursors_t.c.key), cursors_t)
@@ -793,7 +658,7 @@ class SqlStore(ResultsStore):
         times = {c.name for c in table.columns if isinstance(c.type, UTCDateTime)}
         for col in names:
             if col in times or col in extra_times:
-                frame[col] = _to_utc_index(frame[col].to_numpy())
+                frame[col] = to_utc_index(frame[col].to_numpy())
             elif col in table.c and isinstance(table.c[col].type, sa.Double):
                 frame[col] = frame[col].astype("float64")
             elif col in table.c and isinstance(table.c[col].type, sa.Integer):
@@ -821,40 +686,3 @@ def _record(
         if isinstance(rec[col], datetime | pd.Timestamp):
             rec[col] = utc_datetime(rec[col], f"{what} {col}")
     return rec
-
-
-def _prepare_readings(frame: pd.DataFrame) -> pd.DataFrame:
-    """Validate a readings frame; times to µs UTC; one row per (tag, time), the last."""
-    missing = set(READING_COLUMNS) - set(frame.columns)
-    if missing:
-        raise ValueError(f"batch.readings lacks columns {sorted(missing)}")
-    if frame.empty:
-        return frame.loc[:, list(READING_COLUMNS)]
-    time = frame["time"]
-    if not isinstance(time.dtype, pd.DatetimeTZDtype):
-        raise ValueError("batch.readings time must be timezone-aware (datetime64[ns, UTC])")
-    too_long = frame["tag"].astype(str).str.len() > 100
-    if too_long.any():
-        first = frame["tag"][too_long].iloc[0]
-        raise ValueError(f"batch.readings has a tag longer than 100 characters: {first!r}")
-    out = pd.DataFrame(
-        {
-            "time": time.dt.tz_convert("UTC").dt.floor("us"),
-            "tag": frame["tag"].astype(str).astype(object),
-            "value": pd.to_numeric(frame["value"], errors="coerce").astype("float64"),
-            "good": frame["good"].astype(bool),
-        }
-    )
-    return out.drop_duplicates(["tag", "time"], keep="last")
-
-
-def _quarantine_rows(frame: pd.DataFrame, source: str) -> list[dict[str, Any]]:
-    missing = set(QUARANTINE_COLUMNS) - set(frame.columns)
-    if missing:
-        raise ValueError(f"batch.quarantined lacks columns {sorted(missing)}")
-    return [
-        {"source": source, "origin": str(o)[:400], "line": int(n), "reason": str(r)[:200],
-         "raw": None if raw is None else str(raw)[:2000]}
-        for o, n, r, raw in zip(frame["origin"], frame["line"], frame["reason"], frame["raw"],
-                                strict=True)
-    ]

@@ -157,14 +157,14 @@ def test_overlapping_batch_counts_only_new_readings(store: SqlStore) -> None:
 def test_failure_inside_store_batch_leaves_nothing(
     store: SqlStore, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    real = store_module._upsert
+    real = store_module.upsert
 
     def failing(conn: sa.Connection, table: sa.Table, *args: Any, **kw: Any) -> None:
         if table is tables.cursors_t:  # readings and quarantine are written by now
             raise RuntimeError("disk full (injected)")
         real(conn, table, *args, **kw)
 
-    monkeypatch.setattr(store_module, "_upsert", failing)
+    monkeypatch.setattr(store_module, "upsert", failing)
     with pytest.raises(RuntimeError, match="injected"):
         store.store_batch(_batch(_readings(30, ["FT-203"])), source="csv")
     monkeypatch.undo()
