@@ -1,0 +1,411 @@
+"""Low-flow alarms with the ISA-18.2 / IEC 62682 alarm life cycle.
+
+The check runs on every ingest, per branch, on the branch's flow samples — independent
+of the daily fit. Everything here is a pure function of its inputs: the caller keeps the
+`AlarmState` (in the results store) and passes it back in with the next samples.
+
+Life cycle (ISA-18.2 state names)::
+
+    NORMAL ──condition true (after on-delay)──▶ UNACK ──acknowledge──▶ ACK
+      ▲                                          │                      │
+      │                      condition clears (after off-delay)   condition clears
+      │                                          ▼                      │
+      └──────────acknowledge──────────────── RTN_UNACK                  │
+      └─────────────────────────────────────────────────────────────────┘
+    any ──shelve(until)──▶ SHELVED ──expiry / unshelve──▶ UNACK (if active) or NORMAL
+    any ──remove_from_service──▶ OUT_OF_SERVICE ──return_to_service──▶ NORMAL
+
+A *latching* alarm does not return by itself: once the condition clears it stays UNACK
+or ACK until an operator acknowledges and `reset` s it.
+
+Chattering is kept down by a deadband (the condition clears only above
+``min_flow + deadband·range``), an on-delay and an off-delay, and by annunciating one
+alarm per condition, not one per sample. Defaults from memory of the ISA-18.2 tables
+(REFERENCES.md): flow deadband 5 % of range, delays 15 s. Historian data often comes
+every minute, so with the default delays a condition must be seen on two consecutive
+samples; set the delays to suit the site's logging interval.
+
+`alarm_rate_summary` computes the EEMUA 191 figures of an event log: floods (> 10
+alarms in 10 min), chattering alarms (3 activations within 1 min) and stale alarms
+(active > 24 h).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import logging
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import datetime, timedelta
+from enum import StrEnum
+
+import pandas as pd
+
+from monitor.diagnose import Finding
+
+__all__ = [
+    "AlarmEvent",
+    "AlarmRateSummary",
+    "AlarmState",
+    "LowFlowSettings",
+    "State",
+    "acknowledge",
+    "alarm_rate_summary",
+    "evaluate_low_flow",
+    "remove_from_service",
+    "reset",
+    "return_to_service",
+    "shelve",
+    "unshelve",
+]
+
+logger = logging.getLogger(__name__)
+
+#: EEMUA 191 figures (REFERENCES.md): a flood is more than 10 alarms in 10 min; an alarm
+#: that activates 3 times within a minute is chattering; in alarm over 24 h is stale.
+FLOOD_COUNT = 10
+FLOOD_WINDOW = timedelta(minutes=10)
+CHATTER_COUNT = 3
+CHATTER_WINDOW = timedelta(minutes=1)
+STALE_AFTER = timedelta(hours=24)
+
+
+class State(StrEnum):
+    """ISA-18.2 alarm states."""
+
+    NORMAL = "normal"
+    UNACK = "unack"  # active, unacknowledged
+    ACK = "ack"  # active, acknowledged
+    RTN_UNACK = "rtn_unack"  # returned to normal, unacknowledged
+    SHELVED = "shelved"
+    OUT_OF_SERVICE = "out_of_service"
+
+
+@dataclass(frozen=True)
+class LowFlowSettings:
+    """Low-flow alarm settings of one branch.
+
+    min_flow_m3s : alarm limit [m^3/s]
+    range_m3s : span of the flow meter, for the deadband [m^3/s]
+    deadband_fraction : deadband as a fraction of the range [-] (5 %, ISA-18.2 table
+        for flow, from memory)
+    on_delay, off_delay : how long the condition must hold before it is annunciated /
+        cleared [s] (15 s, same table, from memory)
+    latching : the alarm stays in until acknowledged and reset
+    max_gap : a longer gap between samples restarts the delays (no evidence in between)
+    """
+
+    min_flow_m3s: float
+    range_m3s: float
+    deadband_fraction: float = 0.05
+    on_delay: timedelta = timedelta(seconds=15)
+    off_delay: timedelta = timedelta(seconds=15)
+    latching: bool = False
+    max_gap: timedelta = timedelta(minutes=15)
+
+    def __post_init__(self) -> None:
+        if not (math.isfinite(self.min_flow_m3s) and self.min_flow_m3s >= 0):
+            raise ValueError(f"min_flow_m3s must be >= 0, got {self.min_flow_m3s}")
+        if not self.range_m3s > 0:
+            raise ValueError(f"range_m3s must be positive, got {self.range_m3s}")
+        if not 0 <= self.deadband_fraction < 1:
+            raise ValueError(f"deadband_fraction must be in [0, 1), got {self.deadband_fraction}")
+        for name in ("on_delay", "off_delay", "max_gap"):
+            if getattr(self, name) < timedelta(0):
+                raise ValueError(f"{name} must not be negative, got {getattr(self, name)}")
+
+    @property
+    def clear_level_m3s(self) -> float:
+        """Flow above which the condition clears [m^3/s]."""
+        return self.min_flow_m3s + self.deadband_fraction * self.range_m3s
+
+
+@dataclass(frozen=True)
+class AlarmState:
+    """Everything the alarm remembers between ingests.
+
+    ``active`` is the debounced process condition; ``state`` the annunciation state.
+    ``pending_since``/``clear_since`` run the on- and off-delays; ``last_sample`` makes a
+    re-ingest of the same samples change nothing.
+    """
+
+    branch: str
+    condition: str = "low_flow"
+    state: State = State.NORMAL
+    active: bool = False
+    pending_since: datetime | None = None
+    clear_since: datetime | None = None
+    last_sample: datetime | None = None
+    activated_at: datetime | None = None
+    acknowledged_at: datetime | None = None
+    acknowledged_by: str = ""
+    shelved_until: datetime | None = None
+    last_value: float = math.nan
+    message: str = ""
+
+
+@dataclass(frozen=True)
+class AlarmEvent:
+    """One entry of the alarm journal."""
+
+    time: datetime
+    branch: str
+    condition: str
+    action: str  # activated, returned, acknowledged, shelved, unshelved, reset,
+    #              removed_from_service, returned_to_service
+    state: State  # the state after the action
+    value: float = math.nan
+    message: str = ""
+    by: str = ""
+
+
+def _event(s: AlarmState, t: datetime, action: str, by: str = "") -> AlarmEvent:
+    return AlarmEvent(t, s.branch, s.condition, action, s.state, s.last_value, s.message, by)
+
+
+def _cause(branch: str, diagnosis: Sequence[Finding] | None) -> str:
+    """The likely cause named from the latest open finding of the branch."""
+    if not diagnosis:
+        return ""
+    candidates = [f for f in diagnosis if f.branch == branch and f.end is None
+                  and f.kind != "low_flow"]  # fmt: skip
+    if not candidates:
+        return "; no drift found on this branch: check the pump, header pressure and valves"
+    f = max(candidates, key=lambda f: (f.detected, f.confidence))
+    return (
+        f"; likely cause: {f.kind.replace('_', '-')} found "
+        f"{pd.Timestamp(f.detected):%Y-%m-%d} (confidence {f.confidence:.0%})"
+    )
+
+
+def _annunciate_on(s: AlarmState, t: datetime, message: str) -> tuple[AlarmState, list[AlarmEvent]]:
+    s = dataclasses.replace(s, active=True, pending_since=None, activated_at=t, message=message)
+    if s.state in (State.NORMAL, State.RTN_UNACK):
+        s = dataclasses.replace(s, state=State.UNACK, acknowledged_at=None, acknowledged_by="")
+        return s, [_event(s, t, "activated")]
+    return s, []  # shelved: tracked, not annunciated
+
+
+def _annunciate_off(
+    s: AlarmState, t: datetime, latching: bool
+) -> tuple[AlarmState, list[AlarmEvent]]:
+    s = dataclasses.replace(s, active=False, clear_since=None)
+    if latching or s.state == State.SHELVED:
+        return s, []
+    if s.state == State.UNACK:
+        s = dataclasses.replace(s, state=State.RTN_UNACK)
+        return s, [_event(s, t, "returned")]
+    if s.state == State.ACK:
+        s = dataclasses.replace(s, state=State.NORMAL)
+        return s, [_event(s, t, "returned")]
+    return s, []
+
+
+def _expire_shelf(s: AlarmState, t: datetime) -> tuple[AlarmState, list[AlarmEvent]]:
+    if s.state == State.SHELVED and s.shelved_until is not None and t >= s.shelved_until:
+        return unshelve(s, now=s.shelved_until)
+    return s, []
+
+
+def evaluate_low_flow(
+    series: pd.Series,
+    state: AlarmState,
+    settings: LowFlowSettings,
+    now: datetime,
+    *,
+    diagnosis: Sequence[Finding] | None = None,
+) -> tuple[AlarmState, list[AlarmEvent]]:
+    """Run the low-flow check over new flow samples.
+
+    Parameters
+    ----------
+    series : flow samples [m^3/s] indexed by UTC time; samples at or before
+        ``state.last_sample`` or after ``now`` are ignored, NaN samples are gaps
+    state : the alarm's state after the previous call
+    settings : limit, deadband, delays
+    now : evaluation time (UTC); also expires a shelf
+    diagnosis : latest findings, to name the likely cause in the message
+
+    Returns
+    -------
+    (new state, events in time order)
+    """
+    if not isinstance(series, pd.Series):
+        raise TypeError(f"series must be a pandas Series, got {type(series).__name__}")
+    index = pd.DatetimeIndex(series.index)
+    if index.tz is None:
+        raise ValueError("series must be indexed by timezone-aware (UTC) times")
+    t_now = pd.Timestamp(now)
+    if t_now.tzinfo is None:
+        raise ValueError(f"now must be timezone-aware (UTC), got {now!r}")
+    data = pd.Series(series.to_numpy(dtype=float), index=index.tz_convert("UTC")).sort_index()
+    if state.last_sample is not None:
+        data = data[data.index > pd.Timestamp(state.last_sample)]
+    data = data[(data.index <= t_now) & data.notna()]
+    s, events = state, []
+    for ts, q in zip(data.index, data.to_numpy(), strict=True):
+        t = ts.to_pydatetime()
+        q = float(q)
+        s, ev = _expire_shelf(s, t)
+        events += ev
+        if s.state == State.OUT_OF_SERVICE:
+            s = dataclasses.replace(s, last_sample=t, last_value=q)
+            continue
+        if s.last_sample is not None and t - s.last_sample > settings.max_gap:
+            s = dataclasses.replace(s, pending_since=None, clear_since=None)
+        s = dataclasses.replace(s, last_sample=t, last_value=q)
+        if not s.active:
+            if q < settings.min_flow_m3s:
+                since = s.pending_since or t
+                s = dataclasses.replace(s, pending_since=since)
+                if t - since >= settings.on_delay:
+                    msg = (
+                        f"Low flow on {s.branch}: {q * 3600:.1f} m3/h, below its minimum "
+                        f"{settings.min_flow_m3s * 3600:.1f} m3/h since {since:%Y-%m-%d %H:%M} "
+                        f"UTC{_cause(s.branch, diagnosis)}."
+                    )
+                    s, ev = _annunciate_on(s, t, msg)
+                    events += ev
+            else:
+                s = dataclasses.replace(s, pending_since=None)
+        elif q >= settings.clear_level_m3s:
+            since = s.clear_since or t
+            s = dataclasses.replace(s, clear_since=since)
+            if t - since >= settings.off_delay:
+                s, ev = _annunciate_off(s, t, settings.latching)
+                events += ev
+        else:
+            s = dataclasses.replace(s, clear_since=None)
+    s, ev = _expire_shelf(s, t_now.to_pydatetime())
+    events += ev
+    return s, events
+
+
+def acknowledge(state: AlarmState, now: datetime, by: str) -> tuple[AlarmState, list[AlarmEvent]]:
+    """Operator acknowledges: UNACK → ACK, RTN_UNACK → NORMAL; otherwise nothing."""
+    if state.state == State.UNACK:
+        s = dataclasses.replace(state, state=State.ACK, acknowledged_at=now, acknowledged_by=by)
+    elif state.state == State.RTN_UNACK:
+        s = dataclasses.replace(state, state=State.NORMAL, acknowledged_at=now, acknowledged_by=by)
+    else:
+        return state, []
+    return s, [_event(s, now, "acknowledged", by)]
+
+
+def reset(state: AlarmState, now: datetime, by: str) -> tuple[AlarmState, list[AlarmEvent]]:
+    """Reset a latched alarm whose condition has cleared and which was acknowledged."""
+    if state.state == State.ACK and not state.active:
+        s = dataclasses.replace(state, state=State.NORMAL)
+        return s, [_event(s, now, "reset", by)]
+    return state, []
+
+
+def shelve(
+    state: AlarmState, until: datetime, *, now: datetime, by: str = ""
+) -> tuple[AlarmState, list[AlarmEvent]]:
+    """Shelve the alarm until ``until`` (UTC): annunciation stops, tracking goes on."""
+    if until <= now:
+        raise ValueError(f"until must be after now ({now.isoformat()}), got {until.isoformat()}")
+    if state.state == State.OUT_OF_SERVICE:
+        return state, []
+    s = dataclasses.replace(state, state=State.SHELVED, shelved_until=until)
+    return s, [_event(s, now, "shelved", by)]
+
+
+def unshelve(
+    state: AlarmState, *, now: datetime, by: str = ""
+) -> tuple[AlarmState, list[AlarmEvent]]:
+    """End a shelf: an active condition comes back unacknowledged."""
+    if state.state != State.SHELVED:
+        return state, []
+    new = State.UNACK if state.active else State.NORMAL
+    s = dataclasses.replace(state, state=new, shelved_until=None)
+    return s, [_event(s, now, "unshelved", by)]
+
+
+def remove_from_service(
+    state: AlarmState, *, now: datetime, by: str = ""
+) -> tuple[AlarmState, list[AlarmEvent]]:
+    """Take the alarm out of service (maintenance): no tracking, no annunciation."""
+    s = dataclasses.replace(
+        state, state=State.OUT_OF_SERVICE, active=False, pending_since=None,
+        clear_since=None, shelved_until=None,
+    )  # fmt: skip
+    return s, [_event(s, now, "removed_from_service", by)]
+
+
+def return_to_service(
+    state: AlarmState, *, now: datetime, by: str = ""
+) -> tuple[AlarmState, list[AlarmEvent]]:
+    """Back in service, NORMAL: the next samples are judged afresh (with the on-delay)."""
+    if state.state != State.OUT_OF_SERVICE:
+        return state, []
+    s = dataclasses.replace(state, state=State.NORMAL, active=False)
+    return s, [_event(s, now, "returned_to_service", by)]
+
+
+@dataclass(frozen=True)
+class AlarmRateSummary:
+    """EEMUA 191 figures of an alarm journal.
+
+    activations : number of annunciated alarms [-]
+    per_10_min : average activations per 10 min over the journal's span [-]
+    max_in_10_min : the most activations in any 10-min window [-]
+    floods : (start, count) of each flood: a run of 10-min windows with more than 10
+    chattering : (branch, condition) that activated 3 times within 1 min
+    stale : (branch, condition, since) in alarm for over 24 h (at ``now``, or before they
+        returned)
+    """
+
+    activations: int
+    per_10_min: float
+    max_in_10_min: int
+    floods: tuple[tuple[datetime, int], ...]
+    chattering: tuple[tuple[str, str], ...]
+    stale: tuple[tuple[str, str, datetime], ...]
+
+
+def alarm_rate_summary(events: Sequence[AlarmEvent], *, now: datetime) -> AlarmRateSummary:
+    """Flood, chattering and stale figures (EEMUA 191) of ``events`` up to ``now``."""
+    evs = sorted((e for e in events if e.time <= now), key=lambda e: e.time)
+    acts = [e for e in evs if e.action == "activated"]
+    times = [e.time for e in acts]
+    floods: list[tuple[datetime, int]] = []
+    peak, lo, flooding = 0, 0, False
+    for hi, t in enumerate(times):
+        while times[lo] <= t - FLOOD_WINDOW:
+            lo += 1
+        count = hi - lo + 1  # activations in the 10 min ending at this one
+        peak = max(peak, count)
+        if count > FLOOD_COUNT and flooding:
+            floods[-1] = (floods[-1][0], max(floods[-1][1], count))
+        elif count > FLOOD_COUNT:
+            floods.append((times[lo], count))
+        flooding = count > FLOOD_COUNT
+    chatter: set[tuple[str, str]] = set()
+    by_key: dict[tuple[str, str], list[datetime]] = {}
+    for e in acts:
+        by_key.setdefault((e.branch, e.condition), []).append(e.time)
+    for key, ts in by_key.items():
+        for k in range(len(ts) - CHATTER_COUNT + 1):
+            if ts[k + CHATTER_COUNT - 1] - ts[k] <= CHATTER_WINDOW:
+                chatter.add(key)
+                break
+    stale: list[tuple[str, str, datetime]] = []
+    since: dict[tuple[str, str], datetime] = {}
+    for e in evs:
+        key = (e.branch, e.condition)
+        if e.action == "activated":
+            since.setdefault(key, e.time)
+        elif e.action in ("returned", "removed_from_service", "reset") and key in since:
+            start = since.pop(key)
+            if e.time - start > STALE_AFTER:
+                stale.append((*key, start))
+    stale += [(*key, start) for key, start in since.items() if now - start > STALE_AFTER]
+    span = (now - evs[0].time) if evs else timedelta(0)
+    per = len(acts) / max(span / FLOOD_WINDOW, 1.0)
+    return AlarmRateSummary(
+        activations=len(acts), per_10_min=per, max_in_10_min=peak, floods=tuple(floods),
+        chattering=tuple(sorted(chatter)), stale=tuple(sorted(stale)),
+    )  # fmt: skip

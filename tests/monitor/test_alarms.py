@@ -1,0 +1,191 @@
+"""Tests of the low-flow alarm and its ISA-18.2 / IEC 62682 life cycle."""
+
+from __future__ import annotations
+
+from datetime import UTC, datetime, timedelta
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from monitor.alarms import (
+    AlarmEvent,
+    AlarmState,
+    LowFlowSettings,
+    State,
+    acknowledge,
+    alarm_rate_summary,
+    evaluate_low_flow,
+    remove_from_service,
+    reset,
+    return_to_service,
+    shelve,
+    unshelve,
+)
+from monitor.diagnose import Finding
+
+T0 = datetime(2026, 3, 2, 6, 0, tzinfo=UTC)
+M3H = 1 / 3600  # m³/h in m³/s
+# Limit 60 m³/h on a 0–200 m³/h meter: deadband 5 % of range = 10 m³/h (ISA-18.2 table
+# for flow, from memory), so the condition clears at 70 m³/h.
+SETTINGS = LowFlowSettings(min_flow_m3s=60 * M3H, range_m3s=200 * M3H,
+                           on_delay=timedelta(minutes=2), off_delay=timedelta(minutes=2))  # fmt: skip
+
+
+def flow(values_m3h: list[float], start: datetime = T0, step_s: int = 60) -> pd.Series:
+    idx = pd.DatetimeIndex([start + timedelta(seconds=step_s * k) for k in range(len(values_m3h))])
+    return pd.Series(np.asarray(values_m3h) * M3H, index=idx)
+
+
+def end_of(series: pd.Series) -> datetime:
+    return series.index[-1].to_pydatetime()
+
+
+def test_on_delay_needs_the_condition_to_hold() -> None:
+    state = AlarmState("CW-3")
+    # 2 minutes below is not yet 2 minutes *held* at the second sample: 0 s, 60 s, 120 s
+    short = flow([100, 50, 50, 100, 50, 50, 100])
+    s, ev = evaluate_low_flow(short, state, SETTINGS, end_of(short))
+    assert ev == [] and s.state == State.NORMAL
+    held = flow([100, 50, 50, 50, 50])
+    s, ev = evaluate_low_flow(held, state, SETTINGS, end_of(held))
+    assert [e.action for e in ev] == ["activated"]
+    assert s.state == State.UNACK and s.active
+    assert ev[0].time == T0 + timedelta(minutes=3)  # first low at 1 min + 2 min on-delay
+    assert "60.0 m3/h" in ev[0].message
+
+
+def test_deadband_and_off_delay_stop_chattering() -> None:
+    # A flow hovering around the limit (55–65 m³/h) for an hour: one alarm, not dozens.
+    rng = np.random.default_rng(0)
+    hover = flow(list(50 + 15 * rng.random(60)))
+    s, ev = evaluate_low_flow(hover, AlarmState("CW-3"), SETTINGS, end_of(hover))
+    assert [e.action for e in ev] == ["activated"]
+    summary = alarm_rate_summary(ev, now=end_of(hover))
+    assert summary.chattering == ()
+    # Without deadband and delays the same signal chatters (EEMUA 191: 3 in 1 min).
+    raw = LowFlowSettings(min_flow_m3s=60 * M3H, range_m3s=200 * M3H, deadband_fraction=0.0,
+                          on_delay=timedelta(0), off_delay=timedelta(0))  # fmt: skip
+    fast = flow(list(50 + 15 * rng.random(60)), step_s=15)
+    _, ev_raw = evaluate_low_flow(fast, AlarmState("CW-3"), raw, end_of(fast))
+    acts = [e for e in ev_raw if e.action == "activated"]
+    assert len(acts) > 5
+    assert alarm_rate_summary(ev_raw, now=end_of(fast)).chattering == (("CW-3", "low_flow"),)
+
+
+def test_life_cycle_normal_unack_ack_normal() -> None:
+    s = AlarmState("CW-3")
+    low = flow([50] * 5)
+    s, _ = evaluate_low_flow(low, s, SETTINGS, end_of(low))
+    assert s.state == State.UNACK
+    s, ev = acknowledge(s, T0 + timedelta(minutes=6), "operator A")
+    assert s.state == State.ACK and ev[0].by == "operator A"
+    # between limit and limit + deadband: still active
+    mid = flow([65] * 5, start=T0 + timedelta(minutes=10))
+    s, ev = evaluate_low_flow(mid, s, SETTINGS, end_of(mid))
+    assert ev == [] and s.state == State.ACK
+    ok = flow([80] * 5, start=T0 + timedelta(minutes=20))
+    s, ev = evaluate_low_flow(ok, s, SETTINGS, end_of(ok))
+    assert [e.action for e in ev] == ["returned"] and s.state == State.NORMAL
+
+
+def test_return_unacknowledged_then_ack() -> None:
+    s = AlarmState("CW-3")
+    series = flow([50] * 5 + [80] * 5)
+    s, ev = evaluate_low_flow(series, s, SETTINGS, end_of(series))
+    assert [e.action for e in ev] == ["activated", "returned"]
+    assert s.state == State.RTN_UNACK
+    s, ev = acknowledge(s, end_of(series), "B")
+    assert s.state == State.NORMAL and ev[0].action == "acknowledged"
+
+
+def test_reingest_changes_nothing() -> None:
+    series = flow([50] * 5)
+    s1, ev1 = evaluate_low_flow(series, AlarmState("CW-3"), SETTINGS, end_of(series))
+    s2, ev2 = evaluate_low_flow(series, s1, SETTINGS, end_of(series))
+    assert ev1 and ev2 == [] and s2 == s1
+
+
+def test_latching_needs_ack_and_reset() -> None:
+    latch = LowFlowSettings(min_flow_m3s=60 * M3H, range_m3s=200 * M3H, latching=True,
+                            on_delay=timedelta(minutes=2), off_delay=timedelta(minutes=2))  # fmt: skip
+    series = flow([50] * 5 + [80] * 5)
+    s, ev = evaluate_low_flow(series, AlarmState("CW-3"), latch, end_of(series))
+    assert [e.action for e in ev] == ["activated"] and s.state == State.UNACK and not s.active
+    s, _ = reset(s, end_of(series), "A")
+    assert s.state == State.UNACK  # not acknowledged yet: reset refused
+    s, _ = acknowledge(s, end_of(series), "A")
+    s, ev = reset(s, end_of(series), "A")
+    assert s.state == State.NORMAL and ev[0].action == "reset"
+
+
+def test_shelve_expires_and_reannunciates() -> None:
+    s = AlarmState("CW-3")
+    s, ev = shelve(s, T0 + timedelta(minutes=30), now=T0)
+    assert s.state == State.SHELVED and ev[0].action == "shelved"
+    low = flow([50] * 20)
+    s, ev = evaluate_low_flow(low, s, SETTINGS, end_of(low))
+    assert ev == [] and s.active and s.state == State.SHELVED  # tracked, not annunciated
+    later = flow([50] * 5, start=T0 + timedelta(minutes=28))
+    s, ev = evaluate_low_flow(later, s, SETTINGS, end_of(later))
+    assert [e.action for e in ev] == ["unshelved"] and s.state == State.UNACK
+    with pytest.raises(ValueError, match="until"):
+        shelve(s, T0, now=T0 + timedelta(hours=1))
+    s2, _ = shelve(AlarmState("CW-3"), T0 + timedelta(hours=1), now=T0)
+    s2, ev = unshelve(s2, now=T0 + timedelta(minutes=5))
+    assert s2.state == State.NORMAL and ev[0].action == "unshelved"
+
+
+def test_out_of_service_and_back() -> None:
+    s, ev = remove_from_service(AlarmState("CW-3"), now=T0, by="maint")
+    assert s.state == State.OUT_OF_SERVICE
+    low = flow([50] * 10)
+    s, ev = evaluate_low_flow(low, s, SETTINGS, end_of(low))
+    assert ev == [] and s.state == State.OUT_OF_SERVICE
+    s, ev = return_to_service(s, now=end_of(low))
+    assert s.state == State.NORMAL and ev[0].action == "returned_to_service"
+    more = flow([50] * 5, start=end_of(low) + timedelta(minutes=1))
+    s, ev = evaluate_low_flow(more, s, SETTINGS, end_of(more))
+    assert [e.action for e in ev] == ["activated"]
+
+
+def test_message_names_the_likely_cause() -> None:
+    finding = Finding(branch="CW-3", kind="restriction", start=T0 - timedelta(days=2),
+                      detected=T0 - timedelta(days=1), end=None, confidence=0.93,
+                      evidence={}, message="")  # fmt: skip
+    low = flow([50] * 5)
+    _, ev = evaluate_low_flow(low, AlarmState("CW-3"), SETTINGS, end_of(low), diagnosis=[finding])
+    assert "likely cause: restriction" in ev[0].message
+    _, ev = evaluate_low_flow(low, AlarmState("CW-3"), SETTINGS, end_of(low), diagnosis=[])
+    assert "likely cause" not in ev[0].message
+
+
+def test_gap_restarts_the_on_delay() -> None:
+    series = pd.concat([flow([50]), flow([50], start=T0 + timedelta(hours=1))])
+    _, ev = evaluate_low_flow(series, AlarmState("CW-3"), SETTINGS, end_of(series))
+    assert ev == []
+
+
+def test_rate_summary_eemua_figures() -> None:
+    def act(t: datetime, branch: str) -> AlarmEvent:
+        return AlarmEvent(t, branch, "low_flow", "activated", State.UNACK)
+
+    # 12 different branches within 5 min: a flood (EEMUA 191: > 10 in 10 min)
+    flood = [act(T0 + timedelta(seconds=25 * k), f"CW-{k}") for k in range(12)]
+    # one branch in alarm since two days ago, never returned: stale (> 24 h)
+    old = act(T0 - timedelta(days=2), "CW-99")
+    summary = alarm_rate_summary([*flood, old], now=T0 + timedelta(hours=1))
+    assert summary.activations == 13
+    assert summary.max_in_10_min == 12
+    assert len(summary.floods) == 1 and summary.floods[0][1] == 12
+    assert summary.stale == (("CW-99", "low_flow", T0 - timedelta(days=2)),)
+    assert summary.chattering == ()
+    calm = alarm_rate_summary(flood[:5], now=T0 + timedelta(days=1))
+    assert calm.floods == () and calm.per_10_min < 0.1
+
+
+def test_settings_reject_bad_values() -> None:
+    with pytest.raises(ValueError, match="range_m3s"):
+        LowFlowSettings(min_flow_m3s=0.01, range_m3s=0.0)
+    with pytest.raises(ValueError, match="on_delay"):
+        LowFlowSettings(min_flow_m3s=0.01, range_m3s=0.1, on_delay=timedelta(seconds=-1))
