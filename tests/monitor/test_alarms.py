@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from datetime import UTC, datetime, timedelta
 
 import numpy as np
@@ -28,12 +29,15 @@ T0 = datetime(2026, 3, 2, 6, 0, tzinfo=UTC)
 M3H = 1 / 3600  # m³/h in m³/s
 # Limit 60 m³/h on a 0–200 m³/h meter: deadband 5 % of range = 10 m³/h (ISA-18.2 table
 # for flow, from memory), so the condition clears at 70 m³/h.
-SETTINGS = LowFlowSettings(min_flow_m3s=60 * M3H, range_m3s=200 * M3H,
-                           on_delay=timedelta(minutes=2), off_delay=timedelta(minutes=2))  # fmt: skip
+TWO_MIN = timedelta(minutes=2)
+SETTINGS = LowFlowSettings(
+    min_flow_m3s=60 * M3H, range_m3s=200 * M3H, on_delay=TWO_MIN, off_delay=TWO_MIN
+)
 
 
-def flow(values_m3h: list[float], start: datetime = T0, step_s: int = 60) -> pd.Series:
-    idx = pd.DatetimeIndex([start + timedelta(seconds=step_s * k) for k in range(len(values_m3h))])
+def flow(values_m3h: Sequence[float], start: datetime = T0, step_s: int = 60) -> pd.Series:
+    idx = pd.DatetimeIndex([start + timedelta(seconds=step_s * k)
+                            for k in range(len(values_m3h))])  # fmt: skip
     return pd.Series(np.asarray(values_m3h) * M3H, index=idx)
 
 
@@ -59,7 +63,7 @@ def test_deadband_and_off_delay_stop_chattering() -> None:
     # A flow hovering around the limit (55–65 m³/h) for an hour: one alarm, not dozens.
     rng = np.random.default_rng(0)
     hover = flow(list(50 + 15 * rng.random(60)))
-    s, ev = evaluate_low_flow(hover, AlarmState("CW-3"), SETTINGS, end_of(hover))
+    _, ev = evaluate_low_flow(hover, AlarmState("CW-3"), SETTINGS, end_of(hover))
     assert [e.action for e in ev] == ["activated"]
     summary = alarm_rate_summary(ev, now=end_of(hover))
     assert summary.chattering == ()
@@ -108,7 +112,7 @@ def test_reingest_changes_nothing() -> None:
 
 def test_latching_needs_ack_and_reset() -> None:
     latch = LowFlowSettings(min_flow_m3s=60 * M3H, range_m3s=200 * M3H, latching=True,
-                            on_delay=timedelta(minutes=2), off_delay=timedelta(minutes=2))  # fmt: skip
+                            on_delay=TWO_MIN, off_delay=TWO_MIN)  # fmt: skip
     series = flow([50] * 5 + [80] * 5)
     s, ev = evaluate_low_flow(series, AlarmState("CW-3"), latch, end_of(series))
     assert [e.action for e in ev] == ["activated"] and s.state == State.UNACK and not s.active
@@ -154,7 +158,8 @@ def test_message_names_the_likely_cause() -> None:
                       detected=T0 - timedelta(days=1), end=None, confidence=0.93,
                       evidence={}, message="")  # fmt: skip
     low = flow([50] * 5)
-    _, ev = evaluate_low_flow(low, AlarmState("CW-3"), SETTINGS, end_of(low), diagnosis=[finding])
+    _, ev = evaluate_low_flow(low, AlarmState("CW-3"), SETTINGS, end_of(low),
+                              diagnosis=[finding])  # fmt: skip
     assert "likely cause: restriction" in ev[0].message
     _, ev = evaluate_low_flow(low, AlarmState("CW-3"), SETTINGS, end_of(low), diagnosis=[])
     assert "likely cause" not in ev[0].message
