@@ -114,6 +114,12 @@ class FitResult:
     residual_std_pa : robust residual scatter 1.4826·MAD [Pa].
     residual_autocorr : lag-1 autocorrelation of the residuals [-] (a diagnostic: near 1
         the residuals drift rather than scatter).
+    mean_flow_m3s : weighted mean flow of the samples used [m^3/s].
+    sum_w, sum_x, sum_y, sum_xx, sum_xy, sum_yy : weighted sums over the samples used of
+        1, x, y, x², x·y, y² (weights scaled to mean 1, so ``sum_w`` = samples) [-], [Pa],
+        [Pa], [Pa²], [Pa²], [Pa²]: enough to test later any baseline ``(r_b, s_b)``
+        against "constant offset" and "offset ∝ Q²" without the samples (y before the
+        fixed back-pressure ``s_fixed_pa`` is taken off).
     corr_rs : correlation of the ``s`` and ``r`` estimates [-] (NaN when ``s`` not fitted).
     iterations : IRLS iterations of the final fit.
     status : ``"ok"``, ``"not_identifiable"`` (``r`` valid with ``s`` fixed, or NaN when
@@ -143,6 +149,13 @@ class FitResult:
     message: str
     loss: str
     residual_autocorr: float = math.nan
+    mean_flow_m3s: float = math.nan
+    sum_w: float = math.nan
+    sum_x: float = math.nan
+    sum_y: float = math.nan
+    sum_xx: float = math.nan
+    sum_xy: float = math.nan
+    sum_yy: float = math.nan
 
     @property
     def usable(self) -> bool:
@@ -394,6 +407,16 @@ def fit_ratio(
             **common,
         )
     sw = np.sqrt(w_u / float(np.mean(w_u)))  # mean weight 1: residuals stay in Pa
+    wn = sw * sw
+    common.update(
+        mean_flow_m3s=float(np.sum(wn * q_u) / np.sum(wn)),
+        sum_w=float(np.sum(wn)),
+        sum_x=float(np.sum(wn * x_u)),
+        sum_y=float(np.sum(wn * y_u)),
+        sum_xx=float(np.sum(wn * x_u * x_u)),
+        sum_xy=float(np.sum(wn * x_u * y_u)),
+        sum_yy=float(np.sum(wn * y_u * y_u)),
+    )
 
     def t_quantile(dof: int) -> float:
         return float(stats.t.ppf(0.5 + confidence / 2.0, max(dof, 1)))

@@ -132,6 +132,13 @@ def test_offset_hypotheses_tell_static_from_resistance() -> None:
     noise = rng.normal(0.0, 700.0, q.size)
     base = 1.1 * x + 1.0e4
     stepped = offset_hypotheses(base + 2.0e4 + noise, x, r_baseline=1.1, s_baseline_pa=1.0e4)
+    # The fit's weighted sums carry the same comparison without the samples.
+    fr = fit_ratio(base + 2.0e4 + noise, x, static_pa=0.0)
+    assert fr.sum_w == x.size and fr.sum_xy == pytest.approx(
+        float(np.sum(x * (base + 2e4 + noise)))
+    )
+    sd = fr.sum_y - 1.1 * fr.sum_x - fr.sum_w * 1.0e4
+    assert sd / fr.sum_w == pytest.approx(stepped.static_offset_pa, rel=1e-9)
     assert stepped.preferred == "static"
     assert stepped.static_offset_pa == pytest.approx(2.0e4, rel=0.02)
     assert stepped.bp_sse_static < stepped.bp_sse_resistance < stepped.bp_sse_baseline
