@@ -1,0 +1,646 @@
+"""Site configuration: a TOML file in, validated, turned into model objects.
+
+The file describes one site: where the readings come from, where results go, the supply
+header's tags, the pump, and each branch's pipe, fittings, valves, equipment and
+termination. Quantities carry their units (``"110 m"``, ``"0.5 bar"``, ``"140 m3/h"``);
+they are converted to SI here, once, so that `model` only sees SI floats.
+
+Validation uses pydantic; every problem is reported as a `ConfigError` whose message names
+the file, the key path and what is wrong, e.g.::
+
+    config/site.toml: branch[2].elements[0].pipe.length: '110 x' is not a quantity …
+
+Exceptions::
+
+    ConfigError (ValueError)   the file is missing, not TOML, or does not validate
+"""
+
+from __future__ import annotations
+
+import tomllib
+import zoneinfo
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import timedelta
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+from pydantic import (
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
+
+from adapters.base import TagSpec
+from adapters.units import UnitError, converter, parse_quantity
+from model.branch import Branch, HeldHeader, OpenDischarge, ReturnHeader, Tank
+from model.elements import ControlValve, Elevation, Equipment, Fittings, Pipe
+from model.network import ParallelHeader, PumpCurve
+
+__all__ = [
+    "BranchConfig",
+    "ConfigError",
+    "Site",
+    "load_site",
+    "parse_site",
+]
+
+
+class ConfigError(ValueError):
+    """The site configuration is missing, malformed or inconsistent."""
+
+
+def _quantity(si_unit: str) -> Any:
+    def parse(value: Any) -> float:
+        try:
+            return parse_quantity(value, si_unit)
+        except UnitError as exc:
+            raise ValueError(str(exc)) from None
+
+    return BeforeValidator(parse)
+
+
+Length = Annotated[float, _quantity("m")]
+Pressure = Annotated[float, _quantity("Pa")]
+Flow = Annotated[float, _quantity("m3/s")]
+Duration = Annotated[float, _quantity("s")]
+Fraction = Annotated[float, _quantity("dimensionless")]
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class TagRef(_Strict):
+    """A historian tag and the unit it is logged in."""
+
+    tag: str = Field(min_length=1)
+    unit: str
+    low: float | None = None
+    high: float | None = None
+    #: typical value in the tag's unit: what `curve` uses, and the fallback baseline
+    nominal: float | None = None
+
+
+class SiteSection(_Strict):
+    name: str
+    timezone: str = "UTC"
+
+    @field_validator("timezone")
+    @classmethod
+    def _known_zone(cls, value: str) -> str:
+        try:
+            zoneinfo.ZoneInfo(value)
+        except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+            raise ValueError(
+                f"unknown time zone {value!r}; use an IANA name such as 'Europe/Berlin'"
+            ) from None
+        return value
+
+
+class StoreSection(_Strict):
+    url: str = "sqlite:///branchwatch.db"
+
+
+class SourceSection(_Strict):
+    kind: Literal["csv", "sql"] = "csv"
+    # csv
+    path: str | None = None
+    layout: Literal["auto", "wide", "long"] = "auto"
+    delimiter: str = ","
+    decimal: str = "."
+    pattern: str = "*.csv"
+    # sql
+    url_env: str | None = None
+    secrets_file: str | None = None
+    table: str | None = None
+    schema_name: str | None = Field(default=None, alias="schema")
+    time_column: str = "time"
+    tag_column: str = "tag"
+    value_column: str = "value"
+    quality_column: str | None = None
+    # both
+    good_quality: list[str] = Field(default_factory=lambda: ["", "good", "GOOD", "192", "G"])
+
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+    @model_validator(mode="after")
+    def _kind_needs(self) -> SourceSection:
+        if self.kind == "csv" and not self.path:
+            raise ValueError("a csv source needs 'path', the folder the exports land in")
+        if self.kind == "sql" and not self.table:
+            raise ValueError("a sql source needs 'table'")
+        if self.kind == "sql" and not (self.url_env or self.secrets_file):
+            raise ValueError(
+                "a sql source needs 'url_env' (the environment variable holding the "
+                "database URL) or 'secrets_file'; credentials never go in this file"
+            )
+        return self
+
+
+class HeaderSection(_Strict):
+    pressure: TagRef
+    temperature: TagRef | None = None
+    total_flow: TagRef | None = None
+    design_temperature: Annotated[float, _quantity("degC")] = 20.0
+
+
+class PumpPoint(_Strict):
+    flow: Flow
+    head: Length
+
+
+class PumpSection(_Strict):
+    curve: list[PumpPoint] = Field(min_length=3)
+    count: int = Field(default=1, ge=1, le=8)
+    speed: TagRef | None = None
+    design_speed: Fraction = 1.0
+    efficiency: Fraction = 0.70
+    running_pressure: Pressure = 50_000.0
+
+
+class PipeSpec(_Strict):
+    length: Length
+    inner_diameter: Length | None = None
+    nps: float | None = None
+    schedule: str = "40"
+    material: str | None = None
+    roughness: Length | None = None
+
+    @model_validator(mode="after")
+    def _size_given(self) -> PipeSpec:
+        if (self.inner_diameter is None) == (self.nps is None):
+            raise ValueError("give exactly one of 'inner_diameter' or 'nps' (with 'schedule')")
+        return self
+
+
+class ValveSpec(_Strict):
+    kvs: float | None = Field(default=None, gt=0, description="Kvs in m3/h at 1 bar")
+    cv: float | None = Field(default=None, gt=0, description="Cv in US gpm at 1 psi")
+    characteristic: Literal["linear", "equal_percentage", "quick_opening"] = "equal_percentage"
+    rangeability: float = Field(default=50.0, gt=1)
+    position: Fraction = 1.0
+    position_tag: TagRef | None = None
+
+    @model_validator(mode="after")
+    def _one_size(self) -> ValveSpec:
+        if (self.kvs is None) == (self.cv is None):
+            raise ValueError("give exactly one of 'kvs' [m3/h] or 'cv' [US gpm]")
+        return self
+
+
+class EquipmentSpec(_Strict):
+    rated_dp: Pressure
+    rated_flow: Flow
+    exponent: float = Field(default=1.9, ge=1.0, le=2.2)
+    name: str = ""
+
+
+class ElementSpec(_Strict):
+    """One entry of a branch's ``elements`` list: exactly one key."""
+
+    pipe: PipeSpec | None = None
+    fittings: dict[str, int] | None = None
+    loss_coefficient: float | None = Field(default=None, ge=0)
+    valve: ValveSpec | None = None
+    equipment: EquipmentSpec | None = None
+    elevation: Length | None = None
+
+    @model_validator(mode="after")
+    def _exactly_one(self) -> ElementSpec:
+        given = [k for k, v in self.__dict__.items() if v is not None]
+        if len(given) != 1:
+            raise ValueError(
+                "each element is a table with exactly one of pipe, fittings, "
+                f"loss_coefficient, valve, equipment, elevation (got {given or 'none'})"
+            )
+        return self
+
+
+class TerminationSpec(_Strict):
+    kind: Literal["open", "tank", "held_header", "return_header"]
+    elevation: Length = 0.0
+    base_elevation: Length | None = None
+    level: TagRef | Length | None = None
+    gas_pressure: Pressure = 0.0
+    pressure: TagRef | Pressure | None = None
+
+    @model_validator(mode="after")
+    def _kind_needs(self) -> TerminationSpec:
+        if self.kind == "tank" and self.level is None:
+            raise ValueError("a tank termination needs 'level' (a tag or a fixed level)")
+        if self.kind in ("held_header", "return_header") and self.pressure is None:
+            raise ValueError(f"a {self.kind} termination needs 'pressure' (a tag or a value)")
+        return self
+
+
+class BranchSection(_Strict):
+    name: str = Field(min_length=1)
+    description: str = ""
+    flow: TagRef | None = None
+    min_flow: Flow = 0.0
+    cleaning_limit: float = Field(default=1.5, gt=1.0)
+    termination: TerminationSpec
+    elements: list[ElementSpec] = Field(min_length=1)
+    check_valve: bool | None = None
+
+
+class AnalysisSection(_Strict):
+    window: Duration = 86_400.0
+    cleaning_limit: float = Field(default=1.5, gt=1.0)
+    min_samples: int = Field(default=30, ge=3)
+    low_flow_on_delay: Duration = 600.0
+    low_flow_off_delay: Duration = 300.0
+
+
+class ScheduleSection(_Strict):
+    """When the daemon works, in the site's local time.
+
+    The daily jobs default to early morning but outside 01:00–04:00, where daylight-saving
+    changes make local times repeat or vanish.
+    """
+
+    ingest_every: Duration = 900.0
+    analyze_at: str = "05:30"
+    report_at: str = "06:15"
+
+    @field_validator("analyze_at", "report_at")
+    @classmethod
+    def _clock(cls, value: str) -> str:
+        try:
+            hour, minute = (int(x) for x in value.split(":"))
+        except ValueError:
+            raise ValueError(f"{value!r} is not a time of day like '05:30'") from None
+        if not (0 <= hour < 24 and 0 <= minute < 60):
+            raise ValueError(f"{value!r} is not a time of day like '05:30'")
+        if 1 <= hour < 4:
+            raise ValueError(
+                f"{value!r} falls in 01:00-04:00, where daylight-saving changes repeat or "
+                "skip local times; pick a time outside that band"
+            )
+        return value
+
+
+class ReportSection(_Strict):
+    folder: str = "reports"
+
+
+class SiteFile(_Strict):
+    site: SiteSection
+    store: StoreSection = StoreSection()
+    source: SourceSection | None = None
+    header: HeaderSection
+    pump: PumpSection | None = None
+    analysis: AnalysisSection = AnalysisSection()
+    schedule: ScheduleSection = ScheduleSection()
+    report: ReportSection = ReportSection()
+    branch: list[BranchSection] = Field(min_length=1)
+
+    @model_validator(mode="after")
+    def _unique(self) -> SiteFile:
+        names = [b.name for b in self.branch]
+        dupes = sorted({n for n in names if names.count(n) > 1})
+        if dupes:
+            raise ValueError(f"branch names must be unique; repeated: {', '.join(dupes)}")
+        return self
+
+
+# ---------------------------------------------------------------------------------------
+# What the rest of branchwatch uses
+
+
+@dataclass(frozen=True)
+class BranchConfig:
+    """One branch: its model, its tags and its limits (SI)."""
+
+    name: str
+    description: str
+    model: Branch
+    flow_tag: str | None
+    level_tag: str | None
+    end_pressure_tag: str | None
+    valve_position_tag: str | None
+    min_flow_m3s: float
+    cleaning_limit: float
+    #: typical values of the logged conditions (level_m, end_pressure_pa, valve_position)
+    #: from the tags' ``nominal``: used by `curve` and when a tag has no data
+    nominal: Mapping[str, float] = field(default_factory=dict)
+
+    @property
+    def logged_conditions(self) -> dict[str, str]:
+        """Condition keyword → tag, for the conditions this branch logs."""
+        pairs = {
+            "level_m": self.level_tag,
+            "end_pressure_pa": self.end_pressure_tag,
+            "valve_position": self.valve_position_tag,
+        }
+        return {k: v for k, v in pairs.items() if v is not None}
+
+
+@dataclass(frozen=True)
+class Site:
+    """A validated site: model objects in SI plus what the daemon needs to run."""
+
+    path: Path
+    name: str
+    timezone: str
+    store_url: str
+    source: SourceSection | None
+    header_pressure_tag: str
+    header_temperature_tag: str | None
+    total_flow_tag: str | None
+    design_temperature_c: float
+    pump: PumpCurve | None
+    pump_count: int
+    pump_speed_tag: str | None
+    design_speed: float
+    pump_efficiency: float
+    running_pressure_pa: float
+    analysis: AnalysisSection
+    schedule: ScheduleSection
+    report_folder: Path
+    branches: tuple[BranchConfig, ...]
+    tags: Mapping[str, TagSpec] = field(default_factory=dict)
+
+    @property
+    def header(self) -> ParallelHeader:
+        return ParallelHeader([b.model for b in self.branches])
+
+    def branch(self, name: str) -> BranchConfig:
+        for b in self.branches:
+            if b.name == name:
+                return b
+        known = ", ".join(b.name for b in self.branches)
+        raise KeyError(f"no branch {name!r} at site {self.name!r}; branches: {known}")
+
+    @property
+    def window(self) -> timedelta:
+        return timedelta(seconds=self.analysis.window)
+
+
+def load_site(path: str | Path) -> Site:
+    """Read, validate and build the site in the TOML file at *path*."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError(f"{p}: no such file; pass the path of a site TOML file") from None
+    except OSError as exc:
+        raise ConfigError(f"{p}: cannot read ({exc.strerror})") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{p}: not valid TOML: {exc}") from None
+    return parse_site(data, path=p)
+
+
+def parse_site(data: Mapping[str, Any], *, path: Path | str = "<config>") -> Site:
+    """Validate a parsed TOML mapping and build the site (see `load_site`)."""
+    p = Path(path)
+    try:
+        doc = SiteFile.model_validate(data)
+    except ValidationError as exc:
+        raise ConfigError(_format_errors(p, exc)) from None
+    try:
+        return _build(doc, p)
+    except (ValueError, KeyError) as exc:
+        raise ConfigError(f"{p}: {exc}") from None
+
+
+def _format_errors(path: Path, exc: ValidationError) -> str:
+    lines = []
+    for err in exc.errors():
+        loc = _loc_text(err["loc"])
+        msg = err["msg"].removeprefix("Value error, ")
+        if err["type"] == "extra_forbidden":
+            msg = "unknown key (check the spelling against config/example-site.toml)"
+        elif err["type"] == "missing":
+            msg = "required key is missing"
+        lines.append(f"{path}: {loc}: {msg}" if loc else f"{path}: {msg}")
+    return "\n".join(lines)
+
+
+def _loc_text(loc: Sequence[int | str]) -> str:
+    out = ""
+    for part in loc:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        elif part in {"TagRef", "float", "function-before[parse(), float]"}:
+            continue  # pydantic's union member names: not part of the user's key path
+        else:
+            out += ("." if out else "") + str(part)
+    return out
+
+
+def _tag(ref: TagRef, kind: str, tags: dict[str, TagSpec]) -> str:
+    try:
+        convert = converter(ref.unit, kind)
+    except UnitError:
+        raise ValueError(
+            f"tag {ref.tag!r}: unit {ref.unit!r} is not a unit of {kind} "
+            f"(e.g. {_EXAMPLE_UNITS[kind]})"
+        ) from None
+    low = float(convert(ref.low)) if ref.low is not None else None
+    high = float(convert(ref.high)) if ref.high is not None else None
+    spec = TagSpec(tag=ref.tag, unit=ref.unit, kind=kind, low=low, high=high)
+    old = tags.get(ref.tag)
+    if old is not None and old != spec:
+        raise ValueError(f"tag {ref.tag!r} is configured twice with different units or kinds")
+    tags[ref.tag] = spec
+    return ref.tag
+
+
+_EXAMPLE_UNITS = {
+    "pressure": "bar, kPa, psi",
+    "flow": "m3/h, l/s, gpm",
+    "temperature": "degC, degF",
+    "level": "m, ft",
+    "position": "percent",
+    "speed": "percent",
+}
+
+
+def _nominal(ref: TagRef | None, kind: str) -> float | None:
+    if ref is None or ref.nominal is None:
+        return None
+    return float(converter(ref.unit, kind)(ref.nominal))
+
+
+def _build(doc: SiteFile, path: Path) -> Site:
+    tags: dict[str, TagSpec] = {}
+    header_p = _tag(doc.header.pressure, "pressure", tags)
+    header_t = _tag(doc.header.temperature, "temperature", tags) if doc.header.temperature else None
+    total_q = _tag(doc.header.total_flow, "flow", tags) if doc.header.total_flow else None
+
+    pump = None
+    speed_tag = None
+    if doc.pump is not None:
+        pump = PumpCurve(
+            [pt.flow for pt in doc.pump.curve],
+            [pt.head for pt in doc.pump.curve],
+            speed_ratio=doc.pump.design_speed,
+            count=doc.pump.count,
+        )
+        if doc.pump.speed is not None:
+            speed_tag = _tag(doc.pump.speed, "speed", tags)
+
+    branches = []
+    for i, sec in enumerate(doc.branch):
+        where = f"branch[{i}] ({sec.name})"
+        try:
+            branches.append(_build_branch(sec, tags))
+        except (ValueError, KeyError) as exc:
+            raise ValueError(f"{where}: {exc}") from None
+
+    store_url = _resolve_sqlite(doc.store.url, path.parent)
+    return Site(
+        path=path,
+        name=doc.site.name,
+        timezone=doc.site.timezone,
+        store_url=store_url,
+        source=doc.source,
+        header_pressure_tag=header_p,
+        header_temperature_tag=header_t,
+        total_flow_tag=total_q,
+        design_temperature_c=doc.header.design_temperature,
+        pump=pump,
+        pump_count=doc.pump.count if doc.pump else 0,
+        pump_speed_tag=speed_tag,
+        design_speed=doc.pump.design_speed if doc.pump else 1.0,
+        pump_efficiency=doc.pump.efficiency if doc.pump else 0.70,
+        running_pressure_pa=doc.pump.running_pressure if doc.pump else 50_000.0,
+        analysis=doc.analysis,
+        schedule=doc.schedule,
+        report_folder=(path.parent / doc.report.folder).resolve(),
+        branches=tuple(branches),
+        tags=tags,
+    )
+
+
+def _resolve_sqlite(url: str, base: Path) -> str:
+    """Make a relative SQLite path relative to the config file's folder."""
+    prefix = "sqlite:///"
+    if url.startswith(prefix) and not url.startswith(prefix + "/") and url != "sqlite://":
+        rel = url[len(prefix):]
+        if rel and rel != ":memory:":
+            return prefix + str((base / rel).resolve())
+    return url
+
+
+def _build_branch(sec: BranchSection, tags: dict[str, TagSpec]) -> BranchConfig:
+    elements: list[Any] = []
+    pipe_d: float | None = None
+    valve_tag = None
+    nominal: dict[str, float] = {}
+    for j, el in enumerate(sec.elements):
+        try:
+            built, diameter, tag = _build_element(el, pipe_d, tags)
+        except (ValueError, KeyError) as exc:
+            raise ValueError(f"elements[{j}]: {exc}") from None
+        elements.append(built)
+        if diameter is not None:
+            pipe_d = diameter
+        valve_tag = tag or valve_tag
+        if el.valve is not None and el.valve.position_tag is not None:
+            value = _nominal(el.valve.position_tag, "position")
+            nominal["valve_position"] = value if value is not None else el.valve.position
+
+    t = sec.termination
+    level_tag = end_tag = None
+    termination: Any
+    if t.kind == "open":
+        termination = OpenDischarge(elevation_m=t.elevation)
+    elif t.kind == "tank":
+        base = t.base_elevation if t.base_elevation is not None else t.elevation
+        if isinstance(t.level, TagRef):
+            level_tag = _tag(t.level, "level", tags)
+            nominal["level_m"] = _required_nominal(t.level, "level")
+            termination = Tank(base_elevation_m=base, level_m=None, gas_pressure_pa=t.gas_pressure)
+        else:
+            termination = Tank(
+                base_elevation_m=base, level_m=float(t.level or 0.0), gas_pressure_pa=t.gas_pressure
+            )
+    else:
+        cls = HeldHeader if t.kind == "held_header" else ReturnHeader
+        if isinstance(t.pressure, TagRef):
+            end_tag = _tag(t.pressure, "pressure", tags)
+            nominal["end_pressure_pa"] = _required_nominal(t.pressure, "pressure")
+            value = None
+        else:
+            value = t.pressure
+        termination = (
+            HeldHeader(set_pressure_pa=value, elevation_m=t.elevation)
+            if cls is HeldHeader
+            else ReturnHeader(pressure_pa=value, elevation_m=t.elevation)
+        )
+    flow_tag = _tag(sec.flow, "flow", tags) if sec.flow else None
+    model = Branch(sec.name, elements, termination, check_valve=sec.check_valve)
+    return BranchConfig(
+        name=sec.name,
+        description=sec.description,
+        model=model,
+        flow_tag=flow_tag,
+        level_tag=level_tag,
+        end_pressure_tag=end_tag,
+        valve_position_tag=valve_tag,
+        min_flow_m3s=sec.min_flow,
+        cleaning_limit=sec.cleaning_limit,
+        nominal=nominal,
+    )
+
+
+def _required_nominal(ref: TagRef, kind: str) -> float:
+    value = _nominal(ref, kind)
+    if value is None:
+        raise ValueError(
+            f"tag {ref.tag!r} needs 'nominal' (its typical value in {ref.unit}), used for "
+            "the design curve and when the tag has no data"
+        )
+    return value
+
+
+def _build_element(
+    el: ElementSpec, pipe_d: float | None, tags: dict[str, TagSpec]
+) -> tuple[Any, float | None, str | None]:
+    """Model element for one config entry, the pipe diameter it sets, its position tag."""
+    if el.pipe is not None:
+        ps = el.pipe
+        if ps.nps is not None:
+            pipe = Pipe.from_nominal(
+                ps.length, ps.nps, schedule=ps.schedule, material=ps.material or "carbon steel"
+            )
+            if ps.roughness is not None:
+                pipe = Pipe(ps.length, pipe.inner_diameter_m, ps.roughness)
+        else:
+            assert ps.inner_diameter is not None  # checked by PipeSpec
+            roughness = ps.roughness if ps.roughness is not None else 4.5e-5
+            pipe = Pipe(ps.length, ps.inner_diameter, roughness)
+        return pipe, pipe.inner_diameter_m, None
+    if el.fittings is not None or el.loss_coefficient is not None:
+        if pipe_d is None:
+            raise ValueError("fittings need a pipe before them in the list (for their size)")
+        return Fittings(pipe_d, el.fittings or {}, extra_k=el.loss_coefficient or 0.0), None, None
+    if el.valve is not None:
+        v = el.valve
+        tag = _tag(v.position_tag, "position", tags) if v.position_tag else None
+        if v.kvs is not None:
+            valve = ControlValve(
+                v.kvs, characteristic=v.characteristic, rangeability=v.rangeability,
+                position=v.position,
+            )
+        else:
+            assert v.cv is not None
+            valve = ControlValve.from_cv(
+                v.cv, characteristic=v.characteristic, rangeability=v.rangeability,
+                position=v.position,
+            )
+        return valve, None, tag
+    if el.equipment is not None:
+        e = el.equipment
+        return Equipment(e.rated_dp, e.rated_flow, exponent=e.exponent), None, None
+    assert el.elevation is not None
+    return Elevation(el.elevation), None, None
