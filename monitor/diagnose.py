@@ -48,6 +48,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from numpy.typing import NDArray
 
 from monitor.trend import (
     TheilSen,
@@ -560,10 +561,16 @@ class _Replay:
             if "identifiable" in rows.columns
             else np.zeros(len(rows), dtype=bool)
         )
-        self.r = np.array(rows["r"], dtype=float)  # a copy: back-pressure shifts edit it
+        self.r: NDArray[np.float64] = np.array(
+            rows["r"], dtype=np.float64
+        )  # a copy: back-pressure shifts edit it
         self.ws = list(rows["window_start"])
         self.we = list(rows["window_end"])
         self.t0 = self.ws[0] if self.ws else pd.Timestamp(0, tz="UTC")
+        # window starts in days since the first window [d]
+        self.day: NDArray[np.float64] = np.array(
+            [(w - self.t0) / _DAY for w in self.ws], dtype=np.float64
+        )
         self.open: dict[str, _Open] = {}
         self.done: list[Finding] = []
         self.first_segment = True
@@ -706,10 +713,10 @@ class _Replay:
         y = self.r[pts]
         if len(pts) < 7:
             return float(np.median(y))
-        t = np.array([self._days(self.ws[j]) for j in pts])
+        t = self.day[pts]
         slope, _ = sen_slope(t, y)
         # a falling level is not extrapolated: r does not foul backwards
-        return float(np.median(y) + max(slope, 0.0) * (self._days(self.ws[i]) - np.median(t)))
+        return float(np.median(y) + max(slope, 0.0) * (self.day[i] - np.median(t)))
 
     def _steps(self, i: int) -> None:
         assert self.base is not None
@@ -768,7 +775,7 @@ class _Replay:
         if len(pts) < 8:
             return False
         y = self.r[pts]
-        t = np.array([self._days(self.ws[j]) for j in pts])
+        t = self.day[pts]
         ms = mean_shift(y, min_size=3)
         line = np.polyfit(t, y, 1)
         sse_line = float(np.sum((y - np.polyval(line, t)) ** 2))
@@ -860,7 +867,7 @@ class _Replay:
                 return
             pts, fit = found
             ref = self._trend_ref(pts)
-            t_on = self._onset([self._days(self.ws[j]) for j in pts], self.r[pts])
+            t_on = self._onset(self.day[pts], self.r[pts])
             fouling = _Open("fouling", self.t0 + t_on * _DAY, self.we[i], 0.0, {}, "", ref=ref)
             self._open(fouling)
         # evidence from the windows since the onset (at least 6 of them)
@@ -868,7 +875,7 @@ class _Replay:
         if len(pts) < 6:
             pts = self.trend[-6:]
         pts = pts[-self.cfg.max_trend_windows :]
-        t = np.array([self._days(self.ws[j]) for j in pts])
+        t = self.day[pts]
         y = self.r[pts]
         fit = theil_sen(t, y)
         mk = mann_kendall(y)
@@ -926,9 +933,9 @@ class _Replay:
         return float(np.median(self.r[self.trend[:5]]))
 
     @staticmethod
-    def _onset(t_list: Sequence[float], y: np.ndarray) -> float:
+    def _onset(t_list: NDArray[np.float64], y: NDArray[np.float64]) -> float:
         """Onset of a rise: the knot of the best "flat, then straight line" fit [d]."""
-        t = np.asarray(t_list, dtype=float)
+        t = np.asarray(t_list, dtype=np.float64)
         best, t_best = math.inf, float(t[0])
         for knot in t[:-5]:
             a = np.column_stack([np.ones_like(t), np.clip(t - knot, 0.0, None)])
@@ -948,18 +955,22 @@ class _Replay:
         of ``min_rise_r``, which keeps the multiple looks from adding false findings.
         """
         n = len(self.trend)
+        ref = self._trend_ref(self.trend)
+        # cheap necessary condition first: the recent windows stand clearly above the
+        # reference (most windows of most branches stop here)
+        if float(np.median(self.r[self.trend[-7:]])) - ref < 0.5 * self.cfg.min_rise_r * ref:
+            return None
         for look in self.cfg.trend_lookbacks:
             if look > n and look != self.cfg.trend_lookbacks[0]:
                 break
             pts = self.trend[-min(look, n) :]
             if len(pts) < self.cfg.min_trend_windows:
                 continue
-            t = np.array([self._days(self.ws[j]) for j in pts])
+            t = self.day[pts]
             y = self.r[pts]
             slope, _ = sen_slope(t, y)
             if slope * (t[-1] - t[0]) < self.cfg.min_rise_r * float(np.median(y[:5])):
                 continue
-            ref = self._trend_ref(pts)
             level = float(np.median(y) + slope * (t[-1] - np.median(t)))
             assert self.base is not None
             scale = self.base.sigma_r * max(ref / self.base.r0, 1.0)

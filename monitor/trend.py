@@ -13,6 +13,7 @@ All functions are pure, work on numpy arrays, and return frozen dataclasses.
 
 from __future__ import annotations
 
+import functools
 import logging
 import math
 from dataclasses import dataclass
@@ -96,6 +97,12 @@ def theil_sen(t: ArrayLike, y: ArrayLike, *, confidence: float = 0.95) -> TheilS
     )
 
 
+@functools.lru_cache(maxsize=64)
+def _pairs(n: int) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
+    i, j = np.triu_indices(n, 1)
+    return i, j
+
+
 def sen_slope(t: ArrayLike, y: ArrayLike) -> tuple[float, float]:
     """Theil–Sen slope and intercept only (no interval): a fast path for short series.
 
@@ -119,7 +126,7 @@ def sen_slope(t: ArrayLike, y: ArrayLike) -> tuple[float, float]:
     yy = np.asarray(y, dtype=float)
     if tt.shape != yy.shape or tt.ndim != 1 or tt.size < 2:
         raise ValueError("t and y must be 1-D arrays of the same length >= 2")
-    i, j = np.triu_indices(tt.size, 1)
+    i, j = _pairs(tt.size)
     dt = tt[j] - tt[i]
     ok = dt != 0
     if not ok.any():
@@ -281,9 +288,7 @@ class Cusum:
     direction: int
 
 
-def cusum(
-    x: ArrayLike, *, target: float, sigma: float, k: float = 0.5, h: float = 5.0
-) -> Cusum:
+def cusum(x: ArrayLike, *, target: float, sigma: float, k: float = 0.5, h: float = 5.0) -> Cusum:
     """Page's (1954) tabular CUSUM.
 
         C⁺_i = max(0, z_i − k + C⁺_{i−1}),   C⁻_i = max(0, −z_i − k + C⁻_{i−1})
