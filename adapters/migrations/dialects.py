@@ -22,7 +22,7 @@ from sqlalchemy.dialects.mysql import insert as mysql_insert
 from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 
-from adapters.base import QUARANTINE_COLUMNS, READING_COLUMNS
+from adapters.base import QUARANTINE_COLUMNS, READING_COLUMNS, StoreError
 
 CHUNK = 20_000  # rows per executemany: bounds the parameter lists held in memory
 
@@ -74,13 +74,17 @@ def nullable(values: pd.Series) -> list[float | None]:
     return out
 
 
-def native_times(times: pd.Series, dialect: str) -> list[Any]:
-    """Driver-native UTC times for the bulk insert, formatted with numpy, not per row."""
-    if dialect == "postgresql":
-        return list(times.dt.to_pydatetime())
+def native_times(times: pd.Series, dialect: str) -> list[str]:
+    """UTC times as text each database parses, formatted by numpy rather than per row.
+
+    SQLAlchemy's SQLite storage format (space, 6 decimals) — which MariaDB/MySQL read as
+    DATETIME(6) too — and the same with ``+00`` for PostgreSQL's timestamptz.
+    """
     text = np.datetime_as_string(times.dt.tz_localize(None).to_numpy("datetime64[us]"), "us")
-    # SQLAlchemy's SQLite storage format (space, 6 decimals), which MariaDB parses too.
-    return list(np.char.replace(text, "T", " "))
+    text = np.char.replace(text, "T", " ")
+    if dialect == "postgresql":
+        text = np.char.add(text, "+00")
+    return list(text.tolist())
 
 
 def time_text(column: sa.ColumnElement[Any], dialect: str) -> sa.ColumnElement[Any]:
@@ -100,24 +104,26 @@ def raw_rows(conn: sa.Connection, query: sa.Select[Any]) -> list[Any]:
 
 
 def copy_readings_pg(conn: sa.Connection, columns: Mapping[str, list[Any]]) -> None:
-    """PostgreSQL with psycopg 3: COPY into a session temp table, then one INSERT … SELECT
-    that skips stored keys — several times faster than a parameterised executemany."""
+    """PostgreSQL with psycopg 3: COPY the (already anti-joined, so new) readings straight
+    into the table — several times faster than a parameterised executemany.
+
+    A concurrent writer storing the same keys meanwhile makes the COPY fail on the
+    primary key; the transaction then rolls back whole and `StoreError` says to retry.
+    """
     driver = conn.connection.driver_connection
     assert driver is not None
-    with driver.cursor() as cur:
-        cur.execute(
-            "CREATE TEMP TABLE IF NOT EXISTS bw_readings_stage "
-            "(LIKE readings INCLUDING DEFAULTS) ON COMMIT DELETE ROWS"
-        )
-        with cur.copy("COPY bw_readings_stage (tag, time, value, good) FROM STDIN") as copy:
-            for row in zip(*(columns[c] for c in ("tag", "time", "value", "good")),
-                           strict=True):
+    dbapi_error = conn.dialect.loaded_dbapi.Error
+    try:
+        with driver.cursor() as cur, cur.copy(
+            "COPY readings (tag, time, value, good) FROM STDIN"
+        ) as copy:
+            for row in zip(*(columns[c] for c in ("tag", "time", "value", "good")), strict=True):
                 copy.write_row(row)
-        cur.execute(
-            "INSERT INTO readings (tag, time, value, good) "
-            "SELECT tag, time, value, good FROM bw_readings_stage "
-            "ON CONFLICT (tag, time) DO NOTHING"
-        )
+    except dbapi_error as exc:
+        raise StoreError(
+            f"bulk load of readings failed ({exc}); nothing of the batch was stored — "
+            "another writer may have stored the same readings: run ingest again"
+        ) from exc
 
 
 def upsert_statement(

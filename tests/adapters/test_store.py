@@ -19,7 +19,7 @@ from alembic.autogenerate import compare_metadata
 from alembic.migration import MigrationContext
 
 from adapters import store as store_module
-from adapters.base import Batch, ResultsStore
+from adapters.base import Batch, ResultsStore, StoreError
 from adapters.migrations import tables
 from adapters.store import SqlStore
 
@@ -310,3 +310,21 @@ def test_alias_finds_the_store() -> None:
     assert ResultsStore.by_alias("sqlalchemy") is SqlStore
     with pytest.raises(KeyError, match="unknown store kind 'excel'; known: sqlalchemy"):
         ResultsStore.by_alias("excel")
+
+
+def test_a_concurrent_writer_never_doubles_readings(
+    store: SqlStore, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    tags = ["FT-203"]
+    store.store_batch(_batch(_readings(20, tags)), source="csv")
+    # Pretend the readings were not there when looked up (another writer stored them
+    # between the look-up and the insert): the insert must neither double nor lose any.
+    monkeypatch.setattr(store_module, "raw_rows", lambda conn, query: [])
+    try:
+        store.store_batch(_batch(_readings(25, tags), offset=300), source="csv")
+        monkeypatch.undo()
+    except StoreError:  # PostgreSQL's COPY refuses the batch whole; a rerun stores it
+        monkeypatch.undo()
+        assert store.cursors("csv")["inbox/a.csv"]["offset"] == 100
+        assert store.store_batch(_batch(_readings(25, tags), offset=300), source="csv") == 5
+    assert len(_all(store, tags)) == 25
