@@ -34,6 +34,7 @@ __all__ = [
     "SI_UNITS",
     "UnitError",
     "converter",
+    "from_si",
     "parse_quantity",
     "to_si",
     "ureg",
@@ -98,6 +99,20 @@ def converter(unit: str, kind_or_si: str) -> Callable[[npt.ArrayLike], np.ndarra
         return np.asarray(out, dtype=float) + offset
 
     return convert
+
+
+def from_si(values: npt.ArrayLike, unit: str, kind_or_si: str) -> np.ndarray:
+    """The inverse of `to_si`: SI values of *kind_or_si* expressed in *unit*.
+
+    >>> from_si([100000.0], "bar", "pressure").tolist()
+    [1.0]
+    """
+    arr = np.asarray(values, dtype=float)
+    forward = converter(unit, kind_or_si)
+    # every conversion here is affine: v_si = a·v + b
+    b = float(forward(0.0))
+    a = float(forward(1.0)) - b
+    return (arr - b) / a
 
 
 def to_si(values: npt.ArrayLike, unit: str, kind_or_si: str) -> np.ndarray:

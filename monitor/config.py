@@ -251,6 +251,10 @@ class BranchSection(_Strict):
 
 class AnalysisSection(_Strict):
     window: Duration = 86_400.0
+    #: samples are averaged onto a grid of this period before fitting
+    sample_period: Duration = 60.0
+    #: relative expanded (95 %) uncertainty of the flow meters, for the header balance
+    meter_uncertainty: float = Field(default=0.02, gt=0, lt=0.5)
     cleaning_limit: float = Field(default=1.5, gt=1.0)
     min_samples: int = Field(default=30, ge=3)
     low_flow_on_delay: Duration = 600.0
