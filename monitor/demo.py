@@ -142,7 +142,7 @@ def write_exports(
     frame = pd.DataFrame(columns, index=times)
     stamps = pd.Series(times.map(lambda t: t.isoformat()), index=times)
     files = rows = spoiled = 0
-    for day, part in frame.groupby(frame.index.date):
+    for day, part in frame.groupby(times.date):
         text = part.set_index(stamps[part.index].rename("timestamp")).to_csv(na_rep="")
         lines = text.splitlines(keepends=True)
         if spoil and files % 29 == 3 and len(lines) > 10:
