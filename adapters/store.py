@@ -114,6 +114,7 @@ MAINTENANCE_KINDS: tuple[str, ...] = (
     "repaired",
     "inspected",
 )
+_MIGRATE_LOCK_ID = 0x6277_6D69  # any constant; "bwmi" — shared by every branchwatch
 _IDENT = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,62}$")
 
 
@@ -242,10 +243,21 @@ class SqlStore(ResultsStore):
         cfg.set_main_option("script_location", str(_MIGRATIONS).replace("%", "%%"))
         try:
             with self._write() as conn:
+                # Two processes opening a new database at once (daemon and CLI) must not
+                # both create the tables: serialise on a server lock (SQLite: BEGIN
+                # IMMEDIATE already does).
+                if self.dialect == "postgresql":
+                    conn.exec_driver_sql(f"SELECT pg_advisory_xact_lock({_MIGRATE_LOCK_ID})")
+                elif self.dialect in ("mysql", "mariadb"):
+                    conn.exec_driver_sql("SELECT GET_LOCK('branchwatch_migrate', 60)")
                 cfg.attributes["connection"] = conn
-                command.upgrade(cfg, "head")
-        except sa.exc.SQLAlchemyError as exc:
-            raise StoreError(f"cannot migrate the results store schema: {exc}") from exc
+                try:
+                    command.upgrade(cfg, "head")
+                finally:
+                    if self.dialect in ("mysql", "mariadb"):
+                        conn.exec_driver_sql("SELECT RELEASE_LOCK('branchwatch_migrate')")
+        except StoreError as exc:
+            raise StoreError(f"cannot migrate the results store schema: {exc.__cause__}") from exc
 
     @contextmanager
     def _write(self) -> Iterator[sa.Connection]:

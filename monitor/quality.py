@@ -269,6 +269,8 @@ class ScreenResult:
         long = long[long["count"] > 0]
         out = long.sort_values(["day", "tag", "flag"]).reset_index(drop=True)
         out["count"] = out["count"].astype("int64")
+        for col in ("tag", "flag"):  # plain objects, as in readings frames
+            out[col] = out[col].astype(object)
         return out[["tag", "day", "flag", "count"]]
 
 

@@ -22,6 +22,7 @@ from adapters import store as store_module
 from adapters.base import Batch, ResultsStore, StoreError
 from adapters.migrations import tables
 from adapters.store import SqlStore
+from monitor.quality import TagLimits, screen
 
 T0 = datetime(2025, 3, 1, tzinfo=UTC)
 ALL_TABLES = {
@@ -328,3 +329,15 @@ def test_a_concurrent_writer_never_doubles_readings(
         assert store.cursors("csv")["inbox/a.csv"]["offset"] == 100
         assert store.store_batch(_batch(_readings(25, tags), offset=300), source="csv") == 5
     assert len(_all(store, tags)) == 25
+
+
+def test_screening_counts_round_trip(store: SqlStore) -> None:
+    values = np.full(2 * 1440, 0.03)
+    values[[5, 2000]] = 0.09  # one spike on each day
+    frame = _readings(2 * 1440, ["FT-203"]).assign(value=values)
+    counts = screen(frame, {"FT-203": TagLimits(kind="flow")}).health_counts()
+    store.add_data_health(counts)
+    back = store.data_health(T0, T0 + timedelta(days=2))
+    expected = counts.sort_values(["day", "tag", "flag"]).reset_index(drop=True)
+    pd.testing.assert_frame_equal(back, expected)
+    assert list(back.loc[back["flag"] == "spike", "count"]) == [1, 1]
