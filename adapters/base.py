@@ -64,6 +64,7 @@ __all__ = [
     "empty_quarantine",
     "empty_readings",
     "notifier_class",
+    "open_store",
     "source_class",
 ]
 
@@ -401,3 +402,10 @@ def source_class(alias: str) -> type[ReadingsSource]:
 def notifier_class(alias: str) -> type[Notifier]:
     """The `Notifier` implementation registered under *alias*."""
     return _lookup(Notifier._registry, alias, "notifier")
+
+
+def open_store(url: str, *, alias: str = "sqlalchemy") -> ResultsStore:
+    """Open the results store at *url* (creating or upgrading its tables)."""
+    cls: Any = ResultsStore.by_alias(alias)
+    store: ResultsStore = cls(url)
+    return store

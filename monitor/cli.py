@@ -13,10 +13,18 @@ import json
 import logging
 import sys
 from collections.abc import Callable, Sequence
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from adapters.base import BranchwatchAdapterError
+import pandas as pd
+
+from adapters.base import (
+    BranchwatchAdapterError,
+    ReadingsSource,
+    ResultsStore,
+    open_store,
+)
 from adapters.units import UnitError, parse_quantity
 from monitor.config import ConfigError, Site, load_site
 
@@ -163,7 +171,333 @@ def _cmd_curve(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-_VERBS: list[Callable[[Any], None]] = [_register_curve]
+# ---------------------------------------------------------------------------------------
+# shared plumbing
+
+
+def _open(site: Site) -> tuple[ResultsStore, ReadingsSource]:
+    from monitor.jobs import open_source
+
+    store = open_store(site.store_url)
+    try:
+        source = open_source(site)
+    except Exception:
+        store.close()
+        raise
+    return store, source
+
+
+def _parse_time(text: str, site: Site, what: str) -> datetime:
+    """A date or ISO time from the command line; naive means the site's local time."""
+    try:
+        ts = pd.Timestamp(text)
+    except (ValueError, TypeError):
+        raise UserError(f"{what} {text!r} is not a date or ISO time (e.g. 2026-05-01)") from None
+    if ts.tzinfo is None:
+        ts = ts.tz_localize(site.timezone, nonexistent="raise", ambiguous="raise")
+    return ts.tz_convert("UTC").to_pydatetime()
+
+
+def _run_recorded(store: ResultsStore, job: str, func: Callable[[], Any]) -> Any:
+    """Run *func*, recording the run (and its failure) in the store's job log."""
+    started = datetime.now(UTC)
+    store.record_job_run(job, started, None, "running")
+    try:
+        result = func()
+    except BaseException as exc:
+        store.record_job_run(job, started, datetime.now(UTC), "failed",
+                             {"error": f"{type(exc).__name__}: {exc}"})
+        raise
+    detail = result.to_json_dict() if hasattr(result, "to_json_dict") else {}
+    store.record_job_run(job, started, datetime.now(UTC), "ok", _jsonable(detail))
+    return result
+
+
+def _jsonable(value: Any) -> Any:
+    return json.loads(json.dumps(value, default=str))
+
+
+# ---------------------------------------------------------------------------------------
+# check
+
+
+def _register_check(verbs: Any) -> None:
+    _add_verb(
+        verbs, "check", _cmd_check, "validate a site file and reach its data source and store",
+        """\
+Validate the site file (every key, unit and tag), build each branch's model, open the
+results store (creating or upgrading its tables), and reach the readings source. Prints
+what it found; exits 2 when anything is wrong, naming what to fix.""",
+    )
+
+
+def _cmd_check(args: argparse.Namespace) -> int:
+    site = _site(args)
+    print(f"site file ok: {site.name} ({len(site.branches)} branches, {len(site.tags)} tags)")
+    problems: list[str] = []
+    try:
+        store, source = _open(site)
+    except (BranchwatchAdapterError, ImportError, ValueError, KeyError) as exc:
+        raise UserError(str(exc)) from None
+    try:
+        print(f"results store ok: {site.store_url.split('@')[-1]}")
+        problems = source.check()
+        print(f"readings source {source.name}: " + ("ok" if not problems else "PROBLEMS"))
+        for p in problems:
+            print(f"  - {p}")
+    finally:
+        source.close()
+        store.close()
+    return EXIT_USAGE if problems else EXIT_OK
+
+
+# ---------------------------------------------------------------------------------------
+# ingest
+
+
+def _register_ingest(verbs: Any) -> None:
+    p = _add_verb(
+        verbs, "ingest", _cmd_ingest, "read new readings from the source into the store",
+        """\
+One ingest pass: every export file (or database row) the store has not seen yet is read,
+converted to SI, and stored. Bad rows are quarantined with file, line and reason and never
+stop the pass. Running it twice stores nothing new; a pass killed part-way resumes where
+the last stored batch ended.""",
+    )
+    p.add_argument("--json", action="store_true", help="print the summary as JSON")
+
+
+def _cmd_ingest(args: argparse.Namespace) -> int:
+    from monitor.jobs import ingest
+
+    site = _site(args)
+    store, source = _open(site)
+    try:
+        summary = _run_recorded(store, "ingest", lambda: ingest(site, store, source))
+    finally:
+        source.close()
+        store.close()
+    if args.json:
+        print(json.dumps(summary.to_json_dict(), indent=2, default=str))
+        return EXIT_OK
+    print(f"read {summary.read} readings in {summary.batches} batches; stored "
+          f"{summary.stored} new, {summary.duplicates} already stored")
+    if summary.quarantined:
+        print(f"quarantined {summary.quarantined} rows:")
+        for reason, count in sorted(summary.quarantine_reasons.items(), key=lambda kv: -kv[1]):
+            print(f"  {count:>6}  {reason}")
+    for note, count in sorted(summary.notes.items()):
+        print(f"note: {note.replace('_', ' ')}: {count}")
+    return EXIT_OK
+
+
+# ---------------------------------------------------------------------------------------
+# analyze
+
+
+def _register_analyze(verbs: Any) -> None:
+    p = _add_verb(
+        verbs, "analyze", _cmd_analyze, "fit and diagnose a period (backfill)",
+        """\
+Fit every branch's resistance ratio over each analysis window in the period, store the
+fits, then diagnose the whole stored history: fouling, restriction, back-pressure change,
+low flow, instrument faults, header imbalance. Dates without a zone are site time.
+
+examples:
+  branchwatch analyze site.toml --from 2026-04-01 --to 2026-09-01 --findings findings.json
+  branchwatch analyze site.toml --from 2026-08-01 --to 2026-08-02 --fits fits.csv""",
+    )
+    p.add_argument("--from", dest="start", required=True, metavar="DATE", help="first day")
+    p.add_argument("--to", dest="end", required=True, metavar="DATE",
+                   help="end of the period (exclusive)")
+    p.add_argument("--findings", metavar="FILE", type=Path, help="write findings as JSON")
+    p.add_argument("--fits", metavar="FILE", type=Path, help="write the fits as CSV")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def _cmd_analyze(args: argparse.Namespace) -> int:
+    from tqdm import tqdm
+
+    from monitor.jobs import analyze
+
+    site = _site(args)
+    start = _parse_time(args.start, site, "--from")
+    end = _parse_time(args.end, site, "--to")
+    if end <= start:
+        raise UserError("--to must be after --from")
+    store, source = _open(site)
+    try:
+        with tqdm(total=None, unit="window", disable=args.quiet, file=sys.stderr,
+                  desc="analysing") as bar:
+            def progress(done: int, total: int) -> None:
+                bar.total = total
+                bar.update(done - bar.n)
+
+            summary = _run_recorded(
+                store, "analyze",
+                lambda: analyze(site, store, source, start, end, progress=progress),
+            )
+        if args.fits:
+            fits = store.read_fits(start=start, end=end)
+            _write_fits_csv(fits, args.fits)
+    finally:
+        source.close()
+        store.close()
+    print(f"{summary.windows} windows, {summary.fits} branch fits ({summary.fits_ok} usable), "
+          f"{len(summary.findings)} findings")
+    for f in summary.findings:
+        state = "open" if f.end is None else f"ended {f.end:%Y-%m-%d}"
+        print(f"  {f.branch:<16} {f.kind:<14} since {f.start:%Y-%m-%d %H:%M}Z  "
+              f"({state}, confidence {f.confidence:.2f}): {f.message}")
+    if args.findings:
+        args.findings.parent.mkdir(parents=True, exist_ok=True)
+        args.findings.write_text(
+            json.dumps([f.to_json_dict() for f in summary.findings], indent=2)
+        )
+        print(f"findings written to {args.findings}")
+    if args.fits:
+        print(f"fits written to {args.fits}")
+    return EXIT_OK
+
+
+_FIT_CSV_COLUMNS = (
+    "branch", "window_start", "window_end", "r", "r_low", "r_high", "samples", "status",
+    "s_pa", "identifiable", "flow_min_m3s", "flow_max_m3s", "mean_flow_m3s",
+    "residual_std_pa", "temperature_c", "header_pressure_pa", "message",
+)
+
+
+def _write_fits_csv(fits: pd.DataFrame, path: Path) -> None:
+    cols = [c for c in _FIT_CSV_COLUMNS if c in fits.columns]
+    out = fits[cols].copy()
+    for c in ("window_start", "window_end"):
+        out[c] = out[c].map(lambda t: t.isoformat())
+    path.parent.mkdir(parents=True, exist_ok=True)
+    out.to_csv(path, index=False)
+
+
+# ---------------------------------------------------------------------------------------
+# log (maintenance)
+
+
+_EVENT_KINDS = ("cleaned", "valve_set", "meter_calibrated", "other")
+
+
+def _register_log(verbs: Any) -> None:
+    p = _add_verb(
+        verbs, "log", _cmd_log, "record maintenance on a branch (cleaning resets the baseline)",
+        """\
+Record a maintenance event. A cleaning ends fouling and restriction findings and starts
+a new baseline for the branch; a valve setting ends restriction and back-pressure
+findings; a meter calibration ends instrument findings. Without an event, lists the log.
+
+examples:
+  branchwatch log site.toml B1-reactor --cleaned 2026-08-14
+  branchwatch log site.toml B2-compressor --valve-set "2026-06-10 14:00" --note "BV-210 reopened"
+  branchwatch log site.toml""",
+    )
+    p.add_argument("branch", nargs="?", help="branch name (omit to list the log)")
+    group = p.add_mutually_exclusive_group()
+    group.add_argument("--cleaned", metavar="TIME", help="the branch was cleaned")
+    group.add_argument("--valve-set", metavar="TIME", help="a valve on it was (re)set")
+    group.add_argument("--meter-calibrated", metavar="TIME", help="its meter was calibrated")
+    group.add_argument("--other", metavar="TIME", help="any other work (new baseline)")
+    p.add_argument("--note", default="", help="free text kept with the event")
+
+
+def _cmd_log(args: argparse.Namespace) -> int:
+    site = _site(args)
+    given = {k: getattr(args, k) for k in _EVENT_KINDS if getattr(args, k)}
+    store = open_store(site.store_url)
+    try:
+        if args.branch is None or not given:
+            events = store.maintenance(args.branch)
+            if events.empty:
+                print("no maintenance recorded")
+            for row in events.itertuples():
+                print(f"{row.time:%Y-%m-%d %H:%M}Z  {row.branch:<16} {row.kind:<17} {row.note}")
+            return EXIT_OK
+        site.branch(args.branch)  # unknown names are refused with the list of branches
+        kind, text = next(iter(given.items()))
+        when = _parse_time(text, site, f"--{kind.replace('_', '-')}")
+        store.add_maintenance(args.branch, kind, when, args.note)
+        print(f"recorded: {args.branch} {kind.replace('_', ' ')} at {when:%Y-%m-%d %H:%M}Z")
+    except KeyError as exc:
+        raise UserError(str(exc).strip('"')) from None
+    finally:
+        store.close()
+    return EXIT_OK
+
+
+# ---------------------------------------------------------------------------------------
+# status
+
+
+def _register_status(verbs: Any) -> None:
+    p = _add_verb(
+        verbs, "status", _cmd_status, "last runs, watermarks and data health",
+        "How far ingest and analysis have got, the last job runs, and open findings.",
+    )
+    p.add_argument("--json", action="store_true", help="print JSON")
+
+
+def _cmd_status(args: argparse.Namespace) -> int:
+    site = _site(args)
+    store = open_store(site.store_url)
+    try:
+        marks = store.watermarks()
+        runs = store.job_runs(limit=10)
+        findings = store.read_findings()
+        quarantine = store.quarantine_counts()
+    finally:
+        store.close()
+    open_findings = findings[findings["end"].isna()] if not findings.empty else findings
+    if args.json:
+        print(json.dumps({
+            "site": site.name,
+            "readings_last": _iso_map(marks.readings, "tag", "last"),
+            "fits_last": _iso_map(marks.fits, "branch", "last_window_end"),
+            "jobs": _jsonable(runs.to_dict(orient="records")),
+            "open_findings": len(open_findings),
+            "quarantine": quarantine,
+        }, indent=2, default=str))
+        return EXIT_OK
+    print(site.name)
+    print("\nnewest reading per tag:")
+    if marks.readings.empty:
+        print("  none yet: run 'branchwatch ingest'")
+    for r in marks.readings.itertuples():
+        print(f"  {r.tag:<10} {r.last:%Y-%m-%d %H:%M}Z")
+    print("\nlast analysed window per branch:")
+    if marks.fits.empty:
+        print("  none yet: run 'branchwatch analyze'")
+    for r in marks.fits.itertuples():
+        print(f"  {r.branch:<16} {r.last_window_end:%Y-%m-%d %H:%M}Z")
+    print("\nlast job runs:")
+    for r in runs.itertuples():
+        print(f"  {r.started:%Y-%m-%d %H:%M:%S}Z  {r.job:<8} {r.status}")
+    print(f"\nopen findings: {len(open_findings)}")
+    for r in open_findings.itertuples():
+        print(f"  {r.branch:<16} {r.kind:<14} since {r.start:%Y-%m-%d}: {r.message}")
+    if quarantine:
+        print("\nquarantined rows by reason: "
+              + ", ".join(f"{k} {v}" for k, v in sorted(quarantine.items())))
+    return EXIT_OK
+
+
+def _iso_map(frame: pd.DataFrame, key: str, time_col: str) -> dict[str, str]:
+    times = pd.to_datetime(frame[time_col], utc=True)
+    return {str(k): t.isoformat() for k, t in zip(frame[key], times, strict=True)}
+
+
+_VERBS: list[Callable[[Any], None]] = [
+    _register_check,
+    _register_curve,
+    _register_ingest,
+    _register_analyze,
+    _register_log,
+    _register_status,
+]
 
 
 if __name__ == "__main__":  # pragma: no cover

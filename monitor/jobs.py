@@ -10,22 +10,35 @@ a backfill maps `analyze_windows` over branches and days.
 from __future__ import annotations
 
 import logging
+import math
 from collections import Counter
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, timedelta
 from typing import Any
 from zoneinfo import ZoneInfo
 
+import numpy as np
 import pandas as pd
 
 from adapters.base import ReadingsSource, ResultsStore, source_class
+from monitor.analysis import analyze_window
 from monitor.config import Site
+from monitor.diagnose import (
+    BranchSettings,
+    DiagnosisSettings,
+    Finding,
+    diagnose,
+    finding_cost,
+)
 
 log = logging.getLogger(__name__)
 
 __all__ = [
+    "AnalyzeSummary",
     "IngestSummary",
+    "analyze",
+    "diagnose_site",
     "ingest",
     "open_source",
     "windows",
@@ -174,3 +187,155 @@ def windows(
         while t0 + size <= end:
             yield t0, t0 + size
             t0 += size
+
+
+# ---------------------------------------------------------------------------------------
+# analyze
+
+
+@dataclass(frozen=True)
+class AnalyzeSummary:
+    """What one analysis run did."""
+
+    windows: int
+    fits: int
+    fits_ok: int
+    readings: int
+    findings: list[Finding]
+
+
+def read_window(
+    site: Site, store: ResultsStore, source: ReadingsSource, start: datetime, end: datetime
+) -> pd.DataFrame:
+    """Readings of every site tag in [start, end): from the source when it keeps its data
+    (SQL), else from the store (ingested files)."""
+    tags = list(site.tags)
+    if source.keeps_readings:
+        return source.read(tags, start, end)
+    return store.read_readings(tags, start, end)
+
+
+def analyze(
+    site: Site,
+    store: ResultsStore,
+    source: ReadingsSource,
+    start: datetime,
+    end: datetime,
+    *,
+    progress: Callable[[int, int], None] | None = None,
+) -> AnalyzeSummary:
+    """Fit every branch over every whole window in [start, end), then diagnose.
+
+    Each window's fits, screening counts, balance and data health are written in one
+    transaction, so an interrupted backfill keeps every finished window and a rerun
+    rewrites the same rows. The diagnosis then runs over the whole stored history up to
+    *end* and upserts its findings on (branch, kind, start).
+    """
+    spans = list(windows(start, end, site.window, site.timezone))
+    n_fits = n_ok = n_read = 0
+    for i, (ws, we) in enumerate(spans):
+        readings = read_window(site, store, source, ws, we)
+        result = analyze_window(site, readings, ws, we)
+        store.store_window(
+            fits=result.fits, screening=result.screening, balance=result.balance,
+            health=result.health,
+        )
+        n_read += result.samples
+        n_fits += len(result.fits)
+        n_ok += sum(1 for f in result.fits if f.get("status") in ("ok", "not_identifiable"))
+        if progress is not None:
+            progress(i + 1, len(spans))
+    findings = diagnose_site(site, store, now=end)
+    log.info(
+        "analysis %s .. %s: %d windows, %d fits (%d usable), %d findings",
+        start, end, len(spans), n_fits, n_ok, len(findings),
+    )
+    return AnalyzeSummary(
+        windows=len(spans), fits=n_fits, fits_ok=n_ok, readings=n_read, findings=findings
+    )
+
+
+def diagnosis_settings(site: Site) -> DiagnosisSettings:
+    """Diagnosis thresholds with the site's per-branch limits."""
+    return DiagnosisSettings(
+        branches={
+            b.name: BranchSettings(
+                cleaning_limit_r=b.cleaning_limit,
+                min_flow_m3s=b.min_flow_m3s if b.min_flow_m3s > 0 else None,
+            )
+            for b in site.branches
+        }
+    )
+
+
+def diagnose_site(site: Site, store: ResultsStore, *, now: datetime) -> list[Finding]:
+    """Diagnose the stored history up to *now*, cost the findings, store them."""
+    history = store.read_fits(end=now)
+    if history.empty:
+        return []
+    findings = diagnose(
+        history,
+        maintenance=store.maintenance(),
+        settings=diagnosis_settings(site),
+        now=now,
+        screening=store.read_screening(end=now),
+        balance=store.read_balance(end=now),
+    )
+    findings = [_with_cost(site, history, f) for f in findings]
+    store.upsert_findings([_finding_row(f) for f in findings])
+    return findings
+
+
+def _finding_row(f: Finding) -> dict[str, Any]:
+    return {
+        "branch": f.branch, "kind": f.kind, "start": f.start, "detected": f.detected,
+        "end": f.end, "confidence": f.confidence, "evidence": dict(f.evidence),
+        "message": f.message,
+    }
+
+
+_RESISTANCE_KINDS = frozenset({"fouling", "restriction"})
+
+
+def _with_cost(site: Site, history: pd.DataFrame, f: Finding) -> Finding:
+    """Add lost flow and extra pump energy to a resistance finding's evidence."""
+    if f.kind not in _RESISTANCE_KINDS:
+        return f
+    try:
+        branch = site.branch(f.branch)
+    except KeyError:
+        return f
+    rows = history[(history["branch"] == f.branch) & history["r"].notna()]
+    if rows.empty:
+        return f
+    last = rows.iloc[-1]
+    p_s = float(last.get("header_pressure_pa", math.nan))
+    q_now = float(last.get("mean_flow_m3s", math.nan))
+    r_now = float(last["r"])
+    t_c = float(last.get("temperature_c", site.design_temperature_c))
+    if not all(math.isfinite(v) for v in (p_s, q_now, r_now, t_c)):
+        return f
+    cond: dict[str, float] = {"temperature_c": t_c, **branch.nominal}
+    end_p = last.get("end_pressure_pa")
+    if end_p is not None and math.isfinite(float(end_p)):
+        cond["end_pressure_pa"] = float(end_p)
+    r_base = float(f.evidence.get("r_baseline", 1.0))
+    if not math.isfinite(r_base) or r_base <= 0:
+        r_base = 1.0
+    q_clean = float(branch.model.flow(np.asarray(p_s), resistance_ratio=r_base, **cond))
+    rest, _valve = branch.model.dp_dynamic_parts(
+        np.asarray(q_now), temperature_c=t_c,
+        valve_position=cond.get("valve_position"),
+    )
+    cost = finding_cost(
+        flow_clean_m3s=q_clean, flow_now_m3s=q_now, dp_dynamic_clean_pa=float(rest),
+        r_now=r_now, r_baseline=r_base, pump_efficiency=site.pump_efficiency,
+    )
+    evidence = {
+        **f.evidence,
+        "lost_flow_m3h": cost.lost_flow_m3s * 3600.0,
+        "lost_flow_fraction": cost.lost_flow_fraction,
+        "extra_dp_bar": cost.extra_dp_pa / 1e5,
+        "extra_energy_kwh_per_day": cost.extra_energy_kwh_per_day,
+    }
+    return replace(f, evidence=evidence)
