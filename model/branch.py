@@ -37,20 +37,25 @@ from __future__ import annotations
 
 import logging
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
 
 from model import water
 from model.elements import (
+    M3H_PER_M3S,
+    PA_PER_BAR,
     ControlValve,
     Element,
     Elevation,
     Equipment,
     Fittings,
     Pipe,
+    friction_factor,
+    friction_factor_slope,
 )
 
 __all__ = [
@@ -60,12 +65,15 @@ __all__ = [
     "ReturnHeader",
     "Tank",
     "Termination",
+    "stacked_flows",
 ]
 
 log = logging.getLogger(__name__)
 
-_LN_TOL = 1e-13  # stop when |ln ΔP(Q) − ln ΔP_target| is below this (relative 1e-13)
-_MAX_ITER = 100  # the bracket halves at worst every other step: far beyond need
+_Y_MIN_PA = 1e-9
+_X_TOL = 1e-12  # on ln Q: a relative flow error below 1e-12
+_STEP_TOL = 1e-9  # a Newton step below this leaves an error of ~1e-18 (1e-10 at a kink)
+_MAX_ITER = 100  # bisection after 12 steps halves the bracket each time: ample
 
 
 def _finite(name: str, value: float | None, *, allow_none: bool = False) -> None:
@@ -460,92 +468,335 @@ class Branch:
 
         Zero at or below the threshold, and where a control valve is shut.
         """
-        p_s = np.asarray(header_pressure_pa, dtype=float)
-        if np.any(np.isnan(p_s)):
-            raise ValueError("header_pressure_pa must not be NaN")
+        p_s = _pressures(header_pressure_pa)
+        static, curve = self._curve(
+            temperature_c=temperature_c,
+            level_m=level_m,
+            end_pressure_pa=end_pressure_pa,
+            valve_position=valve_position,
+            resistance_ratio=resistance_ratio,
+        )
+        return _solve_curve(curve, p_s - static, self.name)
+
+    def _curve(
+        self,
+        *,
+        temperature_c: npt.ArrayLike = 20.0,
+        level_m: npt.ArrayLike | None = None,
+        end_pressure_pa: npt.ArrayLike | None = None,
+        valve_position: npt.ArrayLike | None = None,
+        resistance_ratio: npt.ArrayLike = 1.0,
+    ) -> tuple[np.ndarray, _Curve]:
+        """(P_static [Pa gauge], the dynamic curve as coefficients) at these conditions."""
         r = _ratio(resistance_ratio)
         t = np.asarray(temperature_c, dtype=float)
         rho = water.density(t)
         mu = water.viscosity(t)
         pos = self._position(valve_position)
         static = self._static(rho, _opt(level_m), _opt(end_pressure_pa))
-        # ΔP at the reference flow, on the conditions' own shape (often scalars): it
-        # gives the root finder its first guess without an evaluation per pressure.
-        rest_ref, valve_ref = self._parts(np.asarray(self._q_ref), rho, mu, pos)
-        dp_ref = r * rest_ref + valve_ref
-        arrays = [p_s - static, r, rho, mu, dp_ref] + ([] if pos is None else [pos])
-        b = np.broadcast_arrays(*arrays)
-        y, r_b, rho_b, mu_b, dp_ref_b = b[0], b[1], b[2], b[3], b[4]
-        pos_b = None if pos is None else b[5]
-        open_ = (y > 1e-290) & (dp_ref_b < np.inf)  # a shut valve passes nothing
-        q = np.zeros(y.shape)
-        if not np.any(open_):
-            return q
-        if np.all(open_):
-            q = self._solve(y, r_b, rho_b, mu_b, pos_b, dp_ref_b)
-        else:
-            sub = None if pos_b is None else pos_b[open_]
-            q[open_] = self._solve(
-                y[open_], r_b[open_], rho_b[open_], mu_b[open_], sub, dp_ref_b[open_]
+        # ΔP/ρ = quad·Q² + r·Σ pipes kp·f(Q·gp, ep)·Q² + r·Σ equipment a·Q^n; every
+        # coefficient is fixed by the conditions, so it is computed once, not per step.
+        quad = r * self._k_over_a2 * 0.5
+        for v in self._valves:
+            kv = v._kv_fixed if pos is None else v._kv(pos)
+            with np.errstate(divide="ignore"):
+                c = (PA_PER_BAR * M3H_PER_M3S**2 / v.reference_density) / np.square(kv)
+            quad = quad + (r * c if pos is None else c)
+        pipes = tuple(
+            (
+                r * (0.5 * p.length_m / (p.inner_diameter_m * p.area_m2**2)),
+                (rho / mu) * (4.0 / (math.pi * p.inner_diameter_m)),
+                np.asarray(p.roughness_m / p.inner_diameter_m),
             )
-        return q
+            for p in self._pipes
+        )
+        equipment = tuple(
+            (
+                r * (e.rated_dp_pa / e.rated_density) / e.rated_flow_m3s**e.exponent,
+                np.asarray(e.exponent),
+            )
+            for e in self._equipment
+        )
+        curve = _Curve(rho, np.asarray(quad), pipes, equipment, np.asarray(self._q_ref))
+        return static, curve
 
-    def _solve(
-        self,
-        y: np.ndarray,
-        r: np.ndarray,
-        rho: np.ndarray,
-        mu: np.ndarray,
-        pos: np.ndarray | None,
-        dp_ref: np.ndarray,
-    ) -> np.ndarray:
-        """Q with r·rest(Q) + valve(Q) = y > 0, on ln Q, bracketed.
 
-        ln ΔP(ln Q) has slope >= 1 everywhere (every element's drop grows at least in
-        proportion to Q: laminar friction exactly so, equipment exponent >= 1), so from
-        any x0 with residual g0 = ln ΔP(x0) − ln y the point x0 − g0 lies on the other
-        side of the root: two evaluations give a guaranteed bracket.
-        """
-        ln_y = np.log(y)
+@dataclass(frozen=True)
+class _Curve:
+    """Dynamic ΔP(Q) of one branch, or a stack of branches along axis 0, as coefficients.
 
-        def resid(x: np.ndarray) -> np.ndarray:
-            rest, valve = self._parts(np.exp(x), rho, mu, pos)
-            # the floor keeps ln finite where exp(x) underflows; the sign stays right
-            return np.asarray(np.log(np.maximum(r * rest + valve, 1e-300)) - ln_y)
+    ΔP = ρ·(quad·Q² + Σ kp·f(Q·gp, ep)·Q² + Σ a·Q^n), f from `friction_factor`.
+    Every array broadcasts against the flows.
+    """
 
-        # first guess as if ΔP ∝ Q² (close for turbulent branches)
-        x0 = math.log(self._q_ref) + 0.5 * (ln_y - np.log(dp_ref))
-        f0 = resid(x0)
-        x1 = x0 - f0
-        f1 = resid(x1)
-        swap = np.abs(f0) < np.abs(f1)
-        x0, x1 = np.where(swap, x1, x0), np.where(swap, x0, x1)
-        f0, f1 = np.where(swap, f1, f0), np.where(swap, f0, f1)
-        done = np.abs(f1) <= _LN_TOL
-        for _ in range(_MAX_ITER):
-            if np.all(done):
+    rho: np.ndarray
+    quad: np.ndarray
+    pipes: tuple[tuple[np.ndarray, np.ndarray, np.ndarray], ...]
+    equipment: tuple[tuple[np.ndarray, np.ndarray], ...]
+    q_ref: np.ndarray
+
+    def dp(self, x: np.ndarray) -> np.ndarray:
+        """ΔP [Pa] at ln Q = *x* (ln of [m^3/s])."""
+        q = np.exp(x)
+        q2 = q * q
+        total = self.quad * q2
+        for k, g, e in self.pipes:
+            total = total + k * friction_factor(q * g, e) * q2
+        for a, n in self.equipment:
+            total = total + a * np.exp(n * x)
+        return np.asarray(self.rho * total)
+
+    def dp_slope(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(ΔP [Pa], d ln ΔP / d ln Q [-]) at ln Q = *x*."""
+        q = np.exp(x)
+        q2 = q * q
+        total = self.quad * q2
+        d_total = 2.0 * total
+        for k, g, e in self.pipes:
+            f, sf = friction_factor_slope(q * g, e)
+            term = k * f * q2
+            total = total + term
+            d_total = d_total + term * (2.0 + sf)
+        for a, n in self.equipment:
+            term = a * np.exp(n * x)
+            total = total + term
+            d_total = d_total + n * term
+        with np.errstate(divide="ignore", invalid="ignore"):
+            slope = d_total / total
+        return np.asarray(self.rho * total), np.asarray(slope)
+
+
+_CHUNK = 1 << 15  # elements per block: the temporaries stay in cache (256 kB each)
+
+
+def _map_curve(curve: _Curve, fn: Callable[[np.ndarray], np.ndarray]) -> _Curve:
+    return _Curve(
+        fn(curve.rho),
+        fn(curve.quad),
+        tuple((fn(k), fn(g), fn(e)) for k, g, e in curve.pipes),
+        tuple((fn(a), fn(n)) for a, n in curve.equipment),
+        fn(curve.q_ref),
+    )
+
+
+def _arrays(curve: _Curve) -> list[np.ndarray]:
+    out = [curve.rho, curve.quad, curve.q_ref]
+    for k, g, e in curve.pipes:
+        out += [k, g, e]
+    for a, n in curve.equipment:
+        out += [a, n]
+    return [np.asarray(a) for a in out]
+
+
+def _solve_curve(curve: _Curve, y: np.ndarray, name: str) -> np.ndarray:
+    """`_solve_block` over blocks of at most `_CHUNK` elements.
+
+    On a million elements every numpy temporary is a fresh 8 MB allocation that misses
+    the cache; blocks of 32 k elements run several times faster and let blocks that
+    converge early stop early.
+    """
+    full = np.broadcast_shapes(np.shape(y), *(a.shape for a in _arrays(curve)))
+    size = math.prod(full)
+    if size <= _CHUNK:
+        return _solve_block(curve, y, name)
+    nd = len(full)
+
+    def pad(a: np.ndarray) -> np.ndarray:
+        a = np.asarray(a)
+        return a.reshape((1,) * (nd - a.ndim) + a.shape)
+
+    out = np.empty(full)
+    inner = math.prod(full[1:])
+    if nd >= 2 and full[0] > 1 and inner <= _CHUNK:
+        rows = max(1, _CHUNK // inner)
+        for i in range(0, full[0], rows):
+
+            def take(a: np.ndarray, i: int = i) -> np.ndarray:
+                a = pad(a)
+                return a if a.shape[0] == 1 else a[i : i + rows]
+
+            out[i : i + rows] = _solve_block(_map_curve(curve, take), take(y), name)
+        return out
+    flat = out.reshape(-1)
+    for i in range(0, size, _CHUNK):
+
+        def cut(a: np.ndarray, i: int = i) -> np.ndarray:
+            a = np.asarray(a)
+            if a.size == 1:
+                return a.reshape(())
+            return np.broadcast_to(a, full).reshape(-1)[i : i + _CHUNK]
+
+        flat[i : i + _CHUNK] = _solve_block(_map_curve(curve, cut), cut(y), name)
+    return out
+
+
+@dataclass(frozen=True)
+class _Keep:
+    """Select the elements still being solved (scalars pass through)."""
+
+    mask: np.ndarray
+
+    def __call__(self, a: np.ndarray) -> np.ndarray:
+        return a if a.ndim == 0 else a[self.mask]
+
+
+def _solve_block(curve: _Curve, y: np.ndarray, name: str) -> np.ndarray:
+    """Q >= 0 with ΔP_dyn(Q) = y where y > 0 (zero elsewhere, and where a valve is shut).
+
+    Safeguarded Newton on x = ln Q with residual g = ln ΔP(x) − ln y and the analytic
+    slope s = d ln ΔP/d ln Q. ln ΔP rises with slope >= 1 everywhere (every element's
+    drop grows at least in proportion to Q: laminar friction exactly so, equipment
+    exponents >= 1), so each evaluated point also bounds the root from both sides:
+    it lies between x and x − g. The bracket is the intersection of those bounds; a
+    Newton step that leaves it, or any step after many, is replaced by bisection, so the
+    iteration converges on any monotone curve, kinks (laminar–turbulent) included.
+    Elements drop out of the arrays as they converge.
+    """
+    shape = np.broadcast_shapes(np.shape(y), *(a.shape for a in _arrays(curve)))
+
+    def flat(a: np.ndarray) -> np.ndarray:
+        a = np.asarray(a)
+        return a.reshape(()) if a.size == 1 else np.broadcast_to(a, shape).reshape(-1)
+
+    curve = _map_curve(curve, flat)
+    yv = np.broadcast_to(y, shape).reshape(-1)
+    shut = ~np.isfinite(np.broadcast_to(curve.quad, yv.shape))  # a valve on its seat
+    # Below 1 nPa of driving pressure (far under any gauge's resolution) the flow is
+    # taken as zero: there Q² would underflow and ΔP(Q) could not be evaluated.
+    idx = np.flatnonzero((yv > _Y_MIN_PA) & ~shut)
+    q_out = np.zeros(yv.shape)
+    if idx.size == 0:
+        return q_out.reshape(shape)
+    c = _map_curve(curve, _Keep(idx))
+    ln_y = np.log(yv[idx])
+    # First guess: one Newton step from the reference flow, on the coefficients' own
+    # shape (a single number per branch when the conditions are scalars).
+    x_ref = np.log(c.q_ref)
+    d_ref, s_ref = c.dp_slope(np.asarray(x_ref))
+    x = x_ref + (ln_y - np.log(np.maximum(d_ref, 1e-300))) / np.clip(s_ref, 1.0, None)
+    x = np.broadcast_to(x, ln_y.shape).copy()
+    lo = np.full(ln_y.shape, -np.inf)
+    hi = np.full(ln_y.shape, np.inf)
+    todo = np.arange(idx.size)
+    x_out = np.empty(idx.size)
+    for it in range(_MAX_ITER):
+        d, s = c.dp_slope(x)
+        # the floor keeps ln finite where exp(x) underflows; the sign stays right
+        g = np.log(np.maximum(d, 1e-300)) - ln_y
+        lo, hi = _narrow(lo, hi, x, g)
+        step = g / np.clip(s, 1.0, None)
+        x_new = x - step
+        bisect = ~((x_new > lo) & (x_new < hi)) | (it >= 12)
+        x_new = np.where(bisect, 0.5 * (lo + hi), x_new)
+        # Newton's next error is about (step)²: a step this small is final unevaluated
+        fin = (~bisect & (np.abs(step) <= _STEP_TOL)) | (g == 0.0) | (hi - lo <= _X_TOL)
+        x_new = np.where(g == 0.0, x, x_new)
+        if np.any(fin):
+            x_out[todo[fin]] = x_new[fin]
+            keep = ~fin
+            todo = todo[keep]
+            if todo.size == 0:
                 break
-            denom = f1 - f0
-            with np.errstate(divide="ignore", invalid="ignore"):
-                x2 = np.where(done | (denom == 0), x1, x1 - f1 * (x1 - x0) / denom)
-            f2 = resid(x2)
-            crossed = f2 * f1 < 0
-            # Anderson–Björck: shrink the stale end's residual so the bracket closes
-            # from both sides instead of creeping from one (plain false position).
-            m = np.where(f1 != 0, 1.0 - f2 / np.where(f1 != 0, f1, 1.0), 0.5)
-            m = np.where(m > 0, m, 0.5)
-            x0 = np.where(crossed, x1, x0)
-            f0 = np.where(crossed, f1, np.where(done, f0, f0 * m))
-            x1, f1 = np.where(done, x1, x2), np.where(done, f1, f2)
-            done = done | (np.abs(f1) <= _LN_TOL) | (np.abs(x1 - x0) <= 1e-14 * np.abs(x1))
-        else:
-            log.warning(
-                "branch %s: flow inversion stopped after %d iterations, worst residual %.2e",
-                self.name,
-                _MAX_ITER,
-                float(np.max(np.abs(f1))),
+            x_new, ln_y, lo, hi = x_new[keep], ln_y[keep], lo[keep], hi[keep]
+            c = _map_curve(c, _Keep(keep))
+        x = x_new
+    else:
+        log.warning(
+            "branch %s: flow inversion stopped after %d iterations for %d points",
+            name,
+            _MAX_ITER,
+            todo.size,
+        )
+        x_out[todo] = x
+    q_out[idx] = np.exp(x_out)
+    return q_out.reshape(shape)
+
+
+def stacked_flows(
+    branches: Sequence[Branch],
+    header_pressure_pa: npt.ArrayLike,
+    conditions: Sequence[Mapping[str, Any]],
+) -> list[np.ndarray]:
+    """Flows [m^3/s] of many branches at the same header pressures [Pa gauge], at once.
+
+    The same answer as ``[b.flow(p, **c) for b, c in zip(branches, conditions)]``, but
+    the branches' curves are stacked along a new first axis and solved together, so
+    numpy works on one large array instead of many small ones (a system curve of a
+    thousand branches at a thousand pressures costs about as much as one branch at a
+    million).
+    """
+    if len(branches) != len(conditions):
+        raise ValueError("conditions must hold one mapping per branch")
+    p_s = _pressures(header_pressure_pa)
+    pairs = zip(branches, conditions, strict=True)
+    prepared = [b._curve(**c) for b, c in pairs]
+    if not prepared:
+        return []
+    shape = np.broadcast_shapes(
+        p_s.shape, *(np.broadcast(s, c.quad).shape for s, c in prepared)
+    )
+    n = len(prepared)
+    lead = (n,) + (1,) * len(shape)
+
+    def stack(arrays: Sequence[np.ndarray]) -> np.ndarray:
+        if all(a.size == 1 for a in arrays):
+            return np.array([float(a.reshape(())) for a in arrays]).reshape(lead)
+        return np.stack([np.broadcast_to(a, shape) for a in arrays])
+
+    curves = [c for _, c in prepared]
+    n_pipes = max(len(c.pipes) for c in curves)
+    n_equip = max(len(c.equipment) for c in curves)
+    # padding: a pipe of zero length (Re kept turbulent so f stays finite), and
+    # equipment with a zero rated drop
+    pad_pipe = (np.asarray(0.0), np.asarray(1e6), np.asarray(0.0))
+    pad_equip = (np.asarray(0.0), np.asarray(1.0))
+    pipes = tuple(
+        tuple(
+            stack([np.asarray((c.pipes[k] if k < len(c.pipes) else pad_pipe)[j]) for c in curves])
+            for j in range(3)
+        )
+        for k in range(n_pipes)
+    )
+    equipment = tuple(
+        tuple(
+            stack(
+                [
+                    np.asarray((c.equipment[k] if k < len(c.equipment) else pad_equip)[j])
+                    for c in curves
+                ]
             )
-        return np.asarray(np.exp(x1))
+            for j in range(2)
+        )
+        for k in range(n_equip)
+    )
+    stacked = _Curve(
+        stack([np.asarray(c.rho) for c in curves]),
+        stack([np.asarray(c.quad) for c in curves]),
+        pipes,  # type: ignore[arg-type]
+        equipment,  # type: ignore[arg-type]
+        stack([np.asarray(c.q_ref) for c in curves]),
+    )
+    static = stack([np.asarray(s) for s, _ in prepared])
+    q = _solve_curve(stacked, p_s - static, "stack")
+    return [q[i] for i in range(n)]
+
+
+def _pressures(header_pressure_pa: npt.ArrayLike) -> np.ndarray:
+    p_s = np.asarray(header_pressure_pa, dtype=float)
+    if np.any(np.isnan(p_s)):
+        raise ValueError("header_pressure_pa must not be NaN")
+    return p_s
+
+
+def _narrow(
+    lo: np.ndarray, hi: np.ndarray, x: np.ndarray, f: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Shrink the bracket [lo, hi] with the point (x, f): root in [x − f, x] or [x, x − f]."""
+    below = f < 0
+    return (
+        np.maximum(lo, np.where(below, x, x - f)),
+        np.minimum(hi, np.where(below, x - f, x)),
+    )
 
 
 def _ratio(resistance_ratio: npt.ArrayLike) -> np.ndarray:

@@ -42,6 +42,7 @@ __all__ = [
     "Pipe",
     "colebrook_clamond",
     "friction_factor",
+    "friction_factor_slope",
 ]
 
 RE_LAMINAR = 2000.0  # below: Hagen–Poiseuille, f = 64/Re
@@ -152,21 +153,58 @@ def friction_factor(re: npt.ArrayLike, rel_roughness: npt.ArrayLike) -> np.ndarr
     """
     re_a = np.asarray(re, dtype=float)
     ed = np.asarray(rel_roughness, dtype=float)
-    if np.all(re_a >= RE_TURBULENT):  # the usual case in cooling water: one pass
-        return colebrook_clamond(re_a, ed)
-    re_b, ed_b = np.broadcast_arrays(re_a, ed)
-    f = np.empty(re_b.shape)
-    turb = re_b >= RE_TURBULENT
-    f[turb] = colebrook_clamond(re_b[turb], ed_b[turb])
-    lam = re_b <= RE_LAMINAR
+    turb = colebrook_clamond(np.maximum(re_a, RE_TURBULENT), ed)
+    if re_a.size and np.min(re_a) >= RE_TURBULENT:  # the usual case in cooling water
+        return turb
+    f4000 = colebrook_clamond(RE_TURBULENT, ed)
+    w = np.clip((re_a - RE_LAMINAR) / (RE_TURBULENT - RE_LAMINAR), 0.0, 1.0)
+    trans = (1.0 - w) * (64.0 / RE_LAMINAR) + w * f4000
     with np.errstate(divide="ignore"):
-        f[lam] = 64.0 / re_b[lam]
-    trans = ~(turb | lam)
-    if np.any(trans):
-        f4000 = colebrook_clamond(RE_TURBULENT, ed_b[trans])
-        w = (re_b[trans] - RE_LAMINAR) / (RE_TURBULENT - RE_LAMINAR)
-        f[trans] = (1.0 - w) * (64.0 / RE_LAMINAR) + w * f4000
-    return f
+        lam = 64.0 / re_a
+    return np.asarray(
+        np.where(re_a >= RE_TURBULENT, turb, np.where(re_a <= RE_LAMINAR, lam, trans))
+    )
+
+
+def friction_factor_slope(
+    re: npt.ArrayLike, rel_roughness: npt.ArrayLike
+) -> tuple[np.ndarray, np.ndarray]:
+    """Darcy friction factor and its log-slope d ln f / d ln Re [-], vectorised.
+
+    Turbulent: differentiating Colebrook, 1/√f = −2·log10(u), u = ε/(3.7D) + 2.51/(Re√f),
+    gives d ln f/d ln Re = −2c/(1 + c) with c = (2/ln 10)·2.51/(Re·ε/(3.7D) + 2.51/√f).
+    Laminar: −1. Transition: the slope of the linear interpolation (`friction_factor`).
+    The branch solver uses it for Newton steps on ln Q.
+
+    >>> f, s = friction_factor_slope([1000.0, 1e5], 0.0)
+    >>> s.round(4).tolist()
+    [-1.0, -0.2087]
+    """
+    re_a = np.asarray(re, dtype=float)
+    ed = np.asarray(rel_roughness, dtype=float)
+    f = colebrook_clamond(np.maximum(re_a, RE_TURBULENT), ed)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        c = (2.0 / math.log(10.0) * 2.51) / (re_a * ed / 3.7 + 2.51 / np.sqrt(f))
+    slope = -2.0 * c / (1.0 + c)
+    if not np.any(re_a < RE_TURBULENT):  # the usual case: no laminar or transitional flow
+        return f, slope
+    # laminar and transitional points only: few, so index them instead of computing all
+    shape = np.broadcast(re_a, ed).shape
+    low = np.broadcast_to(re_a < RE_TURBULENT, shape)
+    f, slope = np.array(np.broadcast_to(f, shape)), np.array(np.broadcast_to(slope, shape))
+    re_l = np.broadcast_to(re_a, shape)[low]
+    ed_l = np.broadcast_to(ed, shape)[low]
+    f4000 = colebrook_clamond(RE_TURBULENT, ed_l)
+    w = np.clip((re_l - RE_LAMINAR) / (RE_TURBULENT - RE_LAMINAR), 0.0, 1.0)
+    lam = re_l <= RE_LAMINAR
+    with np.errstate(divide="ignore", invalid="ignore"):
+        f_l = np.where(lam, 64.0 / re_l, (1.0 - w) * (64.0 / RE_LAMINAR) + w * f4000)
+        s_l = np.where(
+            lam, -1.0, re_l * (f4000 - 64.0 / RE_LAMINAR) / (RE_TURBULENT - RE_LAMINAR) / f_l
+        )
+    f[low] = f_l
+    slope[low] = s_l
+    return f, slope
 
 
 # --------------------------------------------------------------------------- pipe

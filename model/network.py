@@ -38,7 +38,7 @@ from scipy.interpolate import PchipInterpolator
 from scipy.optimize import brentq
 
 from model import water
-from model.branch import Branch, HeldHeader, ReturnHeader
+from model.branch import Branch, HeldHeader, ReturnHeader, stacked_flows
 
 __all__ = [
     "BranchLink",
@@ -115,7 +115,8 @@ class ParallelHeader:
         """Flow [m^3/s] of each branch at header pressures [Pa gauge]."""
         cond = self._conditions(conditions)
         p = np.asarray(header_pressure_pa, dtype=float)
-        return {b.name: b.flow(p, **cond[b.name]) for b in self.branches}
+        flows = stacked_flows(self.branches, p, [cond[b.name] for b in self.branches])
+        return {b.name: q for b, q in zip(self.branches, flows, strict=True)}
 
     def total_flow(
         self, header_pressure_pa: npt.ArrayLike, conditions: Conditions | None = None

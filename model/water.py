@@ -25,6 +25,8 @@ what a plant flow meter resolves.
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 import numpy as np
 import numpy.typing as npt
 
@@ -86,6 +88,15 @@ def _kell(t90: np.ndarray) -> np.ndarray:
     return np.asarray(num / (1.0 + _KELL_DEN * t))
 
 
+@lru_cache(maxsize=1024)
+def _scalar(t: float) -> tuple[float, float]:
+    # A site runs at a handful of temperatures; the branch solver asks for the same
+    # one again and again: answer scalars from a cache.
+    ta = _checked_temperature(t)
+    rho = _kell(ta)
+    return float(rho), float(_viscosity_from(ta, rho))
+
+
 def density(temperature_c: npt.ArrayLike) -> np.ndarray:
     """Density of liquid water at 1 atm, Kell (1975).
 
@@ -107,6 +118,8 @@ def density(temperature_c: npt.ArrayLike) -> np.ndarray:
     >>> density([4.0, 50.0]).round(2).tolist()
     [999.97, 988.03]
     """
+    if isinstance(temperature_c, float | int) or np.ndim(temperature_c) == 0:
+        return np.asarray(_scalar(float(temperature_c))[0])  # type: ignore[arg-type]
     return _kell(_checked_temperature(temperature_c))
 
 
@@ -147,5 +160,7 @@ def viscosity(temperature_c: npt.ArrayLike) -> np.ndarray:
     >>> (viscosity([5.0, 40.0]) * 1e3).round(4).tolist()
     [1.5182, 0.6527]
     """
+    if isinstance(temperature_c, float | int) or np.ndim(temperature_c) == 0:
+        return np.asarray(_scalar(float(temperature_c))[1])  # type: ignore[arg-type]
     t = _checked_temperature(temperature_c)
     return _viscosity_from(t, _kell(t))

@@ -20,6 +20,7 @@ from model.elements import (
     Pipe,
     colebrook_clamond,
     friction_factor,
+    friction_factor_slope,
 )
 
 # ------------------------------------------------------------------ friction factor
@@ -276,3 +277,20 @@ def test_equipment_power_law_and_density() -> None:
 
 def test_elevation_is_static_only() -> None:
     assert np.all(Elevation(12.0).dp(np.array([0.0, 1.0])) == 0.0)
+
+
+def test_friction_factor_slope_against_finite_differences() -> None:
+    # d ln f / d ln Re: analytic derivative of Colebrook vs a central difference of the
+    # exact solution (our own check; away from the 2000/4000 kinks)
+    re = np.array([50.0, 1500.0, 2500.0, 3500.0, 5e3, 3e4, 2e5, 5e6])
+    for ed in (0.0, 1e-4, 3e-3):
+        f, s = friction_factor_slope(re, ed)
+        assert f == pytest.approx(friction_factor(re, ed), rel=1e-15)
+        h = 1e-6
+        up = np.log(friction_factor(re * (1 + h), ed))
+        down = np.log(friction_factor(re * (1 - h), ed))
+        fd = (up - down) / (math.log1p(h) - math.log1p(-h))
+        assert s == pytest.approx(fd, rel=1e-5, abs=1e-8)
+    # broadcasting of a scalar Re against several roughnesses
+    f, s = friction_factor_slope(3000.0, np.array([1e-4, 1e-3]))
+    assert f.shape == s.shape == (2,)
