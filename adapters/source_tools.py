@@ -139,13 +139,11 @@ def parse_times(
     status[blank] = TIME_BLANK
     aware = s.str.contains(_OFFSET_RE, regex=True).to_numpy() & ~blank
     if aware.any():
-        t = pd.to_datetime(s[aware], format="ISO8601", utc=True, errors="coerce")
-        out[aware] = t.dt.tz_localize(None).dt.as_unit("ns").to_numpy()
+        t = _distinct_to_datetime(s[aware], utc=True)
+        out[aware] = t.tz_localize(None).as_unit("ns").to_numpy()
     naive = ~aware & ~blank
     if naive.any():
-        wall = pd.DatetimeIndex(
-            pd.to_datetime(s[naive], format="ISO8601", errors="coerce")
-        ).as_unit("ns")
+        wall = _distinct_to_datetime(s[naive], utc=False).as_unit("ns")
         if wall.tz is not None:  # a zone name inside the text: already exact
             out[naive] = wall.tz_convert("UTC").tz_localize(None).to_numpy()
         else:
@@ -155,6 +153,16 @@ def parse_times(
             status[nonexistent] = TIME_NONEXISTENT
     status[(status == TIME_OK) & np.isnat(out)] = TIME_UNPARSED
     return pd.DatetimeIndex(out).tz_localize("UTC"), status
+
+
+def _distinct_to_datetime(text: pd.Series, *, utc: bool) -> pd.DatetimeIndex:
+    """ISO-8601 text to datetimes, each distinct string parsed once (long files repeat
+    every instant once per tag)."""
+    codes, uniques = pd.factorize(text)
+    parsed = pd.DatetimeIndex(
+        pd.to_datetime(pd.Series(uniques, dtype=object), format="ISO8601", utc=utc, errors="coerce")
+    ).as_unit("ns")
+    return parsed[codes]
 
 
 def _localize(

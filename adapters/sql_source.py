@@ -368,7 +368,12 @@ class SqlSource(ReadingsSource):
         columns = list(zip(*rows, strict=True))
         times, status = self._times(columns[0])
         lo_ns, hi_ns = pd.Timestamp(start).value, pd.Timestamp(end).value
-        inside = (status != 0) | ((times.asi8 >= lo_ns) & (times.asi8 < hi_ns))
+        placed = times.asi8.copy()
+        for i in np.flatnonzero(status != 0):  # few rows: place each in exactly one window
+            raw = columns[0][i]
+            readable = isinstance(raw, datetime)
+            placed[i] = self._utc_bound(raw, timedelta(0)).value if readable else lo_ns
+        inside = (placed >= lo_ns) & (placed < hi_ns)
         notes: Counter[str] = Counter()
         bad: list[tuple[str, int, str, Any]] = []
         for code in np.unique(status[inside & (status != 0)]):
@@ -385,6 +390,17 @@ class SqlSource(ReadingsSource):
 
     def _times(self, raw: tuple[Any, ...]) -> tuple[pd.DatetimeIndex, npt.NDArray[np.int8]]:
         """UTC times and a status (0 ok, -1 ambiguous, else `TIME_REASONS` codes)."""
+        # A long table repeats each instant once per tag: convert each distinct value once
+        # (datetime objects convert one by one, in Python).
+        codes, uniques = pd.factorize(pd.Series(raw, dtype=object), use_na_sentinel=True)
+        utc, status = self._times_distinct(tuple(uniques))
+        utc_ns = np.append(utc.asi8, np.iinfo(np.int64).min)[codes]  # -1 (NULL) → NaT
+        status = np.append(status, np.int8(1))[codes]
+        return pd.DatetimeIndex(utc_ns.view("datetime64[ns]")).tz_localize("UTC"), status
+
+    def _times_distinct(
+        self, raw: tuple[Any, ...]
+    ) -> tuple[pd.DatetimeIndex, npt.NDArray[np.int8]]:
         sample = next((v for v in raw if v is not None), None)
         if isinstance(sample, str):  # a text column (SQLite without a declared type)
             return parse_times(list(raw), self.zone)
