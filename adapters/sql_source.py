@@ -23,7 +23,8 @@ wall time in ``timezone``; a wall time that falls in the repeated hour of a fall
 change cannot be placed from the database (row order is not a clock), so it is
 quarantined as ``ambiguous local time``, and one in the missing spring-forward hour as
 ``nonexistent local time`` — never shifted. Use UTC or ``timestamptz`` columns to avoid
-both.
+both. A quarantined row's origin is ``table:tag`` (long) or ``table`` (wide) and its
+"line" the stored time as digits, ``YYYYMMDDhhmmss`` (a table has no line numbers).
 
 Incremental reads (`SqlSource.batches`): cursor key is the table name, cursor
 ``{"time": ISO UTC}``. Windows of ``window`` run from the watermark up to the newest row.
@@ -379,7 +380,7 @@ class SqlSource(ReadingsSource):
         for code in np.unique(status[inside & (status != 0)]):
             reason = _AMBIGUOUS if code == -1 else TIME_REASONS[int(code)]
             for i in np.flatnonzero(inside & (status == code)):
-                bad.append((self.cursor_key, 0, reason, repr(rows[i])))
+                bad.append((*self._place(columns, int(i)), reason, repr(rows[i])))
         keep = inside & (status == 0)
         if self.layout == "long":
             readings = self._long(columns, times, keep, bad, notes)
@@ -434,7 +435,7 @@ class SqlSource(ReadingsSource):
         blank = keep & ~np.isfinite(values)
         for i in np.flatnonzero(blank):
             row = (columns[0][i], columns[1][i], columns[2][i])
-            bad.append((self.cursor_key, 0, "blank value", repr(row)))
+            bad.append((*self._place(columns, int(i)), "blank value", repr(row)))
         keep = keep & ~blank
         good = np.ones(len(tags), dtype=bool)
         if self.quality_column:
@@ -463,6 +464,15 @@ class SqlSource(ReadingsSource):
             counts.append(int(ok.sum()))
         names = np.repeat(np.array(tags, dtype=object), counts)
         return readings_frame(np.concatenate(parts_t), names, np.concatenate(parts_v), None)
+
+    def _place(self, columns: list[tuple[Any, ...]], i: int) -> tuple[str, int]:
+        """Quarantine origin and "line" of row *i*: a table has no line numbers, so the
+        origin is the table (and tag, long layout) and the line the stored time as
+        digits (YYYYMMDDhhmmss) — stable, so a re-read quarantines the same row again."""
+        origin = f"{self.cursor_key}:{columns[1][i]}" if self.layout == "long" else self.cursor_key
+        stamp = columns[0][i]
+        line = int(stamp.strftime("%Y%m%d%H%M%S")) if isinstance(stamp, datetime) else 0
+        return origin, line
 
     def _mask(self, text: str) -> str:
         """*text* with the password (plain and URL-quoted) replaced by ***."""

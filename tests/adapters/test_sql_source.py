@@ -231,6 +231,8 @@ def test_naive_local_time_quarantines_what_it_cannot_place(sqlite_url: str) -> N
     ]
     # each bad row once, though the padded windows around it overlap
     assert sorted(got.quarantined["reason"]) == ["ambiguous local time", "nonexistent local time"]
+    assert sorted(got.quarantined["line"]) == [20260308023000, 20261101013000]
+    assert set(got.quarantined["origin"]) == {"r:PT-100"}
     source.close()
 
 
