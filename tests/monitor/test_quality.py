@@ -74,6 +74,8 @@ def test_hampel_removes_a_single_spike_but_not_a_step() -> None:
 def _hampel_by_definition(
     x: np.ndarray, floor: float, floor_rel: float, k: float = 3.0
 ) -> np.ndarray:
+    # the noise of the whole series, from successive differences (white noise: σ√2)
+    sigma = 1.4826 * np.median(np.abs(np.diff(x))) / np.sqrt(2.0)
     out = np.zeros(len(x), dtype=bool)
     for i in range(len(x)):
         w = x[max(0, i - 3) : i + 4]
@@ -81,7 +83,7 @@ def _hampel_by_definition(
             continue
         med = np.median(w)
         mad = np.median(np.abs(w - med))
-        out[i] = abs(x[i] - med) > k * max(1.4826 * mad, floor, floor_rel * abs(med))
+        out[i] = abs(x[i] - med) > k * max(1.4826 * mad, floor, floor_rel * abs(med), sigma)
     return out
 
 
