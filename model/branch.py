@@ -27,10 +27,12 @@ Tank, held header and return header add no loss of their own: count an ``exit`` 
 fittings where the pipe discharges into a vessel.
 
 `Branch.flow` inverts the curve for whole arrays of header pressures at once by
-bracketed root finding (Anderson–Björck false position in log Q – log ΔP, where the
-curve is almost a straight line of slope 1–2). A branch carries no flow at or below its
-threshold P_static, and never negative flow; `Branch.backflow_hazard` flags where the
-header falls below the static back-pressure of a branch without a check valve.
+bracketed root finding: safeguarded Newton steps on ln Q, where the curve is almost a
+straight line of slope 1–2, inside a bracket that every evaluation narrows (see
+`_solve_block`). `stacked_flows` does the same for many branches together (the system
+curve of a large header). A branch carries no flow at or below its threshold P_static
+(nor below 1 nPa above it), and never negative flow; `Branch.backflow_hazard` flags
+where the header falls below the static back-pressure of a branch without a check valve.
 """
 
 from __future__ import annotations
@@ -48,6 +50,8 @@ from model import water
 from model.elements import (
     M3H_PER_M3S,
     PA_PER_BAR,
+    RE_LAMINAR,
+    RE_TURBULENT,
     ControlValve,
     Element,
     Elevation,
@@ -72,7 +76,7 @@ log = logging.getLogger(__name__)
 
 _Y_MIN_PA = 1e-9
 _X_TOL = 1e-12  # on ln Q: a relative flow error below 1e-12
-_STEP_TOL = 1e-9  # a Newton step below this leaves an error of ~1e-18 (1e-10 at a kink)
+_STEP_TOL = 1e-7  # a Newton step below this leaves an error of order step² ~ 1e-15
 _MAX_ITER = 100  # bisection after 12 steps halves the bracket each time: ample
 
 
@@ -466,7 +470,9 @@ class Branch:
     ) -> np.ndarray:
         """Flow [m^3/s] at header pressures *header_pressure_pa* [Pa gauge], vectorised.
 
-        Zero at or below the threshold, and where a control valve is shut.
+        Zero at or below the threshold (and within 1 nPa above it, where Q² would
+        underflow), and where a control valve is shut. Accurate to about 1e-12
+        relative.
         """
         p_s = _pressures(header_pressure_pa)
         static, curve = self._curve(
@@ -546,14 +552,21 @@ class _Curve:
             total = total + a * np.exp(n * x)
         return np.asarray(self.rho * total)
 
-    def dp_slope(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """(ΔP [Pa], d ln ΔP / d ln Q [-]) at ln Q = *x*."""
+    def dp_slope(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(ΔP [Pa], d ln ΔP / d ln Q [-], near a kink) at ln Q = *x*.
+
+        *near a kink*: some pipe's Re is within 10 % of 2000 or 4000, where the slope
+        jumps (laminar – transition – turbulent).
+        """
         q = np.exp(x)
         q2 = q * q
         total = self.quad * q2
         d_total = 2.0 * total
+        kink = np.zeros(np.shape(x), dtype=bool)
         for k, g, e in self.pipes:
-            f, sf = friction_factor_slope(q * g, e)
+            re = q * g
+            f, sf = friction_factor_slope(re, e)
+            kink = kink | ((re > 0.9 * RE_LAMINAR) & (re < 1.1 * RE_TURBULENT))
             term = k * f * q2
             total = total + term
             d_total = d_total + term * (2.0 + sf)
@@ -563,7 +576,7 @@ class _Curve:
             d_total = d_total + n * term
         with np.errstate(divide="ignore", invalid="ignore"):
             slope = d_total / total
-        return np.asarray(self.rho * total), np.asarray(slope)
+        return np.asarray(self.rho * total), np.asarray(slope), kink
 
 
 _CHUNK = 1 << 15  # elements per block: the temporaries stay in cache (256 kB each)
@@ -617,16 +630,19 @@ def _solve_curve(curve: _Curve, y: np.ndarray, name: str) -> np.ndarray:
 
             out[i : i + rows] = _solve_block(_map_curve(curve, take), take(y), name)
         return out
+    def spread(a: np.ndarray) -> np.ndarray:  # once, not per block
+        a = np.asarray(a)
+        return a.reshape(()) if a.size == 1 else np.broadcast_to(a, full).reshape(-1)
+
+    flat_curve = _map_curve(curve, spread)
+    flat_y = spread(y)
     flat = out.reshape(-1)
     for i in range(0, size, _CHUNK):
 
         def cut(a: np.ndarray, i: int = i) -> np.ndarray:
-            a = np.asarray(a)
-            if a.size == 1:
-                return a.reshape(())
-            return np.broadcast_to(a, full).reshape(-1)[i : i + _CHUNK]
+            return a if a.ndim == 0 else a[i : i + _CHUNK]
 
-        flat[i : i + _CHUNK] = _solve_block(_map_curve(curve, cut), cut(y), name)
+        flat[i : i + _CHUNK] = _solve_block(_map_curve(flat_curve, cut), cut(flat_y), name)
     return out
 
 
@@ -653,6 +669,13 @@ def _solve_block(curve: _Curve, y: np.ndarray, name: str) -> np.ndarray:
     Elements drop out of the arrays as they converge.
     """
     shape = np.broadcast_shapes(np.shape(y), *(a.shape for a in _arrays(curve)))
+    # First guess: one Newton step from the reference flow, evaluated on the
+    # coefficients' own shape (one number per branch when the conditions are scalars),
+    # before they are spread over every header pressure.
+    x_ref = np.log(curve.q_ref)
+    d_ref, s_ref, _ = curve.dp_slope(np.asarray(x_ref))
+    ln_d_ref = np.log(np.maximum(d_ref, 1e-300))
+    s_ref = np.clip(s_ref, 1.0, None)
 
     def flat(a: np.ndarray) -> np.ndarray:
         a = np.asarray(a)
@@ -669,18 +692,15 @@ def _solve_block(curve: _Curve, y: np.ndarray, name: str) -> np.ndarray:
         return q_out.reshape(shape)
     c = _map_curve(curve, _Keep(idx))
     ln_y = np.log(yv[idx])
-    # First guess: one Newton step from the reference flow, on the coefficients' own
-    # shape (a single number per branch when the conditions are scalars).
-    x_ref = np.log(c.q_ref)
-    d_ref, s_ref = c.dp_slope(np.asarray(x_ref))
-    x = x_ref + (ln_y - np.log(np.maximum(d_ref, 1e-300))) / np.clip(s_ref, 1.0, None)
-    x = np.broadcast_to(x, ln_y.shape).copy()
+    pick = _Keep(idx)
+    x = pick(flat(x_ref)) + (ln_y - pick(flat(ln_d_ref))) / pick(flat(s_ref))
+    x = np.array(np.broadcast_to(x, ln_y.shape))
     lo = np.full(ln_y.shape, -np.inf)
     hi = np.full(ln_y.shape, np.inf)
     todo = np.arange(idx.size)
     x_out = np.empty(idx.size)
     for it in range(_MAX_ITER):
-        d, s = c.dp_slope(x)
+        d, s, kink = c.dp_slope(x)
         # the floor keeps ln finite where exp(x) underflows; the sign stays right
         g = np.log(np.maximum(d, 1e-300)) - ln_y
         lo, hi = _narrow(lo, hi, x, g)
@@ -689,7 +709,8 @@ def _solve_block(curve: _Curve, y: np.ndarray, name: str) -> np.ndarray:
         bisect = ~((x_new > lo) & (x_new < hi)) | (it >= 12)
         x_new = np.where(bisect, 0.5 * (lo + hi), x_new)
         # Newton's next error is about (step)²: a step this small is final unevaluated
-        fin = (~bisect & (np.abs(step) <= _STEP_TOL)) | (g == 0.0) | (hi - lo <= _X_TOL)
+        tol = np.where(kink, _X_TOL, _STEP_TOL)  # at a kink the error is ~step, not step²
+        fin = (~bisect & (np.abs(step) <= tol)) | (g == 0.0) | (hi - lo <= _X_TOL)
         x_new = np.where(g == 0.0, x, x_new)
         if np.any(fin):
             x_out[todo[fin]] = x_new[fin]
@@ -748,7 +769,7 @@ def stacked_flows(
     n_equip = max(len(c.equipment) for c in curves)
     # padding: a pipe of zero length (Re kept turbulent so f stays finite), and
     # equipment with a zero rated drop
-    pad_pipe = (np.asarray(0.0), np.asarray(1e6), np.asarray(0.0))
+    pad_pipe = (np.asarray(0.0), np.asarray(1e12), np.asarray(0.0))
     pad_equip = (np.asarray(0.0), np.asarray(1.0))
     pipes = tuple(
         tuple(

@@ -265,6 +265,9 @@ def test_large_arrays_are_solved_in_blocks_with_the_same_answer() -> None:
     t2 = np.linspace(5.0, 60.0, 40)[:, None]
     q2 = b.flow(p2, temperature_c=t2)
     assert q2[7] == pytest.approx(b.flow(p2[7], temperature_c=float(t2[7, 0])), rel=1e-12)
+    p3 = np.broadcast_to(p[:40_000], (2, 40_000))  # rows longer than a block
+    q3 = b.flow(p3, temperature_c=np.array([[15.0], [50.0]]))
+    assert q3[1, ::101] == pytest.approx(b.flow(p3[1, ::101], temperature_c=50.0), rel=1e-12)
 
 
 def test_flow_is_accurate_against_forward_curve() -> None:
