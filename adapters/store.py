@@ -106,13 +106,15 @@ ALARM_STATES: tuple[str, ...] = (
     "shelved",
     "out_of_service",
 )
-#: Maintenance events the diagnosis understands (``cleaned`` resets the fouling baseline).
+#: Maintenance events (``cleaned`` resets the fouling baseline; ``other`` is any other
+#: work after which the diagnosis starts a new baseline).
 MAINTENANCE_KINDS: tuple[str, ...] = (
     "cleaned",
     "valve_set",
     "meter_calibrated",
     "repaired",
     "inspected",
+    "other",
 )
 _MIGRATE_LOCK_ID = 0x6277_6D69  # any constant; "bwmi" — shared by every branchwatch
 _IDENT = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,62}$")
