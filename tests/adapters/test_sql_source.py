@@ -192,19 +192,21 @@ def test_resume_after_the_server_drops_the_connection(
     admin = sa.create_engine(postgres_url)
     cursors: dict[str, dict[str, Any]] = {}
     parts = []
+    pids: list[Any] = []
     try:
         for batch in source.batches(cursors):
             parts.append(batch.readings)
             store(batch, cursors)
-            with admin.begin() as conn:  # the server drops every other session
-                conn.execute(
-                    sa.text(
-                        "SELECT pg_terminate_backend(pid) FROM pg_stat_activity "
-                        "WHERE datname = current_database() AND pid <> pg_backend_pid()"
-                    )
-                )
+            # the server drops the source's pooled session (only that one: other tests and
+            # programs share this server)
+            with source._engine.connect() as own:
+                pid = own.execute(sa.text("SELECT pg_backend_pid()")).scalar()
+            pids.append(pid)
+            with admin.begin() as conn:
+                conn.execute(sa.text("SELECT pg_terminate_backend(:pid)"), {"pid": pid})
         got = pd.concat(parts, ignore_index=True)
         assert len(parts) == 5 and len(got) == 120
+        assert len(set(pids)) == 5  # every batch ran on a new session
         assert not got.duplicated(["time", "tag"]).any()
     finally:
         source.close()
