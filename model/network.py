@@ -560,11 +560,13 @@ def solve_nodal(
     it = 0
     for it in range(1, max_iter + 1):
         h, dh = curve(q)
-        stiff = 1e8 * max(float(np.max(np.abs(dh))), 1.0)
+        scale = max(float(np.max(np.abs(dh))), 1.0)
+        stiff = 1e8 * scale
         neg = q < 0.0
-        # below zero flow: h(0) + stiff·Q, the one-way rule (see docstring)
+        # below zero flow: h(0) + stiff·Q, the one-way rule (see docstring); a tiny
+        # floor keeps D invertible where a quadratic curve is flat at Q = 0
         h = np.where(neg, h0 + stiff * q, h)
-        dh = np.where(neg, stiff, np.maximum(dh, 1e-9 * stiff))
+        dh = np.where(neg, stiff, np.maximum(dh, 1e-10 * scale))
         e = h - (a @ p + p_known)
         mres = a.T @ q + demand
         dinv = 1.0 / dh

@@ -293,3 +293,55 @@ def test_nodal_validation() -> None:
         solve_nodal([FixedPressure("s", 1e5), Junction("r")], [BranchLink(b, "s", "r")])
     with pytest.raises(ValueError, match="FixedPressure"):
         solve_nodal([Junction("s")], [BranchLink(b, "s")])
+
+
+def test_nodal_newton_converges_quadratically() -> None:
+    # Newton's method (Todini & Pilati 1988) needs few steps on a small network
+    branches = _site()
+    nodes: list[FixedPressure | Junction] = [FixedPressure("basin", 0.0), Junction("supply")]
+    links = [PumpLink(PUMP, "basin", "supply")] + [BranchLink(b, "supply") for b in branches]
+    sol = solve_nodal(nodes, links)
+    assert sol.ok and sol.iterations <= 10
+
+
+def test_nodal_pump_return_header_and_closed_branch() -> None:
+    # pump from the basin, branches to a return header that drains to the basin, one
+    # branch held shut by a high back-pressure: mass balances at every junction
+    def supply(name: str, pos: float) -> Branch:
+        return Branch(
+            name,
+            [Pipe(90.0, D, 4.5e-5), ControlValve(120.0, position=pos), Equipment(3e4, 0.025)],
+            ReturnHeader(),
+        )
+
+    d_ret = 0.2027
+    ret_line = Branch(
+        "return line", [Pipe(150.0, d_ret, 4.5e-5), Fittings(d_ret, {"exit": 1})], Tank(0.0, 2.0)
+    )
+    high = Branch("to 9 bar", [Pipe(30.0, D, 4.5e-5)], HeldHeader(set_pressure_pa=9e5))
+    nodes: list[FixedPressure | Junction] = [
+        FixedPressure("basin", 0.0),
+        Junction("supply"),
+        Junction("return"),
+    ]
+    s1 = supply("S1", 0.9)
+    links: list[BranchLink | PumpLink] = [
+        PumpLink(PUMP, "basin", "supply"),
+        BranchLink(s1, "supply", "return"),
+        BranchLink(supply("S2", 0.6), "supply", "return"),
+        BranchLink(high, "supply"),
+        BranchLink(ret_line, "return"),
+    ]
+    sol = solve_nodal(nodes, links)
+    assert sol.ok, sol.message
+    assert sol.flows_m3s["to 9 bar"] == 0.0  # the pump cannot reach 9 bar
+    assert sol.max_mass_error_m3s < 1e-9
+    q_in = sol.flows_m3s["S1"] + sol.flows_m3s["S2"]
+    assert sol.flows_m3s["pump"] == pytest.approx(q_in, rel=1e-9)
+    assert sol.flows_m3s["return line"] == pytest.approx(q_in, rel=1e-9)
+    # each link sits on its own curve at the solved pressures
+    p_sup, p_ret = sol.pressures_pa["supply"], sol.pressures_pa["return"]
+    assert float(s1.dp(sol.flows_m3s["S1"], end_pressure_pa=p_ret)) == pytest.approx(
+        p_sup, rel=1e-7
+    )
+    assert float(PUMP.pressure_rise(sol.flows_m3s["pump"])) == pytest.approx(p_sup, rel=1e-7)
