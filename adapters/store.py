@@ -293,7 +293,6 @@ class SqlStore(ResultsStore):
     def __repr__(self) -> str:
         return f"SqlStore({self.url.render_as_string(hide_password=True)!r})"
 
-
     # readings and ingest bookkeeping -------------------------------------------------
     def store_batch(self, batch: Batch, *, source: str) -> int:
         """Store a batch's readings, quarantine rows and cursor in one transaction.
@@ -320,11 +319,27 @@ class SqlStore(ResultsStore):
         now = datetime.now(UTC)
         with self._write() as conn:
             stored = self._insert_readings(conn, frame)
-            upsert(conn, quarantine_t, [dict(q, stored_at=now) for q in quarantined],
-                    ("source", "origin", "line", "reason"), replace=False)
-            upsert(conn, cursors_t, [{"source": source, "key": batch.cursor_key,
-                                       "cursor": dict(batch.cursor), "updated": now}],
-                    ("source", "key"), replace=True)
+            upsert(
+                conn,
+                quarantine_t,
+                [dict(q, stored_at=now) for q in quarantined],
+                ("source", "origin", "line", "reason"),
+                replace=False,
+            )
+            upsert(
+                conn,
+                cursors_t,
+                [
+                    {
+                        "source": source,
+                        "key": batch.cursor_key,
+                        "cursor": dict(batch.cursor),
+                        "updated": now,
+                    }
+                ],
+                ("source", "key"),
+                replace=True,
+            )
         log.debug("stored %d of %d readings from %s", stored, len(frame), source)
         return stored
 
@@ -336,7 +351,8 @@ class SqlStore(ResultsStore):
         raw_time = time_text(readings_t.c.time, conn.dialect.name)
         query = sa.select(readings_t.c.tag, raw_time).where(
             readings_t.c.tag.in_(sorted(set(frame["tag"]))),
-            readings_t.c.time >= lo, readings_t.c.time <= hi,
+            readings_t.c.time >= lo,
+            readings_t.c.time <= hi,
         )
         have = raw_rows(conn, query)
         if have:
@@ -357,8 +373,7 @@ class SqlStore(ResultsStore):
             return len(frame)
         # Compiled once, executed by the driver on plain tuples: SQLAlchemy's per-row
         # parameter handling would cost more than the database's own work.
-        stmt = upsert_statement(conn.dialect.name, readings_raw, ("tag", "time"), [],
-                                 replace=False)
+        stmt = upsert_statement(conn.dialect.name, readings_raw, ("tag", "time"), [], replace=False)
         compiled = stmt.compile(dialect=conn.dialect)
         sql = str(compiled)
         if compiled.positional:
@@ -366,8 +381,10 @@ class SqlStore(ResultsStore):
             params: list[Any] = list(zip(*order, strict=True))
         else:
             names = list(compiled.params)
-            params = [dict(zip(names, row, strict=True))
-                      for row in zip(*(columns[n] for n in names), strict=True)]
+            params = [
+                dict(zip(names, row, strict=True))
+                for row in zip(*(columns[n] for n in names), strict=True)
+            ]
         for i in range(0, len(params), CHUNK):
             conn.exec_driver_sql(sql, params[i : i + CHUNK])
         return len(frame)
@@ -393,8 +410,9 @@ class SqlStore(ResultsStore):
         raw_good = sa.type_coerce(readings_t.c.good, sa.types.NullType())
         query = (
             sa.select(raw_time.label("time"), readings_t.c.tag, readings_t.c.value, raw_good)
-            .where(readings_t.c.tag.in_(tag_list), readings_t.c.time >= start,
-                   readings_t.c.time < end)
+            .where(
+                readings_t.c.tag.in_(tag_list), readings_t.c.time >= start, readings_t.c.time < end
+            )
             .order_by(readings_t.c.time, readings_t.c.tag)
         )
         with self._read() as conn:
@@ -433,8 +451,12 @@ class SqlStore(ResultsStore):
         now = datetime.now(UTC)
         out = []
         for row in rows:
-            rec = _record(row, FIT_COLUMNS, ("branch", "window_start", "window_end",
-                                             "samples", "status"), "fit")
+            rec = _record(
+                row,
+                FIT_COLUMNS,
+                ("branch", "window_start", "window_end", "samples", "status"),
+                "fit",
+            )
             rec["computed_at"] = rec.get("computed_at") or now
             for col in FIT_FLOATS:
                 rec[col] = num(rec[col])
@@ -471,8 +493,12 @@ class SqlStore(ResultsStore):
         now = datetime.now(UTC)
         out = []
         for row in rows:
-            rec = _record(row, FINDING_COLUMNS, ("branch", "kind", "start", "detected",
-                                                 "confidence", "message"), "finding")
+            rec = _record(
+                row,
+                FINDING_COLUMNS,
+                ("branch", "kind", "start", "detected", "confidence", "message"),
+                "finding",
+            )
             rec["confidence"] = float(rec["confidence"])
             if not 0.0 <= rec["confidence"] <= 1.0:
                 raise ValueError(f"finding confidence must be in [0, 1], got {rec['confidence']}")
@@ -530,8 +556,14 @@ class SqlStore(ResultsStore):
                 if (b, c) in set(keys)
             }
             events = [
-                {"branch": r["branch"], "condition": r["condition"], "time": r["updated"],
-                 "from_state": before.get(k), "to_state": r["state"], "message": r["message"]}
+                {
+                    "branch": r["branch"],
+                    "condition": r["condition"],
+                    "time": r["updated"],
+                    "from_state": before.get(k),
+                    "to_state": r["state"],
+                    "message": r["message"],
+                }
                 for k, r in zip(keys, recs, strict=True)
                 if before.get(k) != r["state"]
             ]
@@ -565,15 +597,20 @@ class SqlStore(ResultsStore):
         """Log a maintenance event; logging the same (branch, kind, time) again updates the note."""
         if kind not in MAINTENANCE_KINDS:
             raise ValueError(f"kind must be one of {MAINTENANCE_KINDS}, got {kind!r}")
-        row = {"branch": _name(branch, "branch", 100), "kind": kind,
-               "time": utc_datetime(time, "time"), "note": note}
+        row = {
+            "branch": _name(branch, "branch", 100),
+            "kind": kind,
+            "time": utc_datetime(time, "time"),
+            "note": note,
+        }
         with self._write() as conn:
             upsert(conn, maintenance_t, [row], ("branch", "kind", "time"), replace=True)
 
     def maintenance(self, branch: str | None = None) -> pd.DataFrame:
         """Maintenance events (branch, kind, time, note), oldest first."""
-        query = sa.select(maintenance_t.c.branch, maintenance_t.c.kind, maintenance_t.c.time,
-                          maintenance_t.c.note).order_by(maintenance_t.c.time)
+        query = sa.select(
+            maintenance_t.c.branch, maintenance_t.c.kind, maintenance_t.c.time, maintenance_t.c.note
+        ).order_by(maintenance_t.c.time)
         if branch is not None:
             query = query.where(maintenance_t.c.branch == branch)
         return self._frame(query, maintenance_t)
@@ -587,9 +624,13 @@ class SqlStore(ResultsStore):
         detail: Mapping[str, Any] | None = None,
     ) -> None:
         """Record a job run; the same (job, started) again replaces it (e.g. when it ends)."""
-        row = {"job": _name(job, "job", 100), "started": utc_datetime(started, "started"),
-               "finished": None if finished is None else utc_datetime(finished, "finished"),
-               "status": _name(status, "status", 20), "detail": dict(detail or {})}
+        row = {
+            "job": _name(job, "job", 100),
+            "started": utc_datetime(started, "started"),
+            "finished": None if finished is None else utc_datetime(finished, "finished"),
+            "status": _name(status, "status", 20),
+            "detail": dict(detail or {}),
+        }
         with self._write() as conn:
             upsert(conn, job_runs_t, [row], ("job", "started"), replace=True)
 
@@ -637,27 +678,46 @@ class SqlStore(ResultsStore):
         raw_last = time_text(sa.func.max(readings_t.c.time), self.dialect)
         with self._read() as conn:
             last = conn.execute(
-                sa.select(readings_t.c.tag, raw_last).group_by(readings_t.c.tag)
+                sa.select(readings_t.c.tag, raw_last)
+                .group_by(readings_t.c.tag)
                 .order_by(readings_t.c.tag)
             ).all()
         readings = pd.DataFrame(
-            {"tag": pd.Series([r[0] for r in last], dtype=object),
-             "last": to_utc_index([r[1] for r in last])}
+            {
+                "tag": pd.Series([r[0] for r in last], dtype=object),
+                "last": to_utc_index([r[1] for r in last]),
+            }
         )
-        cur = self._frame(sa.select(cursors_t.c.source, cursors_t.c.key, cursors_t.c.updated)
-                          .order_by(cursors_t.c.source, cursors_t.c.key), cursors_t)
+        cur = self._frame(
+            sa.select(cursors_t.c.source, cursors_t.c.key, cursors_t.c.updated).order_by(
+                cursors_t.c.source, cursors_t.c.key
+            ),
+            cursors_t,
+        )
         last_fit = sa.func.max(fits_t.c.window_end).label("last_window_end")
-        fits = self._frame(sa.select(fits_t.c.branch, last_fit).group_by(fits_t.c.branch)
-                           .order_by(fits_t.c.branch), fits_t, extra_times=("last_window_end",))
-        newest = (sa.select(job_runs_t.c.job, sa.func.max(job_runs_t.c.started).label("s"))
-                  .group_by(job_runs_t.c.job).subquery())
+        fits = self._frame(
+            sa.select(fits_t.c.branch, last_fit)
+            .group_by(fits_t.c.branch)
+            .order_by(fits_t.c.branch),
+            fits_t,
+            extra_times=("last_window_end",),
+        )
+        newest = (
+            sa.select(job_runs_t.c.job, sa.func.max(job_runs_t.c.started).label("s"))
+            .group_by(job_runs_t.c.job)
+            .subquery()
+        )
         jobs = self._frame(
-            sa.select(job_runs_t.c.job, job_runs_t.c.started.label("last_started"),
-                      job_runs_t.c.status)
-            .join(newest, sa.and_(newest.c.job == job_runs_t.c.job,
-                                  newest.c.s == job_runs_t.c.started))
+            sa.select(
+                job_runs_t.c.job, job_runs_t.c.started.label("last_started"), job_runs_t.c.status
+            )
+            .join(
+                newest,
+                sa.and_(newest.c.job == job_runs_t.c.job, newest.c.s == job_runs_t.c.started),
+            )
             .order_by(job_runs_t.c.job),
-            job_runs_t, extra_times=("last_started",),
+            job_runs_t,
+            extra_times=("last_started",),
         )
         return Watermarks(readings=readings, cursors=cur, fits=fits, jobs=jobs)
 

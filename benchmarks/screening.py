@@ -23,8 +23,14 @@ from model.network import ParallelHeader, PumpCurve
 from monitor.quality import FLAGS, ScreenSettings, TagLimits, screen
 
 BAR = 1.0e5
-KINDS = {"PT": "pressure", "FT": "flow", "TT": "temperature", "LT": "level", "ZT": "position",
-         "SI": "speed"}
+KINDS = {
+    "PT": "pressure",
+    "FT": "flow",
+    "TT": "temperature",
+    "LT": "level",
+    "ZT": "position",
+    "SI": "speed",
+}
 
 
 def _branch(name: str, nps: float, length: float, term: Termination, *extra: Element) -> Branch:
@@ -43,7 +49,9 @@ def site() -> tuple[ParallelHeader, PumpCurve, sm.SiteTags]:
     ]
     pump = PumpCurve([0.0, 0.05, 0.1, 0.15, 0.2, 0.25], [55.0, 54.0, 51.0, 46.0, 38.0, 27.0])
     tags = sm.SiteTags(
-        header_pressure="PT-100", temperature="TT-100", total_flow="FT-100",
+        header_pressure="PT-100",
+        temperature="TT-100",
+        total_flow="FT-100",
         pump_speed="SI-100",
         branches={
             "CW-1": sm.BranchTags(flow="FT-201", level="LT-301"),
@@ -65,21 +73,34 @@ def main() -> None:
     frozen_from, frozen_to = start + pd.Timedelta(days=20), start + pd.Timedelta(days=23)
     header, pump, tags = site()
     sim = sm.simulate(
-        header, pump, tags, start=start.to_pydatetime(), end=end.to_pydatetime(), seed=4,
-        faults=[sm.FrozenMeter("FT-204", frozen_from.to_pydatetime(),
-                               frozen_to.to_pydatetime())],
+        header,
+        pump,
+        tags,
+        start=start.to_pydatetime(),
+        end=end.to_pydatetime(),
+        seed=4,
+        faults=[sm.FrozenMeter("FT-204", frozen_from.to_pydatetime(), frozen_to.to_pydatetime())],
         operation=sm.OperatingSpec(trips_per_year=40.0),
     )
     times = pd.DatetimeIndex(sim.times).tz_localize("UTC")
-    frames = [pd.DataFrame({"time": times, "tag": tag, "value": values, "good": True})
-              for tag, values in sim.values.items()]
+    frames = [
+        pd.DataFrame({"time": times, "tag": tag, "value": values, "good": True})
+        for tag, values in sim.values.items()
+    ]
     readings = pd.concat(frames, ignore_index=True)
     readings["tag"] = readings["tag"].astype(object)
     specs = {tag: TagLimits(kind=KINDS.get(tag[:2], "other")) for tag in sim.values}
     settings = ScreenSettings()
     t0 = time.perf_counter()
-    result = screen(readings, specs, settings, start=start, end=end,
-                    header_pressure_tag="PT-100", total_flow_tag="FT-100")
+    result = screen(
+        readings,
+        specs,
+        settings,
+        start=start,
+        end=end,
+        header_pressure_tag="PT-100",
+        total_flow_tag="FT-100",
+    )
     seconds = time.perf_counter() - t0
 
     flags = result.flags
@@ -89,26 +110,32 @@ def main() -> None:
     print(table.to_string())
     noise = sm.NoiseSpec()
     per_tag = len(times)
-    print(f"\nexpected per tag from the simulator: NaN ≈ {noise.nan_fraction * per_tag:.0f}, "
-          f"spikes ≈ {noise.spike_fraction * per_tag:.0f} (fewer on a frozen stretch)")
+    print(
+        f"\nexpected per tag from the simulator: NaN ≈ {noise.nan_fraction * per_tag:.0f}, "
+        f"spikes ≈ {noise.spike_fraction * per_tag:.0f} (fewer on a frozen stretch)"
+    )
 
     ft = result.for_tag("FT-204")
     truth = pd.Series(sim.truth.instrument_fault["FT-204"], index=times)
     hit = ft["frozen"] & truth
     first = hit[hit].index.min()
-    print(f"frozen FT-204 {frozen_from:%m-%d %H:%M} → {frozen_to:%m-%d %H:%M}: "
-          f"{int(hit.sum())} of {int(truth.sum())} frozen samples flagged (from "
-          f"{(first - frozen_from).total_seconds() / 60:.0f} min after it froze: a run is "
-          f"called frozen once it has lasted {settings.frozen_s / 60:.0f} min, then "
-          f"flagged whole); "
-          f"false frozen flags on FT-204 {int((ft['frozen'] & ~truth).sum())}, on the other "
-          f"tags {int(flags.loc[flags['tag'] != 'FT-204', 'frozen'].sum())}")
+    print(
+        f"frozen FT-204 {frozen_from:%m-%d %H:%M} → {frozen_to:%m-%d %H:%M}: "
+        f"{int(hit.sum())} of {int(truth.sum())} frozen samples flagged (from "
+        f"{(first - frozen_from).total_seconds() / 60:.0f} min after it froze: a run is "
+        f"called frozen once it has lasted {settings.frozen_s / 60:.0f} min, then "
+        f"flagged whole); "
+        f"false frozen flags on FT-204 {int((ft['frozen'] & ~truth).sum())}, on the other "
+        f"tags {int(flags.loc[flags['tag'] != 'FT-204', 'frozen'].sum())}"
+    )
     running = pd.Series(sim.truth.pump_running, index=times)
     pt = result.for_tag("PT-100")
     off = pt["pump_off"]
-    print(f"pump off (truth) {int((~running).sum())} min; flagged pump_off {int(off.sum())} "
-          f"min, of which truly off {int((off & ~running).sum())}; start-up "
-          f"{int(pt['startup'].sum())} min flagged")
+    print(
+        f"pump off (truth) {int((~running).sum())} min; flagged pump_off {int(off.sum())} "
+        f"min, of which truly off {int((off & ~running).sum())}; start-up "
+        f"{int(pt['startup'].sum())} min flagged"
+    )
     print(f"screen: {len(flags) / seconds:,.0f} samples/s ({seconds:.2f} s)")
 
 

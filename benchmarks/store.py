@@ -67,13 +67,23 @@ def bare_load(url: str, schema: str | None, frame: pd.DataFrame) -> float:
     engine = sa.create_engine(url)
     name = "bare_" + uuid.uuid4().hex[:8]
     text = np.datetime_as_string(frame["time"].dt.tz_localize(None).to_numpy("datetime64[us]"))
-    rows = list(zip(frame["tag"], [t.replace("T", " ") for t in text], frame["value"].tolist(),
-                    frame["good"].tolist(), strict=True))
+    rows = list(
+        zip(
+            frame["tag"],
+            [t.replace("T", " ") for t in text],
+            frame["value"].tolist(),
+            frame["good"].tolist(),
+            strict=True,
+        )
+    )
     dialect = engine.dialect.name
     qualified = f"{schema}.{name}" if schema else name
     with engine.begin() as conn:
-        timetype = "TIMESTAMPTZ" if dialect == "postgresql" else (
-            "DATETIME(6)" if dialect == "mysql" else "DATETIME")
+        timetype = (
+            "TIMESTAMPTZ"
+            if dialect == "postgresql"
+            else ("DATETIME(6)" if dialect == "mysql" else "DATETIME")
+        )
         conn.exec_driver_sql(DDL.format(name=qualified, time=timetype))
     raw = engine.raw_connection()
     try:
@@ -100,8 +110,14 @@ def bare_load(url: str, schema: str | None, frame: pd.DataFrame) -> float:
     return elapsed
 
 
-def bench_store(label: str, url: str, schema: str | None, frame: pd.DataFrame, repeat: int,
-                cleanup: Callable[[], None]) -> None:
+def bench_store(
+    label: str,
+    url: str,
+    schema: str | None,
+    frame: pd.DataFrame,
+    repeat: int,
+    cleanup: Callable[[], None],
+) -> None:
     n = len(frame)
     first, again, read = [], [], []
     try:
@@ -118,18 +134,22 @@ def bench_store(label: str, url: str, schema: str | None, frame: pd.DataFrame, r
             assert store.store_batch(batch, source="bench") == 0
             again.append(time.perf_counter() - t0)
             t0 = time.perf_counter()
-            out = store.read_readings(list(frame["tag"].unique()),
-                                      datetime(2024, 1, 1, tzinfo=UTC),
-                                      datetime(2026, 1, 1, tzinfo=UTC))
+            out = store.read_readings(
+                list(frame["tag"].unique()),
+                datetime(2024, 1, 1, tzinfo=UTC),
+                datetime(2026, 1, 1, tzinfo=UTC),
+            )
             read.append(time.perf_counter() - t0)
             assert len(out) == n
             store.close()
         bare = min(bare_load(url, schema, frame) for _ in range(repeat))
     finally:
         cleanup()
-    print(f"{label:<11} store {n / min(first):>9,.0f} rows/s   again (duplicates) "
-          f"{n / min(again):>9,.0f} rows/s   read {n / min(read):>9,.0f} rows/s   "
-          f"bare driver load {n / bare:>9,.0f} rows/s   store/bare time x{min(first) / bare:.1f}")
+    print(
+        f"{label:<11} store {n / min(first):>9,.0f} rows/s   again (duplicates) "
+        f"{n / min(again):>9,.0f} rows/s   read {n / min(read):>9,.0f} rows/s   "
+        f"bare driver load {n / bare:>9,.0f} rows/s   store/bare time x{min(first) / bare:.1f}"
+    )
 
 
 def drop(url: str, schema: str) -> Callable[[], None]:
@@ -141,6 +161,7 @@ def drop(url: str, schema: str) -> Callable[[], None]:
             else:
                 conn.exec_driver_sql(f"DROP DATABASE IF EXISTS `{schema}`")
         engine.dispose()
+
     return run
 
 
@@ -163,9 +184,11 @@ def bench_screen(repeat: int) -> None:
     specs = {t: TagLimits(kind="flow") for t in frame["tag"].unique()}
     seconds = best(lambda: screen(frame, specs), repeat)
     result = screen(frame, specs)
-    print(f"screen      {len(frame) / seconds:>9,.0f} samples/s  ({tags} tags x 1 day of "
-          f"1-min data in {seconds:.2f} s; flagged {int(result.flags['spike'].sum())} spikes "
-          f"of 2000 injected, {int((~result.usable).sum())} unusable)")
+    print(
+        f"screen      {len(frame) / seconds:>9,.0f} samples/s  ({tags} tags x 1 day of "
+        f"1-min data in {seconds:.2f} s; flagged {int(result.flags['spike'].sum())} spikes "
+        f"of 2000 injected, {int((~result.usable).sum())} unusable)"
+    )
 
 
 def main() -> None:

@@ -213,8 +213,14 @@ class ScreenSettings:
     steady_pressure_floor_pa: float = 0.1 * ONE_BAR_PA
 
     def __post_init__(self) -> None:
-        for name in ("max_gap_s", "frozen_s", "hampel_k", "steady_window_s",
-                     "steady_flow_rel", "steady_pressure_rel"):
+        for name in (
+            "max_gap_s",
+            "frozen_s",
+            "hampel_k",
+            "steady_window_s",
+            "steady_flow_rel",
+            "steady_pressure_rel",
+        ):
             if not getattr(self, name) > 0:
                 raise ValueError(f"{name} must be > 0, got {getattr(self, name)}")
         if self.settling_s < 0:
@@ -260,8 +266,10 @@ class ScreenResult:
         summed = self.flags[cols].astype("int64").groupby([self.flags["tag"], day]).sum()
         summed["samples"] = self.flags.groupby([self.flags["tag"], day]).size()
         summed["gap"] = 0
-        long = summed.rename_axis(["tag", "day"]).reset_index().melt(
-            id_vars=["tag", "day"], var_name="flag", value_name="count"
+        long = (
+            summed.rename_axis(["tag", "day"])
+            .reset_index()
+            .melt(id_vars=["tag", "day"], var_name="flag", value_name="count")
         )
         gaps = self.gaps.assign(day=self.gaps["start"].dt.floor("D"))
         gap_counts = gaps.groupby(["tag", "day"]).size().rename("count").reset_index()
@@ -331,8 +339,9 @@ def screen(
     flags["out_of_range"] = np.isfinite(value) & ((value < low) | (value > high))
     valid = ~(flags["bad_quality"] | flags["no_value"] | flags["out_of_range"])
     flags["frozen"] = _frozen(value, t_s, codes, valid, tol, noise, is_flow, settings.frozen_s)
-    flags["spike"] = valid & _hampel(np.where(valid, value, np.nan), codes, noise, noise_rel,
-                                     settings.hampel_k)
+    flags["spike"] = valid & _hampel(
+        np.where(valid, value, np.nan), codes, noise, noise_rel, settings.hampel_k
+    )
     accepted = valid & ~flags["spike"]
     flags["rate"] = accepted & _too_fast(value, t_s, codes, accepted, rate)
     new_run = np.r_[True, codes[1:] != codes[:-1]] if n else np.zeros(0, bool)
@@ -340,16 +349,16 @@ def screen(
     flags["gap"] = ~new_run & (dt_prev > settings.max_gap_s)
     gaps = _gaps(frame, codes, tags, t_s, new_run, settings.max_gap_s, start, end, specs)
     if header_pressure_tag is not None:
-        off, settling = _pump_state(frame, flags, header_pressure_tag, total_flow_tag,
-                                    settings)
+        off, settling = _pump_state(frame, flags, header_pressure_tag, total_flow_tag, settings)
         flags["pump_off"], flags["startup"] = off, settling
 
     for name in FLAGS:
         frame[name] = flags[name]
     frame["usable"] = ~np.logical_or.reduce([flags[f] for f in UNUSABLE_FLAGS])
     if n:
-        log.debug("screened %d samples of %d tags: %d usable", n, len(tags),
-                  int(frame["usable"].sum()))
+        log.debug(
+            "screened %d samples of %d tags: %d usable", n, len(tags), int(frame["usable"].sum())
+        )
     return ScreenResult(flags=frame, gaps=gaps, settings=settings)
 
 
@@ -408,7 +417,10 @@ def _noise_estimate(values: np.ndarray, codes: np.ndarray) -> np.ndarray:
 
 
 def _too_fast(
-    values: np.ndarray, t_s: np.ndarray, codes: np.ndarray, accepted: np.ndarray,
+    values: np.ndarray,
+    t_s: np.ndarray,
+    codes: np.ndarray,
+    accepted: np.ndarray,
     max_rate: np.ndarray,
 ) -> np.ndarray:
     """Change from the previous accepted sample of the same tag faster than *max_rate*."""
@@ -426,8 +438,14 @@ def _too_fast(
 
 
 def _frozen(
-    values: np.ndarray, t_s: np.ndarray, codes: np.ndarray, valid: np.ndarray,
-    tol: np.ndarray, noise: np.ndarray, is_flow: np.ndarray, frozen_s: float,
+    values: np.ndarray,
+    t_s: np.ndarray,
+    codes: np.ndarray,
+    valid: np.ndarray,
+    tol: np.ndarray,
+    noise: np.ndarray,
+    is_flow: np.ndarray,
+    frozen_s: float,
 ) -> np.ndarray:
     """Runs of valid samples spanning at most *tol* for at least *frozen_s*.
 
@@ -451,9 +469,15 @@ def _frozen(
 
 
 def _gaps(
-    frame: pd.DataFrame, codes: np.ndarray, tags: pd.Index, t_s: np.ndarray,
-    new_run: np.ndarray, max_gap_s: float, start: pd.Timestamp | None,
-    end: pd.Timestamp | None, specs: Mapping[str, TagLimits],
+    frame: pd.DataFrame,
+    codes: np.ndarray,
+    tags: pd.Index,
+    t_s: np.ndarray,
+    new_run: np.ndarray,
+    max_gap_s: float,
+    start: pd.Timestamp | None,
+    end: pd.Timestamp | None,
+    specs: Mapping[str, TagLimits],
 ) -> pd.DataFrame:
     """Gaps between samples of each tag, and at the edges of [start, end) when given."""
     times = frame["time"]
@@ -464,12 +488,18 @@ def _gaps(
     last = np.r_[first[1:] - 1, len(frame) - 1] if len(first) else first
     if start is not None:
         start = pd.Timestamp(start).tz_convert("UTC")
-        rows += [(tags[codes[i]], start, times.iloc[i]) for i in first
-                 if (times.iloc[i] - start).total_seconds() > max_gap_s]
+        rows += [
+            (tags[codes[i]], start, times.iloc[i])
+            for i in first
+            if (times.iloc[i] - start).total_seconds() > max_gap_s
+        ]
     if end is not None:
         end = pd.Timestamp(end).tz_convert("UTC")
-        rows += [(tags[codes[i]], times.iloc[i], end) for i in last
-                 if (end - times.iloc[i]).total_seconds() > max_gap_s]
+        rows += [
+            (tags[codes[i]], times.iloc[i], end)
+            for i in last
+            if (end - times.iloc[i]).total_seconds() > max_gap_s
+        ]
     if start is not None and end is not None:
         rows += [(tag, start, end) for tag in specs if tag not in set(tags)]
     gaps = pd.DataFrame(rows, columns=["tag", "start", "end"])
@@ -481,15 +511,21 @@ def _gaps(
 
 
 def _pump_state(
-    frame: pd.DataFrame, flags: Mapping[str, np.ndarray], pressure_tag: str,
-    flow_tag: str | None, settings: ScreenSettings,
+    frame: pd.DataFrame,
+    flags: Mapping[str, np.ndarray],
+    pressure_tag: str,
+    flow_tag: str | None,
+    settings: ScreenSettings,
 ) -> tuple[np.ndarray, np.ndarray]:
     """(pump off, settling) for every sample, from the running state at its time."""
     ok = ~(flags["bad_quality"] | flags["no_value"] | flags["out_of_range"] | flags["spike"])
     tags = [pressure_tag] if flow_tag is None else [pressure_tag, flow_tag]
     sel = frame["tag"].isin(tags).to_numpy() & ok
-    state_frame = frame[sel].pivot_table(index="time", columns="tag", values="value",
-                                         aggfunc="mean").sort_index()
+    state_frame = (
+        frame[sel]
+        .pivot_table(index="time", columns="tag", values="value", aggfunc="mean")
+        .sort_index()
+    )
     if pressure_tag not in state_frame:
         n = len(frame)
         return np.zeros(n, dtype=bool), np.zeros(n, dtype=bool)
@@ -497,13 +533,21 @@ def _pump_state(
     state_frame = state_frame.ffill(limit=None)
     running = running_mask(state_frame, pressure_tag, flow_tag, settings, settle=False)
     settled = running_mask(state_frame, pressure_tag, flow_tag, settings, settle=True)
-    states = pd.DataFrame({"time": state_frame.index, "running": running.to_numpy(),
-                           "settled": settled.to_numpy()})
+    states = pd.DataFrame(
+        {"time": state_frame.index, "running": running.to_numpy(), "settled": settled.to_numpy()}
+    )
     order = frame["time"].argsort(kind="stable").to_numpy()
-    looked = pd.merge_asof(
-        frame[["time"]].iloc[order].reset_index(), states, on="time", direction="backward",
-        tolerance=pd.Timedelta(seconds=settings.max_gap_s),
-    ).set_index("index").reindex(frame.index)
+    looked = (
+        pd.merge_asof(
+            frame[["time"]].iloc[order].reset_index(),
+            states,
+            on="time",
+            direction="backward",
+            tolerance=pd.Timedelta(seconds=settings.max_gap_s),
+        )
+        .set_index("index")
+        .reindex(frame.index)
+    )
     known = looked["running"].notna().to_numpy()
     run = looked["running"].fillna(False).to_numpy(bool)
     settle = looked["settled"].fillna(False).to_numpy(bool)
@@ -570,8 +614,10 @@ def steady_mask(
         raise ValueError("wide must be indexed by time (a DatetimeIndex)")
     window = pd.Timedelta(seconds=settings.steady_window_s)
     ok = pd.Series(True, index=wide.index, name="steady")
-    groups = ((flow_tags, settings.steady_flow_rel, settings.steady_flow_floor_m3s),
-              (pressure_tags, settings.steady_pressure_rel, settings.steady_pressure_floor_pa))
+    groups = (
+        (flow_tags, settings.steady_flow_rel, settings.steady_flow_floor_m3s),
+        (pressure_tags, settings.steady_pressure_rel, settings.steady_pressure_floor_pa),
+    )
     step = wide.index.to_series().diff().median() if len(wide) > 1 else window
     need = max(2, int(0.5 * window / step)) if pd.notna(step) and step > pd.Timedelta(0) else 2
     for tags, limit, floor in groups:
@@ -615,9 +661,13 @@ def to_wide(
             return pd.DataFrame(index=pd.DatetimeIndex([], tz="UTC", name="time"))
         start = start if start is not None else bins.min()
         end = end if end is not None else bins.max() + freq
-    grid = pd.date_range(pd.Timestamp(start).tz_convert("UTC").floor(freq),
-                         pd.Timestamp(end).tz_convert("UTC"), freq=freq, inclusive="left",
-                         name="time")
+    grid = pd.date_range(
+        pd.Timestamp(start).tz_convert("UTC").floor(freq),
+        pd.Timestamp(end).tz_convert("UTC"),
+        freq=freq,
+        inclusive="left",
+        name="time",
+    )
     wide = wide.reindex(grid).reindex(columns=sorted(wide.columns))
     wide.columns.name = None
     return wide.astype("float64")

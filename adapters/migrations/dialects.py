@@ -60,8 +60,9 @@ def num(value: Any) -> float | None:
 
 def to_utc_index(values: Any) -> pd.DatetimeIndex:
     """Vectorised: stored times (ISO text, naive UTC or aware datetimes) → ns UTC."""
-    idx = pd.DatetimeIndex(pd.to_datetime(pd.Series(values, dtype=object), utc=True,
-                                          format="ISO8601"))
+    idx = pd.DatetimeIndex(
+        pd.to_datetime(pd.Series(values, dtype=object), utc=True, format="ISO8601")
+    )
     return idx.as_unit("ns")
 
 
@@ -114,9 +115,10 @@ def copy_readings_pg(conn: sa.Connection, columns: Mapping[str, list[Any]]) -> N
     assert driver is not None
     dbapi_error = conn.dialect.loaded_dbapi.Error
     try:
-        with driver.cursor() as cur, cur.copy(
-            "COPY readings (tag, time, value, good) FROM STDIN"
-        ) as copy:
+        with (
+            driver.cursor() as cur,
+            cur.copy("COPY readings (tag, time, value, good) FROM STDIN") as copy,
+        ):
             for row in zip(*(columns[c] for c in ("tag", "time", "value", "good")), strict=True):
                 copy.write_row(row)
     except dbapi_error as exc:
@@ -204,8 +206,14 @@ def quarantine_rows(frame: pd.DataFrame, source: str) -> list[dict[str, Any]]:
     if missing:
         raise ValueError(f"batch.quarantined lacks columns {sorted(missing)}")
     return [
-        {"source": source, "origin": str(o)[:400], "line": int(n), "reason": str(r)[:200],
-         "raw": None if raw is None else str(raw)[:2000]}
-        for o, n, r, raw in zip(frame["origin"], frame["line"], frame["reason"], frame["raw"],
-                                strict=True)
+        {
+            "source": source,
+            "origin": str(o)[:400],
+            "line": int(n),
+            "reason": str(r)[:200],
+            "raw": None if raw is None else str(raw)[:2000],
+        }
+        for o, n, r, raw in zip(
+            frame["origin"], frame["line"], frame["reason"], frame["raw"], strict=True
+        )
     ]

@@ -100,8 +100,12 @@ def _readings(n_minutes: int, tags: list[str], start: datetime = T0) -> pd.DataF
 
 def _batch(readings: pd.DataFrame, key: str = "inbox/a.csv", offset: int = 100) -> Batch:
     quarantined = pd.DataFrame(
-        {"origin": [key, key], "line": [7, 9], "reason": ["bad_number", "bad_time"],
-         "raw": ["2025-03-01T00:07Z,FT-203,abc", "yesterday,FT-203,1.0"]}
+        {
+            "origin": [key, key],
+            "line": [7, 9],
+            "reason": ["bad_number", "bad_time"],
+            "raw": ["2025-03-01T00:07Z,FT-203,abc", "yesterday,FT-203,1.0"],
+        }
     )
     return Batch(readings, quarantined, key, {"offset": offset, "sha256": "ab" * 32})
 
@@ -115,9 +119,12 @@ def test_migrations_create_schema_and_reopen_is_a_noop(opener: Any) -> None:
     inspector = sa.inspect(first.engine)
     assert set(inspector.get_table_names()) >= ALL_TABLES
     with first.engine.connect() as conn:
-        assert MigrationContext.configure(
-            conn, opts={"version_table": "branchwatch_schema_version"}
-        ).get_current_revision() == "0001_initial"
+        assert (
+            MigrationContext.configure(
+                conn, opts={"version_table": "branchwatch_schema_version"}
+            ).get_current_revision()
+            == "0001_initial"
+        )
         # The tables the store queries through agree with what the migration built.
         diff = compare_metadata(MigrationContext.configure(conn), tables.metadata)
     # Only our version table is not in the metadata; no table, column, type or index differs.
@@ -179,9 +186,14 @@ def test_read_readings_types_window_and_precision(store: SqlStore) -> None:
     frame = pd.DataFrame(
         {
             "time": pd.to_datetime(
-                ["2025-03-01T00:00:00.123456Z", "2025-03-01T01:00:00+01:00",
-                 "2025-03-01T00:00:01Z", "2025-03-01T02:00:00Z"],
-                utc=True, format="ISO8601",
+                [
+                    "2025-03-01T00:00:00.123456Z",
+                    "2025-03-01T01:00:00+01:00",
+                    "2025-03-01T00:00:01Z",
+                    "2025-03-01T02:00:00Z",
+                ],
+                utc=True,
+                format="ISO8601",
             ),
             "tag": pd.Series(["FT-203", "FT-203", "PT-100", "FT-203"], dtype=object),
             "value": [1.25, np.nan, 3.5e5, 7.0],
@@ -211,10 +223,20 @@ def test_naive_times_are_refused(store: SqlStore) -> None:
 
 def _fit(r: float, day: int, **extra: Any) -> dict[str, Any]:
     start = T0 + timedelta(days=day)
-    row = {"branch": "CW-3", "window_start": start, "window_end": start + timedelta(days=1),
-           "r": r, "r_low": r - 0.02, "r_high": r + 0.02, "s_pa": math.nan,
-           "identifiable": True, "samples": 1200, "flow_min_m3s": 0.02,
-           "flow_max_m3s": 0.04, "status": "ok"}
+    row = {
+        "branch": "CW-3",
+        "window_start": start,
+        "window_end": start + timedelta(days=1),
+        "r": r,
+        "r_low": r - 0.02,
+        "r_high": r + 0.02,
+        "s_pa": math.nan,
+        "identifiable": True,
+        "samples": 1200,
+        "flow_min_m3s": 0.02,
+        "flow_max_m3s": 0.04,
+        "status": "ok",
+    }
     row.update(extra)
     return row
 
@@ -234,9 +256,16 @@ def test_upsert_fits_replaces_on_branch_and_window(store: SqlStore) -> None:
 
 
 def test_findings_alarms_maintenance_jobs_health(store: SqlStore) -> None:
-    finding = {"branch": "CW-3", "kind": "fouling", "start": T0, "detected": T0,
-               "end": None, "confidence": 0.8, "evidence": {"slope_per_day": 0.004,
-               "p": np.float64(0.01), "bad": math.nan}, "message": "CW-3 is fouling."}
+    finding = {
+        "branch": "CW-3",
+        "kind": "fouling",
+        "start": T0,
+        "detected": T0,
+        "end": None,
+        "confidence": 0.8,
+        "evidence": {"slope_per_day": 0.004, "p": np.float64(0.01), "bad": math.nan},
+        "message": "CW-3 is fouling.",
+    }
     store.upsert_findings([finding])
     store.upsert_findings([dict(finding, confidence=0.9)])
     found = store.read_findings(open_only=True)
@@ -245,16 +274,33 @@ def test_findings_alarms_maintenance_jobs_health(store: SqlStore) -> None:
     store.upsert_findings([dict(finding, end=T0 + timedelta(days=3))])
     assert store.read_findings(open_only=True).empty
 
-    alarm = {"branch": "CW-3", "condition": "low_flow", "state": "unack", "updated": T0,
-             "activated": T0, "value": 0.01, "limit_value": 0.0167}
+    alarm = {
+        "branch": "CW-3",
+        "condition": "low_flow",
+        "state": "unack",
+        "updated": T0,
+        "activated": T0,
+        "value": 0.01,
+        "limit_value": 0.0167,
+    }
     store.upsert_alarms([alarm])
     store.upsert_alarms([alarm])  # no state change: no new journal entry
-    store.upsert_alarms([dict(alarm, state="ack", acknowledged=T0 + timedelta(minutes=5),
-                              updated=T0 + timedelta(minutes=5))])
+    store.upsert_alarms(
+        [
+            dict(
+                alarm,
+                state="ack",
+                acknowledged=T0 + timedelta(minutes=5),
+                updated=T0 + timedelta(minutes=5),
+            )
+        ]
+    )
     assert list(store.read_alarms(active_only=True)["state"]) == ["ack"]
     events = store.alarm_events("CW-3")
     assert list(zip(events["from_state"], events["to_state"], strict=True)) == [
-        (None, "unack"), ("unack", "ack")]
+        (None, "unack"),
+        ("unack", "ack"),
+    ]
     with pytest.raises(ValueError, match="alarm state"):
         store.upsert_alarms([dict(alarm, state="silenced")])
 
@@ -271,9 +317,14 @@ def test_findings_alarms_maintenance_jobs_health(store: SqlStore) -> None:
     assert len(runs) == 1 and runs["status"].iloc[0] == "ok"
     assert runs["detail"].iloc[0] == {"branches": 12}
 
-    health = pd.DataFrame({"tag": ["FT-203", "FT-203"],
-                           "day": pd.to_datetime(["2025-03-01", "2025-03-02"], utc=True),
-                           "flag": ["spike", "spike"], "count": [3, 1]})
+    health = pd.DataFrame(
+        {
+            "tag": ["FT-203", "FT-203"],
+            "day": pd.to_datetime(["2025-03-01", "2025-03-02"], utc=True),
+            "flag": ["spike", "spike"],
+            "count": [3, 1],
+        }
+    )
     store.add_data_health(health)
     store.add_data_health(health.assign(count=[4, 1]))  # a day recounted replaces
     out = store.data_health(T0, T0 + timedelta(days=1))
@@ -302,8 +353,19 @@ def test_bad_arguments_name_themselves(tmp_path: Any) -> None:
     with pytest.raises(ValueError, match=r"batch.readings lacks columns \['good'\]"):
         store.store_batch(_batch(_readings(1, ["FT-1"]).drop(columns="good")), source="csv")
     with pytest.raises(ValueError, match="confidence"):
-        store.upsert_findings([{"branch": "b", "kind": "fouling", "start": T0, "detected": T0,
-                                "confidence": 1.5, "evidence": {}, "message": "m"}])
+        store.upsert_findings(
+            [
+                {
+                    "branch": "b",
+                    "kind": "fouling",
+                    "start": T0,
+                    "detected": T0,
+                    "confidence": 1.5,
+                    "evidence": {},
+                    "message": "m",
+                }
+            ]
+        )
     store.close()
 
 

@@ -24,13 +24,22 @@ FLOW = TagLimits(kind="flow")
 PRESSURE = TagLimits(kind="pressure")
 
 
-def _series(tag: str, values: np.ndarray, *, freq: str = "1min", start: pd.Timestamp = T0,
-            good: np.ndarray | None = None) -> pd.DataFrame:
+def _series(
+    tag: str,
+    values: np.ndarray,
+    *,
+    freq: str = "1min",
+    start: pd.Timestamp = T0,
+    good: np.ndarray | None = None,
+) -> pd.DataFrame:
     times = pd.date_range(start, periods=len(values), freq=freq)
     return pd.DataFrame(
-        {"time": times, "tag": pd.Series([tag] * len(values), dtype=object),
-         "value": np.asarray(values, dtype=float),
-         "good": np.ones(len(values), bool) if good is None else good}
+        {
+            "time": times,
+            "tag": pd.Series([tag] * len(values), dtype=object),
+            "value": np.asarray(values, dtype=float),
+            "good": np.ones(len(values), bool) if good is None else good,
+        }
     )
 
 
@@ -135,13 +144,18 @@ def test_out_of_range_quality_and_missing_values() -> None:
     pressure = np.array([3e5, -1.5e5, 3e5, 3e5, 12e5, 3e5])  # below −1 bar g; above high
     temperature = np.array([25.0, 120.0, np.nan, 25.0, 25.0, -2.0])  # 0–100 °C for water
     quality = np.array([True, True, True, False, True, True])
-    readings = pd.concat([
-        _series("FT-203", flow),
-        _series("PT-100", pressure),
-        _series("TT-100", temperature, good=quality),
-    ])
-    specs = {"FT-203": FLOW, "PT-100": TagLimits(kind="pressure", high=10e5),
-             "TT-100": TagLimits(kind="temperature")}
+    readings = pd.concat(
+        [
+            _series("FT-203", flow),
+            _series("PT-100", pressure),
+            _series("TT-100", temperature, good=quality),
+        ]
+    )
+    specs = {
+        "FT-203": FLOW,
+        "PT-100": TagLimits(kind="pressure", high=10e5),
+        "TT-100": TagLimits(kind="temperature"),
+    }
     res = screen(readings, specs)
     assert _flagged(res.for_tag("FT-203"), "out_of_range") == [1]
     assert _flagged(res.for_tag("PT-100"), "out_of_range") == [1, 4]
@@ -194,8 +208,7 @@ def test_pump_off_and_startup_are_excluded() -> None:
     flow = _noisy(300, 0.03, 1e-4, seed=13)
     flow[100:150] = 0.0
     readings = pd.concat([_series("PT-100", pressure), _series("FT-203", flow)])
-    res = screen(readings, {"PT-100": PRESSURE, "FT-203": FLOW},
-                 header_pressure_tag="PT-100")
+    res = screen(readings, {"PT-100": PRESSURE, "FT-203": FLOW}, header_pressure_tag="PT-100")
     ft = res.for_tag("FT-203")
     assert _flagged(ft, "pump_off") == list(range(100, 150))
     assert _flagged(ft, "startup") == list(range(150, 160))  # 10 min settling
@@ -206,13 +219,21 @@ def test_pump_off_and_startup_are_excluded() -> None:
 
 
 def test_to_wide_means_good_samples_on_a_regular_grid() -> None:
-    frame = pd.DataFrame({
-        "time": pd.to_datetime(["2025-03-01T00:00:05Z", "2025-03-01T00:00:35Z",
-                                "2025-03-01T00:00:40Z", "2025-03-01T00:03:00Z"]),
-        "tag": ["FT-203", "FT-203", "FT-203", "PT-100"],
-        "value": [0.02, 0.04, 9.0, 3.0e5],
-        "good": [True, True, False, True],
-    })
+    frame = pd.DataFrame(
+        {
+            "time": pd.to_datetime(
+                [
+                    "2025-03-01T00:00:05Z",
+                    "2025-03-01T00:00:35Z",
+                    "2025-03-01T00:00:40Z",
+                    "2025-03-01T00:03:00Z",
+                ]
+            ),
+            "tag": ["FT-203", "FT-203", "FT-203", "PT-100"],
+            "value": [0.02, 0.04, 9.0, 3.0e5],
+            "good": [True, True, False, True],
+        }
+    )
     wide = to_wide(frame, "1min")
     assert list(wide.columns) == ["FT-203", "PT-100"]
     assert list(wide.index) == list(pd.date_range(T0, periods=4, freq="1min"))
