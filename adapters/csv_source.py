@@ -550,24 +550,25 @@ class CsvSource(ReadingsSource):
         bad: list[tuple[int, str]],
         notes: Counter[str],
     ) -> pd.DataFrame:
-        t = times.asi8
-        parts_t, parts_v, names, counts = [], [], [], []
+        if not layout.tag_cols:
+            return empty_readings()
+        columns = []
         for col, tag in layout.tag_cols:
             values = chunk.cols[col]
             if values.dtype != np.float64:
                 values, wrong = to_float(values, self.decimal)
                 hit = wrong & keep
                 bad += [(int(ln), f"value of {tag} is not a number") for ln in chunk.lines[hit]]
-            ok = keep & np.isfinite(values)
-            scale, offset = self._si[tag]
-            parts_t.append(t[ok])
-            parts_v.append(values[ok] * scale + offset)
-            names.append(tag)
-            counts.append(int(ok.sum()))
-        if not names:
-            return empty_readings()
-        tag_col = np.repeat(np.array(names, dtype=object), counts)
-        return readings_frame(np.concatenate(parts_t), tag_col, np.concatenate(parts_v), None)
+            columns.append(values)
+        # One (tags x rows) matrix: scaling, masking and melting in a few array operations.
+        matrix = np.vstack(columns)
+        si = np.array([self._si[tag] for _, tag in layout.tag_cols])
+        matrix = matrix * si[:, :1] + si[:, 1:]
+        ok = np.isfinite(matrix) & keep[None, :]
+        names = np.array([tag for _, tag in layout.tag_cols], dtype=object)
+        tag_col = np.repeat(names, ok.sum(axis=1))
+        time_ns = np.broadcast_to(times.asi8, matrix.shape)[ok]
+        return readings_frame(time_ns, tag_col, matrix[ok], None)
 
     def _long(
         self,
