@@ -235,7 +235,7 @@ class Branch:
     name: str
     elements: Sequence[Element]
     termination: Termination
-    check_valve: bool | None = None
+    check_valve: bool | None = field(default=None, kw_only=True)
     _pipes: tuple[Pipe, ...] = field(init=False, repr=False, compare=False)
     _equipment: tuple[Equipment, ...] = field(init=False, repr=False, compare=False)
     _valves: tuple[ControlValve, ...] = field(init=False, repr=False, compare=False)

@@ -10,6 +10,10 @@ monotone piecewise cubic (PCHIP, Fritsch & Carlson 1980) so the curve never over
 between points; another speed by the affinity laws (Q ∝ N, H ∝ N²); identical pumps in
 parallel share the flow equally.
 
+The branch flows of a header come from `model.branch.stacked_flows`, which inverts all
+branch curves together (a system curve of 1,000 branches at 1,000 pressures in about a
+second on two cores; see ``benchmarks/curve.py``).
+
 Operating point (`operating_point`): the header pressure where the pumps' pressure rise
 at the total flow equals the header pressure; a bracketed root (Brent) of a function
 that falls strictly with P_s. Requests without an answer (the pumps cannot reach any
@@ -182,8 +186,8 @@ class PumpCurve:
 
     flow_m3s: Sequence[float]
     head_m: Sequence[float]
-    speed_ratio: float = 1.0
-    count: int = 1
+    speed_ratio: float = field(default=1.0, kw_only=True)
+    count: int = field(default=1, kw_only=True)
     _curve: PchipInterpolator = field(init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:

@@ -279,3 +279,18 @@ def test_flow_is_accurate_against_forward_curve() -> None:
         q = b.flow(p)
         assert np.all(q > 0)
         assert b.dp(q) - thr == pytest.approx(p - thr, rel=1e-9)
+
+
+def test_inverse_across_the_laminar_turbulent_kinks() -> None:
+    # flows whose pipe Reynolds number sits on and around 2000 and 4000, where the
+    # friction law changes form: the inverse must stay exact there too
+    d = 0.05
+    pipe = Pipe(300.0, d, 4.5e-5)
+    b = Branch("slow", [pipe, Fittings(d, {"elbow_90": 2})], Tank(2.0, 1.0))
+    nu = float(water.viscosity(20.0) / water.density(20.0))
+    re = np.concatenate(
+        [np.linspace(1700, 2300, 301), np.linspace(3600, 4400, 401), [2000.0, 4000.0]]
+    )
+    q = re * nu * math.pi * d / 4
+    back = b.flow(b.dp(q))
+    assert back == pytest.approx(q, rel=1e-9)
