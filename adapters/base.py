@@ -283,6 +283,30 @@ class ResultsStore(abc.ABC):
         """Fits (of one branch) whose window starts in ``[start, end)``, oldest first."""
 
     @abc.abstractmethod
+    def store_window(
+        self,
+        *,
+        fits: Iterable[Mapping[str, Any]],
+        screening: pd.DataFrame,
+        balance: Mapping[str, Any] | None,
+        health: pd.DataFrame,
+    ) -> None:
+        """Everything one analysis window produced (fits, screening counts per tag, the
+        header balance, data health), in one transaction."""
+
+    @abc.abstractmethod
+    def read_screening(
+        self, start: datetime | None = None, end: datetime | None = None
+    ) -> pd.DataFrame:
+        """Screening counts per window and tag (see `store_window`)."""
+
+    @abc.abstractmethod
+    def read_balance(
+        self, start: datetime | None = None, end: datetime | None = None
+    ) -> pd.DataFrame:
+        """Header mass balance per window (see `store_window`)."""
+
+    @abc.abstractmethod
     def upsert_findings(self, rows: Iterable[Mapping[str, Any]]) -> int:
         """Store findings keyed on (branch, kind, start), replacing any."""
 

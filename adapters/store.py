@@ -77,12 +77,14 @@ from adapters.migrations.tables import (
     data_health_t,
     findings_t,
     fits_t,
+    header_balance_t,
     job_runs_t,
     maintenance_t,
     quarantine_t,
     readings_raw,
     readings_t,
     utc_datetime,
+    window_checks_t,
 )
 
 __all__ = [
@@ -448,25 +450,78 @@ class SqlStore(ResultsStore):
         Each row has the keys of `FIT_COLUMNS` (``computed_at`` defaults to now; the
         optional numbers may be missing or NaN, stored as NULL). Returns the rows written.
         """
-        now = datetime.now(UTC)
-        out = []
-        for row in rows:
-            rec = _record(
-                row,
-                FIT_COLUMNS,
-                ("branch", "window_start", "window_end", "samples", "status"),
-                "fit",
-            )
-            rec["computed_at"] = rec.get("computed_at") or now
-            for col in FIT_FLOATS:
-                rec[col] = num(rec[col])
-            if rec["identifiable"] is not None:
-                rec["identifiable"] = bool(rec["identifiable"])
-            rec["samples"] = int(rec["samples"])
-            out.append(rec)
+        out = _fit_records(rows)
         with self._write() as conn:
             upsert(conn, fits_t, out, ("branch", "window_start", "window_end"), replace=True)
         return len(out)
+
+    def store_window(
+        self,
+        *,
+        fits: Iterable[Mapping[str, Any]],
+        screening: pd.DataFrame,
+        balance: Mapping[str, Any] | None,
+        health: pd.DataFrame,
+    ) -> None:
+        """Everything one analysis window produced, in one transaction.
+
+        *fits* as in `upsert_fits`; *screening* with columns branch, window_start,
+        window_end, tag, frozen, out_of_range, spikes, samples; *balance* with
+        window_start, window_end, residual_m3s, uncertainty_m3s, samples (or None);
+        *health* as in `add_data_health`. Rows on the same natural keys are replaced.
+        """
+        fit_rows = _fit_records(fits)
+        checks = [
+            {
+                "branch": str(b), "window_start": utc_datetime(ws, "window_start"),
+                "window_end": utc_datetime(we, "window_end"), "tag": str(t),
+                "frozen": int(fr), "out_of_range": int(oor), "spikes": int(sp),
+                "samples": int(n),
+            }
+            for b, ws, we, t, fr, oor, sp, n in zip(
+                screening["branch"], screening["window_start"], screening["window_end"],
+                screening["tag"], screening["frozen"], screening["out_of_range"],
+                screening["spikes"], screening["samples"], strict=True,
+            )
+        ]
+        health_rows = _health_records(health)
+        with self._write() as conn:
+            upsert(conn, fits_t, fit_rows, ("branch", "window_start", "window_end"),
+                   replace=True)
+            if checks:
+                upsert(conn, window_checks_t, checks,
+                       ("branch", "window_start", "window_end", "tag"), replace=True)
+            if balance is not None:
+                row = _record(balance, tuple(c.name for c in header_balance_t.columns),
+                              ("window_start", "window_end"), "balance")
+                upsert(conn, header_balance_t, [row], ("window_start", "window_end"),
+                       replace=True)
+            if health_rows:
+                upsert(conn, data_health_t, health_rows, ("tag", "day", "flag"), replace=True)
+
+    def read_screening(
+        self, start: datetime | None = None, end: datetime | None = None
+    ) -> pd.DataFrame:
+        """Screening counts per window and tag, windows starting in ``[start, end)``."""
+        t = window_checks_t
+        query = sa.select(t).order_by(t.c.window_start, t.c.branch, t.c.tag)
+        if start is not None:
+            query = query.where(t.c.window_start >= utc_datetime(start, "start"))
+        if end is not None:
+            query = query.where(t.c.window_start < utc_datetime(end, "end"))
+        return self._frame(query, t)
+
+    def read_balance(
+        self, start: datetime | None = None, end: datetime | None = None
+    ) -> pd.DataFrame:
+        """Header mass balance per window, windows starting in ``[start, end)``."""
+        t = header_balance_t
+        query = sa.select(t).order_by(t.c.window_start)
+        if start is not None:
+            query = query.where(t.c.window_start >= utc_datetime(start, "start"))
+        if end is not None:
+            query = query.where(t.c.window_start < utc_datetime(end, "end"))
+        return self._frame(query, t)
 
     def read_fits(
         self,
@@ -651,11 +706,7 @@ class SqlStore(ResultsStore):
         missing = {"tag", "day", "flag", "count"} - set(frame.columns)
         if missing:
             raise ValueError(f"frame lacks data-health columns {sorted(missing)}")
-        days = pd.to_datetime(frame["day"], utc=True).dt.date
-        rows = [
-            {"tag": t, "day": d, "flag": f, "count": int(n)}
-            for t, d, f, n in zip(frame["tag"], days, frame["flag"], frame["count"], strict=True)
-        ]
+        rows = _health_records(frame)
         with self._write() as conn:
             upsert(conn, data_health_t, rows, ("tag", "day", "flag"), replace=True)
         return len(rows)
@@ -743,6 +794,37 @@ class SqlStore(ResultsStore):
 def _ceil_day(t: datetime) -> date:
     """The first UTC day that starts at or after *t*."""
     return pd.Timestamp(t).ceil("D").date()
+
+
+def _fit_records(rows: Iterable[Mapping[str, Any]]) -> list[dict[str, Any]]:
+    now = datetime.now(UTC)
+    out = []
+    for row in rows:
+        rec = _record(
+            row, FIT_COLUMNS, ("branch", "window_start", "window_end", "samples", "status"),
+            "fit",
+        )
+        rec["computed_at"] = rec.get("computed_at") or now
+        for col in FIT_FLOATS:
+            rec[col] = num(rec[col])
+        if rec["identifiable"] is not None:
+            rec["identifiable"] = bool(rec["identifiable"])
+        rec["samples"] = int(rec["samples"])
+        out.append(rec)
+    return out
+
+
+def _health_records(frame: pd.DataFrame) -> list[dict[str, Any]]:
+    if frame.empty:
+        return []
+    missing = {"tag", "day", "flag", "count"} - set(frame.columns)
+    if missing:
+        raise ValueError(f"frame lacks data-health columns {sorted(missing)}")
+    days = pd.to_datetime(frame["day"], utc=True).dt.date
+    return [
+        {"tag": t, "day": d, "flag": f, "count": int(n)}
+        for t, d, f, n in zip(frame["tag"], days, frame["flag"], frame["count"], strict=True)
+    ]
 
 
 def _record(

@@ -89,6 +89,9 @@ FIT_FLOATS = (
     *("r", "r_low", "r_high", "s_pa", "s_low_pa", "s_high_pa"),
     *("flow_min_m3s", "flow_max_m3s", "residual_std_pa", "corr_rs"),
     *("temperature_c", "header_pressure_pa"),
+    # added by 0002_window_checks
+    *("s_fixed_pa", "flow_span", "mean_flow_m3s", "end_pressure_pa", "residual_autocorr"),
+    *("sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy"),
 )
 fits_t = sa.Table(
     "fits",
@@ -99,10 +102,11 @@ fits_t = sa.Table(
     *(sa.Column(name, sa.Double()) for name in FIT_FLOATS[:6]),
     sa.Column("identifiable", sa.Boolean()),
     sa.Column("samples", sa.Integer(), nullable=False),
-    *(sa.Column(name, sa.Double()) for name in FIT_FLOATS[6:]),
+    *(sa.Column(name, sa.Double()) for name in FIT_FLOATS[6:12]),
     sa.Column("status", sa.String(40), nullable=False),
     sa.Column("message", sa.Text()),
     sa.Column("computed_at", T(), nullable=False),
+    *(sa.Column(name, sa.Double()) for name in FIT_FLOATS[12:]),
 )
 findings_t = sa.Table(
     "findings",
@@ -172,6 +176,27 @@ data_health_t = sa.Table(
     sa.Column("day", sa.Date(), primary_key=True),
     sa.Column("flag", sa.String(40), primary_key=True),
     sa.Column("count", sa.BigInteger(), nullable=False),
+)
+window_checks_t = sa.Table(
+    "window_checks",
+    metadata,
+    sa.Column("branch", sa.String(100), primary_key=True),
+    sa.Column("window_start", T(), primary_key=True),
+    sa.Column("window_end", T(), primary_key=True),
+    sa.Column("tag", sa.String(100), primary_key=True),
+    sa.Column("frozen", sa.BigInteger(), nullable=False),
+    sa.Column("out_of_range", sa.BigInteger(), nullable=False),
+    sa.Column("spikes", sa.BigInteger(), nullable=False),
+    sa.Column("samples", sa.BigInteger(), nullable=False),
+)
+header_balance_t = sa.Table(
+    "header_balance",
+    metadata,
+    sa.Column("window_start", T(), primary_key=True),
+    sa.Column("window_end", T(), primary_key=True),
+    sa.Column("residual_m3s", sa.Double(), nullable=False),
+    sa.Column("uncertainty_m3s", sa.Double(), nullable=False),
+    sa.Column("samples", sa.BigInteger(), nullable=False),
 )
 #: The bulk path of the store binds driver-native times: no per-row type hooks.
 readings_raw = sa.Table(
