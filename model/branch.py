@@ -242,6 +242,13 @@ class Branch:
     _k_over_a2: float = field(init=False, repr=False, compare=False)
     _rise_m: float = field(init=False, repr=False, compare=False)
     _q_ref: float = field(init=False, repr=False, compare=False)
+    _quad_fixed: float = field(init=False, repr=False, compare=False)
+    _pipe_coefficients: tuple[tuple[float, float, float], ...] = field(
+        init=False, repr=False, compare=False
+    )
+    _equipment_coefficients: tuple[tuple[float, float], ...] = field(
+        init=False, repr=False, compare=False
+    )
 
     def __post_init__(self) -> None:
         if not isinstance(self.name, str) or not self.name:
@@ -289,6 +296,33 @@ class Branch:
         if self.check_valve is None:
             object.__setattr__(self, "check_valve", any(f.has_check_valve for f in fittings))
         object.__setattr__(self, "_q_ref", self._reference_flow())
+        # the condition-free parts of the solver's coefficients (see `_curve`)
+        quad_fixed = self._k_over_a2 * 0.5
+        for v in valves:
+            quad_fixed += (
+                _valve_coefficient(v) / v._kv_fixed**2 if v._kv_fixed > 0 else math.inf
+            )
+        object.__setattr__(self, "_quad_fixed", quad_fixed)
+        object.__setattr__(
+            self,
+            "_pipe_coefficients",
+            tuple(
+                (
+                    0.5 * p.length_m / (p.inner_diameter_m * p.area_m2**2),
+                    4.0 / (math.pi * p.inner_diameter_m),
+                    p.roughness_m / p.inner_diameter_m,
+                )
+                for p in pipes
+            ),
+        )
+        object.__setattr__(
+            self,
+            "_equipment_coefficients",
+            tuple(
+                (e.rated_dp_pa / e.rated_density / e.rated_flow_m3s**e.exponent, e.exponent)
+                for e in equipment
+            ),
+        )
 
     @staticmethod
     def _last_diameter(elements: Sequence[Element]) -> float | None:
@@ -494,36 +528,27 @@ class Branch:
         resistance_ratio: npt.ArrayLike = 1.0,
     ) -> tuple[np.ndarray, _Curve]:
         """(P_static [Pa gauge], the dynamic curve as coefficients) at these conditions."""
-        r = _ratio(resistance_ratio)
+        # Scalar conditions (the usual case for a curve) stay Python floats: a stack of
+        # a thousand branches is set up a thousand times, and numpy's 0-d arithmetic
+        # costs a microsecond per operation.
+        r = _scalar(_ratio(resistance_ratio))
         t = np.asarray(temperature_c, dtype=float)
-        rho = water.density(t)
-        mu = water.viscosity(t)
+        rho = _scalar(water.density(t))
+        nu_inv = rho / _scalar(water.viscosity(t))
         pos = self._position(valve_position)
-        static = self._static(rho, _opt(level_m), _opt(end_pressure_pa))
+        static = self._static(np.asarray(rho), _opt(level_m), _opt(end_pressure_pa))
         # ΔP/ρ = quad·Q² + r·Σ pipes kp·f(Q·gp, ep)·Q² + r·Σ equipment a·Q^n; every
         # coefficient is fixed by the conditions, so it is computed once, not per step.
-        quad = r * self._k_over_a2 * 0.5
-        for v in self._valves:
-            kv = v._kv_fixed if pos is None else v._kv(pos)
-            with np.errstate(divide="ignore"):
-                c = (PA_PER_BAR * M3H_PER_M3S**2 / v.reference_density) / np.square(kv)
-            quad = quad + (r * c if pos is None else c)
-        pipes = tuple(
-            (
-                r * (0.5 * p.length_m / (p.inner_diameter_m * p.area_m2**2)),
-                (rho / mu) * (4.0 / (math.pi * p.inner_diameter_m)),
-                np.asarray(p.roughness_m / p.inner_diameter_m),
-            )
-            for p in self._pipes
-        )
-        equipment = tuple(
-            (
-                r * (e.rated_dp_pa / e.rated_density) / e.rated_flow_m3s**e.exponent,
-                np.asarray(e.exponent),
-            )
-            for e in self._equipment
-        )
-        curve = _Curve(rho, np.asarray(quad), pipes, equipment, np.asarray(self._q_ref))
+        if pos is None:
+            quad: Any = r * self._quad_fixed
+        else:
+            quad = r * self._k_over_a2 * 0.5
+            for v in self._valves:
+                with np.errstate(divide="ignore"):
+                    quad = quad + _valve_coefficient(v) / np.square(v._kv(pos))
+        pipes = tuple((r * k, nu_inv * g, e) for k, g, e in self._pipe_coefficients)
+        equipment = tuple((r * a, n) for a, n in self._equipment_coefficients)
+        curve = _Curve(rho, quad, pipes, equipment, self._q_ref)  # type: ignore[arg-type]
         return static, curve
 
 
@@ -821,7 +846,21 @@ def _narrow(
 
 
 def _ratio(resistance_ratio: npt.ArrayLike) -> np.ndarray:
+    if isinstance(resistance_ratio, float | int):  # the common case, checked cheaply
+        if not (math.isfinite(resistance_ratio) and resistance_ratio > 0):
+            raise ValueError("resistance_ratio must be finite and > 0")
+        return np.asarray(float(resistance_ratio))
     r = np.asarray(resistance_ratio, dtype=float)
     if np.any(~((r > 0) & np.isfinite(r))):
         raise ValueError("resistance_ratio must be finite and > 0")
     return r
+
+
+def _scalar(a: np.ndarray) -> Any:
+    """A 0-d array as a Python float (fast arithmetic), any other array unchanged."""
+    return float(a) if a.ndim == 0 else a
+
+
+def _valve_coefficient(v: ControlValve) -> float:
+    # ΔP = ρ·c/Kv²·Q² with Q in m³/s: c = 10^5·3600²/ρ_ref (IEC 60534, Kv in m³/h)
+    return PA_PER_BAR * M3H_PER_M3S**2 / v.reference_density
