@@ -271,6 +271,12 @@ class Pipe:
         _positive("inner_diameter_m", self.inner_diameter_m)
         if not (math.isfinite(self.roughness_m) and self.roughness_m >= 0):
             raise ValueError(f"roughness_m must be >= 0; got {self.roughness_m!r}")
+        if self.roughness_m > 0.05 * self.inner_diameter_m:
+            # the Colebrook equation is fitted to ε/D up to 0.05 (the Moody chart's range)
+            raise ValueError(
+                f"roughness_m {self.roughness_m!r} is over 5 % of inner_diameter_m "
+                f"{self.inner_diameter_m!r}: outside the Colebrook equation's range"
+            )
 
     @classmethod
     def from_nominal(

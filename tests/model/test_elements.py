@@ -127,6 +127,8 @@ def test_pipe_vectorised_and_zero_flow() -> None:
         pipe.dp(-0.1)
     with pytest.raises(ValueError, match="inner_diameter_m"):
         Pipe(1.0, 0.0, 0.0)
+    with pytest.raises(ValueError, match="Colebrook"):  # ε/D > 0.05: off the Moody chart
+        Pipe(1.0, 0.02, 0.0015)
 
 
 # ------------------------------------------------------------------ fittings
