@@ -587,7 +587,7 @@ class _Curve:
         q2 = q * q
         total = self.quad * q2
         d_total = 2.0 * total
-        kink = np.zeros(np.shape(x), dtype=bool)
+        kink: np.ndarray | bool = False
         for k, g, e in self.pipes:
             re = q * g
             f, sf = friction_factor_slope(re, e)
@@ -601,7 +601,7 @@ class _Curve:
             d_total = d_total + n * term
         with np.errstate(divide="ignore", invalid="ignore"):
             slope = d_total / total
-        return np.asarray(self.rho * total), np.asarray(slope), kink
+        return np.asarray(self.rho * total), np.asarray(slope), np.asarray(kink)
 
 
 _CHUNK = 1 << 15  # elements per block: the temporaries stay in cache (256 kB each)
@@ -729,14 +729,17 @@ def _solve_block(curve: _Curve, y: np.ndarray, name: str) -> np.ndarray:
         # the floor keeps ln finite where exp(x) underflows; the sign stays right
         g = np.log(np.maximum(d, 1e-300)) - ln_y
         lo, hi = _narrow(lo, hi, x, g)
-        step = g / np.clip(s, 1.0, None)
+        step = g / np.maximum(s, 1.0)
         x_new = x - step
-        bisect = ~((x_new > lo) & (x_new < hi)) | (it >= 12)
-        x_new = np.where(bisect, 0.5 * (lo + hi), x_new)
+        inside = (x_new > lo) & (x_new < hi)
+        if it >= 12:
+            inside[:] = False
+        x_new = np.where(inside, x_new, 0.5 * (lo + hi))
         # Newton's next error is about (step)²: a step this small is final unevaluated
         tol = np.where(kink, _X_TOL, _STEP_TOL)  # at a kink the error is ~step, not step²
-        fin = (~bisect & (np.abs(step) <= tol)) | (g == 0.0) | (hi - lo <= _X_TOL)
-        x_new = np.where(g == 0.0, x, x_new)
+        exact = g == 0.0
+        fin = (inside & (np.abs(step) <= tol)) | exact | (hi - lo <= _X_TOL)
+        x_new = np.where(exact, x, x_new)
         if np.any(fin):
             x_out[todo[fin]] = x_new[fin]
             keep = ~fin
@@ -839,9 +842,10 @@ def _narrow(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Shrink the bracket [lo, hi] with the point (x, f): root in [x − f, x] or [x, x − f]."""
     below = f < 0
+    across = x - f
     return (
-        np.maximum(lo, np.where(below, x, x - f)),
-        np.minimum(hi, np.where(below, x - f, x)),
+        np.maximum(lo, np.where(below, x, across)),
+        np.minimum(hi, np.where(below, across, x)),
     )
 
 
