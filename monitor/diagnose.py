@@ -168,7 +168,7 @@ class DiagnosisSettings:
     min_sigma_r: float = 0.004  # floor of σ_r: fits are never better than ~0.4 % [-]
     level_windows: int = 14  # windows that predict the next one [windows]
     step_z: float = 6.0  # jump of one window to call a step [σ]
-    min_step_rel: float = 0.08  # and at least this relative rise of r [-]
+    min_step_rel: float = 0.05  # and at least this relative rise of r [-]
     cusum_k: float = 1.0  # CUSUM reference value [σ]
     cusum_h: float = 12.0  # CUSUM decision interval [σ]
     trend_alpha: float = 0.001  # Mann–Kendall (Hamed–Rao) two-sided level [-]
@@ -183,6 +183,7 @@ class DiagnosisSettings:
     bp_step_z: float = 6.0  # [σ]
     offset_evidence: float = 3.0  # |log-likelihood ratio| to decide static vs Q² [-]
     max_effective_samples: int = 30  # samples of a window are serially correlated [-]
+    mixed_factor: float = 4.0  # a window's residual over the baseline's: step inside it
     imbalance_windows: int = 3  # [windows]
     spike_fraction: float = 0.02  # spikes per sample that make a window suspect [-]
     spike_count: int = 30  # same, when the sample count is not given [-]
@@ -505,6 +506,9 @@ class _Baseline:
     sigma_pe: float
     s: float
     sigma_s: float
+    sse_per_sample: float  # residual of the best one-parameter fit of a window [Pa²]
+    offset0: float  # static offset of the baseline windows against the baseline [Pa]
+    sigma_offset: float  # its day-to-day scatter [Pa]
 
 
 def _offset_comparison(
@@ -540,8 +544,8 @@ def _offset_comparison(
     tiny = 1e-30 + 1e-12 * max(sse_s, sse_r)
     n_eff = min(n, float(cfg.max_effective_samples))
     llr = 0.5 * n_eff * math.log((sse_r + tiny) / (sse_s + tiny))
-    return {"offset_llr": llr, "static_offset_pa": offset, "ratio_if_resistance": ratio,
-            "sse_static": sse_s, "sse_resistance": sse_r}  # fmt: skip
+    return {"offset_llr": llr, "samples": n, "static_offset_pa": offset,
+            "ratio_if_resistance": ratio, "sse_static": sse_s, "sse_resistance": sse_r}  # fmt: skip
 
 
 class _Replay:
@@ -603,7 +607,9 @@ class _Replay:
         self.trend: list[int] = []  # accepted windows of the fouling trend
         self.cusum = 0.0
         self.trend_hits = 0
-        self.pending: tuple[int, float, float] | None = None  # deferred step (i, z, e)
+        self.cusum_start = -1  # first window of the current CUSUM run
+        # a step waiting for its cause: (window, z, step, first window of the step)
+        self.pending: tuple[int, float, float, int] | None = None
         self.recent_pe: list[float] = []
         self.recent_s: list[float] = []
 
@@ -669,11 +675,26 @@ class _Replay:
             sigma_pe=max(robust_sigma(pe), self.cfg.min_sigma_pa),
             s=float(np.median(s)) if np.isfinite(s).sum() >= 3 else math.nan,
             sigma_s=max(robust_sigma(s), self.cfg.min_sigma_pa),
+            **self._baseline_offsets(idx, r0, s_b),
         )  # fmt: skip
         self.level = [j for j in self.base_idx if self.ws[j] >= self.ws[self.base_idx[0]]]
         self.trend = list(self.level)
         if period is None:  # the baseline windows of a segment are its first windows
             self.level, self.trend = list(self.base_idx), list(self.base_idx)
+
+    def _baseline_offsets(self, idx: NDArray[np.intp], r0: float, s_b: float) -> dict[str, float]:
+        per, offsets = [], []
+        for j in idx:
+            cmp = _offset_comparison(self.rows.iloc[int(j)], r0, s_b, self.cfg)
+            if cmp is not None and cmp["samples"] > 0:
+                per.append(min(cmp["sse_static"], cmp["sse_resistance"]) / cmp["samples"])
+                offsets.append(cmp["static_offset_pa"])
+        nan = math.nan
+        return {
+            "sse_per_sample": float(np.median(per)) if per else nan,
+            "offset0": float(np.nanmedian(offsets)) if np.isfinite(offsets).any() else nan,
+            "sigma_offset": max(robust_sigma(offsets), self.cfg.min_sigma_pa),
+        }
 
     # -- back-pressure from logged termination pressure or fitted s ------------------
     def _pressures(self, i: int) -> None:
@@ -743,12 +764,18 @@ class _Replay:
             return
         e = float(self.r[i] - pred)
         z = e / sigma_e
+        if self.cusum == 0.0:
+            self.cusum_start = i
         self.cusum = max(0.0, self.cusum + z - self.cfg.cusum_k)
         jump = z >= self.cfg.step_z and e >= self.cfg.min_step_rel * pred
+        first = i
+        if not jump and "back_pressure" not in self.open:
+            jump = self._offset_jump(i)
         if not jump and self.cusum > self.cfg.cusum_h:
             jump = self._cusum_step(i)
+            first = self.cusum_start  # Page's change-point estimate
         if jump:
-            self.pending = (i, z, e)
+            self.pending = (i, z, e, first)
             self._decide_step(i)
             return
         if z <= -self.cfg.step_z and -e >= self.cfg.min_step_rel * pred:
@@ -768,6 +795,22 @@ class _Replay:
         self.level.append(i)
         self.trend.append(i)
 
+    def _offset_jump(self, i: int) -> bool:
+        """A window whose departure from the baseline model is a clear constant offset of
+        at least ``min_bp_step_pa``: a back-pressure step too small against the day-to-day
+        scatter of r to show as a jump of r (a large ΔP branch, a small step)."""
+        assert self.base is not None
+        if not math.isfinite(self.base.offset0):
+            return False
+        cmp = _offset_comparison(
+            self.rows.iloc[i], self.base.r0, self.base.s_b + self.s_shift, self.cfg
+        )
+        if cmp is None or not math.isfinite(cmp["static_offset_pa"]):
+            return False
+        dc = cmp["static_offset_pa"] - self.base.offset0
+        big = abs(dc) >= max(self.cfg.min_bp_step_pa, self.cfg.bp_step_z * self.base.sigma_offset)
+        return big and dc > 0 and cmp["offset_llr"] > self.cfg.offset_evidence
+
     def _cusum_step(self, i: int) -> bool:
         """A CUSUM alarm counts as a step when one mean shift fits the recent windows
         clearly better than a straight line (a fouling ramp also drives the CUSUM)."""
@@ -784,15 +827,15 @@ class _Replay:
 
     def _decide_step(self, i: int) -> None:
         assert self.base is not None and self.pending is not None
-        j, z, e = self.pending
+        j, z, e, first = self.pending
         kind, conf, extra = self._classify(j)
         if kind is None and i == j:
             return  # undecided window: a step part-way through it; the next one decides
         if kind is None:
-            kind, conf, extra = self._classify(i)
+            kind, conf, extra = self._classify(i, final=True)
         if kind is None:
             kind, conf = "restriction", 0.5
-        start = self.ws[j]
+        start = self.ws[first]
         ref = float(self.r[j] - e)
         e = float(self.r[i] - ref)  # the full step (window i is past a deferred one)
         evidence = {"step_r": e, "step_sigma": z, "r_before": ref, "r_after": float(self.r[i]),
@@ -821,7 +864,15 @@ class _Replay:
         self.level = [i] if i != j else []
         self.trend = list(self.level)
 
-    def _classify(self, j: int) -> tuple[str | None, float, dict[str, float]]:
+    def _classify(
+        self, j: int, *, final: bool = False
+    ) -> tuple[str | None, float, dict[str, float]]:
+        """The cause of a step seen in window j; None = undecided (decide later).
+
+        A window the step falls part-way through fits neither one-parameter hypothesis
+        (its best residual is ``mixed_factor`` × the baseline's): its comparison is biased
+        by when in the day the step came, so it is left to the next window.
+        """
         assert self.base is not None
         meter = self._meter_disagrees(j)
         if meter is not None:
@@ -831,6 +882,9 @@ class _Replay:
         )
         if cmp is None:
             return "restriction", 0.5, {}
+        best = min(cmp["sse_static"], cmp["sse_resistance"]) / max(cmp["samples"], 1.0)
+        if not final and best > self.cfg.mixed_factor * self.base.sse_per_sample:
+            return None, 0.0, cmp
         llr = cmp["offset_llr"]
         if abs(llr) < self.cfg.offset_evidence:
             return None, 0.0, cmp

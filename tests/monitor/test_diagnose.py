@@ -48,6 +48,7 @@ def make_history(
     faults: tuple[Fault, ...] = (),
     logged_end_pressure: bool = False,
     seasonal_error: float = 0.0,
+    dp_design_pa: float = 1.0e5,
 ) -> pd.DataFrame:
     rng = np.random.default_rng(seed)
     tk = np.arange(days)[:, None] + (np.arange(SAMPLES)[None, :] + 0.5) / SAMPLES
@@ -56,7 +57,7 @@ def make_history(
     q = q0 * (0.8 + 0.2 * np.sin(2 * np.pi * (tk - 0.3))) * (
         1 + 0.1 * np.sin(2 * np.pi * tk / 365.0)
     )
-    x = 1.0e5 * (q / q0) ** 2  # clean dynamic ΔP [Pa]
+    x = dp_design_pa * (q / q0) ** 2  # clean dynamic ΔP [Pa]
     eps = np.empty(days)
     eps[0] = rng.normal(0, sigma)
     for d in range(1, days):
@@ -152,12 +153,21 @@ def test_restriction_step_found_within_a_day(seed: int) -> None:
     assert f.evidence["step_sigma"] > 6
 
 
-@pytest.mark.parametrize("seed", [10, 11, 12])
-def test_back_pressure_step_unlogged_is_not_a_restriction(seed: int) -> None:
-    hist = make_history(160, seed=seed, faults=(Fault("bp_step", 100.0, 2.0e4),))
+@pytest.mark.parametrize(("seed", "day", "dp_design"), [(10, 100.0, 1e5), (11, 100.2, 1e5),
+                                                        (12, 100.7, 1e5), (19, 100.3, 2.8e5)])
+def test_back_pressure_step_unlogged_is_not_a_restriction(
+    seed: int, day: float, dp_design: float
+) -> None:
+    # 0.2 bar: issue 4 goal size. On a 2.8 bar branch it reads as only +7 % in r, about
+    # 4σ: the constant-offset test finds it, not the jump of r.
+    hist = make_history(160, seed=seed, faults=(Fault("bp_step", day, 2.0e4),),
+                        dp_design_pa=dp_design)  # fmt: skip
     found = run(hist)
     assert [f.kind for f in found] == ["back_pressure"], found
-    assert days_after_t0(found[0].detected) - 100.0 <= 1.0
+    # a step part-way through a window is decided on the next one (see the restriction
+    # test)
+    assert days_after_t0(found[0].detected) <= np.floor(day) + 2.0
+    assert abs(days_after_t0(found[0].start) - day) < 1.0  # within a window
     assert found[0].evidence["static_offset_pa"] == pytest.approx(2.0e4, rel=0.15)
 
 
