@@ -294,3 +294,15 @@ def test_inverse_across_the_laminar_turbulent_kinks() -> None:
     q = re * nu * math.pi * d / 4
     back = b.flow(b.dp(q))
     assert back == pytest.approx(q, rel=1e-9)
+
+
+@settings(max_examples=25, deadline=None)
+@given(st.lists(branch_params, min_size=1, max_size=5), st.floats(-1e5, 3e6))
+def test_property_stacked_equals_single(params: list[dict[str, float]], p_top: float) -> None:
+    from model.branch import stacked_flows
+
+    branches = [_random_branch(p) for p in params]
+    conds = [{"temperature_c": p["t"], "resistance_ratio": p["r"]} for p in params]
+    pressures = np.linspace(-1e5, p_top, 64)
+    for b, c, q in zip(branches, conds, stacked_flows(branches, pressures, conds), strict=True):
+        assert q == pytest.approx(b.flow(pressures, **c), rel=1e-10, abs=0.0)
