@@ -58,7 +58,6 @@ from model.elements import (
     Equipment,
     Fittings,
     Pipe,
-    friction_factor,
     friction_factor_slope,
 )
 
@@ -565,17 +564,6 @@ class _Curve:
     pipes: tuple[tuple[np.ndarray, np.ndarray, np.ndarray], ...]
     equipment: tuple[tuple[np.ndarray, np.ndarray], ...]
     q_ref: np.ndarray
-
-    def dp(self, x: np.ndarray) -> np.ndarray:
-        """ΔP [Pa] at ln Q = *x* (ln of [m^3/s])."""
-        q = np.exp(x)
-        q2 = q * q
-        total = self.quad * q2
-        for k, g, e in self.pipes:
-            total = total + k * friction_factor(q * g, e) * q2
-        for a, n in self.equipment:
-            total = total + a * np.exp(n * x)
-        return np.asarray(self.rho * total)
 
     def dp_slope(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(ΔP [Pa], d ln ΔP / d ln Q [-], near a kink) at ln Q = *x*.
