@@ -179,15 +179,25 @@ def reachable(url: str) -> bool:
 def bench_screen(repeat: int) -> None:
     tags, minutes = 500, 1440
     rng = np.random.default_rng(1)
-    frame = readings(tags * minutes, tags)
-    frame.loc[rng.choice(len(frame), 2000, replace=False), "value"] += 0.02  # spikes
+    frame = readings(tags * minutes, tags)  # flow 0.03 m3/s with 1 % Gaussian noise
+    injected = rng.choice(len(frame), 2000, replace=False)
+    frame.loc[injected, "value"] += 0.02  # spikes of about 67 sigma
+    frame["spiked"] = False
+    frame.loc[injected, "spiked"] = True
     specs = {t: TagLimits(kind="flow") for t in frame["tag"].unique()}
     seconds = best(lambda: screen(frame, specs), repeat)
-    result = screen(frame, specs)
+    flags = screen(frame, specs).flags
+    # screen sorts by tag and time; match the injected rows back by (tag, time)
+    marked = frame.loc[frame["spiked"], ["tag", "time"]].assign(truth=True)
+    merged = flags.merge(marked, on=["tag", "time"], how="left")
+    truth = merged["truth"].fillna(False).astype(bool)
+    found = int((merged["spike"] & truth).sum())
+    extra = int((merged["spike"] & ~truth).sum())
     print(
         f"screen      {len(frame) / seconds:>9,.0f} samples/s  ({tags} tags x 1 day of "
-        f"1-min data in {seconds:.2f} s; flagged {int(result.flags['spike'].sum())} spikes "
-        f"of 2000 injected, {int((~result.usable).sum())} unusable)"
+        f"1-min data in {seconds:.2f} s); spikes: {found} of 2000 injected found, {extra} "
+        f"more flagged on plain noise ({extra / (len(frame) - 2000):.2%}; a 3-sigma rule "
+        f"on Gaussian noise flags about 0.27 %)"
     )
 
 
