@@ -76,6 +76,9 @@ def analyze_window(
     for tag in site.tags:
         if tag not in wide.columns:
             wide[tag] = np.nan
+    # Grid bins without a header pressure say nothing about the pump (the historian may
+    # log less often than the grid): drop them, or each would count as a stop and a start.
+    wide = wide[wide[site.header_pressure_tag].notna()]
     fits: list[dict[str, Any]] = []
     if wide.empty:
         keep = pd.Series(dtype=bool)
