@@ -69,8 +69,8 @@ def opener(request: pytest.FixtureRequest, tmp_path: Any, unique_name: str) -> I
         fixture = "postgres_url" if request.param == "postgresql" else "mariadb_url"
         url, schema = request.getfixturevalue(fixture), unique_name
 
-    def open_store() -> SqlStore:
-        opened.append(SqlStore(url, schema=schema))
+    def open_store(migrate: bool = True) -> SqlStore:
+        opened.append(SqlStore(url, schema=schema, migrate=migrate))
         return opened[-1]
 
     yield open_store
@@ -405,3 +405,33 @@ def test_screening_counts_round_trip(store: SqlStore) -> None:
     expected = counts.sort_values(["day", "tag", "flag"]).reset_index(drop=True)
     pd.testing.assert_frame_equal(back, expected)
     assert list(back.loc[back["flag"] == "spike", "count"]) == [1, 1]
+
+
+def test_an_old_schema_is_upgraded_in_place(opener: Any) -> None:
+    from alembic import command
+    from alembic.config import Config
+
+    old = opener(migrate=False)
+    cfg = Config()
+    cfg.set_main_option("script_location", str(store_module._MIGRATIONS))
+    with old.engine.begin() as conn:  # a database left at the first schema version
+        cfg.attributes["connection"] = conn
+        command.upgrade(cfg, "0001_initial")
+    old.store_batch(_batch(_readings(4, ["FT-203"])), source="csv")
+    old_fits = sa.Table(  # the columns every version of the fits table has
+        "fits", sa.MetaData(), sa.Column("branch", sa.String(100)),
+        *(sa.Column(c, tables.UTCDateTime()) for c in ("window_start", "window_end",
+                                                       "computed_at")),
+        sa.Column("r", sa.Double()), sa.Column("samples", sa.Integer()),
+        sa.Column("status", sa.String(40)),
+    )  # fmt: skip
+    with old.engine.begin() as conn:
+        conn.execute(old_fits.insert(), [{
+            "branch": "CW-3", "window_start": T0, "window_end": T0 + timedelta(days=1),
+            "computed_at": T0, "r": 1.1, "samples": 1200, "status": "ok",
+        }])  # fmt: skip
+    new = opener()  # opening migrates to the newest version, keeping every row
+    assert len(_all(new, ["FT-203"])) == 4
+    fits = new.read_fits()
+    assert list(fits["r"]) == [1.1] and math.isnan(fits["sum_w"].iloc[0])
+    assert new.cursors("csv")["inbox/a.csv"]["offset"] == 100
