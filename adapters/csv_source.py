@@ -60,6 +60,7 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 
 from adapters.base import (
@@ -73,12 +74,13 @@ from adapters.base import (
 from adapters.source_tools import (
     DEFAULT_QUALITY_MAP,
     TIME_REASONS,
+    arrow_text,
+    encode_text,
     parse_times,
     quality_good,
     quarantine_frame,
     readings_frame,
     si_scale_offset,
-    text_cells,
     to_float,
 )
 
@@ -498,8 +500,7 @@ class CsvSource(ReadingsSource):
             else:
                 lines.append(number)
                 rows.append(fields)
-        arr = np.array(rows, dtype=object).reshape(len(rows), layout.n_fields)
-        cols = {i: arr[:, i] for i in wanted}
+        cols: dict[int, Any] = {i: pa.array([r[i] for r in rows], type=pa.string()) for i in wanted}
         return _Chunk(np.asarray(lines, dtype=np.int64), cols, bad, blank)
 
     def _parse(
@@ -515,11 +516,13 @@ class CsvSource(ReadingsSource):
         is_blank = _blank_rows(tcol, [chunk.cols[c] for c in value_cols])
         notes["blank_lines"] += int(is_blank.sum())
         keep = ~is_blank
+        tags: tuple[npt.NDArray[np.intp], npt.NDArray[Any]] | None = None
         if layout.kind == "long":
-            tags = text_cells(chunk.cols[layout.tag_col])
-            times, status = parse_times(tcol, self.zone, keys=tags, fold=fold)
+            # Tags as codes into their distinct names: Python strings only for those.
+            tags = encode_text(chunk.cols[layout.tag_col])
+            keys = tags[1][tags[0]]
+            times, status = parse_times(tcol, self.zone, keys=keys, fold=fold)
         else:
-            tags = None
             times, status = parse_times(tcol, self.zone, fold=fold)
         for code, reason in TIME_REASONS.items():
             hit = keep & (status == code)
@@ -555,7 +558,7 @@ class CsvSource(ReadingsSource):
         columns = []
         for col, tag in layout.tag_cols:
             values = chunk.cols[col]
-            if values.dtype != np.float64:
+            if not _is_float(values):
                 values, wrong = to_float(values, self.decimal)
                 hit = wrong & keep
                 bad += [(int(ln), f"value of {tag} is not a number") for ln in chunk.lines[hit]]
@@ -575,23 +578,23 @@ class CsvSource(ReadingsSource):
         chunk: _Chunk,
         layout: _Layout,
         times: pd.DatetimeIndex,
-        tags: npt.NDArray[Any],
+        tags: tuple[npt.NDArray[np.intp], npt.NDArray[Any]],
         keep: npt.NDArray[np.bool_],
         bad: list[tuple[int, str]],
         notes: Counter[str],
     ) -> pd.DataFrame:
+        ids, uniques = tags
         values = chunk.cols[layout.value_col]
         wrong = np.zeros(len(values), dtype=bool)
-        if values.dtype != np.float64:
+        if not _is_float(values):
             values, wrong = to_float(values, self.decimal)
         for mask, reason in (
-            (keep & (tags == ""), "blank tag"),
+            (keep & (uniques[ids] == ""), "blank tag"),
             (keep & wrong, "value is not a number"),
             (keep & ~wrong & ~np.isfinite(values), "blank value"),
         ):
             bad += [(int(ln), reason) for ln in chunk.lines[mask]]
             keep &= ~mask
-        ids, uniques = pd.factorize(tags)
         scale = np.full(len(uniques), np.nan)
         offset = np.zeros(len(uniques))
         for i, name in enumerate(uniques):
@@ -610,7 +613,7 @@ class CsvSource(ReadingsSource):
             good, unmapped = quality_good(chunk.cols[layout.quality_col], self.quality_map)
             notes["unmapped_quality"] += unmapped
         si = values * scale[ids] + offset[ids]
-        return readings_frame(times.asi8[keep], tags[keep], si[keep], good[keep])
+        return readings_frame(times.asi8[keep], uniques[ids[keep]], si[keep], good[keep])
 
     @staticmethod
     def _quarantine_rows(
@@ -628,20 +631,26 @@ class CsvSource(ReadingsSource):
         return quarantine_frame(rows)
 
 
-def _column(arr: pa.ChunkedArray) -> npt.NDArray[Any]:
+def _column(arr: pa.ChunkedArray) -> Any:
+    """A float column as numpy (NaN for empty); a text column stays in Arrow."""
     if pa.types.is_floating(arr.type):
         return arr.to_numpy().astype(np.float64, copy=False)
-    return np.asarray(arr.to_numpy(zero_copy_only=False), dtype=object)
+    return arr.combine_chunks()
 
 
-def _blank_rows(times: npt.NDArray[Any], others: list[npt.NDArray[Any]]) -> npt.NDArray[np.bool_]:
+def _is_float(col: Any) -> bool:
+    return isinstance(col, np.ndarray) and col.dtype == np.float64
+
+
+def _empty_text(col: Any) -> npt.NDArray[np.bool_]:
+    return np.asarray(pc.equal(arrow_text(col), "").to_numpy(zero_copy_only=False), dtype=bool)
+
+
+def _blank_rows(times: Any, others: list[Any]) -> npt.NDArray[np.bool_]:
     """Rows where every read cell is empty (blank lines, or lines of bare delimiters)."""
-    blank = text_cells(times) == ""
+    blank = _empty_text(times)
     for col in others:
         if not blank.any():
             break
-        if col.dtype == np.float64:
-            blank &= np.isnan(col)
-        else:
-            blank &= text_cells(col) == ""
-    return np.asarray(blank, dtype=bool)
+        blank &= np.isnan(col) if _is_float(col) else _empty_text(col)
+    return blank

@@ -29,6 +29,8 @@ from adapters.units import UnitError, converter
 __all__ = [
     "DEFAULT_QUALITY_MAP",
     "TIME_REASONS",
+    "arrow_text",
+    "encode_text",
     "parse_times",
     "quality_good",
     "quarantine_frame",
@@ -78,26 +80,17 @@ def quality_good(
     >>> quality_good(["G", "bad", None, "192"], DEFAULT_QUALITY_MAP)
     (array([ True, False,  True,  True]), 1)
     """
-    series = pd.Series(codes, dtype=object)
-    ids, uniques = pd.factorize(series, use_na_sentinel=True)
+    ids, uniques = encode_text(codes)
     lookup = {str(k).strip().lower(): bool(v) for k, v in quality_map.items()}
-    table = np.empty(len(uniques) + 1, dtype=bool)
-    mapped = np.empty(len(uniques) + 1, dtype=bool)
-    for i, code in enumerate(uniques):
-        key = str(code).strip().lower()
-        mapped[i] = key in lookup
-        table[i] = lookup.get(key, False)
-    table[-1] = lookup.get("", False)  # missing code (NA sentinel -1 hits the last slot)
-    mapped[-1] = "" in lookup
-    ids = np.asarray(ids)
+    keys = [str(code).lower() for code in uniques]
+    table = np.array([lookup.get(k, False) for k in keys], dtype=bool)
+    mapped = np.array([k in lookup for k in keys], dtype=bool)
     return table[ids], int(np.count_nonzero(~mapped[ids]))
 
 
-def to_float(
-    strings: npt.NDArray[Any], decimal: str
-) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.bool_]]:
+def to_float(strings: Any, decimal: str) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.bool_]]:
     """Parse text cells to floats: (values with NaN for missing, mask of bad cells)."""
-    s = pd.Series(strings, dtype=object).fillna("").astype(str).str.strip()
+    s = pd.Series(text_cells(strings), dtype=object)
     missing = s.str.lower().isin(_NA_TOKENS).to_numpy()
     if decimal != ".":
         s = s.str.replace(decimal, ".", regex=False)
@@ -133,63 +126,76 @@ def parse_times(
     >>> [str(v) for v in t], s.tolist()
     (['NaT', '2026-01-01 06:00:00+00:00', 'NaT'], [3, 0, 2])
     """
-    # Vectorised text tests in Arrow (RE2): a Python regex per row costs more than the
-    # whole CSV parse.
-    arr = _arrow_text(strings)
-    s = pd.Series(arr.to_numpy(zero_copy_only=False), dtype=object)
-    n = len(s)
-    status = np.zeros(n, dtype=np.int8)
-    out = np.full(n, np.datetime64("NaT", "ns"), dtype="datetime64[ns]")
-    blank = pc.equal(arr, "").to_numpy(zero_copy_only=False)
-    status[blank] = TIME_BLANK
-    aware = pc.match_substring_regex(arr, _OFFSET_RE).to_numpy(zero_copy_only=False) & ~blank
-    if aware.any():
-        t = _distinct_to_datetime(s[aware], utc=True)
-        out[aware] = t.tz_localize(None).as_unit("ns").to_numpy()
-    naive = ~aware & ~blank
-    if naive.any():
-        wall = _distinct_to_datetime(s[naive], utc=False).as_unit("ns")
-        if wall.tz is not None:  # a zone name inside the text: already exact
-            out[naive] = wall.tz_convert("UTC").tz_localize(None).to_numpy()
-        else:
-            out[naive] = _localize(wall, zone, keys[naive] if keys is not None else None, fold)
-            nonexistent = np.zeros(n, dtype=bool)
-            nonexistent[naive] = wall.notna() & np.isnat(out[naive])
-            status[nonexistent] = TIME_NONEXISTENT
+    # Each distinct string is tested and parsed once (a long file repeats every instant
+    # once per tag), with Arrow's vectorised text kernels: a Python regex per row costs
+    # more than the whole CSV parse.
+    idx, uniq = encode_text(strings)
+    text = pd.Series(uniq, dtype=object)
+    m = len(uniq)
+    u_status = np.zeros(m, dtype=np.int8)
+    u_utc = np.full(m, np.datetime64("NaT", "ns"), dtype="datetime64[ns]")
+    u_blank = (text == "").to_numpy()
+    u_status[u_blank] = TIME_BLANK
+    regex = pc.match_substring_regex(pa.array(uniq, type=pa.string()), _OFFSET_RE)
+    u_aware = regex.to_numpy(zero_copy_only=False) & ~u_blank
+    if u_aware.any():
+        u_utc[u_aware] = _to_utc_naive(text[u_aware], utc=True)
+    u_naive = ~u_aware & ~u_blank
+    out = u_utc[idx]
+    if u_naive.any():
+        wall = np.full(m, np.datetime64("NaT", "ns"), dtype="datetime64[ns]")
+        wall[u_naive] = _to_utc_naive(text[u_naive], utc=False)
+        dst, std = _localize_both(wall, zone)
+        u_status[u_naive & ~np.isnat(wall) & np.isnat(dst)] = TIME_NONEXISTENT
+        naive_rows = u_naive[idx]
+        out[naive_rows] = dst[idx][naive_rows]
+        amb = np.flatnonzero(naive_rows & ~np.isnat(dst[idx]) & (dst[idx] != std[idx]))
+        if amb.size:
+            out[amb] = _fold_rule(amb, wall[idx], dst[idx], std[idx], keys, fold)
+    u_status[(u_status == TIME_OK) & np.isnat(u_utc) & ~u_naive] = TIME_UNPARSED
+    status = u_status[idx]
     status[(status == TIME_OK) & np.isnat(out)] = TIME_UNPARSED
     return pd.DatetimeIndex(out).tz_localize("UTC"), status
 
 
-def _distinct_to_datetime(text: pd.Series, *, utc: bool) -> pd.DatetimeIndex:
-    """ISO-8601 text to datetimes, each distinct string parsed once (long files repeat
-    every instant once per tag)."""
-    codes, uniques = pd.factorize(text)
-    parsed = pd.DatetimeIndex(
-        pd.to_datetime(pd.Series(uniques, dtype=object), format="ISO8601", utc=utc, errors="coerce")
-    ).as_unit("ns")
-    return parsed[codes]
+def _to_utc_naive(text: pd.Series, *, utc: bool) -> npt.NDArray[np.datetime64]:
+    """ISO-8601 text → datetime64[ns] (UTC when *utc*, else wall time), NaT if bad."""
+    parsed = pd.DatetimeIndex(pd.to_datetime(text, format="ISO8601", utc=utc, errors="coerce"))
+    if parsed.tz is not None:  # offsets, or a zone name inside the text: exact
+        parsed = parsed.tz_convert("UTC").tz_localize(None)
+    return parsed.as_unit("ns").to_numpy()
 
 
-def _localize(
-    wall: pd.DatetimeIndex,
-    zone: ZoneInfo,
+def _localize_both(
+    wall: npt.NDArray[np.datetime64], zone: ZoneInfo
+) -> tuple[npt.NDArray[np.datetime64], npt.NDArray[np.datetime64]]:
+    """Wall times in *zone* → UTC read as daylight and as standard time (NaT: missing)."""
+    index = pd.DatetimeIndex(wall)
+    if zone.key == "UTC":
+        return wall, wall
+    n = len(index)
+    dst = index.tz_localize(zone, ambiguous=np.ones(n, bool), nonexistent="NaT")
+    std = index.tz_localize(zone, ambiguous=np.zeros(n, bool), nonexistent="NaT")
+    return (
+        dst.tz_convert("UTC").tz_localize(None).as_unit("ns").to_numpy(),
+        std.tz_convert("UTC").tz_localize(None).as_unit("ns").to_numpy(),
+    )
+
+
+def _fold_rule(
+    rows: npt.NDArray[np.intp],
+    wall: npt.NDArray[np.datetime64],
+    dst: npt.NDArray[np.datetime64],
+    std: npt.NDArray[np.datetime64],
     keys: npt.NDArray[Any] | None,
     fold: dict[str, list[Any]] | None,
 ) -> npt.NDArray[np.datetime64]:
-    """Naive wall times in *zone* → naive UTC; nonexistent → NaT; repeated hour by rule."""
-    n = len(wall)
-    dst = wall.tz_localize(zone, ambiguous=np.ones(n, bool), nonexistent="NaT")
-    std = wall.tz_localize(zone, ambiguous=np.zeros(n, bool), nonexistent="NaT")
-    dst_u = dst.tz_convert("UTC").tz_localize(None).as_unit("ns").to_numpy().copy()
-    std_u = std.tz_convert("UTC").tz_localize(None).as_unit("ns").to_numpy()
-    ambiguous = np.flatnonzero(~np.isnat(dst_u) & (dst_u != std_u))
-    if ambiguous.size == 0:
-        return dst_u
+    """UTC of the repeated-hour *rows*, in order, by the rule of the module docstring."""
     state = fold if fold is not None else {}
-    wall_ns = wall.to_numpy()
-    for i in ambiguous:  # at most the rows of one hour per series: a short loop
+    out = dst[rows].copy()
+    for j, i in enumerate(rows):  # at most the rows of one hour per series: a short loop
         key = str(keys[i]) if keys is not None else "*"
-        here = pd.Timestamp(wall_ns[i])
+        here = pd.Timestamp(wall[i])
         entry = state.get(key)
         if entry is not None and abs(here - pd.Timestamp(entry[0])) > _FOLD_RESET:
             entry = None
@@ -197,24 +203,37 @@ def _localize(
             state[key] = [here.isoformat(), False]
         elif entry[1] or here < pd.Timestamp(entry[0]):
             entry[1] = True
-            dst_u[i] = std_u[i]
+            out[j] = std[i]
         else:
             entry[0] = here.isoformat()
-    return dst_u
+    return out
 
 
-def text_cells(values: npt.NDArray[Any]) -> npt.NDArray[Any]:
+def encode_text(values: Any) -> tuple[npt.NDArray[np.intp], npt.NDArray[Any]]:
+    """Text cells as (code per row, distinct stripped texts); missing reads as ""."""
+    encoded = pc.dictionary_encode(arrow_text(values))
+    codes = encoded.indices.to_numpy(zero_copy_only=False).astype(np.intp, copy=False)
+    return codes, np.asarray(encoded.dictionary.to_pylist(), dtype=object)
+
+
+def text_cells(values: Any) -> npt.NDArray[Any]:
     """Stripped text per row, as an object array ("" for missing)."""
-    return np.asarray(_arrow_text(values).to_numpy(zero_copy_only=False), dtype=object)
+    codes, uniques = encode_text(values)
+    return uniques[codes]
 
 
-def _arrow_text(values: Sequence[Any] | npt.NDArray[Any] | pd.Series) -> pa.Array:
+def arrow_text(values: Any) -> pa.Array:
     """Text cells as an Arrow string array, stripped, "" for missing."""
-    try:
-        arr = pa.array(values, type=pa.string(), from_pandas=True)
-    except (pa.ArrowInvalid, pa.ArrowTypeError):  # not all str: take each one's text
-        texts = ["" if v is None or v != v else str(v) for v in values]
-        arr = pa.array(texts, type=pa.string())
+    if isinstance(values, pa.ChunkedArray):
+        values = values.combine_chunks()
+    if isinstance(values, pa.Array):
+        arr = values if values.type == pa.string() else pc.cast(values, pa.string())
+    else:
+        try:
+            arr = pa.array(values, type=pa.string(), from_pandas=True)
+        except (pa.ArrowInvalid, pa.ArrowTypeError):  # not all str: take each one's text
+            texts = ["" if v is None or v != v else str(v) for v in values]
+            arr = pa.array(texts, type=pa.string())
     return pc.utf8_trim_whitespace(pc.fill_null(arr, ""))
 
 
