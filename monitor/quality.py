@@ -657,8 +657,10 @@ def to_wide(
     bins = good["time"].dt.tz_convert("UTC").dt.floor(freq)
     wide = good["value"].groupby([bins, good["tag"]]).mean().unstack("tag")
     if start is None or end is None:
-        if len(bins) == 0 and (start is None or end is None):
-            return pd.DataFrame(index=pd.DatetimeIndex([], tz="UTC", name="time"))
+        if len(bins) == 0:
+            return pd.DataFrame(
+                index=pd.DatetimeIndex([], dtype="datetime64[ns, UTC]", name="time")
+            )
         start = start if start is not None else bins.min()
         end = end if end is not None else bins.max() + freq
     grid = pd.date_range(
@@ -667,7 +669,7 @@ def to_wide(
         freq=freq,
         inclusive="left",
         name="time",
-    )
+    ).as_unit("ns")
     wide = wide.reindex(grid).reindex(columns=sorted(wide.columns))
     wide.columns.name = None
     return wide.astype("float64")

@@ -241,6 +241,7 @@ def test_to_wide_means_good_samples_on_a_regular_grid() -> None:
     assert wide["FT-203"].iloc[1:].isna().all()
     grid = to_wide(frame, "30s", start=T0, end=T0 + pd.Timedelta("5min"))
     assert len(grid) == 10
+    assert str(grid.index.dtype) == "datetime64[ns, UTC]"  # the project's time type
 
 
 def test_bad_input_names_the_argument() -> None:
