@@ -25,7 +25,7 @@ from monitor.quality import ScreenSettings, TagLimits, running_mask, screen, ste
 
 log = logging.getLogger(__name__)
 
-__all__ = ["WindowAnalysis", "analyze_window", "screen_settings"]
+__all__ = ["WindowAnalysis", "analyze_window", "logging_interval", "screen_settings"]
 
 #: Relative expanded (95 %) uncertainty of a branch flow meter when the site file gives
 #: none: ±2 % of reading (common practice for installed magnetic meters, which are rated
@@ -46,24 +46,42 @@ class WindowAnalysis:
     samples: int
 
 
-def screen_settings(site: Site) -> ScreenSettings:
-    """Screening thresholds for *site* (pump-running pressure from the site file)."""
-    grid = site.analysis.sample_period
+def screen_settings(site: Site, logging_interval_s: float | None = None) -> ScreenSettings:
+    """Screening thresholds for *site* and the historian's logging interval.
+
+    The windows of the gap, frozen and steady-state tests must hold several samples
+    whatever the logging interval: a 10-minute historian cannot show a 15-minute steady
+    period, nor a frozen hour, with the thresholds of a 1-minute one.
+    """
+    grid = max(site.analysis.sample_period, logging_interval_s or 0.0)
     return ScreenSettings(
         running_pressure_pa=site.running_pressure_pa,
         max_gap_s=max(600.0, 5 * grid),
-        steady_window_s=max(900.0, 10 * grid),
+        steady_window_s=max(900.0, 6 * grid),
+        frozen_s=max(3600.0, 12 * grid),
+        settling_s=max(600.0, 2 * grid),
     )
+
+
+def logging_interval(readings: pd.DataFrame, tag: str) -> float | None:
+    """Median interval between the samples of *tag* [s], None with fewer than 3."""
+    times = readings.loc[readings["tag"] == tag, "time"]
+    if len(times) < 3:
+        return None
+    steps = times.sort_values().diff().dt.total_seconds().to_numpy()[1:]
+    steps = steps[steps > 0]
+    return float(np.median(steps)) if len(steps) else None
 
 
 def analyze_window(
     site: Site, readings: pd.DataFrame, start: datetime, end: datetime
 ) -> WindowAnalysis:
     """Screen, select and fit one window [start, end) of *readings* (a readings frame)."""
-    settings = screen_settings(site)
+    readings = readings[readings["tag"].isin(list(site.tags))]
+    interval = logging_interval(readings, site.header_pressure_tag)
+    settings = screen_settings(site, interval)
     specs = {tag: TagLimits.from_spec(spec) for tag, spec in site.tags.items()}
     t0, t1 = pd.Timestamp(start), pd.Timestamp(end)
-    readings = readings[readings["tag"].isin(list(site.tags))]
     result = screen(
         readings, specs, settings, start=t0, end=t1,
         header_pressure_tag=site.header_pressure_tag, total_flow_tag=site.total_flow_tag,
@@ -71,7 +89,7 @@ def analyze_window(
     health = result.health_counts()
     screening = _screening_counts(site, result.flags, t0, t1)
     usable = result.usable_readings()
-    freq = pd.Timedelta(seconds=site.analysis.sample_period)
+    freq = pd.Timedelta(seconds=max(site.analysis.sample_period, interval or 0.0))
     wide = to_wide(usable, freq, start=t0, end=t1)
     for tag in site.tags:
         if tag not in wide.columns:
