@@ -173,11 +173,11 @@ class DiagnosisSettings:
     cusum_h: float = 12.0  # CUSUM decision interval [σ]
     trend_alpha: float = 0.001  # Mann–Kendall (Hamed–Rao) two-sided level [-]
     min_rise_r: float = 0.05  # fitted rise needed to call fouling [-]
-    min_trend_windows: int = 30  # [windows]
+    min_trend_windows: int = 20  # [windows]
     trend_persistence: int = 3  # consecutive windows the trend test must pass [windows]
     min_rise_sigma: float = 4.0  # fitted level above the reference, in σ [-]
     max_trend_windows: int = 180  # [windows]
-    trend_lookbacks: tuple[int, ...] = (30, 60, 120, 180)  # trailing windows tested
+    trend_lookbacks: tuple[int, ...] = (20, 30, 60, 120, 180)  # trailing windows tested
     min_bp_step_pa: float = 1.0e4  # smallest back-pressure step reported (0.1 bar) [Pa]
     min_sigma_pa: float = 500.0  # floor of σ of pressures [Pa]
     bp_step_z: float = 6.0  # [σ]
@@ -578,6 +578,7 @@ class _Replay:
         self.open: dict[str, _Open] = {}
         self.done: list[Finding] = []
         self.first_segment = True
+        self.rel_errors: list[float] = []  # relative prediction errors of accepted windows
         self.s_shift = 0.0  # back-pressure change found from r, taken out of later r [Pa]
         self._new_segment()
 
@@ -741,13 +742,6 @@ class _Replay:
 
     def _steps(self, i: int) -> None:
         assert self.base is not None
-        # prediction error of a window [-]; the scatter of r is relative, so it grows
-        # with the level
-        sigma_e = (
-            1.25 * self.base.sigma_r * max(self.r[self.level[-1]] / self.base.r0, 1.0)
-            if self.level
-            else 1.25 * self.base.sigma_r
-        )
         if self.pending is not None:
             self._decide_step(i)
             return
@@ -763,7 +757,14 @@ class _Replay:
             self.trend.append(i)
             return
         e = float(self.r[i] - pred)
-        z = e / sigma_e
+        # Scatter of the relative prediction error [-]: the baseline's (a fourteen-window
+        # estimate, often low under AR(1) correlation) or, once there are enough, that of
+        # the recent prediction errors, whichever is larger. r's scatter is relative, so
+        # σ scales with the predicted level.
+        rel = 1.25 * self.base.sigma_r / self.base.r0
+        if len(self.rel_errors) >= 10:
+            rel = max(rel, robust_sigma(self.rel_errors[-60:]))
+        z = e / (rel * pred)
         if self.cusum == 0.0:
             self.cusum_start = i
         self.cusum = max(0.0, self.cusum + z - self.cfg.cusum_k)
@@ -792,6 +793,7 @@ class _Replay:
             self._reset_level()
             self.level, self.trend = [i], [i]
             return
+        self.rel_errors.append(e / pred)
         self.level.append(i)
         self.trend.append(i)
 
