@@ -13,7 +13,7 @@ import json
 import logging
 import sys
 from collections.abc import Callable, Sequence
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -213,6 +213,19 @@ def _run_recorded(store: ResultsStore, job: str, func: Callable[[], Any]) -> Any
     return result
 
 
+def _local(site: Site, when: Any) -> str:
+    """A UTC time as the site's local date and time, e.g. '2026-06-10 11:30'."""
+    return f"{pd.Timestamp(when).tz_convert(site.timezone):%Y-%m-%d %H:%M}"
+
+
+def _print_findings(site: Site, findings: Sequence[Any]) -> None:
+    """Findings as lines, times in site time."""
+    for f in findings:
+        state = "open" if f.end is None else f"ended {_local(site, f.end)}"
+        print(f"  {f.branch:<16} {f.kind:<14} since {_local(site, f.start)} ({state}, "
+              f"confidence {f.confidence:.2f}): {f.message}")
+
+
 def _jsonable(value: Any) -> Any:
     return json.loads(json.dumps(value, default=str))
 
@@ -345,10 +358,7 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
         store.close()
     print(f"{summary.windows} windows, {summary.fits} branch fits ({summary.fits_ok} usable), "
           f"{len(summary.findings)} findings")
-    for f in summary.findings:
-        state = "open" if f.end is None else f"ended {f.end:%Y-%m-%d}"
-        print(f"  {f.branch:<16} {f.kind:<14} since {f.start:%Y-%m-%d %H:%M}Z  "
-              f"({state}, confidence {f.confidence:.2f}): {f.message}")
+    _print_findings(site, summary.findings)
     if args.findings:
         args.findings.parent.mkdir(parents=True, exist_ok=True)
         args.findings.write_text(
@@ -490,13 +500,232 @@ def _iso_map(frame: pd.DataFrame, key: str, time_col: str) -> dict[str, str]:
     return {str(k): t.isoformat() for k, t in zip(frame[key], times, strict=True)}
 
 
+# ---------------------------------------------------------------------------------------
+# demo
+
+
+def _register_demo(verbs: Any) -> None:
+    p = _add_verb(
+        verbs, "demo", _cmd_demo, "build the demo site and run the whole job on it",
+        """\
+Build an invented site (the example site file: two pumps on a speed drive, six
+branches), simulate months of its historian exports with faults on fixed dates — a
+fouling heat exchanger, a valve left throttled, a raised header set point, a frozen
+meter — then ingest, analyse and diagnose them into a SQLite store, exactly as the daemon
+would. Needs no configuration. The folder is rebuilt on every run.""",
+        config=False,
+    )
+    p.add_argument("--folder", type=Path, default=Path("demo-site"),
+                   help="where to build the demo (default: ./demo-site)")
+    p.add_argument("--days", type=int, default=150, help="days of data (default 150)")
+    p.add_argument("--step", type=float, default=120.0, metavar="SECONDS",
+                   help="historian sample interval (default 120 s)")
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from tqdm import tqdm
+
+    from monitor.demo import DEMO_START, prepare_demo
+    from monitor.jobs import analyze, ingest, open_source
+    from monitor.plots import plot_system_curve
+    from monitor.whatif import CurveRequest, solve_curve
+
+    if not 30 <= args.days <= 800:
+        raise UserError("--days must be between 30 and 800")
+    folder = args.folder.resolve()
+    print(f"building the demo site in {folder} ({args.days} days of {args.step:.0f}-s data)")
+    paths = prepare_demo(folder, days=args.days, step_s=args.step)
+    site = load_site(paths.site_file)
+    curve = solve_curve(site, CurveRequest())
+    if curve.ok:
+        plot_system_curve(site, curve, folder / "system-curve.png")
+    store = open_store(site.store_url)
+    source = open_source(site)
+    try:
+        print("ingesting the exports ...")
+        summary = _run_recorded(store, "ingest", lambda: ingest(site, store, source))
+        print(f"  {summary.stored} readings stored, {summary.quarantined} rows quarantined")
+        start, end = DEMO_START, DEMO_START + timedelta(days=args.days)
+        with tqdm(total=None, unit="window", disable=args.quiet, file=sys.stderr,
+                  desc="analysing") as bar:
+            def progress(done: int, total: int) -> None:
+                bar.total = total
+                bar.update(done - bar.n)
+
+            result = _run_recorded(
+                store, "analyze",
+                lambda: analyze(site, store, source, start, end, progress=progress),
+            )
+        fits = store.read_fits()
+        _write_fits_csv(fits, folder / "fits.csv")
+    finally:
+        source.close()
+        store.close()
+    findings_file = folder / "findings.json"
+    findings_file.write_text(json.dumps([f.to_json_dict() for f in result.findings], indent=2))
+    print(f"\n{result.windows} days analysed, {result.fits_ok} of {result.fits} branch fits "
+          f"usable, {len(result.findings)} findings:")
+    _print_findings(site, result.findings)
+    print(f"\nfiles in {folder}:")
+    for name in ("site.toml", "findings.json", "fits.csv", "system-curve.png"):
+        print(f"  {name}")
+    print(f"\ntry: branchwatch status {paths.site_file}")
+    return EXIT_OK
+
+
+# ---------------------------------------------------------------------------------------
+# alarms
+
+
+def _register_alarms(verbs: Any) -> None:
+    p = _add_verb(
+        verbs, "alarms", _cmd_alarms, "list, acknowledge, shelve low-flow alarms",
+        """\
+Low-flow alarms follow the ISA-18.2 life cycle: normal -> unack (active, not yet
+acknowledged) -> ack -> normal; rtn_unack when the flow came back before anyone
+acknowledged; shelved for a time; out_of_service during maintenance. Without an action,
+lists the alarms that are not normal and the latest journal entries.
+
+examples:
+  branchwatch alarms site.toml
+  branchwatch alarms site.toml --ack B3-quench --by "J. Ortega"
+  branchwatch alarms site.toml --shelve B5-spray --until "2026-09-01 06:00" --by shift-B
+  branchwatch alarms site.toml --out-of-service B4-process --by maintenance""",
+    )
+    action = p.add_mutually_exclusive_group()
+    action.add_argument("--ack", metavar="BRANCH", help="acknowledge the branch's alarm")
+    action.add_argument("--shelve", metavar="BRANCH", help="shelve it (needs --until)")
+    action.add_argument("--unshelve", metavar="BRANCH", help="end a shelf")
+    action.add_argument("--out-of-service", metavar="BRANCH", help="take it out of service")
+    action.add_argument("--in-service", metavar="BRANCH", help="return it to service")
+    p.add_argument("--until", metavar="TIME", help="end of the shelf (site time)")
+    p.add_argument("--by", default="", help="who (kept in the alarm journal)")
+    p.add_argument("--all", action="store_true", help="list normal alarms too")
+
+
+def _cmd_alarms(args: argparse.Namespace) -> int:
+    from monitor import alarms as life
+    from monitor.jobs import alarm_row, alarm_state_from_row
+
+    site = _site(args)
+    store = open_store(site.store_url)
+    try:
+        frame = store.read_alarms()
+        rows = {str(r["branch"]): r for r in frame.to_dict(orient="records")}
+        now = datetime.now(UTC)
+        chosen = [(k, getattr(args, k)) for k in
+                  ("ack", "shelve", "unshelve", "out_of_service", "in_service")
+                  if getattr(args, k)]
+        if not chosen:
+            _print_alarms(frame, store, site, show_all=args.all)
+            return EXIT_OK
+        action, branch = chosen[0]
+        site.branch(branch)
+        if branch not in rows:
+            raise UserError(f"branch {branch!r} has no alarm yet (it has never been evaluated)")
+        state = alarm_state_from_row(rows[branch])
+        if action == "ack":
+            new, _ = life.acknowledge(state, now, args.by)
+        elif action == "shelve":
+            if not args.until:
+                raise UserError("--shelve needs --until TIME")
+            new, _ = life.shelve(state, _parse_time(args.until, site, "--until"), now=now,
+                                 by=args.by)
+        elif action == "unshelve":
+            new, _ = life.unshelve(state, now=now, by=args.by)
+        elif action == "out_of_service":
+            new, _ = life.remove_from_service(state, now=now, by=args.by)
+        else:
+            new, _ = life.return_to_service(state, now=now, by=args.by)
+        if new == state:
+            print(f"{branch}: nothing to do (alarm is {state.state.value})")
+            return EXIT_OK
+        limit = rows[branch].get("limit_value")
+        store.upsert_alarms([alarm_row(new, limit_m3s=limit, now=now)])
+        print(f"{branch}: {state.state.value} -> {new.state.value}")
+    except KeyError as exc:
+        raise UserError(str(exc).strip('"')) from None
+    finally:
+        store.close()
+    return EXIT_OK
+
+
+def _print_alarms(frame: pd.DataFrame, store: ResultsStore, site: Site, *,
+                  show_all: bool) -> None:
+    shown = frame if show_all else frame[frame["state"] != "normal"]
+    if shown.empty:
+        print("no alarms" + ("" if show_all else " standing (all normal)"))
+    for r in shown.to_dict(orient="records"):
+        since = r.get("activated")
+        when = f" since {pd.Timestamp(since):%Y-%m-%d %H:%M}Z" if since is not None and \
+            not pd.isna(since) else ""
+        print(f"  {r['branch']:<16} {r['condition']:<9} {r['state']:<15}{when}  {r['message']}")
+    journal = store.alarm_events()
+    if not journal.empty:
+        print("\nlatest journal entries:")
+        for r in journal.tail(10).to_dict(orient="records"):
+            print(f"  {pd.Timestamp(r['time']):%Y-%m-%d %H:%M}Z  {r['branch']:<16} "
+                  f"{r['from_state'] or '-'} -> {r['to_state']}")
+
+
+# ---------------------------------------------------------------------------------------
+# run (the daemon)
+
+
+def _register_run(verbs: Any) -> None:
+    p = _add_verb(
+        verbs, "run", _cmd_run, "run the daemon: ingest, alarms, daily analysis",
+        """\
+Run until stopped (Ctrl-C or SIGTERM): ingest new readings every
+[schedule] ingest_every and evaluate low-flow alarms on them; analyse the windows that
+closed since the last run every day at [schedule] analyze_at (site time), catching up
+after downtime. A failed job is logged and retried at its next run; stopping waits for
+the running job, and every job writes in transactions, so nothing is half-stored.""",
+    )
+    p.add_argument("--health-file", type=Path,
+                   help="write a JSON heartbeat here (default: beside the store)")
+    p.add_argument("--for", dest="duration", type=float, metavar="SECONDS",
+                   help="stop after this many seconds (for trials)")
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    from monitor.daemon import Daemon
+    from monitor.jobs import catch_up, evaluate_alarms, ingest
+
+    site = _site(args)
+    store, source = _open(site)
+
+    def ingest_job() -> None:
+        _run_recorded(store, "ingest", lambda: ingest(site, store, source))
+        evaluate_alarms(site, store, source, now=datetime.now(UTC))
+
+    def analyze_job() -> None:
+        _run_recorded(store, "analyze",
+                      lambda: catch_up(site, store, source, now=datetime.now(UTC)))
+
+    health = args.health_file or site.report_folder / "branchwatch-health.json"
+    daemon = Daemon(site, {"ingest": ingest_job, "analyze": analyze_job}, health_file=health)
+    print(f"branchwatch running for {site.name}; heartbeat in {health}; Ctrl-C stops")
+    try:
+        stats = daemon.run(duration_s=args.duration)
+    finally:
+        source.close()
+        store.close()
+    print(f"stopped: runs {stats.runs}, failures {stats.failures}")
+    return EXIT_OK
+
+
 _VERBS: list[Callable[[Any], None]] = [
+    _register_demo,
     _register_check,
     _register_curve,
     _register_ingest,
     _register_analyze,
     _register_log,
     _register_status,
+    _register_alarms,
+    _register_run,
 ]
 
 

@@ -169,3 +169,34 @@ def reset_folder(folder: Path) -> None:
     if folder.exists():
         shutil.rmtree(folder)
     folder.mkdir(parents=True)
+
+
+@dataclass(frozen=True)
+class DemoPaths:
+    """Where a demo run put its files."""
+
+    folder: Path
+    site_file: Path
+    inbox: Path
+
+
+EXAMPLE_SITE = Path(__file__).resolve().parents[1] / "config" / "example-site.toml"
+
+
+def prepare_demo(folder: Path, *, days: int, step_s: float, seed: int = 7) -> DemoPaths:
+    """A fresh demo folder: the example site file and *days* of simulated exports."""
+    from monitor.config import load_site
+
+    if not EXAMPLE_SITE.exists():
+        raise FileNotFoundError(
+            f"the example site file {EXAMPLE_SITE} is missing; run the demo from a checkout"
+        )
+    reset_folder(folder)
+    site_file = folder / "site.toml"
+    shutil.copyfile(EXAMPLE_SITE, site_file)
+    site = load_site(site_file)
+    end = DEMO_START + timedelta(days=days)
+    sim = simulate_site(site, DEMO_START, end, faults=demo_faults(), step_s=step_s, seed=seed)
+    inbox = folder / "inbox"
+    write_exports(site, sim, inbox)
+    return DemoPaths(folder=folder, site_file=site_file, inbox=inbox)

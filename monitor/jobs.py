@@ -12,7 +12,7 @@ from __future__ import annotations
 import logging
 import math
 from collections import Counter
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, timedelta
 from typing import Any
@@ -22,8 +22,9 @@ import numpy as np
 import pandas as pd
 
 from adapters.base import ReadingsSource, ResultsStore, source_class
+from monitor.alarms import AlarmEvent, AlarmState, LowFlowSettings, State, evaluate_low_flow
 from monitor.analysis import analyze_window
-from monitor.config import Site
+from monitor.config import BranchConfig, Site
 from monitor.diagnose import (
     BranchSettings,
     DiagnosisSettings,
@@ -38,7 +39,9 @@ __all__ = [
     "AnalyzeSummary",
     "IngestSummary",
     "analyze",
+    "catch_up",
     "diagnose_site",
+    "evaluate_alarms",
     "ingest",
     "open_source",
     "windows",
@@ -209,10 +212,7 @@ def read_window(
 ) -> pd.DataFrame:
     """Readings of every site tag in [start, end): from the source when it keeps its data
     (SQL), else from the store (ingested files)."""
-    tags = list(site.tags)
-    if source.keeps_readings:
-        return source.read(tags, start, end)
-    return store.read_readings(tags, start, end)
+    return read_tags(site, store, source, list(site.tags), start, end)
 
 
 def analyze(
@@ -339,3 +339,156 @@ def _with_cost(site: Site, history: pd.DataFrame, f: Finding) -> Finding:
         "extra_energy_kwh_per_day": cost.extra_energy_kwh_per_day,
     }
     return replace(f, evidence=evidence)
+
+
+# ---------------------------------------------------------------------------------------
+# low-flow alarms
+
+
+#: How far back the first low-flow evaluation of a branch looks [s].
+ALARM_FIRST_LOOKBACK_S = 86_400.0
+
+
+def alarm_state_from_row(row: Mapping[Any, Any]) -> AlarmState:
+    """The alarm's state as stored (see `alarm_row`)."""
+    def t(key: str) -> datetime | None:
+        value = row.get(key)
+        return None if value is None or pd.isna(value) else pd.Timestamp(value).to_pydatetime()
+
+    value = row.get("value")
+    return AlarmState(
+        branch=str(row["branch"]),
+        condition=str(row["condition"]),
+        state=State(str(row["state"])),
+        active=bool(row.get("active") or False),
+        pending_since=t("pending_since"),
+        clear_since=t("clear_since"),
+        last_sample=t("last_sample"),
+        activated_at=t("activated"),
+        acknowledged_at=t("acknowledged"),
+        acknowledged_by=str(row.get("acknowledged_by") or ""),
+        shelved_until=t("shelved_until"),
+        last_value=math.nan if value is None or pd.isna(value) else float(value),
+        message=str(row.get("message") or ""),
+    )
+
+
+def alarm_row(state: AlarmState, *, limit_m3s: float | None, now: datetime) -> dict[str, Any]:
+    """A store row for *state* (the store journals every change of ``state``)."""
+    return {
+        "branch": state.branch, "condition": state.condition, "state": state.state.value,
+        "activated": state.activated_at, "acknowledged": state.acknowledged_at,
+        "shelved_until": state.shelved_until, "value": state.last_value,
+        "limit_value": limit_m3s, "message": state.message, "updated": now,
+        "active": state.active, "pending_since": state.pending_since,
+        "clear_since": state.clear_since, "last_sample": state.last_sample,
+        "acknowledged_by": state.acknowledged_by or None,
+    }
+
+
+def low_flow_settings(site: Site, branch: BranchConfig) -> LowFlowSettings:
+    """Low-flow alarm settings of *branch*: limit and delays from the site file; the
+    deadband is 5 % of the meter range (ISA-18.2 table for flow, from memory), the range
+    taken from the tag's configured high limit or else twice the minimum flow."""
+    assert branch.flow_tag is not None
+    high = site.tags[branch.flow_tag].high
+    span = high if high is not None and high > 0 else 2.0 * branch.min_flow_m3s
+    return LowFlowSettings(
+        min_flow_m3s=branch.min_flow_m3s,
+        range_m3s=max(span, 1e-6),
+        on_delay=timedelta(seconds=site.analysis.low_flow_on_delay),
+        off_delay=timedelta(seconds=site.analysis.low_flow_off_delay),
+        max_gap=timedelta(seconds=max(900.0, 3 * site.analysis.sample_period)),
+    )
+
+
+def evaluate_alarms(
+    site: Site, store: ResultsStore, source: ReadingsSource, *, now: datetime
+) -> list[AlarmEvent]:
+    """Run the low-flow check of every metered branch over the samples not yet seen.
+
+    Called after each ingest. The alarm's memory (delays, last sample) is stored, so a
+    restart neither repeats nor drops an alarm; the message names the likely cause from
+    the latest open findings.
+    """
+    stored = store.read_alarms()
+    states = {
+        (str(r["branch"]), str(r["condition"])): alarm_state_from_row(r)
+        for r in stored.to_dict(orient="records")
+    }
+    findings = _open_findings(store)
+    rows: list[dict[str, Any]] = []
+    events: list[AlarmEvent] = []
+    for branch in site.branches:
+        if branch.flow_tag is None or branch.min_flow_m3s <= 0:
+            continue
+        state = states.get((branch.name, "low_flow"), AlarmState(branch=branch.name))
+        since = state.last_sample or (now - timedelta(seconds=ALARM_FIRST_LOOKBACK_S))
+        readings = read_tags(site, store, source, [branch.flow_tag], since, now)
+        good = readings[readings["good"].to_numpy(bool)]
+        series = pd.Series(good["value"].to_numpy(float), index=pd.DatetimeIndex(good["time"]))
+        new, happened = evaluate_low_flow(
+            series, state, low_flow_settings(site, branch), now,
+            diagnosis=[f for f in findings if f.branch == branch.name],
+        )
+        events.extend(happened)
+        if new != state or (branch.name, "low_flow") not in states:
+            rows.append(alarm_row(new, limit_m3s=branch.min_flow_m3s, now=now))
+    if rows:
+        store.upsert_alarms(rows)
+    for e in events:
+        log.warning("alarm %s %s %s: %s", e.branch, e.condition, e.action, e.message)
+    return events
+
+
+def read_tags(
+    site: Site, store: ResultsStore, source: ReadingsSource, tags: list[str],
+    start: datetime, end: datetime,
+) -> pd.DataFrame:
+    """Readings of *tags* in [start, end), from wherever the site's readings live."""
+    if source.keeps_readings:
+        return source.read(tags, start, end)
+    return store.read_readings(tags, start, end)
+
+
+def _open_findings(store: ResultsStore) -> list[Finding]:
+    frame = store.read_findings()
+    out = []
+    for r in frame.to_dict(orient="records"):
+        if r.get("end") is not None and not pd.isna(r["end"]):
+            continue
+        out.append(Finding(
+            branch=str(r["branch"]), kind=str(r["kind"]),
+            start=pd.Timestamp(r["start"]).to_pydatetime(),
+            detected=pd.Timestamp(r["detected"]).to_pydatetime(), end=None,
+            confidence=float(r["confidence"]), evidence=dict(r.get("evidence") or {}),
+            message=str(r["message"]),
+        ))
+    return out
+
+
+# ---------------------------------------------------------------------------------------
+# the daily job
+
+
+#: On a first run with no fits, analyse at most this far back [days].
+CATCH_UP_MAX_DAYS = 400
+
+
+def catch_up(
+    site: Site, store: ResultsStore, source: ReadingsSource, *, now: datetime
+) -> AnalyzeSummary:
+    """Analyse every whole window that closed since the last analysed one.
+
+    The daily job: after downtime it catches up on all missed windows; run twice it
+    re-fits nothing new (the last window is already stored) and re-diagnoses.
+    """
+    marks = store.watermarks()
+    if not marks.fits.empty:
+        start = pd.Timestamp(marks.fits["last_window_end"].min()).to_pydatetime()
+    elif not marks.readings.empty:
+        start = pd.Timestamp(marks.readings["last"].min()).to_pydatetime()
+        start = max(start - site.window, now - timedelta(days=CATCH_UP_MAX_DAYS))
+    else:
+        start = now - site.window * 2
+    return analyze(site, store, source, start, now)

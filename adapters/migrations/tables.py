@@ -136,6 +136,12 @@ alarms_t = sa.Table(
     sa.Column("limit_value", sa.Double()),
     sa.Column("message", sa.Text()),
     sa.Column("updated", T(), nullable=False),
+    # added by 0003_alarm_memory
+    sa.Column("active", sa.Boolean()),
+    sa.Column("pending_since", T()),
+    sa.Column("clear_since", T()),
+    sa.Column("last_sample", T()),
+    sa.Column("acknowledged_by", sa.String(100)),
 )
 alarm_events_t = sa.Table(
     "alarm_events",

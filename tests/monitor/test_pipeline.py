@@ -1,0 +1,136 @@
+"""The whole job on a simulated site: exports in a folder → ingest → analyze → findings.
+
+The site is the example site; its data come from the simulator with the demo's faults on
+fixed dates (a fouling exchanger, a valve left throttled, a raised header set point, a
+frozen meter, a cleaning). Invented data: the check is that each fault is found, named
+right and dated near its truth, and that the clean branches stay quiet.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterator
+from datetime import timedelta
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+import pytest
+
+from adapters.base import open_store
+from monitor.cli import main
+from monitor.config import load_site
+from monitor.demo import DEMO_START, prepare_demo
+from monitor.jobs import analyze, evaluate_alarms, ingest, open_source
+
+DAYS = 130
+STEP_S = 600.0
+
+pytestmark = pytest.mark.slow
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict[str, Any]]:
+    folder = tmp_path_factory.mktemp("pipeline")
+    paths = prepare_demo(folder / "site", days=DAYS, step_s=STEP_S)
+    site = load_site(paths.site_file)
+    store = open_store(site.store_url)
+    source = open_source(site)
+    first = ingest(site, store, source)
+    second = ingest(site, store, source)
+    result = analyze(site, store, source, DEMO_START, DEMO_START + timedelta(days=DAYS))
+    yield {"site": site, "store": store, "source": source, "first": first,
+           "second": second, "result": result, "paths": paths}
+    source.close()
+    store.close()
+
+
+def _found(demo: dict[str, Any], branch: str, kind: str) -> list[Any]:
+    return [f for f in demo["result"].findings if f.branch == branch and f.kind == kind]
+
+
+def test_ingest_keeps_good_rows_quarantines_bad_and_is_idempotent(demo: dict[str, Any]) -> None:
+    first, second = demo["first"], demo["second"]
+    assert first.stored > 0 and first.quarantined > 0  # the demo spoils a few rows
+    assert second.stored == 0 and second.read == 0  # the same files again: nothing new
+
+
+def test_each_fault_is_found_and_named_right(demo: dict[str, Any]) -> None:
+    fouling = _found(demo, "B1-reactor", "fouling")
+    restriction = _found(demo, "B2-compressor", "restriction")
+    back_pressure = _found(demo, "B4-process", "back_pressure")
+    instrument = _found(demo, "B3-quench", "instrument")
+    assert fouling and restriction and back_pressure and instrument
+    # dated near the truth (demo_faults): throttled valve on day 70, set point on day 95
+    day = timedelta(days=1)
+    assert abs(restriction[0].start - (DEMO_START + 70 * day)) <= 1.5 * day
+    assert abs(back_pressure[0].start - (DEMO_START + 95 * day)) <= 1.5 * day
+    # the frozen meter (days 120-124) is an instrument fault, never fouling of B3
+    assert not _found(demo, "B3-quench", "fouling")
+    assert instrument[0].start >= DEMO_START + 119 * day
+
+
+def test_no_false_finding_on_clean_branches(demo: dict[str, Any]) -> None:
+    quiet = {"B5-spray", "B6-chiller"}
+    noisy = [f for f in demo["result"].findings if f.branch in quiet]
+    assert noisy == []
+    # a back-pressure step is not a restriction, and a restriction not a back-pressure
+    assert not _found(demo, "B4-process", "restriction")
+    assert not _found(demo, "B2-compressor", "back_pressure")
+
+
+def test_fitted_ratio_tracks_the_truth(demo: dict[str, Any]) -> None:
+    fits = demo["store"].read_fits(branch="B2-compressor")
+    ok = fits[fits["status"].isin(["ok", "not_identifiable"])]
+    after = ok[ok["window_start"] >= pd.Timestamp(DEMO_START + timedelta(days=72))]
+    before = ok[ok["window_end"] <= pd.Timestamp(DEMO_START + timedelta(days=69))]
+    # simulated truth: r = 1.0, then ×1.5 from day 70 (demo_faults)
+    assert before["r"].median() == pytest.approx(1.0, abs=0.02)
+    assert after["r"].median() == pytest.approx(1.5, abs=0.03)
+
+
+def test_rerun_of_analysis_changes_nothing(demo: dict[str, Any]) -> None:
+    store, site, source = demo["store"], demo["site"], demo["source"]
+    before = store.read_findings()
+    window = DEMO_START + timedelta(days=DAYS - 3)
+    analyze(site, store, source, window, DEMO_START + timedelta(days=DAYS))
+    after = store.read_findings()
+    assert len(after) == len(before)
+    assert sorted(after["kind"]) == sorted(before["kind"])
+
+
+def test_resistance_findings_carry_their_cost(demo: dict[str, Any]) -> None:
+    f = _found(demo, "B2-compressor", "restriction")[0]
+    assert f.evidence["lost_flow_m3h"] > 0
+    assert f.evidence["extra_energy_kwh_per_day"] > 0
+
+
+def test_low_flow_alarm_state_is_kept(demo: dict[str, Any]) -> None:
+    store, site, source = demo["store"], demo["site"], demo["source"]
+    now = DEMO_START + timedelta(days=DAYS)
+    evaluate_alarms(site, store, source, now=now)
+    first = store.read_alarms()
+    evaluate_alarms(site, store, source, now=now)  # the same samples again
+    again = store.read_alarms()
+    assert len(first) == len([b for b in site.branches if b.flow_tag and b.min_flow_m3s > 0])
+    assert list(first["state"]) == list(again["state"])
+    assert len(store.alarm_events()) == len(store.alarm_events())
+
+
+def test_cli_analyze_writes_findings_and_fits_files(
+    demo: dict[str, Any], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    site_file = str(demo["paths"].site_file)
+    findings, fits = tmp_path / "findings.json", tmp_path / "fits.csv"
+    start = (DEMO_START + timedelta(days=DAYS - 2)).date().isoformat()
+    end = (DEMO_START + timedelta(days=DAYS)).date().isoformat()
+    assert main(["analyze", site_file, "--from", start, "--to", end, "--quiet",
+                 "--findings", str(findings), "--fits", str(fits)]) == 0
+    rows = json.loads(findings.read_text())
+    assert {"branch", "kind", "start", "detected", "end", "confidence", "evidence",
+            "message"} <= set(rows[0])
+    table = pd.read_csv(fits)
+    assert {"branch", "window_start", "window_end", "r", "r_low", "r_high",
+            "samples"} <= set(table.columns)
+    assert main(["status", site_file]) == 0
+    assert "open findings" in capsys.readouterr().out
