@@ -54,8 +54,10 @@ def make_history(
     tk = np.arange(days)[:, None] + (np.arange(SAMPLES)[None, :] + 0.5) / SAMPLES
     q0 = 0.04  # design flow [m^3/s]
     # day/night load swing and a seasonal one (more cooling in summer) [m^3/s]
-    q = q0 * (0.8 + 0.2 * np.sin(2 * np.pi * (tk - 0.3))) * (
-        1 + 0.1 * np.sin(2 * np.pi * tk / 365.0)
+    q = (
+        q0
+        * (0.8 + 0.2 * np.sin(2 * np.pi * (tk - 0.3)))
+        * (1 + 0.1 * np.sin(2 * np.pi * tk / 365.0))
     )
     x = dp_design_pa * (q / q0) ** 2  # clean dynamic ΔP [Pa]
     eps = np.empty(days)
@@ -153,8 +155,10 @@ def test_restriction_step_found_within_a_day(seed: int) -> None:
     assert f.evidence["step_sigma"] > 6
 
 
-@pytest.mark.parametrize(("seed", "day", "dp_design"), [(10, 100.0, 1e5), (11, 100.2, 1e5),
-                                                        (12, 100.7, 1e5), (19, 100.3, 2.8e5)])
+@pytest.mark.parametrize(
+    ("seed", "day", "dp_design"),
+    [(10, 100.0, 1e5), (11, 100.2, 1e5), (12, 100.7, 1e5), (19, 100.3, 2.8e5)],
+)
 def test_back_pressure_step_unlogged_is_not_a_restriction(
     seed: int, day: float, dp_design: float
 ) -> None:
@@ -310,3 +314,40 @@ def test_finding_cost() -> None:
     with pytest.raises(ValueError, match="pump_efficiency"):
         finding_cost(flow_clean_m3s=0.04, flow_now_m3s=0.04, dp_dynamic_clean_pa=1.0e5,
                      r_now=1.2, pump_efficiency=1.5)  # fmt: skip
+
+
+def test_back_pressure_step_in_fitted_s() -> None:
+    # Wide flow range: the fit separates s from r (identifiable); the step is in s, r flat.
+    hist = make_history(160, seed=20)
+    rng = np.random.default_rng(20)
+    s = 3.0e4 + rng.normal(0, 800.0, len(hist)) + np.where(hist.index >= 101, 2.5e4, 0.0)
+    hist = hist.assign(s_pa=s, identifiable=True)
+    found = run(hist)
+    assert [f.kind for f in found] == ["back_pressure"], found
+    assert days_after_t0(found[0].start) == 101
+    assert found[0].evidence["step_pa"] == pytest.approx(2.5e4, rel=0.1)
+
+
+def test_commissioning_period_sets_the_baseline() -> None:
+    # A branch fouling from day 30 of the history, commissioned clean over days 0–20.
+    hist = make_history(200, seed=21, faults=(Fault("ramp", 30.0, 1.6, 90.0),))
+    period = (T0, T0 + timedelta(days=20))
+    settings = DiagnosisSettings(default_branch=BranchSettings(commissioning=period))
+    found = run(hist, settings=settings)
+    assert [f.kind for f in found] == ["fouling"]
+    assert found[0].evidence["r_baseline"] == pytest.approx(1.0, abs=0.03)
+
+
+def test_header_instrument_flags_exclude_every_branch() -> None:
+    # The header pressure transmitter froze: every branch's fit is suspect those days.
+    a = make_history(120, seed=22, branch="CW-1")
+    b = make_history(120, seed=23, branch="CW-2")
+    bad = (a.index >= 60) & (a.index < 80)
+    a.loc[bad, "r"] = 1.5
+    b.loc[bad, "r"] = 0.6
+    screening = pd.DataFrame(
+        {"branch": "header", "window_start": a["window_start"], "window_end": a["window_end"],
+         "tag": "PT-100", "frozen": np.where(bad, 96, 0), "out_of_range": 0, "spikes": 0}
+    )  # fmt: skip
+    found = run(pd.concat([a, b], ignore_index=True), screening=screening)
+    assert [(f.branch, f.kind) for f in found] == [("header", "instrument")]
