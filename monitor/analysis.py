@@ -21,7 +21,7 @@ import pandas as pd
 
 from model.fit import FitResult, fit_resistance
 from monitor.config import BranchConfig, Site
-from monitor.quality import ScreenSettings, TagLimits, running_mask, screen, steady_mask, to_wide
+from monitor.quality import ScreenSettings, TagLimits, running_mask, screen
 
 log = logging.getLogger(__name__)
 
@@ -76,60 +76,147 @@ def logging_interval(readings: pd.DataFrame, tag: str) -> float | None:
 def analyze_window(
     site: Site, readings: pd.DataFrame, start: datetime, end: datetime
 ) -> WindowAnalysis:
-    """Screen, select and fit one window [start, end) of *readings* (a readings frame)."""
-    readings = readings[readings["tag"].isin(list(site.tags))]
-    interval = logging_interval(readings, site.header_pressure_tag)
-    settings = screen_settings(site, interval)
+    """Screen, select and fit one window [start, end) of *readings* (a readings frame).
+
+    A branch's samples are kept where the pump runs and settled, and the header pressure
+    and the branch's own flow are steady (`monitor.quality.steady_mask`'s rule, tag by
+    tag): a transient on another branch shows in the header pressure when it matters to
+    this one. The header balance keeps only samples where every flow is steady.
+    """
+    settings = screen_settings(site)
     specs = {tag: TagLimits.from_spec(spec) for tag, spec in site.tags.items()}
     t0, t1 = pd.Timestamp(start), pd.Timestamp(end)
+    readings = readings[readings["tag"].isin(list(site.tags))]
     result = screen(
         readings, specs, settings, start=t0, end=t1,
         header_pressure_tag=site.header_pressure_tag, total_flow_tag=site.total_flow_tag,
     )
     health = result.health_counts()
     screening = _screening_counts(site, result.flags, t0, t1)
-    usable = result.usable_readings()
-    freq = pd.Timedelta(seconds=max(site.analysis.sample_period, interval or 0.0))
-    wide = to_wide(usable, freq, start=t0, end=t1)
-    for tag in site.tags:
-        if tag not in wide.columns:
-            wide[tag] = np.nan
+    freq = pd.Timedelta(seconds=site.analysis.sample_period)
+    grid = _Grid.of(result.flags, list(site.tags), freq, t0, t1)
     # Grid bins without a header pressure say nothing about the pump (the historian may
     # log less often than the grid): drop them, or each would count as a stop and a start.
-    wide = wide[wide[site.header_pressure_tag].notna()]
-    fits: list[dict[str, Any]] = []
-    if wide.empty:
-        keep = pd.Series(dtype=bool)
+    grid = grid.rows(np.isfinite(grid.column(site.header_pressure_tag)))
+    flow_tags = [b.flow_tag for b in site.branches if b.flow_tag]
+    if grid.empty:
+        running = np.zeros(0, dtype=bool)
+        steady: dict[str, np.ndarray] = {}
     else:
-        running = running_mask(wide, site.header_pressure_tag, None, settings)
-        flow_tags = [b.flow_tag for b in site.branches if b.flow_tag]
-        steady = steady_mask(wide, flow_tags, [site.header_pressure_tag], settings)
-        keep = running & steady
-    for branch in site.branches:
-        fits.append(_fit_row(site, branch, wide, keep, t0, t1))
-    balance = _balance(site, wide, keep, t0, t1)
+        running = running_mask(
+            grid.frame([site.header_pressure_tag]), site.header_pressure_tag, None, settings
+        ).to_numpy(bool)
+        steady = _steady_by_tag(grid, flow_tags, [site.header_pressure_tag], settings)
+    base = running & steady.get(site.header_pressure_tag, np.zeros(len(running), bool))
+    fits = [_fit_row(site, branch, grid, base & steady.get(branch.flow_tag or "", base), t0, t1)
+            for branch in site.branches]
+    keep_all = base.copy()
+    for tag in flow_tags:
+        keep_all &= steady.get(tag, False)
+    balance = _balance(site, grid, keep_all, t0, t1)
     return WindowAnalysis(
         fits=fits, screening=screening, balance=balance, health=health, samples=len(readings)
     )
 
 
+@dataclass(frozen=True)
+class _Grid:
+    """Usable readings on a regular UTC grid: one row per bin, one column per tag.
+
+    The values are the means of the usable samples in each bin ``[t, t + freq)`` (NaN
+    where none), as `monitor.quality.to_wide` gives them; held as one numpy matrix so
+    that hundreds of branches cost one pass over the samples, not one per tag.
+    """
+
+    index: pd.DatetimeIndex
+    values: np.ndarray  # bins × tags [SI]
+    columns: dict[str, int]
+
+    @classmethod
+    def of(
+        cls, flags: pd.DataFrame, tags: list[str], freq: pd.Timedelta,
+        start: pd.Timestamp, end: pd.Timestamp,
+    ) -> _Grid:
+        grid = pd.date_range(
+            start.tz_convert("UTC").floor(freq), end.tz_convert("UTC"), freq=freq,
+            inclusive="left", name="time",
+        )
+        columns = {tag: j for j, tag in enumerate(tags)}
+        value = flags["value"].to_numpy("float64")
+        use = flags["usable"].to_numpy(bool) & flags["good"].to_numpy(bool) & np.isfinite(value)
+        col = pd.Index(tags).get_indexer(pd.Index(flags["tag"]))
+        ns = flags["time"].dt.tz_convert("UTC").to_numpy("datetime64[ns]").view("int64")
+        step = int(freq.value)
+        row = (ns - (int(grid[0].value) if len(grid) else 0)) // step
+        use &= (col >= 0) & (row >= 0) & (row < len(grid))
+        cells = row[use] * len(tags) + col[use]
+        size = len(grid) * len(tags)
+        sums = np.bincount(cells, weights=value[use], minlength=size)
+        counts = np.bincount(cells, minlength=size)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = np.where(counts > 0, sums / counts, np.nan)
+        return cls(grid, mean.reshape(len(grid), len(tags)), columns)
+
+    @property
+    def empty(self) -> bool:
+        return len(self.index) == 0
+
+    def rows(self, keep: np.ndarray) -> _Grid:
+        return _Grid(self.index[keep], self.values[keep], self.columns)
+
+    def column(self, tag: str) -> np.ndarray:
+        return self.values[:, self.columns[tag]]
+
+    def frame(self, tags: list[str]) -> pd.DataFrame:
+        cols = [self.columns[t] for t in tags]
+        return pd.DataFrame(self.values[:, cols], index=self.index, columns=tags)
+
+
+def _steady_by_tag(
+    grid: _Grid, flow_tags: list[str], pressure_tags: list[str], settings: ScreenSettings
+) -> dict[str, np.ndarray]:
+    """Per tag, True where it is steady by `monitor.quality.steady_mask`'s rule.
+
+    One rolling pass over all the tags at once (the rule is per column); `steady_mask`
+    is the AND of these over its tags.
+    """
+    window = pd.Timedelta(seconds=settings.steady_window_s)
+    index = grid.index
+    step = index.to_series().diff().median() if len(index) > 1 else window
+    need = max(2, int(0.5 * window / step)) if pd.notna(step) and step > pd.Timedelta(0) else 2
+    out: dict[str, np.ndarray] = {}
+    groups = (
+        (flow_tags, settings.steady_flow_rel, settings.steady_flow_floor_m3s),
+        (pressure_tags, settings.steady_pressure_rel, settings.steady_pressure_floor_pa),
+    )
+    for tags, limit, floor in groups:
+        if not tags:
+            continue
+        roll = grid.frame(list(tags)).rolling(window, center=True, min_periods=need)
+        std = roll.std().to_numpy()
+        mean = roll.mean().to_numpy()
+        with np.errstate(invalid="ignore"):
+            ok = std / np.maximum(np.abs(mean), floor) <= limit  # NaN compares False
+        out.update({tag: ok[:, j] for j, tag in enumerate(tags)})
+    return out
+
+
 def _fit_row(
-    site: Site, branch: BranchConfig, wide: pd.DataFrame, keep: pd.Series,
+    site: Site, branch: BranchConfig, grid: _Grid, keep: np.ndarray,
     start: pd.Timestamp, end: pd.Timestamp,
 ) -> dict[str, Any]:
     row: dict[str, Any] = {"branch": branch.name, "window_start": start, "window_end": end}
-    if branch.flow_tag is None or wide.empty:
+    if branch.flow_tag is None or grid.empty:
         return {**row, **_empty("no flow meter on this branch" if branch.flow_tag is None
                                 else "no readings in this window")}
-    p = wide[site.header_pressure_tag].to_numpy(dtype=float)
-    q = wide[branch.flow_tag].to_numpy(dtype=float)
+    p = grid.column(site.header_pressure_tag)
+    q = grid.column(branch.flow_tag)
     if site.header_temperature_tag is not None:
-        t = wide[site.header_temperature_tag].to_numpy(dtype=float)
+        t = grid.column(site.header_temperature_tag)
     else:
-        t = np.full(len(wide), site.design_temperature_c)
-    conditions = {key: wide[tag].to_numpy(dtype=float)
-                  for key, tag in branch.logged_conditions.items()}
-    mask = keep.to_numpy(dtype=bool) & np.isfinite(p) & np.isfinite(q) & np.isfinite(t)
+        t = np.full(len(grid.index), site.design_temperature_c)
+    conditions = {key: grid.column(tag) for key, tag in branch.logged_conditions.items()}
+    mask = keep & np.isfinite(p) & np.isfinite(q) & np.isfinite(t)
     for values in conditions.values():
         mask &= np.isfinite(values)
     floor = max(branch.min_flow_m3s * 0.25, 1e-4)
@@ -150,7 +237,7 @@ def _fit_row(
     row["header_pressure_pa"] = float(np.mean(p[mask]))
     end_tag = branch.end_pressure_tag
     if end_tag is not None:
-        row["end_pressure_pa"] = float(np.median(wide[end_tag].to_numpy(float)[mask]))
+        row["end_pressure_pa"] = float(np.median(grid.column(end_tag)[mask]))
     return row
 
 
@@ -202,24 +289,23 @@ def _screening_counts(
 
 
 def _balance(
-    site: Site, wide: pd.DataFrame, keep: pd.Series, start: pd.Timestamp, end: pd.Timestamp
+    site: Site, grid: _Grid, keep: np.ndarray, start: pd.Timestamp, end: pd.Timestamp
 ) -> dict[str, Any] | None:
     """Σ branch meters − total meter over the steady samples, with its uncertainty."""
     tags = [b.flow_tag for b in site.branches]
-    if site.total_flow_tag is None or wide.empty or any(t is None for t in tags):
+    if site.total_flow_tag is None or grid.empty or any(t is None for t in tags):
         return None
-    total = wide[site.total_flow_tag]
-    branches = wide[[t for t in tags if t is not None]]
-    ok = keep & total.notna() & branches.notna().all(axis=1)
+    total = grid.column(site.total_flow_tag)
+    branches = grid.values[:, [grid.columns[t] for t in tags if t is not None]]
+    ok = keep & np.isfinite(total) & np.isfinite(branches).all(axis=1)
     if int(ok.sum()) < MIN_BALANCE_SAMPLES:
         return None
     u = site.analysis.meter_uncertainty
-    q_total = float(total[ok].mean())
-    q_branch = branches[ok].mean()
-    residual = float(q_branch.sum() - q_total)
-    uncertainty = math.sqrt(float(((u * q_branch) ** 2).sum()) + (u * q_total) ** 2)
+    q_total = float(np.mean(total[ok]))
+    q_branch = np.mean(branches[ok], axis=0)
+    residual = float(np.sum(q_branch) - q_total)
+    uncertainty = math.sqrt(float(np.sum((u * q_branch) ** 2)) + (u * q_total) ** 2)
     return {
         "window_start": start, "window_end": end, "residual_m3s": residual,
         "uncertainty_m3s": uncertainty, "samples": int(ok.sum()),
     }
-
