@@ -527,7 +527,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     from tqdm import tqdm
 
     from monitor.demo import DEMO_START, prepare_demo
-    from monitor.jobs import analyze, ingest, open_source
+    from monitor.jobs import analyze, ingest, open_source, write_report
     from monitor.plots import plot_system_curve
     from monitor.whatif import CurveRequest, solve_curve
 
@@ -559,6 +559,8 @@ def _cmd_demo(args: argparse.Namespace) -> int:
             )
         fits = store.read_fits()
         _write_fits_csv(fits, folder / "fits.csv")
+        report = write_report(site, store, day=end - timedelta(hours=12),
+                              now=datetime.now(UTC))
     finally:
         source.close()
         store.close()
@@ -570,6 +572,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     print(f"\nfiles in {folder}:")
     for name in ("site.toml", "findings.json", "fits.csv", "system-curve.png"):
         print(f"  {name}")
+    print(f"  {report.relative_to(folder)}   <- the morning report: open it in a browser")
     print(f"\ntry: branchwatch status {paths.site_file}")
     return EXIT_OK
 
@@ -670,6 +673,39 @@ def _print_alarms(frame: pd.DataFrame, store: ResultsStore, site: Site, *,
 
 
 # ---------------------------------------------------------------------------------------
+# report
+
+
+def _register_report(verbs: Any) -> None:
+    p = _add_verb(
+        verbs, "report", _cmd_report, "write the morning report (HTML)",
+        """\
+Write the morning report for a day (default: yesterday, site time) into the site's
+report folder ([report] folder, default ./reports beside the site file): what needs
+attention, standing alarms, every branch's resistance ratio against its cleaning limit,
+the trends, data health. One self-contained HTML file; open it in any browser.""",
+    )
+    p.add_argument("--date", metavar="DAY", help="the day to report (site time)")
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    from monitor.jobs import write_report
+
+    site = _site(args)
+    now = datetime.now(UTC)
+    day = (_parse_time(args.date, site, "--date") if args.date
+           else now - timedelta(days=1))
+    store = open_store(site.store_url)
+    try:
+        path = _run_recorded(store, "report",
+                             lambda: write_report(site, store, day=day, now=now))
+    finally:
+        store.close()
+    print(f"morning report written to {path}")
+    return EXIT_OK
+
+
+# ---------------------------------------------------------------------------------------
 # run (the daemon)
 
 
@@ -680,8 +716,9 @@ def _register_run(verbs: Any) -> None:
 Run until stopped (Ctrl-C or SIGTERM): ingest new readings every
 [schedule] ingest_every and evaluate low-flow alarms on them; analyse the windows that
 closed since the last run every day at [schedule] analyze_at (site time), catching up
-after downtime. A failed job is logged and retried at its next run; stopping waits for
-the running job, and every job writes in transactions, so nothing is half-stored.""",
+after downtime; write the morning report at [schedule] report_at. A failed job is
+logged and retried at its next run; stopping waits for the running job, and every job
+writes in transactions, so nothing is half-stored.""",
     )
     p.add_argument("--health-file", type=Path,
                    help="write a JSON heartbeat here (default: beside the store)")
@@ -691,7 +728,7 @@ the running job, and every job writes in transactions, so nothing is half-stored
 
 def _cmd_run(args: argparse.Namespace) -> int:
     from monitor.daemon import Daemon
-    from monitor.jobs import catch_up, evaluate_alarms, ingest
+    from monitor.jobs import catch_up, evaluate_alarms, ingest, write_report
 
     site = _site(args)
     store, source = _open(site)
@@ -704,8 +741,14 @@ def _cmd_run(args: argparse.Namespace) -> int:
         _run_recorded(store, "analyze",
                       lambda: catch_up(site, store, source, now=datetime.now(UTC)))
 
+    def report_job() -> None:
+        now = datetime.now(UTC)
+        _run_recorded(store, "report", lambda: write_report(
+            site, store, day=now - timedelta(days=1), now=now))
+
     health = args.health_file or site.report_folder / "branchwatch-health.json"
-    daemon = Daemon(site, {"ingest": ingest_job, "analyze": analyze_job}, health_file=health)
+    daemon = Daemon(site, {"ingest": ingest_job, "analyze": analyze_job, "report": report_job},
+                    health_file=health)
     print(f"branchwatch running for {site.name}; heartbeat in {health}; Ctrl-C stops")
     try:
         stats = daemon.run(duration_s=args.duration)
@@ -725,6 +768,7 @@ _VERBS: list[Callable[[Any], None]] = [
     _register_log,
     _register_status,
     _register_alarms,
+    _register_report,
     _register_run,
 ]
 

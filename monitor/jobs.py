@@ -15,6 +15,7 @@ from collections import Counter
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, timedelta
+from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo
 
@@ -45,6 +46,7 @@ __all__ = [
     "ingest",
     "open_source",
     "windows",
+    "write_report",
 ]
 
 
@@ -492,3 +494,34 @@ def catch_up(
     else:
         start = now - site.window * 2
     return analyze(site, store, source, start, now)
+
+
+# ---------------------------------------------------------------------------------------
+# the morning report
+
+
+def write_report(site: Site, store: ResultsStore, *, day: datetime, now: datetime) -> Path:
+    """Write the morning report for the site-local day containing *day*; returns its path.
+
+    Named by the day, so a second run the same day replaces the file (idempotent).
+    """
+    from monitor.report import ReportInputs, build_report, history_start, report_day_bounds
+
+    day_start, day_end = report_day_bounds(site, day)
+    fits = store.read_fits(start=history_start(day_end), end=day_end)
+    findings = store.read_findings()
+    if not findings.empty:
+        findings = findings[findings["start"] < pd.Timestamp(day_end)]
+    inputs = ReportInputs(
+        site=site, day=day_start, fits=fits, findings=findings, alarms=store.read_alarms(),
+        quarantine=store.quarantine_counts(), health=store.data_health(day_start, day_end),
+        generated=now,
+    )
+    local = pd.Timestamp(day_start).tz_convert(site.timezone)
+    path = site.report_folder / f"morning-{local:%Y-%m-%d}.html"
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_suffix(".tmp")
+    tmp.write_text(build_report(inputs), encoding="utf-8")
+    tmp.replace(path)
+    log.info("morning report written to %s", path)
+    return path

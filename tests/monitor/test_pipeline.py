@@ -134,3 +134,22 @@ def test_cli_analyze_writes_findings_and_fits_files(
             "samples"} <= set(table.columns)
     assert main(["status", site_file]) == 0
     assert "open findings" in capsys.readouterr().out
+
+
+def test_morning_report_names_each_open_finding(demo: dict[str, Any]) -> None:
+    from datetime import UTC, datetime
+
+    from monitor.jobs import write_report
+
+    site, store = demo["site"], demo["store"]
+    day = DEMO_START + timedelta(days=DAYS - 1)
+    path = write_report(site, store, day=day, now=datetime.now(UTC))
+    text = path.read_text()
+    assert path.name == f"morning-{pd.Timestamp(day).tz_convert(site.timezone):%Y-%m-%d}.html"
+    assert "advises; it does not control" in text  # the safety caution (DESIGN §6)
+    for f in demo["result"].findings:
+        if f.end is None:
+            assert f.branch in text
+    assert "data:image/png;base64," in text  # the trends are embedded
+    again = write_report(site, store, day=day, now=datetime.now(UTC))
+    assert again == path  # one file per day: a rerun replaces it

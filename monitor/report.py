@@ -1,0 +1,295 @@
+"""The morning report: one self-contained HTML page an engineer reads first thing.
+
+Order of the page: what needs attention (open findings, most urgent first, each with its
+evidence, cost and forecast), standing alarms, every branch at a glance (today's
+resistance ratio against its cleaning limit), the resistance trends as a picture, data
+health (what screening and the quarantine held back), and the cautions. Plots are
+embedded as PNG, so the file can be mailed or archived alone.
+
+`build_report` is pure: it takes frames read from the store and returns HTML text.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import math
+from dataclasses import dataclass
+from datetime import datetime, timedelta
+from typing import Any
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt
+import pandas as pd
+
+from monitor.config import Site
+
+__all__ = ["ReportInputs", "build_report"]
+
+#: Which findings come first: a sudden change before a slow one.
+_URGENCY = {"low_flow": 0, "restriction": 1, "back_pressure": 2, "instrument": 3,
+            "imbalance": 4, "fouling": 5}
+_KIND_TEXT = {"low_flow": "low flow", "restriction": "restriction",
+              "back_pressure": "back-pressure change", "instrument": "instrument fault",
+              "imbalance": "header imbalance", "fouling": "fouling"}
+
+CAUTION = (
+    "branchwatch advises; it does not control. Its findings are estimates from logged data "
+    "with the confidence stated, and its alarms do not replace the plant's safety systems, "
+    "interlocks or operator rounds. Decisions on isolation, cleaning, valve and set-point "
+    "changes follow site procedures, local codes and the judgement of qualified, licensed "
+    "people."
+)
+
+
+@dataclass(frozen=True)
+class ReportInputs:
+    """What the report is built from (frames as the results store returns them)."""
+
+    site: Site
+    day: datetime  # the report covers data up to the end of this local day (UTC-aware)
+    fits: pd.DataFrame
+    findings: pd.DataFrame
+    alarms: pd.DataFrame
+    quarantine: dict[str, int]
+    health: pd.DataFrame
+    generated: datetime
+
+
+def build_report(inputs: ReportInputs) -> str:
+    """The HTML text of the morning report."""
+    site = inputs.site
+    local_day = pd.Timestamp(inputs.day).tz_convert(site.timezone)
+    parts = [
+        _head(f"{site.name} — {local_day:%Y-%m-%d}"),
+        f"<h1>{_e(site.name)}</h1>",
+        f"<p class=sub>Morning report for {local_day:%A %d %B %Y} (site time "
+        f"{_e(site.timezone)}). Generated {_local(site, inputs.generated)}.</p>",
+        f"<p class=caution>{_e(CAUTION)}</p>",
+        _attention(inputs),
+        _alarms(inputs),
+        _branches(inputs),
+        _trends(inputs),
+        _health(inputs),
+        _method(),
+        "</body></html>",
+    ]
+    return "\n".join(p for p in parts if p)
+
+
+def _e(text: Any) -> str:
+    return html.escape(str(text))
+
+
+def _local(site: Site, when: Any) -> str:
+    if when is None or (isinstance(when, float) and math.isnan(when)) or pd.isna(when):
+        return "—"
+    return f"{pd.Timestamp(when).tz_convert(site.timezone):%Y-%m-%d %H:%M}"
+
+
+def _head(title: str) -> str:
+    return f"""<!doctype html><html lang=en><head><meta charset=utf-8>
+<title>{_e(title)}</title>
+<style>
+body {{ font: 15px/1.45 system-ui, sans-serif; margin: 2em auto; max-width: 62em;
+        color: #1d2433; padding: 0 1em; }}
+h1 {{ font-size: 1.5em; margin-bottom: .1em; }} h2 {{ font-size: 1.15em; margin-top: 1.8em;
+        border-bottom: 1px solid #c9cfdb; }}
+.sub {{ color: #555e70; margin-top: 0; }}
+.caution {{ background: #fff6e0; border-left: 4px solid #d39b00; padding: .6em .9em; }}
+table {{ border-collapse: collapse; width: 100%; font-size: .93em; }}
+th, td {{ text-align: left; padding: .3em .5em; border-bottom: 1px solid #e3e6ed; }}
+th {{ background: #f1f3f7; }} td.num {{ text-align: right; font-variant-numeric: tabular-nums; }}
+.finding {{ border: 1px solid #d5dae4; border-radius: 6px; padding: .6em .9em; margin: .7em 0; }}
+.finding h3 {{ margin: 0 0 .3em 0; font-size: 1em; }}
+.kind {{ display: inline-block; padding: 0 .5em; border-radius: 3px; background: #e8ecf4;
+        font-size: .85em; margin-right: .4em; }}
+.urgent {{ border-left: 5px solid #b3261e; }} .watch {{ border-left: 5px solid #d39b00; }}
+.info {{ border-left: 5px solid #6b7a99; }}
+.ev {{ color: #444c5e; font-size: .9em; }}
+.over {{ color: #b3261e; font-weight: 600; }}
+img {{ max-width: 100%; }}
+</style></head><body>"""
+
+
+def _attention(inputs: ReportInputs) -> str:
+    site = inputs.site
+    f = inputs.findings
+    open_f = f[f["end"].isna()] if not f.empty else f
+    if open_f.empty:
+        return ("<h2>What needs attention</h2><p>Nothing: no open findings. Every branch is "
+                "within its usual range.</p>")
+    rows = open_f.assign(_u=open_f["kind"].map(_URGENCY).fillna(9)).sort_values(
+        ["_u", "start"])
+    out = [f"<h2>What needs attention ({len(rows)})</h2>"]
+    for r in rows.to_dict(orient="records"):
+        kind = str(r["kind"])
+        level = "urgent" if _URGENCY.get(kind, 9) <= 1 else (
+            "watch" if kind in ("back_pressure", "fouling") else "info")
+        out.append(
+            f"<div class='finding {level}'><h3><span class=kind>{_e(_KIND_TEXT.get(kind, kind))}"
+            f"</span>{_e(r['branch'])}</h3><p>{_e(r['message'])}</p>"
+            f"<p class=ev>since {_local(site, r['start'])} · first reported "
+            f"{_local(site, r['detected'])} · confidence {float(r['confidence']):.0%}"
+            f"{_evidence_text(site, kind, r.get('evidence') or {})}</p></div>"
+        )
+    return "\n".join(out)
+
+
+def _evidence_text(site: Site, kind: str, ev: dict[str, Any]) -> str:
+    bits = []
+
+    def num(key: str) -> float | None:
+        v = ev.get(key)
+        return float(v) if isinstance(v, int | float) and math.isfinite(float(v)) else None
+
+    if (q := num("lost_flow_m3h")) is not None:
+        bits.append(f"flow lost {q:.1f} m³/h")
+    if (e := num("extra_energy_kwh_per_day")) is not None:
+        bits.append(f"extra pumping {e:.0f} kWh/day")
+    if kind == "fouling":
+        if (s := num("slope_per_day")) is not None:
+            bits.append(f"r rising {s * 30:.3f} per month")
+        days = num("days_to_limit")
+        if days is not None and days > 0:
+            lo, hi = num("days_to_limit_low"), num("days_to_limit_high")
+            when = pd.Timestamp.now(tz="UTC") + pd.Timedelta(days=days)
+            span = f" ({lo:.0f}–{hi:.0f} days)" if lo is not None and hi is not None else ""
+            bits.append(f"cleaning limit in about {days:.0f} days, {when:%d %b}{span}")
+    if kind == "back_pressure" and (s := num("step_pa")) is not None:
+        bits.append(f"step {s / 1e5:+.2f} bar")
+    return (" · " + " · ".join(_e(b) for b in bits)) if bits else ""
+
+
+def _alarms(inputs: ReportInputs) -> str:
+    a = inputs.alarms
+    standing = a[a["state"] != "normal"] if not a.empty else a
+    if standing.empty:
+        return "<h2>Alarms</h2><p>No low-flow alarm standing.</p>"
+    rows = "".join(
+        f"<tr><td>{_e(r['branch'])}</td><td>{_e(r['state'])}</td>"
+        f"<td>{_local(inputs.site, r.get('activated'))}</td><td>{_e(r.get('message') or '')}"
+        "</td></tr>"
+        for r in standing.to_dict(orient="records")
+    )
+    return ("<h2>Alarms</h2><table><tr><th>branch</th><th>state (ISA-18.2)</th>"
+            f"<th>since</th><th>message</th></tr>{rows}</table>")
+
+
+def _branches(inputs: ReportInputs) -> str:
+    site, fits = inputs.site, inputs.fits
+    rows = []
+    for b in site.branches:
+        part = fits[(fits["branch"] == b.name) & fits["r"].notna()] if not fits.empty else fits
+        if part.empty:
+            rows.append(f"<tr><td>{_e(b.name)}</td><td colspan=6>no usable fit yet</td></tr>")
+            continue
+        last = part.iloc[-1]
+        week = part[part["window_end"] <= last["window_end"] - pd.Timedelta(days=7)]
+        change = (f"{float(last['r']) - float(week.iloc[-1]['r']):+.3f}"
+                  if not week.empty else "—")
+        r = float(last["r"])
+        cls = " class='num over'" if r >= b.cleaning_limit else " class=num"
+        flow = float(last.get("mean_flow_m3s", math.nan)) * 3600
+        low = "" if not math.isfinite(flow) or flow >= b.min_flow_m3s * 3600 else " class=over"
+        rows.append(
+            f"<tr><td>{_e(b.name)}<br><span class=ev>{_e(b.description)}</span></td>"
+            f"<td{cls}>{r:.3f}</td><td class=num>{float(last['r_low']):.3f}–"
+            f"{float(last['r_high']):.3f}</td><td class=num>{change}</td>"
+            f"<td class=num>{b.cleaning_limit:.2f}</td>"
+            f"<td class=num><span{low}>{flow:.1f}</span> / {b.min_flow_m3s * 3600:.0f}</td>"
+            f"<td>{_local(site, last['window_end'])}</td></tr>"
+        )
+    return ("<h2>Branches</h2><table><tr><th>branch</th><th>resistance ratio r</th>"
+            "<th>95 % interval</th><th>7-day change</th><th>cleaning limit</th>"
+            "<th>mean flow / minimum [m³/h]</th><th>last window ended</th></tr>"
+            + "".join(rows) + "</table><p class=ev>r = 1.00 is the branch as designed and "
+            "clean; 1.40 means 40 % more hydraulic resistance.</p>")
+
+
+def _trends(inputs: ReportInputs) -> str:
+    site, fits = inputs.site, inputs.fits
+    if fits.empty or fits["r"].notna().sum() == 0:
+        return ""
+    n = len(site.branches)
+    cols = 2
+    rows_n = math.ceil(n / cols)
+    fig, axes = plt.subplots(rows_n, cols, figsize=(10, 2.3 * rows_n), dpi=100, sharex=True,
+                             squeeze=False)
+    for ax, b in zip(axes.flat, site.branches, strict=False):
+        part = fits[(fits["branch"] == b.name) & fits["r"].notna()]
+        t = pd.to_datetime(part["window_end"]).dt.tz_convert(site.timezone).dt.tz_localize(None)
+        ax.fill_between(t, part["r_low"], part["r_high"], color="#9fb3d9", alpha=0.5, lw=0)
+        ax.plot(t, part["r"], color="#23407a", lw=1.2)
+        ax.axhline(b.cleaning_limit, color="#b3261e", lw=0.9, ls="--")
+        ax.axhline(1.0, color="grey", lw=0.6)
+        ax.set_title(b.name, fontsize=9, loc="left")
+        ax.set_ylim(0.8, max(b.cleaning_limit * 1.1, float(part["r"].max()) * 1.05))
+        ax.grid(True, alpha=0.3)
+        ax.tick_params(labelsize=8)
+    for ax in list(axes.flat)[n:]:
+        ax.set_visible(False)
+    fig.suptitle("resistance ratio r per day (band: 95 % interval; dashed: cleaning limit)",
+                 fontsize=9)
+    fig.autofmt_xdate()
+    fig.tight_layout()
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png")
+    plt.close(fig)
+    data = base64.b64encode(buf.getvalue()).decode("ascii")
+    return ("<h2>Resistance trends</h2>"
+            f"<img alt='resistance ratio per branch and day' src='data:image/png;base64,{data}'>")
+
+
+def _health(inputs: ReportInputs) -> str:
+    h, site = inputs.health, inputs.site
+    parts = ["<h2>Data health</h2>"]
+    if inputs.quarantine:
+        items = ", ".join(f"{_e(k)}: {v}" for k, v in sorted(inputs.quarantine.items()))
+        parts.append(f"<p>Rows held in quarantine (not used, kept for review): {items}.</p>")
+    else:
+        parts.append("<p>No rows in quarantine.</p>")
+    if h.empty:
+        parts.append("<p>No screening counts for the last day.</p>")
+        return "\n".join(parts)
+    wide = h.pivot_table(index="tag", columns="flag", values="count", aggfunc="sum",
+                         fill_value=0)
+    shown = [c for c in ("samples", "usable", "frozen", "spike", "out_of_range", "gap",
+                         "pump_off", "bad_quality") if c in wide.columns]
+    head = "".join(f"<th>{_e(c.replace('_', ' '))}</th>" for c in shown)
+    body = "".join(
+        f"<tr><td>{_e(tag)}</td>" + "".join(f"<td class=num>{int(row[c])}</td>" for c in shown)
+        + "</tr>" for tag, row in wide.iterrows()
+    )
+    parts.append(f"<p>Screening of the last day ({_e(site.timezone)} day), samples per tag:</p>"
+                 f"<table><tr><th>tag</th>{head}</tr>{body}</table>")
+    return "\n".join(parts)
+
+
+def _method() -> str:
+    return (
+        "<h2>How these numbers are made</h2><p class=ev>Each day, the samples where the pump "
+        "runs and the branch's flow and the header pressure are steady are fitted to the "
+        "branch's physics model (Darcy–Weisbach with Colebrook friction, Crane fitting "
+        "losses, IEC 60534 control valve, rated equipment pressure drop, water properties at "
+        "the logged temperature). Fouling is a sustained rise of r (Theil–Sen slope, "
+        "Mann–Kendall test with the Hamed–Rao correction); a restriction is a step; a "
+        "back-pressure change moves the termination pressure and leaves r alone; meters that "
+        "freeze, spike or leave their range are set aside and reported, never read as "
+        "fouling. Energy figures use the pump efficiency of the site file.</p>"
+    )
+
+
+def report_day_bounds(site: Site, day: datetime) -> tuple[datetime, datetime]:
+    """UTC start and end of the site-local calendar day containing *day*."""
+    local = pd.Timestamp(day).tz_convert(site.timezone).normalize()
+    end = local + pd.Timedelta(days=1)
+    return local.tz_convert("UTC").to_pydatetime(), end.tz_convert("UTC").to_pydatetime()
+
+
+def history_start(day: datetime, days: int = 365) -> datetime:
+    """How far back the report's trends reach."""
+    return day - timedelta(days=days)
