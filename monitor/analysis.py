@@ -83,17 +83,18 @@ def analyze_window(
     tag): a transient on another branch shows in the header pressure when it matters to
     this one. The header balance keeps only samples where every flow is steady.
     """
-    settings = screen_settings(site)
+    readings = readings[readings["tag"].isin(list(site.tags))]
+    interval = logging_interval(readings, site.header_pressure_tag)
+    settings = screen_settings(site, interval)
     specs = {tag: TagLimits.from_spec(spec) for tag, spec in site.tags.items()}
     t0, t1 = pd.Timestamp(start), pd.Timestamp(end)
-    readings = readings[readings["tag"].isin(list(site.tags))]
     result = screen(
         readings, specs, settings, start=t0, end=t1,
         header_pressure_tag=site.header_pressure_tag, total_flow_tag=site.total_flow_tag,
     )
     health = result.health_counts()
     screening = _screening_counts(site, result.flags, t0, t1)
-    freq = pd.Timedelta(seconds=site.analysis.sample_period)
+    freq = pd.Timedelta(seconds=max(site.analysis.sample_period, interval or 0.0))
     grid = _Grid.of(result.flags, list(site.tags), freq, t0, t1)
     # Grid bins without a header pressure say nothing about the pump (the historian may
     # log less often than the grid): drop them, or each would count as a stop and a start.
@@ -272,6 +273,7 @@ def _screening_counts(
             if tag and tag not in owner:
                 owner[tag] = b.name
     cols = ["frozen", "out_of_range", "spikes"]
+    flags = flags.rename(columns={"spike": "spikes"})  # screening's flag is "spike"
     present = [c for c in cols if c in flags.columns]
     if flags.empty:
         return pd.DataFrame(columns=["branch", "window_start", "window_end", "tag", *cols,
