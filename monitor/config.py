@@ -114,6 +114,8 @@ class SourceSection(_Strict):
     delimiter: str = ","
     decimal: str = "."
     pattern: str = "*.csv"
+    #: a file modified more recently than this is still being written: left for later
+    settle_seconds: Duration = 5.0
     # sql
     url_env: str | None = None
     secrets_file: str | None = None

@@ -13,7 +13,9 @@ on fixed dates, so every run of the demo tells the same story.
 from __future__ import annotations
 
 import logging
+import os
 import shutil
+import time
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
 from datetime import UTC, datetime, timedelta
@@ -199,4 +201,8 @@ def prepare_demo(folder: Path, *, days: int, step_s: float, seed: int = 7) -> De
     sim = simulate_site(site, DEMO_START, end, faults=demo_faults(), step_s=step_s, seed=seed)
     inbox = folder / "inbox"
     write_exports(site, sim, inbox)
+    # the historian dropped these exports long ago: they are settled, not being written
+    settled = time.time() - 3600
+    for path in inbox.iterdir():
+        os.utime(path, (settled, settled))
     return DemoPaths(folder=folder, site_file=site_file, inbox=inbox)

@@ -68,7 +68,7 @@ def open_source(site: Site) -> ReadingsSource:
         return cls(
             site.tags.values(), path=folder, layout=sec.layout, delimiter=sec.delimiter,
             decimal=sec.decimal, timezone=site.timezone, quality_map=quality, pattern=sec.pattern,
-            name=f"csv:{folder.name}",
+            settle_seconds=sec.settle_seconds, name=f"csv:{folder.name}",
         )
     return cls(
         site.tags.values(), url_env=sec.url_env, secrets_file=sec.secrets_file, table=sec.table,
