@@ -20,12 +20,19 @@ Causes and how they are told apart (DESIGN §3)
 * **back_pressure** — the logged termination pressure (``end_pressure_pa``) or the fitted
   static pressure (``s_pa`` on identifiable windows) steps; or an ``r`` step whose window
   says "constant offset" rather than "offset ∝ Q²" (the comparison of the two one-parameter
-  hypotheses against the baseline model; from per-window sums, see `HISTORY_COLUMNS`).
-  A window that cannot tell them apart (a step part-way through it) defers the decision to
-  the next window.
-* **fouling** — a slow rise: Theil–Sen slope, Mann–Kendall test with the Hamed–Rao
-  correction at ``trend_alpha``, and a fitted rise of at least ``min_rise_r``; the date
-  ``r`` reaches the cleaning limit is forecast with an interval.
+  hypotheses against the baseline model; from per-window sums, see `HISTORY_COLUMNS`);
+  or a window whose departure from the baseline is a clear constant offset of at least
+  ``min_bp_step_pa`` (a step too small against the scatter of r to show as a jump). A
+  window that fits neither hypothesis (a step part-way through it: the comparison is then
+  biased by the time of day of the step) defers the decision to the next window, so with
+  daily windows a step is named at the end of the window after the one it happened in.
+  A back-pressure change found this way is taken out of the later windows' ``r``.
+* **fouling** — a slow rise over trailing look-backs of ``trend_lookbacks`` windows:
+  Theil–Sen slope, Mann–Kendall test with the Hamed–Rao correction at ``trend_alpha``,
+  a fitted rise of ``min_rise_r`` (relative) and ``min_rise_sigma`` σ, on
+  ``trend_persistence`` windows in a row; the onset is the knot of the best "flat, then
+  line" fit; the date ``r`` reaches the cleaning limit is forecast with an interval
+  (Theil–Sen slope interval widened by the Hamed–Rao factor).
 * **low_flow** — window mean flow below the branch minimum (the near-real-time alarm
   is `monitor.alarms`; this is its daily record).
 * **imbalance** — |Σ branch − total| beyond its combined uncertainty for
@@ -242,6 +249,9 @@ def _check_frame(name: str, frame: pd.DataFrame, columns: Sequence[str]) -> pd.D
     for col in ("window_start", "window_end", "time"):
         if col in out.columns:
             times = pd.to_datetime(out[col])
+            if out.empty:
+                out[col] = pd.Series([], dtype="datetime64[ns, UTC]", index=out.index)
+                continue
             if times.dt.tz is None:
                 raise ValueError(f"{name}.{col} must be timezone-aware (UTC)")
             out[col] = times.dt.tz_convert("UTC")

@@ -282,6 +282,8 @@ def test_bad_input_names_the_argument() -> None:
         diagnose(hist, now=datetime(2025, 2, 1))
     with pytest.raises(ValueError, match="cleaning_limit_r"):
         BranchSettings(cleaning_limit_r=0.9)
+    empty = pd.DataFrame({"branch": [], "window_start": [], "window_end": [], "r": []})
+    assert diagnose(empty, now=T0) == []
 
 
 def test_false_findings_on_clean_branch_years() -> None:
