@@ -329,9 +329,7 @@ examples:
 
 
 def _cmd_analyze(args: argparse.Namespace) -> int:
-    from tqdm import tqdm
 
-    from monitor.jobs import analyze
 
     site = _site(args)
     start = _parse_time(args.start, site, "--from")
@@ -340,16 +338,7 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
         raise UserError("--to must be after --from")
     store, source = _open(site)
     try:
-        with tqdm(total=None, unit="window", disable=args.quiet, file=sys.stderr,
-                  desc="analysing") as bar:
-            def progress(done: int, total: int) -> None:
-                bar.total = total
-                bar.update(done - bar.n)
-
-            summary = _run_recorded(
-                store, "analyze",
-                lambda: analyze(site, store, source, start, end, progress=progress),
-            )
+        summary = _analyze_with_progress(site, store, source, start, end, quiet=args.quiet)
         if args.fits:
             fits = store.read_fits(start=start, end=end)
             _write_fits_csv(fits, args.fits)
@@ -495,6 +484,27 @@ def _cmd_status(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _analyze_with_progress(
+    site: Site, store: ResultsStore, source: ReadingsSource, start: datetime, end: datetime,
+    *, quiet: bool,
+) -> Any:
+    """`monitor.jobs.analyze` with a progress bar on stderr, recorded as a job run."""
+    from tqdm import tqdm
+
+    from monitor.jobs import analyze
+
+    with tqdm(total=None, unit="window", disable=quiet, file=sys.stderr,
+              desc="analysing") as bar:
+        def progress(done: int, total: int) -> None:
+            bar.total = total
+            bar.update(done - bar.n)
+
+        return _run_recorded(
+            store, "analyze",
+            lambda: analyze(site, store, source, start, end, progress=progress),
+        )
+
+
 def _iso_map(frame: pd.DataFrame, key: str, time_col: str) -> dict[str, str]:
     times = pd.to_datetime(frame[time_col], utc=True)
     return {str(k): t.isoformat() for k, t in zip(frame[key], times, strict=True)}
@@ -524,10 +534,9 @@ would. Needs no configuration. The folder is rebuilt on every run.""",
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from tqdm import tqdm
 
     from monitor.demo import DEMO_START, prepare_demo
-    from monitor.jobs import analyze, ingest, open_source, write_report
+    from monitor.jobs import ingest, open_source, write_report
     from monitor.plots import plot_system_curve
     from monitor.whatif import CurveRequest, solve_curve
 
@@ -547,16 +556,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
         summary = _run_recorded(store, "ingest", lambda: ingest(site, store, source))
         print(f"  {summary.stored} readings stored, {summary.quarantined} rows quarantined")
         start, end = DEMO_START, DEMO_START + timedelta(days=args.days)
-        with tqdm(total=None, unit="window", disable=args.quiet, file=sys.stderr,
-                  desc="analysing") as bar:
-            def progress(done: int, total: int) -> None:
-                bar.total = total
-                bar.update(done - bar.n)
-
-            result = _run_recorded(
-                store, "analyze",
-                lambda: analyze(site, store, source, start, end, progress=progress),
-            )
+        result = _analyze_with_progress(site, store, source, start, end, quiet=args.quiet)
         fits = store.read_fits()
         _write_fits_csv(fits, folder / "fits.csv")
         report = write_report(site, store, day=end - timedelta(hours=12),
