@@ -194,6 +194,7 @@ class DiagnosisSettings:
     imbalance_windows: int = 3  # [windows]
     spike_fraction: float = 0.02  # spikes per sample that make a window suspect [-]
     spike_count: int = 30  # same, when the sample count is not given [-]
+    spike_min_count: int = 10  # and never fewer spikes than this in a window [-]
     low_flow_deadband: float = 0.05  # fraction of the minimum to clear low flow [-]
 
     def __post_init__(self) -> None:
@@ -339,7 +340,11 @@ def _flag_windows(
     last = {str(k): v for k, v in scr.groupby("branch")["window_end"].max().items()}
     counts = scr[["frozen", "out_of_range", "spikes"]].astype(float).fillna(0.0)
     if "samples" in scr.columns:
-        spike_bad = counts["spikes"] > cfg.spike_fraction * scr["samples"].astype(float)
+        # A few flagged spikes in a short day of coarse samples are transients (a pump
+        # start seen by a 7-point Hampel window), not a sick meter: ask for a count too.
+        spike_bad = (counts["spikes"] > cfg.spike_fraction * scr["samples"].astype(float)) & (
+            counts["spikes"] >= cfg.spike_min_count
+        )
     else:
         spike_bad = counts["spikes"] > cfg.spike_count
     bad = (counts["frozen"] > 0) | (counts["out_of_range"] > 0) | spike_bad
