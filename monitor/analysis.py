@@ -273,21 +273,28 @@ def _screening_counts(
             if tag and tag not in owner:
                 owner[tag] = b.name
     cols = ["frozen", "out_of_range", "spikes"]
-    flags = flags.rename(columns={"spike": "spikes"})  # screening's flag is "spike"
-    present = [c for c in cols if c in flags.columns]
+    flag_of = {"frozen": "frozen", "out_of_range": "out_of_range", "spikes": "spike"}
     if flags.empty:
         return pd.DataFrame(columns=["branch", "window_start", "window_end", "tag", *cols,
                                      "samples"])
-    counts = flags.groupby("tag")[present].sum().astype("int64")
-    counts["samples"] = flags.groupby("tag").size()
+    # one pass of integer counting per flag instead of a groupby on the tag strings
+    codes, uniques = pd.factorize(flags["tag"], sort=True)
+    tags = [str(t) for t in uniques]
+    out: dict[str, Any] = {
+        "branch": [owner.get(t, "header") for t in tags],
+        "window_start": [start] * len(tags),
+        "window_end": [end] * len(tags),
+        "tag": pd.Series(tags, dtype=object),
+    }
     for c in cols:
-        if c not in counts.columns:
-            counts[c] = 0
-    counts = counts.reset_index()
-    counts["branch"] = counts["tag"].map(owner).fillna("header")
-    counts["window_start"] = start
-    counts["window_end"] = end
-    return counts[["branch", "window_start", "window_end", "tag", *cols, "samples"]]
+        column = flag_of[c] if flag_of[c] in flags.columns else c
+        if column in flags.columns:
+            hits = flags[column].to_numpy(bool)
+            out[c] = np.bincount(codes[hits], minlength=len(tags)).astype("int64")
+        else:
+            out[c] = np.zeros(len(tags), dtype="int64")
+    out["samples"] = np.bincount(codes, minlength=len(tags)).astype("int64")
+    return pd.DataFrame(out)
 
 
 def _balance(

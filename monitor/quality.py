@@ -261,20 +261,39 @@ class ScreenResult:
         Besides the flags (a gap counts on the day it began) there are ``samples`` and
         ``usable`` rows, so the report can give shares. Zero counts are left out.
         """
-        day = self.flags["time"].dt.floor("D")
-        cols = [*FLAGS, "usable"]
-        summed = self.flags[cols].astype("int64").groupby([self.flags["tag"], day]).sum()
-        summed["samples"] = self.flags.groupby([self.flags["tag"], day]).size()
-        summed["gap"] = 0
-        long = (
-            summed.rename_axis(["tag", "day"])
-            .reset_index()
-            .melt(id_vars=["tag", "day"], var_name="flag", value_name="count")
+        flags = self.flags
+        tag_codes, tags = pd.factorize(flags["tag"])
+        day_codes, days = pd.factorize(flags["time"].dt.floor("D"))
+        n_days = max(len(days), 1)
+        cell = tag_codes * n_days + day_codes
+        size = len(tags) * n_days
+        # integer counting per flag on (tag, day) cells: one pass each, no groupby
+        names = [f for f in (*FLAGS, "usable", "samples") if f != "gap"]
+        counts = (
+            np.stack(
+                [
+                    np.bincount(
+                        cell if f == "samples" else cell[flags[f].to_numpy(bool)], minlength=size
+                    )
+                    for f in names
+                ]
+            )
+            if size
+            else np.zeros((len(names), 0), dtype="int64")
+        )
+        which, nz = np.nonzero(counts)
+        long = pd.DataFrame(
+            {
+                "tag": np.asarray(tags, dtype=object)[nz // n_days],
+                "day": days[nz % n_days] if len(days) else flags["time"].dt.floor("D")[:0],
+                "flag": np.asarray(names, dtype=object)[which],
+                "count": counts[which, nz].astype("int64"),
+            }
         )
         gaps = self.gaps.assign(day=self.gaps["start"].dt.floor("D"))
         gap_counts = gaps.groupby(["tag", "day"]).size().rename("count").reset_index()
-        long = pd.concat([long, gap_counts.assign(flag="gap")], ignore_index=True)
-        long = long[long["count"] > 0]
+        if len(gap_counts):  # the gap flag is counted from the gap intervals
+            long = pd.concat([long, gap_counts.assign(flag="gap")], ignore_index=True)
         out = long.sort_values(["day", "tag", "flag"]).reset_index(drop=True)
         out["count"] = out["count"].astype("int64")
         for col in ("tag", "flag"):  # plain objects, as in readings frames
@@ -501,7 +520,8 @@ def _gaps(
             if (end - times.iloc[i]).total_seconds() > max_gap_s
         ]
     if start is not None and end is not None:
-        rows += [(tag, start, end) for tag in specs if tag not in set(tags)]
+        seen = set(tags)
+        rows += [(tag, start, end) for tag in specs if tag not in seen]
     gaps = pd.DataFrame(rows, columns=["tag", "start", "end"])
     gaps["tag"] = gaps["tag"].astype(object)
     for col in ("start", "end"):
