@@ -541,36 +541,37 @@ def _pump_state(
     ok = ~(flags["bad_quality"] | flags["no_value"] | flags["out_of_range"] | flags["spike"])
     tags = [pressure_tag] if flow_tag is None else [pressure_tag, flow_tag]
     sel = frame["tag"].isin(tags).to_numpy() & ok
-    state_frame = (
-        frame[sel]
-        .pivot_table(index="time", columns="tag", values="value", aggfunc="mean")
-        .sort_index()
-    )
-    if pressure_tag not in state_frame:
-        n = len(frame)
+    t_ns = frame["time"].to_numpy("datetime64[ns]").view("int64")
+    n = len(frame)
+    # The state tags on one time axis (mean per time, the last value held where only one
+    # tag has a sample): integer counting and a running maximum, no pivot or merge.
+    times, at = np.unique(t_ns[sel], return_inverse=True)
+    tag_of = frame["tag"].to_numpy(object)[sel]
+    value = frame["value"].to_numpy("float64")[sel]
+    columns: dict[str, np.ndarray] = {}
+    for tag in tags:
+        mine = tag_of == tag
+        if not mine.any():
+            continue
+        count = np.bincount(at[mine], minlength=len(times))
+        total = np.bincount(at[mine], weights=value[mine], minlength=len(times))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            col = np.where(count > 0, total / count, np.nan)
+        last = np.maximum.accumulate(np.where(count > 0, np.arange(len(times)), 0))
+        columns[tag] = col[last]
+    if pressure_tag not in columns:
         return np.zeros(n, dtype=bool), np.zeros(n, dtype=bool)
-    # Where only one of the two tags has a sample, the other's last value holds.
-    state_frame = state_frame.ffill(limit=None)
+    index = pd.DatetimeIndex(times.view("datetime64[ns]")).tz_localize("UTC")
+    state_frame = pd.DataFrame(columns, index=index)
     running = running_mask(state_frame, pressure_tag, flow_tag, settings, settle=False)
     settled = running_mask(state_frame, pressure_tag, flow_tag, settings, settle=True)
-    states = pd.DataFrame(
-        {"time": state_frame.index, "running": running.to_numpy(), "settled": settled.to_numpy()}
-    )
-    order = frame["time"].argsort(kind="stable").to_numpy()
-    looked = (
-        pd.merge_asof(
-            frame[["time"]].iloc[order].reset_index(),
-            states,
-            on="time",
-            direction="backward",
-            tolerance=pd.Timedelta(seconds=settings.max_gap_s),
-        )
-        .set_index("index")
-        .reindex(frame.index)
-    )
-    known = looked["running"].notna().to_numpy()
-    run = looked["running"].fillna(False).to_numpy(bool)
-    settle = looked["settled"].fillna(False).to_numpy(bool)
+    # each sample takes the last state at or before it, within the maximum gap
+    pos = np.searchsorted(times, t_ns, side="right") - 1
+    prior = np.maximum(pos, 0)
+    tolerance = pd.Timedelta(seconds=settings.max_gap_s).value
+    known = (pos >= 0) & (t_ns - times[prior] <= tolerance) if len(times) else np.zeros(n, bool)
+    run = known & running.to_numpy(bool)[prior]
+    settle = known & settled.to_numpy(bool)[prior]
     return known & ~run, known & run & ~settle
 
 
