@@ -1,0 +1,397 @@
+"""Accuracy of the diagnosis on simulated site-years with random faults (issue 4 part 7).
+
+Each site-year is the example site (`config/example-site.toml`, six branches) simulated
+for a year with its own seed and four faults on four different branches, drawn at
+random (seeded): a restriction step (r × 1.3–1.8), a fouling ramp (r to 1.5–2.0 over
+60–150 days, linear or asymptotic), a back-pressure step (±0.2–0.5 bar on the tank branch,
+±0.2–0.3 bar on the held process header, whose margin at night is small) and a frozen
+flow meter (1–4 days). The other two branches stay clean all year.
+
+The data go through the product's code path without files or a store: per window of
+`monitor.jobs.windows` (the site's local days), `monitor.analysis.analyze_window` on the
+simulated readings; then one `monitor.diagnose.diagnose` over the collected fit rows,
+screening counts and balances, with the columns the store keeps — as
+`monitor.jobs.diagnose_site` does with stored ones.
+
+Printed per fault kind: recall (found with the right kind within the goal's time, and at
+any time), wrong-kind rate (another resistance, back-pressure or instrument finding on
+the branch within the fault's horizon, before the right one), median detection delay
+(``detected`` − true onset); false findings per clean branch-year (clean branches, and
+faulted branches before their fault); median |r − r_true| / r_true over usable fits of
+windows where r_true is constant and no meter is faulted. Then the goals, met or not.
+
+    .venv/bin/python benchmarks/diagnosis.py [--sites 20] [--seed 1] [--step-s 300]
+        [--workers 2]
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import time
+import tomllib
+from collections import Counter
+from collections.abc import Sequence
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass, field
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from adapters.migrations.tables import FIT_COLUMNS, header_balance_t, window_checks_t
+from model.simulate import (
+    BackPressureStep,
+    Fault,
+    FoulingRamp,
+    FrozenMeter,
+    Simulation,
+    StepRestriction,
+)
+from monitor.analysis import analyze_window
+from monitor.config import Site, parse_site
+from monitor.demo import simulate_site
+from monitor.diagnose import Finding, diagnose
+from monitor.jobs import diagnosis_settings, windows
+
+EXAMPLE = Path(__file__).resolve().parent.parent / "config" / "example-site.toml"
+YEAR_START = datetime(2026, 1, 1, tzinfo=UTC)
+DAY = timedelta(days=1)
+#: Branches whose termination pressure a back-pressure step may move: the vented tank
+#: (not logged: the gas-blanket equivalent) and the held process header (logged). The
+#: return header's tag is shared by three branches, so a step on one would not be theirs.
+BP_BRANCHES = {"B3-quench": (0.2e5, 0.5e5), "B4-process": (0.2e5, 0.3e5)}
+RESISTANCE_KINDS = frozenset({"fouling", "restriction", "back_pressure", "instrument"})
+SCREENING_KEEP = tuple(c.name for c in window_checks_t.columns)
+BALANCE_KEEP = tuple(c.name for c in header_balance_t.columns)
+
+GOALS = {
+    "restriction": 0.95,  # found within 1 day, steps >= +30 %
+    "fouling": 0.95,  # found before r passes 1.25
+    "back_pressure": 0.90,  # found within 1 day with the right kind
+    "instrument": 1.0,  # frozen meters within 6 h (every one)
+}
+GOAL_FALSE_PER_BRANCH_YEAR = 0.5
+GOAL_R_ERROR = 0.02
+
+
+def site_for(step_s: float) -> Site:
+    """The example site with its analysis grid at the sample step (at least 1 min)."""
+    doc = tomllib.loads(EXAMPLE.read_text(encoding="utf-8"))
+    doc.pop("store", None)
+    doc.pop("source", None)
+    doc.setdefault("analysis", {})["sample_period"] = f"{max(60.0, step_s):g} s"
+    return parse_site(doc, path=EXAMPLE)
+
+
+@dataclass(frozen=True)
+class Injected:
+    kind: str
+    branch: str
+    onset: datetime
+    #: restriction ratio, fouling r_end, back-pressure step [Pa], frozen days
+    size: float
+    #: the time by which the goal wants it found
+    deadline: datetime
+    #: findings on the branch up to here are about this fault
+    horizon: datetime
+    tag: str = ""
+
+
+def draw_faults(site: Site, rng: np.random.Generator) -> tuple[list[Fault], list[Injected]]:
+    """Four faults on four different branches of one site-year."""
+    names = [b.name for b in site.branches]
+    bp_branch = str(rng.choice(sorted(BP_BRANCHES)))
+    rest = [n for n in names if n != bp_branch]
+    rng.shuffle(rest)
+    restr_b, foul_b, frozen_b = rest[:3]
+    end = YEAR_START + timedelta(days=365)
+    faults: list[Fault] = []
+    out: list[Injected] = []
+
+    t = YEAR_START + timedelta(days=float(rng.uniform(40, 330)))
+    ratio = float(rng.uniform(1.3, 1.8))
+    faults.append(StepRestriction(restr_b, t, ratio=ratio))
+    out.append(Injected("restriction", restr_b, t, ratio, t + DAY, min(end, t + 7 * DAY)))
+
+    shape = str(rng.choice(["linear", "asymptotic"]))
+    days = float(rng.uniform(60, 150))
+    r_end = float(rng.uniform(1.5, 2.0))
+    # days until r passes 1.25 (linear: proportional; asymptotic: τ = days/3)
+    frac = 0.25 / (r_end - 1.0)
+    to_125 = days * frac if shape == "linear" else -days / 3.0 * math.log(1.0 - frac)
+    latest = 365.0 - to_125 - 5.0
+    t = YEAR_START + timedelta(days=float(rng.uniform(25, max(26.0, latest))))
+    faults.append(FoulingRamp(foul_b, t, days=days, r_end=r_end, shape=shape))  # type: ignore[arg-type]
+    cross = t + timedelta(days=to_125)
+    out.append(Injected("fouling", foul_b, t, r_end, cross, min(end, t + timedelta(days=days))))
+
+    t = YEAR_START + timedelta(days=float(rng.uniform(40, 330)))
+    lo, hi = BP_BRANCHES[bp_branch]
+    delta = float(rng.uniform(lo, hi)) * float(rng.choice([-1.0, 1.0]))
+    faults.append(BackPressureStep(bp_branch, t, delta_pa=delta))
+    out.append(Injected("back_pressure", bp_branch, t, delta, t + DAY, min(end, t + 7 * DAY)))
+
+    t = YEAR_START + timedelta(days=float(rng.uniform(30, 350)))
+    length = float(rng.uniform(1, 4))
+    tag = site.branch(frozen_b).flow_tag or ""
+    faults.append(FrozenMeter(tag, t, t + timedelta(days=length)))
+    out.append(Injected("instrument", frozen_b, t, length, t + timedelta(hours=6),
+                        t + timedelta(days=length + 1), tag=tag))
+    return faults, out
+
+
+def _window_frame(site: Site, sim: Simulation, i0: int, i1: int) -> pd.DataFrame:
+    """Readings frame (time UTC, tag, value SI, good) of samples i0..i1 of *sim*."""
+    times = pd.DatetimeIndex(sim.times[i0:i1]).tz_localize("UTC")
+    tags = [t for t in sim.values if t in site.tags]
+    n = len(times)
+    return pd.DataFrame({
+        "time": times[np.tile(np.arange(n), len(tags))],
+        "tag": np.repeat(np.array(tags, dtype=object), n),
+        "value": np.concatenate([sim.values[t][i0:i1] for t in tags]),
+        "good": True,
+    })
+
+
+@dataclass
+class SiteResult:
+    seed: int
+    injected: list[Injected]
+    findings: list[Finding]
+    r_errors: list[float]
+    clean_branch_years: float
+    false_findings: list[Finding] = field(default_factory=list)
+    cpu_s: float = 0.0
+    wall_s: float = 0.0
+    windows: int = 0
+    history: pd.DataFrame | None = None
+
+
+def run_site(seed: int, step_s: float) -> SiteResult:
+    """Simulate, analyse and diagnose one site-year."""
+    w0, c0 = time.perf_counter(), time.process_time()
+    site = site_for(step_s)
+    rng = np.random.default_rng(seed)
+    faults, injected = draw_faults(site, rng)
+    end = YEAR_START + timedelta(days=365)
+    sim = simulate_site(site, YEAR_START, end, faults=faults, step_s=step_s, seed=seed)
+    t_ns = sim.times.astype("datetime64[ns]")
+    fits: list[dict[str, Any]] = []
+    screening: list[pd.DataFrame] = []
+    balance: list[dict[str, Any]] = []
+    r_errors: list[float] = []
+    faulted_tags = {tag for tag, bad in sim.truth.instrument_fault.items() if bad.any()}
+    spans = list(windows(YEAR_START, end, site.window, site.timezone))
+    for ws, we in spans:
+        i0, i1 = np.searchsorted(t_ns, [np.datetime64(ws.replace(tzinfo=None), "ns"),
+                                        np.datetime64(we.replace(tzinfo=None), "ns")])
+        result = analyze_window(site, _window_frame(site, sim, int(i0), int(i1)), ws, we)
+        fits += [{k: f.get(k) for k in FIT_COLUMNS if k in f} for f in result.fits]
+        screening.append(result.screening[[c for c in SCREENING_KEEP
+                                           if c in result.screening.columns]])
+        if result.balance is not None:
+            balance.append({k: result.balance[k] for k in BALANCE_KEEP if k in result.balance})
+        for f in result.fits:
+            r_errors += _r_error(site, sim, f, int(i0), int(i1), faulted_tags)
+    history = pd.DataFrame(fits)
+    findings = diagnose(
+        history,
+        settings=diagnosis_settings(site),
+        now=spans[-1][1],
+        screening=pd.concat(screening, ignore_index=True),
+        balance=pd.DataFrame(balance) if balance else None,
+    )
+    res = SiteResult(seed, injected, findings, r_errors, 0.0, windows=len(spans),
+                     history=history)
+    _false_findings(site, res, end)
+    res.wall_s, res.cpu_s = time.perf_counter() - w0, time.process_time() - c0
+    return res
+
+
+def _r_error(site: Site, sim: Simulation, fit: dict[str, Any], i0: int, i1: int,
+             faulted_tags: set[str]) -> list[float]:
+    """|r − r_true| / r_true of a usable fit where r_true is constant in the window."""
+    if fit.get("status") not in ("ok", "not_identifiable") or not math.isfinite(fit["r"]):
+        return []
+    branch = site.branch(fit["branch"])
+    tags = {branch.flow_tag, *branch.logged_conditions.values(), site.header_pressure_tag}
+    if any(tag in faulted_tags and sim.truth.instrument_fault[tag][i0:i1].any()
+           for tag in tags if tag):
+        return []
+    true = sim.truth.resistance_ratio[branch.name][i0:i1]
+    if len(true) == 0 or float(np.ptp(true)) > 1e-3:
+        return []
+    r_true = float(np.mean(true))
+    return [abs(float(fit["r"]) - r_true) / r_true]
+
+
+def _false_findings(site: Site, res: SiteResult, end: datetime) -> None:
+    """Findings where nothing was wrong: clean branches, and faulted ones before onset."""
+    onset = {i.branch: i.onset for i in res.injected}
+    clean_years = 0.0
+    for b in site.branches:
+        t = onset.get(b.name)
+        clean_years += (((t if t is not None else end) - YEAR_START) / timedelta(days=365))
+    res.clean_branch_years = clean_years
+    names = {b.name for b in site.branches}
+    for f in res.findings:
+        before = f.branch in onset and pd.Timestamp(f.detected) < pd.Timestamp(onset[f.branch])
+        if (f.branch in names and f.branch not in onset) or before:
+            res.false_findings.append(f)
+
+
+@dataclass
+class Outcome:
+    found_in_time: bool
+    found_ever: bool
+    wrong_kind: bool
+    delay_h: float
+
+
+def judge(inj: Injected, findings: Sequence[Finding], site: Site) -> Outcome:
+    """Was the fault found in time, with the right kind, and how fast?"""
+    onset = pd.Timestamp(inj.onset)
+    own = sorted(
+        (f for f in findings if f.branch == inj.branch and pd.Timestamp(f.detected) >= onset
+         and pd.Timestamp(f.detected) <= pd.Timestamp(inj.horizon) + 3 * DAY),
+        key=lambda f: f.detected,
+    )
+    right = [f for f in own if f.kind == inj.kind]
+    wrong = [f for f in own if f.kind in RESISTANCE_KINDS and f.kind != inj.kind]
+    first_right = pd.Timestamp(right[0].detected) if right else None
+    wrong_first = bool(wrong) and (first_right is None
+                                   or pd.Timestamp(wrong[0].detected) <= first_right)
+    deadline = pd.Timestamp(inj.deadline)
+    if inj.kind in ("restriction", "back_pressure"):
+        # one day of data after the step: the end of the first whole window after it
+        spans = windows(inj.onset - DAY, inj.onset + 3 * DAY, site.window, site.timezone)
+        after = [we for ws, we in spans if ws >= inj.onset]
+        deadline = pd.Timestamp(after[0]) if after else deadline
+    found_in_time = first_right is not None and first_right <= deadline
+    delay = (first_right - onset).total_seconds() / 3600 if first_right is not None else math.nan
+    return Outcome(found_in_time, first_right is not None, wrong_first, delay)
+
+
+def summarize(results: list[SiteResult], site: Site, step_s: float) -> None:
+    outcomes: dict[str, list[Outcome]] = {k: [] for k in GOALS}
+    within_24h: dict[str, list[bool]] = {k: [] for k in GOALS}
+    for res in results:
+        for inj in res.injected:
+            o = judge(inj, res.findings, site)
+            outcomes[inj.kind].append(o)
+            within_24h[inj.kind].append(o.found_in_time and o.delay_h <= 24.0)
+    print(f"\n{len(results)} site-years of the example site ({len(site.branches)} branches), "
+          f"samples every {step_s:g} s (1-minute data would be {step_s / 60:g}x the rows), "
+          f"daily windows")
+    print(f"{'kind':<14}{'faults':>7}{'in time':>9}{'ever':>7}{'<=24 h':>8}"
+          f"{'wrong kind':>11}{'median delay':>14}  goal")
+    met: dict[str, bool] = {}
+    labels = {
+        "restriction": "found within 1 day (next whole window), >= 95 %",
+        "fouling": "found before r passes 1.25, >= 95 %",
+        "back_pressure": "right kind within 1 day (next whole window), >= 90 %",
+        "instrument": "frozen meter found within 6 h",
+    }
+    for kind, rows in outcomes.items():
+        n = len(rows)
+        in_time = sum(o.found_in_time for o in rows) / n if n else math.nan
+        ever = sum(o.found_ever for o in rows) / n if n else math.nan
+        h24 = sum(within_24h[kind]) / n if n else math.nan
+        wrong = sum(o.wrong_kind for o in rows) / n if n else math.nan
+        delays = [o.delay_h for o in rows if o.found_ever]
+        med = float(np.median(delays)) if delays else math.nan
+        met[kind] = in_time >= GOALS[kind]
+        print(f"{kind:<14}{n:>7}{in_time:>9.0%}{ever:>7.0%}{h24:>8.0%}{wrong:>11.0%}"
+              f"{med:>12.1f} h  {labels[kind]}: {'met' if met[kind] else 'NOT met'}")
+    clean = sum(r.clean_branch_years for r in results)
+    false = [f for r in results for f in r.false_findings]
+    rate = len(false) / clean if clean else math.nan
+    by_kind = Counter(f.kind for f in false)
+    imbalance = sum(1 for r in results for f in r.findings if f.kind == "imbalance")
+    print(f"\nfalse findings: {len(false)} over {clean:.1f} clean branch-years = "
+          f"{rate:.2f} per clean branch-year ({dict(by_kind)}); goal <= "
+          f"{GOAL_FALSE_PER_BRANCH_YEAR}: "
+          f"{'met' if rate <= GOAL_FALSE_PER_BRANCH_YEAR else 'NOT met'}")
+    print(f"header imbalance findings: {imbalance} in {len(results)} site-years "
+          "(every site-year has a frozen branch meter)")
+    errors = [e for r in results for e in r.r_errors]
+    med_err = float(np.median(errors)) if errors else math.nan
+    p95 = float(np.percentile(errors, 95)) if errors else math.nan
+    print(f"median |r - r_true| / r_true: {100 * med_err:.2f} % over {len(errors)} fits "
+          f"(95th percentile {100 * p95:.2f} %); goal <= {100 * GOAL_R_ERROR:.0f} %: "
+          f"{'met' if med_err <= GOAL_R_ERROR else 'NOT met'}")
+    misses = [(r.seed, inj, judge(inj, r.findings, site)) for r in results for inj in r.injected]
+    misses = [m for m in misses if not m[2].found_in_time]
+    if misses:
+        print("\nnot found in time:")
+        for seed, inj, o in misses:
+            res = next(r for r in results if r.seed == seed)
+            kinds = sorted({f.kind for f in _near(inj, res)})
+            print(f"  seed {seed} {inj.kind:<13} {inj.branch:<14} onset {inj.onset:%Y-%m-%d %H:%M}"
+                  f" size {inj.size:+.3g}  delay {o.delay_h:.0f} h  findings near: {kinds}")
+    if false:
+        print("\nfalse findings:")
+        for r in results:
+            for f in r.false_findings:
+                print(f"  seed {r.seed} {f.branch:<14} {f.kind:<13} detected "
+                      f"{pd.Timestamp(f.detected):%Y-%m-%d}  {f.message[:90]}")
+
+
+def _near(inj: Injected, res: SiteResult) -> list[Finding]:
+    onset = pd.Timestamp(inj.onset)
+    return [f for f in res.findings if f.branch == inj.branch
+            and onset - 2 * DAY <= pd.Timestamp(f.detected) <= pd.Timestamp(inj.horizon) + 3 * DAY]
+
+
+def detail(res: SiteResult) -> None:
+    """Fit history and findings of one site-year around each fault (to see why)."""
+    assert res.history is not None
+    hist = res.history
+    cols = ["window_start", "r", "r_low", "r_high", "s_pa", "end_pressure_pa", "samples",
+            "status"]
+    for inj in res.injected:
+        a, b = pd.Timestamp(inj.onset) - 4 * DAY, pd.Timestamp(inj.deadline) + 4 * DAY
+        rows = hist[(hist["branch"] == inj.branch) & (hist["window_start"] >= a)
+                    & (hist["window_start"] <= b)]
+        print(f"\n{inj.kind} on {inj.branch} at {inj.onset:%Y-%m-%d %H:%M}, size {inj.size:+.4g}")
+        with pd.option_context("display.width", 160, "display.max_rows", 400):
+            print(rows[[c for c in cols if c in rows.columns]].to_string(index=False))
+        for f in res.findings:
+            if f.branch == inj.branch:
+                print(f"  finding {f.kind:<13} start {pd.Timestamp(f.start):%m-%d %H:%M} "
+                      f"detected {pd.Timestamp(f.detected):%m-%d %H:%M}  {f.message[:100]}")
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--sites", type=int, default=20, help="site-years [-]")
+    parser.add_argument("--seed", type=int, default=1, help="first seed [-]")
+    parser.add_argument("--step-s", type=float, default=300.0, help="sample step [s]")
+    parser.add_argument("--workers", type=int, default=2, help="processes [-]")
+    parser.add_argument("--detail", action="store_true",
+                        help="print each site's fit history around its faults")
+    args = parser.parse_args()
+    seeds = [args.seed + i for i in range(args.sites)]
+    w0, c0 = time.perf_counter(), time.process_time()
+    if args.workers > 1:
+        with ProcessPoolExecutor(max_workers=args.workers) as pool:
+            results = list(pool.map(run_site, seeds, [args.step_s] * len(seeds)))
+    else:
+        results = [run_site(s, args.step_s) for s in seeds]
+    wall = time.perf_counter() - w0
+    if args.detail:
+        for res in results:
+            detail(res)
+    summarize(results, site_for(args.step_s), args.step_s)
+    cpu = sum(r.cpu_s for r in results)
+    if args.workers > 1:
+        cpu += time.process_time() - c0  # the parent's own share
+    print(f"\ntime: wall {wall:.0f} s, cpu {cpu:.0f} s over {args.workers} worker(s); "
+          f"{cpu / max(1, len(results)):.0f} s cpu per site-year")
+
+
+if __name__ == "__main__":
+    main()
