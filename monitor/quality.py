@@ -296,6 +296,7 @@ class ScreenResult:
             long = pd.concat([long, gap_counts.assign(flag="gap")], ignore_index=True)
         out = long.sort_values(["day", "tag", "flag"]).reset_index(drop=True)
         out["count"] = out["count"].astype("int64")
+        out["day"] = out["day"].astype("datetime64[ns, UTC]")  # the project's time unit
         for col in ("tag", "flag"):  # plain objects, as in readings frames
             out[col] = out[col].astype(object)
         return out[["tag", "day", "flag", "count"]]
