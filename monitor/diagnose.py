@@ -512,6 +512,18 @@ class _Open:
         )
 
 
+@dataclass(frozen=True)
+class _Pending:
+    """A step candidate waiting for the next window: where, how big, what saw it."""
+
+    j: int  # the window it showed in
+    z: float  # its prediction error in σ [-]
+    e: float  # its prediction error [-]
+    first: int  # first window of the change (the CUSUM change point)
+    trigger: str  # "jump", "offset" or "cusum"
+    dc: float  # constant-offset change for "offset" [Pa]
+
+
 @dataclass
 class _Baseline:
     r0: float
@@ -624,8 +636,8 @@ class _Replay:
         self.cusum = 0.0
         self.trend_hits = 0
         self.cusum_start = -1  # first window of the current CUSUM run
-        # a step waiting for its cause: (window, z, step, first window of the step)
-        self.pending: tuple[int, float, float, int] | None = None
+        self.pending: _Pending | None = None
+        self.prev_dev: tuple[int, float, float] = (-1, 0.0, math.nan)  # (window, z, offset)
         self.recent_pe: list[float] = []
         self.recent_s: list[float] = []
 
@@ -758,8 +770,11 @@ class _Replay:
     def _steps(self, i: int) -> None:
         assert self.base is not None
         if self.pending is not None:
-            self._decide_step(i)
-            return
+            if self._confirmed(i):
+                self._decide_step(i)
+                return
+            # one window out of line and back again: an outlier fit, not a step
+            self.pending = None
         rst = self.open.get("restriction")
         if rst is not None and self.r[i] < rst.ref + rst.step / 2:
             self._end("restriction", self.ws[i])
@@ -783,34 +798,74 @@ class _Replay:
         if self.cusum == 0.0:
             self.cusum_start = i
         self.cusum = max(0.0, self.cusum + z - self.cfg.cusum_k)
-        jump = z >= self.cfg.step_z and e >= self.cfg.min_step_rel * pred
-        first = i
-        if not jump and "back_pressure" not in self.open:
-            jump = self._offset_jump(i)
-        if not jump and self.cusum > self.cfg.cusum_h:
-            jump = self._cusum_step(i)
-            first = self.cusum_start  # Page's change-point estimate
-        if jump:
-            self.pending = (i, z, e, first)
-            self._decide_step(i)
-            return
-        if z <= -self.cfg.step_z and -e >= self.cfg.min_step_rel * pred:
-            bp = self.open.get("back_pressure")
-            if bp is not None and math.isfinite(bp.evidence.get("static_offset_pa", math.nan)):
-                kind, _, cmp = self._classify(i)
-                if kind == "back_pressure" or "restriction" not in self.open:
-                    self._end("back_pressure", self.ws[i])
-                    self._shift_static(i, cmp.get("static_offset_pa", -self.s_shift))
-                else:
-                    self._end("restriction", self.ws[i])
-            else:
-                self._end("restriction", self.ws[i])
-            self._reset_level()
-            self.level, self.trend = [i], [i]
-            return
+        big = abs(e) >= self.cfg.min_step_rel * pred and abs(z) >= self.cfg.step_z
+        dc = self._offset_change(i)
+        trigger = ""
+        if big:
+            trigger = "jump"
+        elif math.isfinite(dc):
+            trigger = "offset"
+        elif self.cusum > self.cfg.cusum_h and self._cusum_step(i):
+            trigger = "cusum"
+        if trigger:
+            first = self.cusum_start if trigger == "cusum" else i  # Page's change point
+            self.pending = _Pending(i, z, e, first, trigger, 0.0 if math.isnan(dc) else dc)
+            if trigger != "cusum" and self._began_before(i, z, dc):
+                # the window before already leaned the same way: the step began part-way
+                # through it, and it confirms this one
+                self.pending = _Pending(i, z, e, self.prev_dev[0], trigger, self.pending.dc)
+                if self._classify(i)[0] is not None:
+                    self._decide_step(i)
+            return  # otherwise the next window confirms it (or shows it was an outlier)
+        self.prev_dev = (i, z, self._raw_offset(i))
         self.rel_errors.append(e / pred)
         self.level.append(i)
         self.trend.append(i)
+
+    def _raw_offset(self, i: int) -> float:
+        """Constant offset of window i against the baseline model, less the baseline's [Pa]."""
+        assert self.base is not None
+        cmp = _offset_comparison(
+            self.rows.iloc[i], self.base.r0, self.base.s_b + self.s_shift, self.cfg
+        )
+        if cmp is None or not math.isfinite(self.base.offset0):
+            return math.nan
+        return float(cmp["static_offset_pa"] - self.base.offset0)
+
+    def _began_before(self, i: int, z: float, dc: float) -> bool:
+        j, z_prev, dc_prev = self.prev_dev
+        if j < 0 or self.level[-1:] != [j]:
+            return False
+        leaned_r = z * z_prev > 0 and abs(z_prev) >= 3.0
+        if math.isfinite(dc) and math.isfinite(dc_prev):
+            assert self.base is not None
+            floor = max(0.2 * abs(dc), 2.5 * self.base.sigma_offset)
+            return leaned_r or (dc * dc_prev > 0 and abs(dc_prev) >= floor)
+        return leaned_r
+
+    def _confirmed(self, i: int) -> bool:
+        """The window after a step candidate stays on the new side of it."""
+        p = self.pending
+        assert p is not None
+        if p.trigger == "cusum":
+            return True  # the CUSUM has already accumulated several windows
+        if p.trigger == "offset":
+            dc = self._offset_change(i)
+            return math.isfinite(dc) and dc * p.dc > 0 and abs(dc) >= 0.5 * abs(p.dc)
+        ref = float(self.r[p.j] - p.e)
+        return (self.r[i] - ref) * p.e >= 0.5 * p.e * p.e
+
+    def _offset_change(self, i: int) -> float:
+        """Change of the window's constant offset against the baseline model [Pa], when it
+        is a clear back-pressure step (see `_offset_jump`), else NaN."""
+        if not self._offset_jump(i):
+            return math.nan
+        assert self.base is not None
+        cmp = _offset_comparison(
+            self.rows.iloc[i], self.base.r0, self.base.s_b + self.s_shift, self.cfg
+        )
+        assert cmp is not None
+        return float(cmp["static_offset_pa"] - self.base.offset0)
 
     def _offset_jump(self, i: int) -> bool:
         """A window whose departure from the baseline model is a clear constant offset of
@@ -826,7 +881,7 @@ class _Replay:
             return False
         dc = cmp["static_offset_pa"] - self.base.offset0
         big = abs(dc) >= max(self.cfg.min_bp_step_pa, self.cfg.bp_step_z * self.base.sigma_offset)
-        return big and dc > 0 and cmp["offset_llr"] > self.cfg.offset_evidence
+        return big and cmp["offset_llr"] > self.cfg.offset_evidence
 
     def _cusum_step(self, i: int) -> bool:
         """A CUSUM alarm counts as a step when one mean shift fits the recent windows
@@ -843,15 +898,33 @@ class _Replay:
         return ms.step > 0 and sse_step < 0.5 * sse_line
 
     def _decide_step(self, i: int) -> None:
+        """Name the confirmed change of window ``pending.j`` (window i is the one after)."""
         assert self.base is not None and self.pending is not None
-        j, z, e, first = self.pending
+        j, z, e, first = self.pending.j, self.pending.z, self.pending.e, self.pending.first
+        self.pending = None
         kind, conf, extra = self._classify(j)
-        if kind is None and i == j:
-            return  # undecided window: a step part-way through it; the next one decides
         if kind is None:
             kind, conf, extra = self._classify(i, final=True)
         if kind is None:
             kind, conf = "restriction", 0.5
+        ref = float(self.r[j] - e)
+        up = self.r[i] > ref
+        bp = self.open.get("back_pressure")
+        c = extra.get("static_offset_pa", math.nan)
+        if kind == "back_pressure" and bp is not None:
+            if math.isfinite(c) and c * bp.evidence.get("static_offset_pa", 0.0) < 0:
+                self._end("back_pressure", self.ws[first])  # it went back
+                self._shift_static(i, c)
+            self._restart(i)
+            return
+        if not up:
+            if kind == "restriction":
+                self._end("restriction", self.ws[first])
+            elif kind == "instrument":
+                self._end("instrument", self.ws[first])
+            if kind != "back_pressure":
+                self._restart(i)  # r fell: cleared or improved; nothing to report
+                return
         start = self.ws[first]
         ref = float(self.r[j] - e)
         e = float(self.r[i] - ref)  # the full step (window i is past a deferred one)
@@ -877,9 +950,12 @@ class _Replay:
         self._open(_Open(kind, start, self.we[i], conf, evidence, msg, ref=ref, step=e))
         if kind == "back_pressure" and math.isfinite(extra.get("static_offset_pa", math.nan)):
             self._shift_static(i, extra["static_offset_pa"])
+        self._restart(i)
+
+    def _restart(self, i: int) -> None:
+        """After a change the level and the trend start again at window i."""
         self._reset_level()
-        self.level = [i] if i != j else []
-        self.trend = list(self.level)
+        self.level, self.trend = [i], [i]
 
     def _classify(
         self, j: int, *, final: bool = False
