@@ -49,7 +49,7 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime
 from typing import Any
 
@@ -522,6 +522,7 @@ class _Pending:
     first: int  # first window of the change (the CUSUM change point)
     trigger: str  # "jump", "offset" or "cusum"
     dc: float  # constant-offset change for "offset" [Pa]
+    after: int = -1  # the confirming window, while a third one tells step from ramp
 
 
 @dataclass
@@ -770,7 +771,25 @@ class _Replay:
     def _steps(self, i: int) -> None:
         assert self.base is not None
         if self.pending is not None:
+            p = self.pending
+            if p.after >= 0:
+                if self._still_rising(p, i):  # a fast fouling ramp, not a step
+                    self.pending = None
+                    self.cusum = 0.0
+                    for k in (p.j, p.after, i):
+                        self.level.append(k)
+                        self.trend.append(k)
+                    return
+                self._decide_step(i)
+                return
             if self._confirmed(i):
+                rise = self.r[i] - self.r[p.j]
+                into = self.r[p.j] - self.r[self.level[-1]] if self.level else p.e
+                if p.trigger != "offset" and p.e > 0 and rise > 0.5 * into:
+                    # still rising as much again: a step part-way through window j, or
+                    # the start of a ramp; the next window tells them apart
+                    self.pending = replace(p, after=i)
+                    return
                 self._decide_step(i)
                 return
             # one window out of line and back again: an outlier fit, not a step
@@ -842,6 +861,13 @@ class _Replay:
             floor = max(0.2 * abs(dc), 2.5 * self.base.sigma_offset)
             return leaned_r or (dc * dc_prev > 0 and abs(dc_prev) >= floor)
         return leaned_r
+
+    def _still_rising(self, p: _Pending, i: int) -> bool:
+        """After a partial step r levels off; along a ramp it keeps climbing."""
+        assert self.base is not None
+        first_rise = self.r[p.after] - self.r[p.j]
+        again = self.r[i] - self.r[p.after]
+        return bool(again > 0.5 * first_rise and again > 2.0 * self.base.sigma_r)
 
     def _confirmed(self, i: int) -> bool:
         """The window after a step candidate stays on the new side of it."""
@@ -928,8 +954,10 @@ class _Replay:
         start = self.ws[first]
         ref = float(self.r[j] - e)
         e = float(self.r[i] - ref)  # the full step (window i is past a deferred one)
-        evidence = {"step_r": e, "step_sigma": z, "r_before": ref, "r_after": float(self.r[i]),
-                    "cusum": self.cusum, "sigma_r": self.base.sigma_r, **extra}  # fmt: skip
+        # r_baseline: the reference the cost of the change is counted from
+        evidence = {"step_r": e, "step_sigma": z, "r_before": ref, "r_baseline": ref,
+                    "r_after": float(self.r[i]), "cusum": self.cusum,
+                    "sigma_r": self.base.sigma_r, **extra}  # fmt: skip
         day = f"{start:%Y-%m-%d}"
         if kind == "back_pressure":
             c = extra.get("static_offset_pa", math.nan)
