@@ -2,10 +2,10 @@
 
 Each site-year is the example site (`config/example-site.toml`, six branches) simulated
 for a year with its own seed and four faults on four different branches, drawn at
-random (seeded): a restriction step (r × 1.3–1.8), a fouling ramp (r to 1.5–2.0 over
-60–150 days, linear or asymptotic), a back-pressure step (±0.2–0.5 bar on the tank branch,
-±0.2–0.3 bar on the held process header, whose margin at night is small) and a frozen
-flow meter (1–4 days). The other two branches stay clean all year.
+random (seeded): a restriction step (r × 1.3–1.8), a fouling ramp (linear or asymptotic,
+to r_end 1.5–2.0, reaching r = 1.5 after 60–150 days), a back-pressure step (±0.2–0.5 bar
+on the tank branch, ±0.2–0.3 bar on the held process header, whose margin at night is
+small) and a frozen flow meter (1–4 days). The other two branches stay clean all year.
 
 The data go through the product's code path without files or a store: per window of
 `monitor.jobs.windows` (the site's local days), `monitor.analysis.analyze_window` on the
@@ -116,17 +116,25 @@ def draw_faults(site: Site, rng: np.random.Generator) -> tuple[list[Fault], list
     faults.append(StepRestriction(restr_b, t, ratio=ratio))
     out.append(Injected("restriction", restr_b, t, ratio, t + DAY, min(end, t + 7 * DAY)))
 
+    # The goal's ramps reach 1.5 in 60 days or more: draw that time (60-150 days), then
+    # the ramp that takes it (linear, or asymptotic with τ = days/3).
     shape = str(rng.choice(["linear", "asymptotic"]))
-    days = float(rng.uniform(60, 150))
-    r_end = float(rng.uniform(1.5, 2.0))
-    # days until r passes 1.25 (linear: proportional; asymptotic: τ = days/3)
-    frac = 0.25 / (r_end - 1.0)
-    to_125 = days * frac if shape == "linear" else -days / 3.0 * math.log(1.0 - frac)
+    to_150 = float(rng.uniform(60, 150))
+    if shape == "linear":
+        r_end = float(rng.uniform(1.5, 2.0))
+        days = to_150 * (r_end - 1.0) / 0.5
+        to_125 = to_150 / 2.0
+    else:
+        r_end = float(rng.uniform(1.6, 2.0))
+        tau = to_150 / -math.log(1.0 - 0.5 / (r_end - 1.0))
+        days = 3.0 * tau
+        to_125 = -tau * math.log(1.0 - 0.25 / (r_end - 1.0))
     latest = 365.0 - to_125 - 5.0
     t = YEAR_START + timedelta(days=float(rng.uniform(25, max(26.0, latest))))
     faults.append(FoulingRamp(foul_b, t, days=days, r_end=r_end, shape=shape))  # type: ignore[arg-type]
     cross = t + timedelta(days=to_125)
-    out.append(Injected("fouling", foul_b, t, r_end, cross, min(end, t + timedelta(days=days))))
+    out.append(Injected("fouling", foul_b, t, r_end, cross,
+                        min(end, t + timedelta(days=max(days, to_150)))))
 
     t = YEAR_START + timedelta(days=float(rng.uniform(40, 330)))
     lo, hi = BP_BRANCHES[bp_branch]
@@ -306,17 +314,29 @@ def summarize(results: list[SiteResult], site: Site, step_s: float) -> None:
         met[kind] = in_time >= GOALS[kind]
         print(f"{kind:<14}{n:>7}{in_time:>9.0%}{ever:>7.0%}{h24:>8.0%}{wrong:>11.0%}"
               f"{med:>12.1f} h  {labels[kind]}: {'met' if met[kind] else 'NOT met'}")
+    print("in time: by the goal's time (for steps: the end of the first whole window after "
+          "the step, i.e. one day of data); <=24 h: found right and detected <= 24 h after "
+          "the onset")
+    for kind in ("restriction", "back_pressure"):
+        n = len(within_24h[kind])
+        h24 = sum(within_24h[kind]) / n if n else math.nan
+        print(f"  strict reading for {kind}: {h24:.0%} detected within 24 h of the onset "
+              f"(goal {GOALS[kind]:.0%}: {'met' if h24 >= GOALS[kind] else 'NOT met'})")
     clean = sum(r.clean_branch_years for r in results)
     false = [f for r in results for f in r.false_findings]
     rate = len(false) / clean if clean else math.nan
     by_kind = Counter(f.kind for f in false)
     imbalance = sum(1 for r in results for f in r.findings if f.kind == "imbalance")
+    unrelated = [(r.seed, f) for r in results for f in _unrelated(r)]
     print(f"\nfalse findings: {len(false)} over {clean:.1f} clean branch-years = "
           f"{rate:.2f} per clean branch-year ({dict(by_kind)}); goal <= "
           f"{GOAL_FALSE_PER_BRANCH_YEAR}: "
           f"{'met' if rate <= GOAL_FALSE_PER_BRANCH_YEAR else 'NOT met'}")
     print(f"header imbalance findings: {imbalance} in {len(results)} site-years "
           "(every site-year has a frozen branch meter)")
+    print(f"findings on faulted branches detected after their fault's horizon (+3 days), "
+          f"of another kind than the fault and not low flow: {len(unrelated)} "
+          f"({dict(Counter(f.kind for _, f in unrelated))})")
     errors = [e for r in results for e in r.r_errors]
     med_err = float(np.median(errors)) if errors else math.nan
     p95 = float(np.percentile(errors, 95)) if errors else math.nan
@@ -338,6 +358,15 @@ def summarize(results: list[SiteResult], site: Site, step_s: float) -> None:
             for f in r.false_findings:
                 print(f"  seed {r.seed} {f.branch:<14} {f.kind:<13} detected "
                       f"{pd.Timestamp(f.detected):%Y-%m-%d}  {f.message[:90]}")
+
+
+def _unrelated(res: SiteResult) -> list[Finding]:
+    out = []
+    for inj in res.injected:
+        late = pd.Timestamp(inj.horizon) + 3 * DAY
+        out += [f for f in res.findings if f.branch == inj.branch and f.kind != inj.kind
+                and f.kind != "low_flow" and pd.Timestamp(f.detected) > late]
+    return out
 
 
 def _near(inj: Injected, res: SiteResult) -> list[Finding]:
