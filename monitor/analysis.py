@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import logging
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass, fields
 from datetime import datetime
 from typing import Any
 
@@ -243,11 +243,9 @@ def _fit_row(
 
 
 def _fit_fields(fit: FitResult) -> dict[str, Any]:
-    fields = asdict(fit)
-    fields.pop("iterations", None)
-    fields.pop("loss", None)
-    fields.pop("fit_static", None)
-    return fields
+    # a flat record of plain numbers: no need for asdict's recursive deep copy
+    skip = {"iterations", "loss", "fit_static"}
+    return {f.name: getattr(fit, f.name) for f in fields(fit) if f.name not in skip}
 
 
 def _empty(message: str, *, status: str = "no_data") -> dict[str, Any]:
