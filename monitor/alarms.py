@@ -48,10 +48,12 @@ __all__ = [
     "AlarmEvent",
     "AlarmRateSummary",
     "AlarmState",
+    "FrozenSettings",
     "LowFlowSettings",
     "State",
     "acknowledge",
     "alarm_rate_summary",
+    "evaluate_frozen",
     "evaluate_low_flow",
     "remove_from_service",
     "reset",
@@ -277,6 +279,91 @@ def evaluate_low_flow(
                 events += ev
         else:
             s = dataclasses.replace(s, clear_since=None)
+    s, ev = _expire_shelf(s, t_now.to_pydatetime())
+    events += ev
+    return s, events
+
+
+@dataclass(frozen=True)
+class FrozenSettings:
+    """Frozen-meter alarm settings of one tag.
+
+    hold : how long the reading may stay exactly the same before the meter counts as
+        frozen [s]; a live flow or pressure transmitter always wanders by a few counts
+    tolerance : a change of at most this much counts as "the same" [SI]
+    ignore_zero : a reading of exactly zero is not judged (magnetic flow meters cut low
+        flows to zero on purpose: common practice)
+    """
+
+    hold: timedelta = timedelta(hours=1)
+    tolerance: float = 0.0
+    ignore_zero: bool = True
+
+    def __post_init__(self) -> None:
+        if self.hold <= timedelta(0):
+            raise ValueError(f"hold must be positive, got {self.hold}")
+        if not self.tolerance >= 0:
+            raise ValueError(f"tolerance must be >= 0, got {self.tolerance}")
+
+
+def evaluate_frozen(
+    series: pd.Series,
+    state: AlarmState,
+    settings: FrozenSettings,
+    now: datetime,
+    *,
+    tag: str,
+    unit_label: str = "",
+    scale: float = 1.0,
+) -> tuple[AlarmState, list[AlarmEvent]]:
+    """Run the frozen-meter check over new samples of one tag (near real time).
+
+    The alarm comes on once the reading has not changed by more than the tolerance for
+    ``settings.hold``, and returns to normal at the first sample that moves. The state
+    keeps the held value (``last_value``) and since when it has been held
+    (``pending_since``), so the check carries over from one ingest to the next. Same
+    life cycle as `evaluate_low_flow`; *scale* and *unit_label* only shape the message
+    (e.g. 3600 and "m3/h" for a flow in m³/s).
+    """
+    index = pd.DatetimeIndex(series.index)
+    if index.tz is None:
+        raise ValueError("series must be indexed by timezone-aware (UTC) times")
+    t_now = pd.Timestamp(now)
+    data = pd.Series(series.to_numpy(dtype=float), index=index.tz_convert("UTC")).sort_index()
+    if state.last_sample is not None:
+        data = data[data.index > pd.Timestamp(state.last_sample)]
+    data = data[(data.index <= t_now) & data.notna()]
+    s, events = state, []
+    for ts, v in zip(data.index, data.to_numpy(), strict=True):
+        t = ts.to_pydatetime()
+        v = float(v)
+        s, ev = _expire_shelf(s, t)
+        events += ev
+        held = (
+            s.last_sample is not None
+            and math.isfinite(s.last_value)
+            and abs(v - s.last_value) <= settings.tolerance
+            and not (settings.ignore_zero and v == 0.0)
+        )
+        if s.state == State.OUT_OF_SERVICE:
+            s = dataclasses.replace(s, last_sample=t, last_value=v, pending_since=None)
+            continue
+        if not held:
+            s = dataclasses.replace(s, last_sample=t, last_value=v, pending_since=None)
+            if s.active:
+                s, ev = _annunciate_off(s, t, latching=False)
+                events += ev
+            continue
+        since = s.pending_since or s.last_sample
+        s = dataclasses.replace(s, last_sample=t, pending_since=since)
+        if not s.active and since is not None and t - since >= settings.hold:
+            msg = (
+                f"{tag} on {s.branch} has read exactly {v * scale:.4g} {unit_label} since "
+                f"{since:%Y-%m-%d %H:%M} UTC: the transmitter looks frozen; check it before "
+                "trusting this reading"
+            ).replace("  ", " ")
+            s, ev = _annunciate_on(s, t, msg)
+            events += ev
     s, ev = _expire_shelf(s, t_now.to_pydatetime())
     events += ev
     return s, events

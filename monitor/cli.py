@@ -583,12 +583,14 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
 def _register_alarms(verbs: Any) -> None:
     p = _add_verb(
-        verbs, "alarms", _cmd_alarms, "list, acknowledge, shelve low-flow alarms",
+        verbs, "alarms", _cmd_alarms, "list, acknowledge, shelve alarms",
         """\
-Low-flow alarms follow the ISA-18.2 life cycle: normal -> unack (active, not yet
-acknowledged) -> ack -> normal; rtn_unack when the flow came back before anyone
-acknowledged; shelved for a time; out_of_service during maintenance. Without an action,
-lists the alarms that are not normal and the latest journal entries.
+Two kinds of alarm are checked on every ingest: low flow per branch, and frozen meter
+per flow and pressure transmitter. They follow the ISA-18.2 life cycle: normal -> unack
+(active, not yet acknowledged) -> ack -> normal; rtn_unack when the condition cleared
+before anyone acknowledged; shelved for a time; out_of_service during maintenance. An
+action applies to every alarm of the branch unless --condition names one. Without an
+action, lists the alarms that are not normal and the latest journal entries.
 
 examples:
   branchwatch alarms site.toml
@@ -602,6 +604,8 @@ examples:
     action.add_argument("--unshelve", metavar="BRANCH", help="end a shelf")
     action.add_argument("--out-of-service", metavar="BRANCH", help="take it out of service")
     action.add_argument("--in-service", metavar="BRANCH", help="return it to service")
+    p.add_argument("--condition", metavar="NAME",
+                   help='only this alarm of the branch, e.g. "low_flow" or "frozen FT-310"')
     p.add_argument("--until", metavar="TIME", help="end of the shelf (site time)")
     p.add_argument("--by", default="", help="who (kept in the alarm journal)")
     p.add_argument("--all", action="store_true", help="list normal alarms too")
@@ -615,7 +619,6 @@ def _cmd_alarms(args: argparse.Namespace) -> int:
     store = open_store(site.store_url)
     try:
         frame = store.read_alarms()
-        rows = {str(r["branch"]): r for r in frame.to_dict(orient="records")}
         now = datetime.now(UTC)
         chosen = [(k, getattr(args, k)) for k in
                   ("ack", "shelve", "unshelve", "out_of_service", "in_service")
@@ -624,29 +627,37 @@ def _cmd_alarms(args: argparse.Namespace) -> int:
             _print_alarms(frame, store, site, show_all=args.all)
             return EXIT_OK
         action, branch = chosen[0]
-        site.branch(branch)
-        if branch not in rows:
-            raise UserError(f"branch {branch!r} has no alarm yet (it has never been evaluated)")
-        state = alarm_state_from_row(rows[branch])
-        if action == "ack":
-            new, _ = life.acknowledge(state, now, args.by)
-        elif action == "shelve":
-            if not args.until:
-                raise UserError("--shelve needs --until TIME")
-            new, _ = life.shelve(state, _parse_time(args.until, site, "--until"), now=now,
-                                 by=args.by)
-        elif action == "unshelve":
-            new, _ = life.unshelve(state, now=now, by=args.by)
-        elif action == "out_of_service":
-            new, _ = life.remove_from_service(state, now=now, by=args.by)
+        if branch != "header":
+            site.branch(branch)
+        rows = [r for r in frame.to_dict(orient="records") if str(r["branch"]) == branch
+                and (args.condition is None or str(r["condition"]) == args.condition)]
+        if not rows:
+            raise UserError(f"branch {branch!r} has no alarm"
+                            + (f" {args.condition!r}" if args.condition else "")
+                            + " yet (never evaluated)")
+        if action == "shelve" and not args.until:
+            raise UserError("--shelve needs --until TIME")
+        changed = []
+        for row in rows:
+            state = alarm_state_from_row(row)
+            if action == "ack":
+                new, _ = life.acknowledge(state, now, args.by)
+            elif action == "shelve":
+                new, _ = life.shelve(state, _parse_time(args.until, site, "--until"), now=now,
+                                     by=args.by)
+            elif action == "unshelve":
+                new, _ = life.unshelve(state, now=now, by=args.by)
+            elif action == "out_of_service":
+                new, _ = life.remove_from_service(state, now=now, by=args.by)
+            else:
+                new, _ = life.return_to_service(state, now=now, by=args.by)
+            if new != state:
+                changed.append(alarm_row(new, limit_m3s=row.get("limit_value"), now=now))
+                print(f"{branch} {state.condition}: {state.state.value} -> {new.state.value}")
+        if changed:
+            store.upsert_alarms(changed)
         else:
-            new, _ = life.return_to_service(state, now=now, by=args.by)
-        if new == state:
-            print(f"{branch}: nothing to do (alarm is {state.state.value})")
-            return EXIT_OK
-        limit = rows[branch].get("limit_value")
-        store.upsert_alarms([alarm_row(new, limit_m3s=limit, now=now)])
-        print(f"{branch}: {state.state.value} -> {new.state.value}")
+            print(f"{branch}: nothing to do")
     except KeyError as exc:
         raise UserError(str(exc).strip('"')) from None
     finally:

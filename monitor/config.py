@@ -261,6 +261,8 @@ class AnalysisSection(_Strict):
     min_samples: int = Field(default=30, ge=3)
     low_flow_on_delay: Duration = 600.0
     low_flow_off_delay: Duration = 300.0
+    #: a flow or pressure reading that does not move at all for this long is frozen
+    frozen_hold: Duration = 3600.0
 
 
 class ScheduleSection(_Strict):

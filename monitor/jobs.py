@@ -23,7 +23,15 @@ import numpy as np
 import pandas as pd
 
 from adapters.base import ReadingsSource, ResultsStore, source_class
-from monitor.alarms import AlarmEvent, AlarmState, LowFlowSettings, State, evaluate_low_flow
+from monitor.alarms import (
+    AlarmEvent,
+    AlarmState,
+    FrozenSettings,
+    LowFlowSettings,
+    State,
+    evaluate_frozen,
+    evaluate_low_flow,
+)
 from monitor.analysis import analyze_window
 from monitor.config import BranchConfig, Site
 from monitor.diagnose import (
@@ -407,11 +415,13 @@ def low_flow_settings(site: Site, branch: BranchConfig) -> LowFlowSettings:
 def evaluate_alarms(
     site: Site, store: ResultsStore, source: ReadingsSource, *, now: datetime
 ) -> list[AlarmEvent]:
-    """Run the low-flow check of every metered branch over the samples not yet seen.
+    """Run the near-real-time checks over the samples not yet seen; called after ingest.
 
-    Called after each ingest. The alarm's memory (delays, last sample) is stored, so a
-    restart neither repeats nor drops an alarm; the message names the likely cause from
-    the latest open findings.
+    Two conditions, each an ISA-18.2 alarm with its own state: **low flow** per metered
+    branch, and **frozen meter** per flow and pressure transmitter (a reading that has not
+    moved at all for ``[analysis] frozen_hold``). The alarms' memory (delays, held value,
+    last sample) is stored, so a restart neither repeats nor drops an alarm; a low-flow
+    message names the likely cause from the latest open findings.
     """
     stored = store.read_alarms()
     states = {
@@ -419,28 +429,67 @@ def evaluate_alarms(
         for r in stored.to_dict(orient="records")
     }
     findings = _open_findings(store)
+    checks = _alarm_checks(site)
+    tags = sorted({tag for _, _, tag, _ in checks})
+    since_all = min(
+        (states[(b, c)].last_sample or now - timedelta(seconds=ALARM_FIRST_LOOKBACK_S)
+         if (b, c) in states else now - timedelta(seconds=ALARM_FIRST_LOOKBACK_S))
+        for b, c, _, _ in checks
+    ) if checks else now
+    readings = read_tags(site, store, source, tags, since_all, now)
+    good = readings[readings["good"].to_numpy(bool)]
+    by_tag = {str(t): part for t, part in good.groupby("tag")}
     rows: list[dict[str, Any]] = []
     events: list[AlarmEvent] = []
-    for branch in site.branches:
-        if branch.flow_tag is None or branch.min_flow_m3s <= 0:
-            continue
-        state = states.get((branch.name, "low_flow"), AlarmState(branch=branch.name))
-        since = state.last_sample or (now - timedelta(seconds=ALARM_FIRST_LOOKBACK_S))
-        readings = read_tags(site, store, source, [branch.flow_tag], since, now)
-        good = readings[readings["good"].to_numpy(bool)]
-        series = pd.Series(good["value"].to_numpy(float), index=pd.DatetimeIndex(good["time"]))
-        new, happened = evaluate_low_flow(
-            series, state, low_flow_settings(site, branch), now,
-            diagnosis=[f for f in findings if f.branch == branch.name],
-        )
+    frozen = FrozenSettings(hold=timedelta(seconds=site.analysis.frozen_hold))
+    for branch, condition, tag, limit in checks:
+        key = (branch, condition)
+        state = states.get(key, AlarmState(branch=branch, condition=condition))
+        part = by_tag.get(tag)
+        series = (pd.Series(part["value"].to_numpy(float), index=pd.DatetimeIndex(part["time"]))
+                  if part is not None else pd.Series([], dtype=float,
+                                                    index=pd.DatetimeIndex([], tz="UTC")))
+        if condition == "low_flow":
+            new, happened = evaluate_low_flow(
+                series, state, low_flow_settings(site, site.branch(branch)), now,
+                diagnosis=[f for f in findings if f.branch == branch],
+            )
+        else:
+            kind = site.tags[tag].kind
+            new, happened = evaluate_frozen(
+                series, state, frozen, now, tag=tag,
+                unit_label="m3/h" if kind == "flow" else "bar",
+                scale=3600.0 if kind == "flow" else 1e-5,
+            )
         events.extend(happened)
-        if new != state or (branch.name, "low_flow") not in states:
-            rows.append(alarm_row(new, limit_m3s=branch.min_flow_m3s, now=now))
+        if new != state or key not in states:
+            rows.append(alarm_row(new, limit_m3s=limit, now=now))
     if rows:
         store.upsert_alarms(rows)
     for e in events:
         log.warning("alarm %s %s %s: %s", e.branch, e.condition, e.action, e.message)
     return events
+
+
+def _alarm_checks(site: Site) -> list[tuple[str, str, str, float | None]]:
+    """(branch, condition, tag, limit) of every near-real-time check of the site.
+
+    A tag shared by several branches (a common return header) is judged once, under
+    the first branch that names it.
+    """
+    checks: list[tuple[str, str, str, float | None]] = []
+    owner: dict[str, str] = {}
+    for b in site.branches:
+        if b.flow_tag is not None and b.min_flow_m3s > 0:
+            checks.append((b.name, "low_flow", b.flow_tag, b.min_flow_m3s))
+        for tag in (b.flow_tag, b.end_pressure_tag):
+            if tag is not None:
+                owner.setdefault(tag, b.name)
+    for tag in (site.header_pressure_tag, site.total_flow_tag):
+        if tag is not None:
+            owner.setdefault(tag, "header")
+    checks += [(branch, f"frozen {tag}", tag, None) for tag, branch in owner.items()]
+    return checks
 
 
 def read_tags(

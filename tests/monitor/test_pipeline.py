@@ -105,16 +105,42 @@ def test_resistance_findings_carry_their_cost(demo: dict[str, Any]) -> None:
     assert f.evidence["extra_energy_kwh_per_day"] > 0
 
 
-def test_low_flow_alarm_state_is_kept(demo: dict[str, Any]) -> None:
+def test_frozen_meter_alarm_within_six_hours(demo: dict[str, Any]) -> None:
+    """FT-310 freezes on day 120 at 03:00 UTC (demo_faults); ingest runs hourly.
+
+    Runs before the other alarm test: alarms only look forward from their last sample.
+    """
+    store, site, source = demo["store"], demo["site"], demo["source"]
+    frozen_at = DEMO_START + timedelta(days=120, hours=3)
+    activated = None
+    for hour in range(-24, 12):
+        now = frozen_at + timedelta(hours=hour)
+        events = evaluate_alarms(site, store, source, now=now)
+        hits = [e for e in events if e.condition == "frozen FT-310" and e.action == "activated"]
+        if hits and activated is None:
+            activated = hits[0].time
+            assert hour >= 0, "alarm before the meter froze"
+    assert activated is not None
+    assert activated - frozen_at <= timedelta(hours=6)  # issue 4 goal: within 6 h
+    quiet = [e for e in store.alarm_events().to_dict(orient="records")
+             if str(e["condition"]).startswith("frozen") and e["condition"] != "frozen FT-310"
+             and e["to_state"] != "normal"
+             and pd.Timestamp(e["time"]) >= pd.Timestamp(frozen_at - timedelta(hours=24))]
+    assert quiet == []  # no live transmitter was called frozen
+
+
+def test_alarm_state_is_kept(demo: dict[str, Any]) -> None:
     store, site, source = demo["store"], demo["site"], demo["source"]
     now = DEMO_START + timedelta(days=DAYS)
     evaluate_alarms(site, store, source, now=now)
     first = store.read_alarms()
+    journal = len(store.alarm_events())
     evaluate_alarms(site, store, source, now=now)  # the same samples again
     again = store.read_alarms()
-    assert len(first) == len([b for b in site.branches if b.flow_tag and b.min_flow_m3s > 0])
+    low_flow = first[first["condition"] == "low_flow"]
+    assert len(low_flow) == len([b for b in site.branches if b.flow_tag and b.min_flow_m3s > 0])
     assert list(first["state"]) == list(again["state"])
-    assert len(store.alarm_events()) == len(store.alarm_events())
+    assert len(store.alarm_events()) == journal
 
 
 def test_cli_analyze_writes_findings_and_fits_files(
