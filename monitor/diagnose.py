@@ -49,7 +49,7 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
 
@@ -184,13 +184,16 @@ class DiagnosisSettings:
     trend_persistence: int = 3  # consecutive windows the trend test must pass [windows]
     min_rise_sigma: float = 4.0  # fitted level above the reference, in σ [-]
     max_trend_windows: int = 180  # [windows]
-    trend_lookbacks: tuple[int, ...] = (20, 30, 60, 120, 180)  # trailing windows tested
+    trend_lookbacks: tuple[int, ...] = (10, 20, 30, 60, 120, 180)  # trailing windows tested
     min_bp_step_pa: float = 1.0e4  # smallest back-pressure step reported (0.1 bar) [Pa]
     min_sigma_pa: float = 500.0  # floor of σ of pressures [Pa]
     bp_step_z: float = 6.0  # [σ]
     offset_evidence: float = 3.0  # |log-likelihood ratio| to decide static vs Q² [-]
     max_effective_samples: int = 30  # samples of a window are serially correlated [-]
     mixed_factor: float = 4.0  # a window's residual over the baseline's: step inside it
+    at_once_z: float = 12.0  # jump reported in its own window, unconfirmed [σ]
+    at_once_rel: float = 0.10  # and at least this relative rise of r [-]
+    at_once_discount: float = 0.8  # confidence factor until the next window confirms [-]
     imbalance_windows: int = 3  # [windows]
     spike_fraction: float = 0.02  # spikes per sample that make a window suspect [-]
     spike_count: int = 30  # same, when the sample count is not given [-]
@@ -522,7 +525,6 @@ class _Pending:
     first: int  # first window of the change (the CUSUM change point)
     trigger: str  # "jump", "offset" or "cusum"
     dc: float  # constant-offset change for "offset" [Pa]
-    after: int = -1  # the confirming window, while a third one tells step from ramp
 
 
 @dataclass
@@ -771,29 +773,15 @@ class _Replay:
     def _steps(self, i: int) -> None:
         assert self.base is not None
         if self.pending is not None:
-            p = self.pending
-            if p.after >= 0:
-                if self._still_rising(p, i):  # a fast fouling ramp, not a step
-                    self.pending = None
-                    self.cusum = 0.0
-                    for k in (p.j, p.after, i):
-                        self.level.append(k)
-                        self.trend.append(k)
-                    return
-                self._decide_step(i)
-                return
             if self._confirmed(i):
-                rise = self.r[i] - self.r[p.j]
-                into = self.r[p.j] - self.r[self.level[-1]] if self.level else p.e
-                if p.trigger != "offset" and p.e > 0 and rise > 0.5 * into:
-                    # still rising as much again: a step part-way through window j, or
-                    # the start of a ramp; the next window tells them apart
-                    self.pending = replace(p, after=i)
-                    return
+                # A ramp cannot pass the window-to-window rise test of `_jump_rise`, so
+                # the confirming window decides: a step part-way through window j shows
+                # in full here.
                 self._decide_step(i)
                 return
             # one window out of line and back again: an outlier fit, not a step
             self.pending = None
+        self._confirm_at_once(i)
         rst = self.open.get("restriction")
         if rst is not None and self.r[i] < rst.ref + rst.step / 2:
             self._end("restriction", self.ws[i])
@@ -817,12 +805,16 @@ class _Replay:
         if self.cusum == 0.0:
             self.cusum_start = i
         self.cusum = max(0.0, self.cusum + z - self.cfg.cusum_k)
-        big = abs(e) >= self.cfg.min_step_rel * pred and abs(z) >= self.cfg.step_z
+        big = (
+            abs(e) >= self.cfg.min_step_rel * pred
+            and abs(z) >= self.cfg.step_z
+            and self._jump_rise(i, e, pred)
+        )
         dc = self._offset_change(i)
         trigger = ""
         if big:
             trigger = "jump"
-        elif math.isfinite(dc):
+        elif math.isfinite(dc) and self._offset_rise(dc):
             trigger = "offset"
         elif self.cusum > self.cfg.cusum_h and self._cusum_step(i):
             trigger = "cusum"
@@ -835,11 +827,63 @@ class _Replay:
                 self.pending = _Pending(i, z, e, self.prev_dev[0], trigger, self.pending.dc)
                 if self._classify(i)[0] is not None:
                     self._decide_step(i)
+            elif trigger == "jump" and self._clear_at_once(i, z, e, pred):
+                self._decide_step(i)
             return  # otherwise the next window confirms it (or shows it was an outlier)
         self.prev_dev = (i, z, self._raw_offset(i))
         self.rel_errors.append(e / pred)
         self.level.append(i)
         self.trend.append(i)
+
+    def _confirm_at_once(self, i: int) -> None:
+        """A step reported in its own window is confirmed when the next usable window
+        stays on the new level (if it falls back, `_steps` ends the finding instead)."""
+        for f in self.open.values():
+            if f.evidence.get("confirmed") != 0.0:
+                continue
+            after = f.evidence.get("r_after", math.nan)
+            if math.isfinite(after) and abs(self.r[i] - after) < abs(f.step) / 2:
+                f.evidence["confirmed"] = 1.0
+                f.confidence = min(f.confidence / self.cfg.at_once_discount, 1.0)
+
+    def _jump_rise(self, i: int, e: float, pred: float) -> bool:
+        """A step rises within one or two windows; a fouling ramp, however fast, climbs a
+        little every window. The rise of window i over the last accepted window (or the
+        one before it, when the step began part-way through that one) must be most of the
+        prediction error, and far more than the recent slope makes in those windows."""
+        if not self.level:
+            return True
+        back = self.level[-2:] if len(self.level) >= 2 else self.level[-1:]
+        rises = [float(self.r[i] - self.r[k]) for k in back]
+        rise = max(rises, key=abs)
+        pts = self.level[-self.cfg.level_windows :]
+        slope = 0.0
+        if len(pts) >= 7:
+            slope = max(sen_slope(self.day[pts], self.r[pts])[0], 0.0)
+        span = float(self.day[i] - self.day[back[0]])
+        need = max(0.5 * abs(e), self.cfg.min_step_rel * pred, 3.0 * slope * span)
+        return bool(rise * e > 0 and abs(rise) >= need)
+
+    def _clear_at_once(self, i: int, z: float, e: float, pred: float) -> bool:
+        """A jump so large against the scatter, on a window whose own r interval is
+        narrow and which fits one cause cleanly, is reported in that same window rather
+        than after the next one (the next window can still end it: `_steps`)."""
+        if e <= 0 or z < self.cfg.at_once_z or e < self.cfg.at_once_rel * pred:
+            return False
+        lo, hi = self.col["r_low"][i], self.col["r_high"][i]
+        if not (math.isfinite(lo) and math.isfinite(hi)) or hi - lo > 0.5 * e:
+            return False
+        return self._classify(i)[0] is not None
+
+    def _offset_rise(self, dc: float) -> bool:
+        """The constant offset came within one or two windows (a back-pressure step), not
+        a little every window (a fouling ramp read on a narrow flow range)."""
+        before = [self._raw_offset(k) for k in self.level[-2:]]
+        before = [b for b in before if math.isfinite(b)]
+        if not before:
+            return True
+        rise = max((dc - b for b in before), key=abs)
+        return bool(rise * dc > 0 and abs(rise) >= 0.7 * abs(dc))
 
     def _raw_offset(self, i: int) -> float:
         """Constant offset of window i against the baseline model, less the baseline's [Pa]."""
@@ -855,19 +899,26 @@ class _Replay:
         j, z_prev, dc_prev = self.prev_dev
         if j < 0 or self.level[-1:] != [j]:
             return False
-        leaned_r = z * z_prev > 0 and abs(z_prev) >= 3.0
+        # the window before leaned the same way by 3σ, or leaned at all and fits neither
+        # one-parameter cause (a step late in it leaves too little to show in its r)
+        leaned_r = z * z_prev > 0 and (abs(z_prev) >= 3.0 or self._mixed(j))
         if math.isfinite(dc) and math.isfinite(dc_prev):
             assert self.base is not None
             floor = max(0.2 * abs(dc), 2.5 * self.base.sigma_offset)
             return leaned_r or (dc * dc_prev > 0 and abs(dc_prev) >= floor)
         return leaned_r
 
-    def _still_rising(self, p: _Pending, i: int) -> bool:
-        """After a partial step r levels off; along a ramp it keeps climbing."""
+    def _mixed(self, j: int) -> bool:
+        """Window j fits neither "constant offset" nor "offset ∝ Q²" against the baseline
+        (its best residual is ``mixed_factor`` × the baseline's): a change inside it."""
         assert self.base is not None
-        first_rise = self.r[p.after] - self.r[p.j]
-        again = self.r[i] - self.r[p.after]
-        return bool(again > 0.5 * first_rise and again > 2.0 * self.base.sigma_r)
+        cmp = _offset_comparison(
+            self.rows.iloc[j], self.base.r0, self.base.s_b + self.s_shift, self.cfg
+        )
+        if cmp is None or not math.isfinite(self.base.sse_per_sample):
+            return False
+        best = min(cmp["sse_static"], cmp["sse_resistance"]) / max(cmp["samples"], 1.0)
+        return bool(best > self.cfg.mixed_factor * self.base.sse_per_sample)
 
     def _confirmed(self, i: int) -> bool:
         """The window after a step candidate stays on the new side of it."""
@@ -921,7 +972,15 @@ class _Replay:
         line = np.polyfit(t, y, 1)
         sse_line = float(np.sum((y - np.polyval(line, t)) ** 2))
         sse_step = ms.sigma**2 * max(len(y) - 2, 1)
-        return ms.step > 0 and sse_step < 0.5 * sse_line
+        # A ramp that begins inside the look-back is "flat, then a line": the step must
+        # beat that too, and happen within two windows, not spread over a curving ramp.
+        sse_hinge = sse_line
+        for knot in t[1:-2]:
+            a = np.column_stack([np.ones_like(t), np.clip(t - knot, 0.0, None)])
+            coef, *_ = np.linalg.lstsq(a, y, rcond=None)
+            sse_hinge = min(sse_hinge, float(np.sum((y - a @ coef) ** 2)))
+        two = float(np.max(y[2:] - y[:-2])) if len(y) > 2 else 0.0
+        return ms.step > 0 and sse_step < 0.5 * sse_hinge and two >= 0.8 * ms.step
 
     def _decide_step(self, i: int) -> None:
         """Name the confirmed change of window ``pending.j`` (window i is the one after)."""
@@ -975,6 +1034,9 @@ class _Replay:
                 f"{self.name}: resistance ratio stepped from {ref:.2f} to {self.r[i]:.2f} "
                 f"({100 * e / ref:+.0f} %) on {day}; most likely {words}."
             )
+        if j == i:  # reported in its own window: the next one confirms it
+            evidence["confirmed"] = 0.0
+            conf *= self.cfg.at_once_discount
         self._open(_Open(kind, start, self.we[i], conf, evidence, msg, ref=ref, step=e))
         if kind == "back_pressure" and math.isfinite(extra.get("static_offset_pa", math.nan)):
             self._shift_static(i, extra["static_offset_pa"])
@@ -1139,7 +1201,7 @@ class _Replay:
             if look > n and look != self.cfg.trend_lookbacks[0]:
                 break
             pts = self.trend[-min(look, n) :]
-            if len(pts) < self.cfg.min_trend_windows:
+            if len(pts) < min(look, self.cfg.min_trend_windows):
                 continue
             t = self.day[pts]
             y = self.r[pts]
