@@ -13,10 +13,17 @@ Causes and how they are told apart (DESIGN §3)
   be the meter's and not the water's. Flagged windows never enter the ``r`` analyses, so
   a frozen meter is never called fouling.
 * **restriction** — a step up in ``r``: the window's ``r`` stands ``step_z`` σ above the
-  level predicted from the recent windows (Theil–Sen extrapolation, so a fouling ramp is
-  not mistaken for a step) and at least ``min_step_rel`` above it; or a tabular CUSUM
-  (Page 1954) on those prediction errors passes ``cusum_h`` and a single mean shift
-  explains the recent windows better than a line.
+  level predicted from the recent windows (Theil–Sen extrapolation) and at least
+  ``min_step_rel`` above it, and most of that rise came since the last one or two
+  accepted windows, far more than the recent slope makes in them (a fouling ramp, however
+  fast and however precise the fits, climbs a little every window: never a step); or a
+  tabular CUSUM (Page 1954) on those prediction errors passes ``cusum_h`` and a single
+  mean shift explains the recent windows better than both a line and "flat, then a line",
+  rising within two windows. The window after the candidate confirms it (an outlier fit
+  is not a step) and names it, so a step is reported by the end of the first whole window
+  after it; a jump of ``at_once_z`` σ and ``at_once_rel`` on a window with a narrow ``r``
+  interval that fits one cause cleanly is reported in its own window (evidence
+  ``confirmed`` 0, confidence × ``at_once_discount``) and confirmed, or ended, by the next.
 * **back_pressure** — the logged termination pressure (``end_pressure_pa``) or the fitted
   static pressure (``s_pa`` on identifiable windows) steps; or an ``r`` step whose window
   says "constant offset" rather than "offset ∝ Q²" (the comparison of the two one-parameter
@@ -24,8 +31,7 @@ Causes and how they are told apart (DESIGN §3)
   or a window whose departure from the baseline is a clear constant offset of at least
   ``min_bp_step_pa`` (a step too small against the scatter of r to show as a jump). A
   window that fits neither hypothesis (a step part-way through it: the comparison is then
-  biased by the time of day of the step) defers the decision to the next window, so with
-  daily windows a step is named at the end of the window after the one it happened in.
+  biased by the time of day of the step) defers the decision to the next window.
   A back-pressure change found this way is taken out of the later windows' ``r``.
 * **fouling** — a slow rise over trailing look-backs of ``trend_lookbacks`` windows:
   Theil–Sen slope, Mann–Kendall test with the Hamed–Rao correction at ``trend_alpha``,
