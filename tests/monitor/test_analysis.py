@@ -21,7 +21,7 @@ import pandas as pd
 import pytest
 
 from model.fit import fit_resistance
-from model.simulate import FrozenMeter, StepRestriction
+from model.simulate import Fault, FrozenMeter, StepRestriction
 from monitor.analysis import analyze_window, screen_settings
 from monitor.config import Site, parse_site
 from monitor.demo import simulate_site
@@ -39,7 +39,7 @@ def _site(sample_period: str) -> Site:
 
 
 def _readings(site: Site, step_s: float) -> pd.DataFrame:
-    faults = [
+    faults: list[Fault] = [
         StepRestriction("B2-compressor", START + timedelta(hours=30), ratio=1.4),
         FrozenMeter("FT-510", START + timedelta(hours=5), START + timedelta(hours=9)),
     ]
