@@ -227,6 +227,11 @@ def _fit_row(
             f"{int(mask.sum())} steady samples with flow above {floor * 3600:.1f} m3/h; "
             f"{site.analysis.min_samples} needed", status="too_few_samples"))
         row["mean_flow_m3s"] = float(np.nanmean(q)) if np.isfinite(q).any() else math.nan
+        if branch.end_pressure_tag is not None:
+            # the logged back-pressure still tells its story when r cannot be fitted
+            ends = grid.column(branch.end_pressure_tag)
+            if np.isfinite(ends).any():
+                row["end_pressure_pa"] = float(np.nanmedian(ends))
         return row
     kwargs = {k: v[mask] for k, v in conditions.items()}
     fit = fit_resistance(

@@ -679,6 +679,10 @@ class _Replay:
                     self._pressures(i)
                     self._steps(i)
                     self._fouling(i)
+            elif self.ws[i] not in self.flagged and self.base is not None:
+                # no usable r (too few steady samples), but a logged termination
+                # pressure still shows a back-pressure step
+                self._pressures(i)
             self._low_flow(i)
         return self.done + [f.close(self.name, None) for f in self.open.values()]
 
