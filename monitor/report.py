@@ -168,7 +168,7 @@ def _alarms(inputs: ReportInputs) -> str:
     a = inputs.alarms
     standing = a[a["state"] != "normal"] if not a.empty else a
     if standing.empty:
-        return "<h2>Alarms</h2><p>No low-flow alarm standing.</p>"
+        return "<h2>Alarms</h2><p>No alarm standing (low flow, frozen meter).</p>"
     rows = "".join(
         f"<tr><td>{_e(r['branch'])}</td><td>{_e(r['state'])}</td>"
         f"<td>{_local(inputs.site, r.get('activated'))}</td><td>{_e(r.get('message') or '')}"
