@@ -78,6 +78,27 @@ def _props(temperature_c: npt.ArrayLike) -> tuple[np.ndarray, np.ndarray]:
     return water.density(t), water.viscosity(t)
 
 
+class _FixedLoss:
+    """`dp` of an element whose loss does not depend on a valve position."""
+
+    def _dp_props(
+        self, q: np.ndarray, rho: np.ndarray, mu: np.ndarray, position: np.ndarray | None
+    ) -> np.ndarray:
+        raise NotImplementedError
+
+    def dp(
+        self,
+        q: npt.ArrayLike,
+        *,
+        temperature_c: npt.ArrayLike = 20.0,
+        position: npt.ArrayLike | None = None,
+    ) -> np.ndarray:
+        """Pressure drop [Pa] at flow *q* [m^3/s] and *temperature_c* [°C]; *position*
+        is ignored."""
+        rho, mu = _props(temperature_c)
+        return self._dp_props(_checked_flow(q), rho, mu, None)
+
+
 def _checked_flow(q: npt.ArrayLike) -> np.ndarray:
     qa = np.asarray(q, dtype=float)
     if np.any(qa < 0) or np.any(np.isnan(qa)):
@@ -243,7 +264,7 @@ def _positive(name: str, value: float) -> None:
 
 
 @dataclass(frozen=True)
-class Pipe:
+class Pipe(_FixedLoss):
     """A straight run of round pipe, Darcy–Weisbach with the Colebrook friction factor.
 
     ΔP = f(Re, ε/D)·(L/D)·ρ·v²/2, v = 4Q/(πD²), Re = ρvD/μ (see `friction_factor`).
@@ -335,17 +356,6 @@ class Pipe:
             return np.asarray(out)
         return np.asarray(np.where(v > 0, out, 0.0))
 
-    def dp(
-        self,
-        q: npt.ArrayLike,
-        *,
-        temperature_c: npt.ArrayLike = 20.0,
-        position: npt.ArrayLike | None = None,
-    ) -> np.ndarray:
-        """Frictional pressure drop [Pa] at flow *q* [m^3/s] and *temperature_c* [°C]."""
-        rho, mu = _props(temperature_c)
-        return self._dp_props(_checked_flow(q), rho, mu, None)
-
 
 # --------------------------------------------------------------------------- fittings
 
@@ -384,7 +394,7 @@ _CHECK_VALVES = frozenset(k for k in _FITTINGS if k.startswith("check_valve"))
 
 
 @dataclass(frozen=True)
-class Fittings:
+class Fittings(_FixedLoss):
     """Fittings and manual valves at one pipe size, by kind and count.
 
     ΔP = (Σ count·K + extra_k)·ρv²/2 with v the velocity in a pipe of *diameter_m*.
@@ -447,17 +457,6 @@ class Fittings:
     ) -> np.ndarray:
         v = q / (math.pi * self.diameter_m**2 / 4.0)
         return np.asarray(self.k_total * 0.5 * rho * v * v)
-
-    def dp(
-        self,
-        q: npt.ArrayLike,
-        *,
-        temperature_c: npt.ArrayLike = 20.0,
-        position: npt.ArrayLike | None = None,
-    ) -> np.ndarray:
-        """Pressure drop [Pa] at flow *q* [m^3/s] and *temperature_c* [°C]."""
-        rho, mu = _props(temperature_c)
-        return self._dp_props(_checked_flow(q), rho, mu, None)
 
 
 # --------------------------------------------------------------------------- control valve
@@ -585,7 +584,7 @@ class ControlValve:
 
 
 @dataclass(frozen=True)
-class Equipment:
+class Equipment(_FixedLoss):
     """Equipment with a rated pressure drop (heat exchanger, strainer, cooler jacket).
 
     ΔP = ΔP_rated·(ρ/ρ_rated)·(Q/Q_rated)^n; n = 2 for fully rough turbulent flow,
@@ -624,17 +623,6 @@ class Equipment:
     ) -> np.ndarray:
         scale = self.rated_dp_pa / self.rated_density
         return np.asarray(scale * rho * (q / self.rated_flow_m3s) ** self.exponent)
-
-    def dp(
-        self,
-        q: npt.ArrayLike,
-        *,
-        temperature_c: npt.ArrayLike = 20.0,
-        position: npt.ArrayLike | None = None,
-    ) -> np.ndarray:
-        """Pressure drop [Pa] at flow *q* [m^3/s] and *temperature_c* [°C]."""
-        rho, mu = _props(temperature_c)
-        return self._dp_props(_checked_flow(q), rho, mu, None)
 
 
 # --------------------------------------------------------------------------- elevation
