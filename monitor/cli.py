@@ -31,7 +31,6 @@ from monitor.config import ConfigError, Site, load_site
 log = logging.getLogger(__name__)
 
 EXIT_OK = 0
-EXIT_FINDINGS = 1  # reserved: a check that ran and found problems
 EXIT_USAGE = 2
 
 _DESCRIPTION = """\
