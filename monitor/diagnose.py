@@ -68,6 +68,7 @@ from monitor.trend import (
     crossing_forecast,
     mann_kendall,
     mean_shift,
+    median,
     robust_sigma,
     sen_slope,
     theil_sen,
@@ -321,12 +322,19 @@ def diagnose(
 
     findings: list[Finding] = []
     header = flags.get(cfg.header_name, pd.DataFrame({"window_start": []}))
-    for name, rows in hist.groupby("branch", sort=True):
+    hist = hist.reset_index(drop=True)
+    by_window = None
+    if bal is not None and not bal.empty:
+        by_window = bal.drop_duplicates("window_start").set_index("window_start")
+    # numbers once for the whole history, sliced per branch (not a conversion per branch)
+    numbers = {c: _numeric(hist, c) for c in HISTORY_COLUMNS["optional"] if c != "identifiable"}
+    for name, pos in sorted(hist.groupby("branch", sort=True).indices.items()):
         branch = str(name)
         own = flags.get(branch, pd.DataFrame({"window_start": []}))
         excluded = set(own["window_start"]) | set(header["window_start"])
-        replay = _Replay(branch, rows.reset_index(drop=True), excluded, bal,
-                         cfg.for_branch(branch), cfg)  # fmt: skip
+        rows = hist.iloc[pos].reset_index(drop=True)
+        replay = _Replay(branch, rows, excluded, by_window, cfg.for_branch(branch), cfg,
+                         {c: v[pos] for c, v in numbers.items()})  # fmt: skip
         findings.extend(replay.run(events[events["branch"] == branch]))
     for name, fl in flags.items():
         findings.extend(_instrument_findings(name, fl, last_screened[name]))
@@ -548,7 +556,7 @@ class _Baseline:
 
 
 def _offset_comparison(
-    row: pd.Series, r0: float, s_b: float, cfg: DiagnosisSettings
+    row: Mapping[str, float], r0: float, s_b: float, cfg: DiagnosisSettings
 ) -> dict[str, float] | None:
     """Constant offset vs offset ∝ Q² against the baseline ``y = r0·x + s_b`` on one window.
 
@@ -556,8 +564,11 @@ def _offset_comparison(
     back-pressure change. ``n_eff`` caps the sample count because a window's samples are
     serially correlated.
     """
+    def known(c: str) -> bool:
+        return math.isfinite(row.get(c, math.nan))
+
     sums = ("sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy")
-    if all(c in row.index and np.isfinite(row[c]) for c in sums) and row["sum_w"] > 0:
+    if all(known(c) for c in sums) and row["sum_w"] > 0:
         w, sx, sy, sxx, sxy, syy = (float(row[c]) for c in sums)
         sd = sy - r0 * sx - w * s_b
         sdd = syy + r0 * r0 * sxx + w * s_b * s_b - 2 * r0 * sxy - 2 * s_b * sy + 2 * r0 * s_b * sx
@@ -566,13 +577,11 @@ def _offset_comparison(
         syys = syy - 2 * s_b * sy + w * s_b * s_b
         sse_r = max(syys - sxys * sxys / sxx, 0.0) if sxx > 0 else math.nan
         offset, ratio = sd / w, (sxys / sxx if sxx > 0 else math.nan)
-        n = float(row["samples"]) if "samples" in row.index and np.isfinite(row["samples"]) else w
-    elif all(
-        c in row.index and np.isfinite(row[c]) for c in ("bp_sse_static", "bp_sse_resistance")
-    ):
+        n = float(row["samples"]) if known("samples") else w
+    elif known("bp_sse_static") and known("bp_sse_resistance"):
         sse_s, sse_r = float(row["bp_sse_static"]), float(row["bp_sse_resistance"])
         offset = ratio = math.nan
-        n = float(row["samples"]) if "samples" in row.index and np.isfinite(row["samples"]) else 2
+        n = float(row["samples"]) if known("samples") else 2
     else:
         return None
     if not (math.isfinite(sse_s) and math.isfinite(sse_r)):
@@ -584,18 +593,24 @@ def _offset_comparison(
             "ratio_if_resistance": ratio, "sse_static": sse_s, "sse_resistance": sse_r}  # fmt: skip
 
 
+def _numeric(frame: pd.DataFrame, c: str) -> NDArray[np.float64]:
+    """Column *c* of *frame* as floats (NaN where missing or not a number)."""
+    if c in frame.columns:
+        return np.asarray(pd.to_numeric(frame[c], errors="coerce"), dtype=float)
+    return np.full(len(frame), np.nan)
+
+
 class _Replay:
     """Walks one branch's windows in time order; see the module docstring."""
 
     def __init__(
         self, name: str, rows: pd.DataFrame, flagged: set[pd.Timestamp],
         balance: pd.DataFrame | None, bs: BranchSettings, cfg: DiagnosisSettings,
+        numbers: dict[str, NDArray[np.float64]],
     ) -> None:  # fmt: skip
         self.name, self.rows, self.flagged, self.bs, self.cfg = name, rows, flagged, bs, cfg
-        self.balance = None
-        if balance is not None and not balance.empty:
-            self.balance = balance.drop_duplicates("window_start").set_index("window_start")
-        self.col = {c: self._col(c) for c in HISTORY_COLUMNS["optional"] if c != "identifiable"}
+        self.balance = balance  # indexed by window_start, or None
+        self.col = numbers  # the optional numeric columns of `HISTORY_COLUMNS`, row order
         self.ident = (
             rows["identifiable"].fillna(False).astype(bool).to_numpy()
             if "identifiable" in rows.columns
@@ -608,9 +623,8 @@ class _Replay:
         self.we = list(rows["window_end"])
         self.t0 = self.ws[0] if self.ws else pd.Timestamp(0, tz="UTC")
         # window starts in days since the first window [d]
-        self.day: NDArray[np.float64] = np.array(
-            [(w - self.t0) / _DAY for w in self.ws], dtype=np.float64
-        )
+        since = pd.DatetimeIndex(rows["window_start"]) - self.t0
+        self.day: NDArray[np.float64] = np.asarray(since / _DAY, dtype=np.float64)
         self.open: dict[str, _Open] = {}
         self.done: list[Finding] = []
         self.first_segment = True
@@ -618,10 +632,9 @@ class _Replay:
         self.s_shift = 0.0  # back-pressure change found from r, taken out of later r [Pa]
         self._new_segment()
 
-    def _col(self, c: str) -> np.ndarray:
-        if c in self.rows.columns:
-            return np.asarray(pd.to_numeric(self.rows[c], errors="coerce"), dtype=float)
-        return np.full(len(self.rows), np.nan)
+    def _numbers(self, j: int) -> dict[str, float]:
+        """The numeric columns of window j."""
+        return {c: float(v[j]) for c, v in self.col.items()}
 
     def _shift_static(self, j: int, offset: float) -> None:
         """Take a back-pressure change of ``offset`` [Pa] out of r from window j on: the
@@ -701,20 +714,20 @@ class _Replay:
                 return
         idx = np.array(self.base_idx)
         rb = self.r[idx]
-        r0 = float(np.median(rb))
+        r0 = float(median(rb))
         sig = max(robust_sigma(rb), self.cfg.min_sigma_r * r0)
         pe = self.col["end_pressure_pa"][idx]
         s = self.col["s_pa"][idx][self.ident[idx]]
         s_fixed = self.col["s_fixed_pa"][idx]
         s_b = (
-            float(np.median(s)) if np.isfinite(s).sum() >= 3
+            float(median(s)) if np.isfinite(s).sum() >= 3
             else float(np.nanmedian(s_fixed)) if np.isfinite(s_fixed).any() else 0.0
         )  # fmt: skip
         self.base = _Baseline(
             r0=r0, sigma_r=sig, s_b=s_b,
             pe=float(np.nanmedian(pe)) if np.isfinite(pe).any() else math.nan,
             sigma_pe=max(robust_sigma(pe), self.cfg.min_sigma_pa),
-            s=float(np.median(s)) if np.isfinite(s).sum() >= 3 else math.nan,
+            s=float(median(s)) if np.isfinite(s).sum() >= 3 else math.nan,
             sigma_s=max(robust_sigma(s), self.cfg.min_sigma_pa),
             **self._baseline_offsets(idx, r0, s_b),
         )  # fmt: skip
@@ -726,13 +739,13 @@ class _Replay:
     def _baseline_offsets(self, idx: NDArray[np.intp], r0: float, s_b: float) -> dict[str, float]:
         per, offsets = [], []
         for j in idx:
-            cmp = _offset_comparison(self.rows.iloc[int(j)], r0, s_b, self.cfg)
+            cmp = _offset_comparison(self._numbers(int(j)), r0, s_b, self.cfg)
             if cmp is not None and cmp["samples"] > 0:
                 per.append(min(cmp["sse_static"], cmp["sse_resistance"]) / cmp["samples"])
                 offsets.append(cmp["static_offset_pa"])
         nan = math.nan
         return {
-            "sse_per_sample": float(np.median(per)) if per else nan,
+            "sse_per_sample": float(median(per)) if per else nan,
             "offset0": float(np.nanmedian(offsets)) if np.isfinite(offsets).any() else nan,
             "sigma_offset": max(robust_sigma(offsets), self.cfg.min_sigma_pa),
         }
@@ -747,7 +760,7 @@ class _Replay:
             if series is None or not math.isfinite(series[i]):
                 continue
             v = float(series[i])
-            ref = float(np.median(recent[-7:])) if recent else math.nan
+            ref = float(median(recent[-7:])) if recent else math.nan
             bp = self.open.get("back_pressure")
             if bp is not None and math.isfinite(bp.ref) and abs(v - bp.ref) < abs(bp.step) / 2:
                 self._end("back_pressure", self.ws[i])
@@ -774,11 +787,11 @@ class _Replay:
             return None
         y = self.r[pts]
         if len(pts) < 7:
-            return float(np.median(y))
+            return float(median(y))
         t = self.day[pts]
         slope, _ = sen_slope(t, y)
         # a falling level is not extrapolated: r does not foul backwards
-        return float(np.median(y) + max(slope, 0.0) * (self.day[i] - np.median(t)))
+        return float(median(y) + max(slope, 0.0) * (self.day[i] - median(t)))
 
     def _steps(self, i: int) -> None:
         assert self.base is not None
@@ -899,7 +912,7 @@ class _Replay:
         """Constant offset of window i against the baseline model, less the baseline's [Pa]."""
         assert self.base is not None
         cmp = _offset_comparison(
-            self.rows.iloc[i], self.base.r0, self.base.s_b + self.s_shift, self.cfg
+            self._numbers(i), self.base.r0, self.base.s_b + self.s_shift, self.cfg
         )
         if cmp is None or not math.isfinite(self.base.offset0):
             return math.nan
@@ -923,7 +936,7 @@ class _Replay:
         (its best residual is ``mixed_factor`` × the baseline's): a change inside it."""
         assert self.base is not None
         cmp = _offset_comparison(
-            self.rows.iloc[j], self.base.r0, self.base.s_b + self.s_shift, self.cfg
+            self._numbers(j), self.base.r0, self.base.s_b + self.s_shift, self.cfg
         )
         if cmp is None or not math.isfinite(self.base.sse_per_sample):
             return False
@@ -949,7 +962,7 @@ class _Replay:
             return math.nan
         assert self.base is not None
         cmp = _offset_comparison(
-            self.rows.iloc[i], self.base.r0, self.base.s_b + self.s_shift, self.cfg
+            self._numbers(i), self.base.r0, self.base.s_b + self.s_shift, self.cfg
         )
         assert cmp is not None
         return float(cmp["static_offset_pa"] - self.base.offset0)
@@ -962,7 +975,7 @@ class _Replay:
         if not math.isfinite(self.base.offset0):
             return False
         cmp = _offset_comparison(
-            self.rows.iloc[i], self.base.r0, self.base.s_b + self.s_shift, self.cfg
+            self._numbers(i), self.base.r0, self.base.s_b + self.s_shift, self.cfg
         )
         if cmp is None or not math.isfinite(cmp["static_offset_pa"]):
             return False
@@ -1071,7 +1084,7 @@ class _Replay:
         if meter is not None:
             return "instrument", 0.8, meter
         cmp = _offset_comparison(
-            self.rows.iloc[j], self.base.r0, self.base.s_b + self.s_shift, self.cfg
+            self._numbers(j), self.base.r0, self.base.s_b + self.s_shift, self.cfg
         )
         if cmp is None:
             return "restriction", 0.5, {}
@@ -1095,7 +1108,7 @@ class _Replay:
             return None
         dq = float(flow[j] - np.nanmedian(flow[before]))
         res = self.balance["residual_m3s"]
-        dres = float(res.loc[self.ws[j]] - np.median(res.loc[[self.ws[p] for p in before]]))
+        dres = float(res.loc[self.ws[j]] - median(res.loc[[self.ws[p] for p in before]]))
         u = float(self.balance["uncertainty_m3s"].loc[self.ws[j]])
         if abs(dres) > u and dq * dres > 0 and abs(dres - dq) < 0.5 * abs(dq):
             return {"meter_change_m3s": dq, "balance_change_m3s": dres, "balance_u_m3s": u}
@@ -1177,7 +1190,7 @@ class _Replay:
         assert self.base is not None
         if self.trend and self.trend[0] in self.base_idx:
             return self.base.r0
-        return float(np.median(self.r[self.trend[:5]]))
+        return float(median(self.r[self.trend[:5]]))
 
     @staticmethod
     def _onset(t_list: NDArray[np.float64], y: NDArray[np.float64]) -> float:
@@ -1205,7 +1218,7 @@ class _Replay:
         ref = self._trend_ref(self.trend)
         # cheap necessary condition first: the recent windows stand clearly above the
         # reference (most windows of most branches stop here)
-        if float(np.median(self.r[self.trend[-7:]])) - ref < 0.5 * self.cfg.min_rise_r * ref:
+        if float(median(self.r[self.trend[-7:]])) - ref < 0.5 * self.cfg.min_rise_r * ref:
             return None
         for look in self.cfg.trend_lookbacks:
             if look > n and look != self.cfg.trend_lookbacks[0]:
@@ -1216,9 +1229,9 @@ class _Replay:
             t = self.day[pts]
             y = self.r[pts]
             slope, _ = sen_slope(t, y)
-            if slope * (t[-1] - t[0]) < self.cfg.min_rise_r * float(np.median(y[:5])):
+            if slope * (t[-1] - t[0]) < self.cfg.min_rise_r * float(median(y[:5])):
                 continue
-            level = float(np.median(y) + slope * (t[-1] - np.median(t)))
+            level = float(median(y) + slope * (t[-1] - median(t)))
             assert self.base is not None
             scale = self.base.sigma_r * max(ref / self.base.r0, 1.0)
             if level - ref < max(self.cfg.min_rise_r * ref, self.cfg.min_rise_sigma * scale):
