@@ -54,9 +54,11 @@ from model.robust import (
 
 __all__ = [
     "LOSSES",
+    "ChangePoint",
     "FitResult",
     "OffsetComparison",
     "compare_offset_hypotheses",
+    "find_change",
     "fit_ratio",
     "fit_resistance",
     "offset_hypotheses",
@@ -76,6 +78,7 @@ class _Window:
     w: NDArray[np.float64]
     fit_static: bool
     static_pa: float | None
+    keep: NDArray[np.bool_]  # which input samples y, x, q, w hold
 
 
 def _termination_logged(branch: Branch, level_m: Any, end_pressure_pa: Any) -> bool:
@@ -151,7 +154,7 @@ def _window(
         static_cfg = float(configured_static_pa)
     rest, valve = branch.dp_dynamic_parts(q, temperature_c=t, valve_position=u)
     y = np.asarray(p - known - valve, dtype=float)
-    return _Window(y, np.asarray(rest, dtype=float), q, w, do_static, static_cfg)
+    return _Window(y, np.asarray(rest, dtype=float), q, w, do_static, static_cfg, ok)
 
 
 def fit_resistance(
@@ -268,3 +271,190 @@ def compare_offset_hypotheses(
         weights=win.w,
         **options,
     )
+
+
+# ------------------------------------------------------------------- change inside a window
+
+
+@dataclass(frozen=True)
+class ChangePoint:
+    """A change part-way through a window: where the window's tail starts.
+
+    Attributes
+    ----------
+    index : first sample of the tail, as an index into the arrays given to `find_change`
+    time_s : its time [s], on the caller's clock
+    reduction : 1 − SSE(head and tail fitted apart) / SSE(one fit) [-]
+    change : size of the change: the tail's departure from the head's model over the
+        tail's mean clean dynamic ΔP [-] (``signal`` "relation"), or the step of the
+        logged end pressure [Pa] (``signal`` "end_pressure")
+    signal : ``"relation"`` (y against x changed: resistance or unlogged back-pressure)
+        or ``"end_pressure"`` (the logged termination pressure stepped)
+    """
+
+    index: int
+    time_s: float
+    reduction: float
+    change: float
+    signal: str
+
+
+def _prefix(*columns: NDArray[np.float64]) -> list[NDArray[np.float64]]:
+    return [np.concatenate([[0.0], np.cumsum(c)]) for c in columns]
+
+
+def _candidates(t: NDArray[np.float64], min_head_s: float, min_tail_s: float,
+                min_samples: int) -> NDArray[np.intp]:
+    """Tail starts k (head = samples [0, k)) that leave both parts long enough."""
+    n = t.shape[0]
+    k = np.arange(n)
+    step = float(np.median(np.diff(t))) if n > 1 else 0.0
+    ok = (k >= min_samples) & (n - k >= min_samples)
+    ok &= (t - t[0] >= min_head_s) & (t[-1] - t + step >= min_tail_s)
+    return k[ok]
+
+
+def _relation_change(
+    y: NDArray[np.float64], x: NDArray[np.float64], w: NDArray[np.float64],
+    t: NDArray[np.float64], two: bool, min_head_s: float, min_tail_s: float,
+    min_samples: int,
+) -> ChangePoint | None:
+    """Best split of ``y ≈ r·x (+ s)`` into a head and a tail fitted apart (least squares
+    from prefix sums: every split point in one pass)."""
+    ks = _candidates(t, min_head_s, min_tail_s, min_samples)
+    if ks.size == 0:
+        return None
+    scale = float(np.mean(np.abs(x))) or 1.0
+    xs, ys = x / scale, y / scale  # O(1) numbers: the sums below lose nothing
+    cw, cx, cy, cxx, cxy, cyy = _prefix(w, w * xs, w * ys, w * xs * xs, w * xs * ys, w * ys * ys)
+    n = y.shape[0]
+
+    def sse(a: NDArray[np.intp] | int, b: NDArray[np.intp] | int) -> Any:
+        sw, sx, sy = cw[b] - cw[a], cx[b] - cx[a], cy[b] - cy[a]
+        sxx, sxy, syy = cxx[b] - cxx[a], cxy[b] - cxy[a], cyy[b] - cyy[a]
+        if two:
+            det = sw * sxx - sx * sx
+            with np.errstate(divide="ignore", invalid="ignore"):
+                fit = (sxx * sy * sy - 2.0 * sx * sy * sxy + sw * sxy * sxy) / det
+            return np.maximum(syy - np.where(det > 0, fit, sy * sy / sw), 0.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.maximum(syy - np.where(sxx > 0, sxy * sxy / sxx, 0.0), 0.0)
+
+    whole = float(sse(0, n))
+    if not whole > 0.0:
+        return None
+    split = sse(0, ks) + sse(ks, n)
+    best = int(np.argmin(split))
+    k = int(ks[best])
+    reduction = 1.0 - float(split[best]) / whole
+    # the head's model, and the tail's mean departure from it
+    sw, sx, sy = cw[k], cx[k], cy[k]
+    sxx, sxy = cxx[k], cxy[k]
+    if two and sw * sxx - sx * sx > 0:
+        det = sw * sxx - sx * sx
+        r_h, s_h = (sw * sxy - sx * sy) / det, (sxx * sy - sx * sxy) / det
+    else:
+        r_h, s_h = (sxy / sxx if sxx > 0 else 0.0), 0.0
+    tw, tx, ty = cw[n] - cw[k], cx[n] - cx[k], cy[n] - cy[k]
+    change = (ty - r_h * tx - s_h * tw) / tx if tx > 0 else math.nan
+    return ChangePoint(k, float(t[k]), reduction, float(change), "relation")
+
+
+def _level_change(
+    v: NDArray[np.float64], t: NDArray[np.float64], min_head_s: float, min_tail_s: float,
+    min_samples: int,
+) -> ChangePoint | None:
+    """Best single mean shift of a logged pressure [Pa] (prefix sums, one pass)."""
+    ks = _candidates(t, min_head_s, min_tail_s, min_samples)
+    if ks.size == 0:
+        return None
+    centred = v - float(np.mean(v))
+    c1, c2 = _prefix(centred, centred * centred)
+    n = v.shape[0]
+
+    def sse(a: NDArray[np.intp] | int, b: NDArray[np.intp] | int) -> Any:
+        m = np.asarray(b) - np.asarray(a)
+        return (c2[b] - c2[a]) - (c1[b] - c1[a]) ** 2 / m
+
+    whole = float(sse(0, n))
+    if not whole > 0.0:
+        return None
+    split = sse(0, ks) + sse(ks, n)
+    best = int(np.argmin(split))
+    k = int(ks[best])
+    step = (c1[n] - c1[k]) / (n - k) - c1[k] / k
+    return ChangePoint(k, float(t[k]), 1.0 - float(split[best]) / whole, float(step),
+                       "end_pressure")
+
+
+def find_change(
+    branch: Branch,
+    *,
+    time_s: ArrayLike,
+    header_pressure_pa: ArrayLike,
+    flow_m3s: ArrayLike,
+    temperature_c: ArrayLike,
+    level_m: ArrayLike | None = None,
+    end_pressure_pa: ArrayLike | None = None,
+    valve_position: ArrayLike | None = None,
+    min_flow_m3s: float = 0.0,
+    min_head_s: float = 3600.0,
+    min_tail_s: float = 3600.0,
+    min_samples: int = 6,
+    min_reduction: float = 0.75,
+    min_change: float = 0.05,
+    min_pressure_step_pa: float = 1.0e4,
+) -> ChangePoint | None:
+    """A step part-way through one window of one branch, or None.
+
+    The window's samples (in time order, *time_s* [s]) are split at every admissible
+    point into a head and a tail, each fitted apart — ``y ≈ r·x`` as in `fit_resistance`,
+    ``y ≈ r·x + s`` where the back-pressure is fitted — and the split that explains most
+    of the one-fit residual is kept when it explains at least *min_reduction* of it and
+    the tail departs from the head's model by at least *min_change* of its clean dynamic
+    ΔP (a throttled valve, a blockage, an unlogged back-pressure step). A logged end
+    pressure is scanned for a single mean shift the same way, kept when it is at least
+    *min_pressure_step_pa* [Pa]. Both parts must last *min_head_s* / *min_tail_s* [s]
+    and hold *min_samples* samples. A fouling ramp never passes: it does not jump.
+
+    Fitting the tail alone then gives the new state within the window the step came in,
+    rather than a day's mixture of old and new; the rest as in `fit_resistance`.
+    """
+    win = _window(
+        branch,
+        header_pressure_pa=header_pressure_pa,
+        flow_m3s=flow_m3s,
+        temperature_c=temperature_c,
+        level_m=level_m,
+        end_pressure_pa=end_pressure_pa,
+        valve_position=valve_position,
+        weights=None,
+        fit_static=None,
+        configured_static_pa=None,
+        min_flow_m3s=min_flow_m3s,
+    )
+    t_all = _as_1d("time_s", time_s, win.keep.shape[0])
+    keep = win.keep & np.isfinite(t_all)
+    t = t_all[keep]
+    if t.size < 2 * min_samples or np.any(np.diff(t) <= 0):
+        return None
+    inner = keep[win.keep]  # the window's samples that also have a time
+    y, x, w = win.y[inner], win.x[inner], win.w[inner]
+    found: list[ChangePoint] = []
+    if win.fit_static or win.static_pa is not None:
+        static = 0.0 if win.fit_static or win.static_pa is None else win.static_pa
+        rel = _relation_change(y - static, x, w, t, win.fit_static, min_head_s, min_tail_s,
+                               min_samples)
+        if rel is not None and rel.reduction >= min_reduction and abs(rel.change) >= min_change:
+            found.append(rel)
+    if end_pressure_pa is not None:
+        pe = _as_1d("end_pressure_pa", end_pressure_pa, win.keep.shape[0])[keep]
+        lvl = _level_change(pe, t, min_head_s, min_tail_s, min_samples)
+        if (lvl is not None and lvl.reduction >= min_reduction
+                and abs(lvl.change) >= min_pressure_step_pa):
+            found.append(lvl)
+    if not found:
+        return None
+    best = max(found, key=lambda c: c.reduction)
+    index = int(np.flatnonzero(keep)[best.index])
+    return ChangePoint(index, best.time_s, best.reduction, best.change, best.signal)

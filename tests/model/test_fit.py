@@ -10,7 +10,13 @@ from scipy import optimize
 
 from model.branch import Branch, HeldHeader, Tank
 from model.elements import ControlValve, Equipment, Fittings, Pipe
-from model.fit import compare_offset_hypotheses, fit_ratio, fit_resistance, offset_hypotheses
+from model.fit import (
+    compare_offset_hypotheses,
+    find_change,
+    fit_ratio,
+    fit_resistance,
+    offset_hypotheses,
+)
 
 
 def _design(rng: np.random.Generator, n: int, q_lo: float, q_hi: float) -> tuple[np.ndarray, ...]:
@@ -319,3 +325,67 @@ def test_offset_comparison_on_branch_back_pressure_step_and_restriction() -> Non
         )  # fmt: skip
         assert cmp_.preferred == kind
     assert cmp_.ratio_if_resistance == pytest.approx(1.45, rel=0.02)
+
+
+def _day(rng: np.random.Generator, n: int = 288) -> tuple[np.ndarray, np.ndarray]:
+    """Times [s] of one day of 5-minute samples and a header pressure that follows the
+    day/night load (invented: a test of our own)."""
+    time_s = np.arange(n) * 300.0
+    p = 3.2 * BAR + 0.5 * BAR * np.sin(2 * np.pi * time_s / 86400.0) + 0.1 * BAR * rng.random(n)
+    return time_s, p
+
+
+@pytest.mark.parametrize("at_h", [2.0, 13.5, 22.5])
+def test_find_change_places_a_restriction_step_inside_the_window(at_h: float) -> None:
+    rng = np.random.default_rng(int(at_h * 10))
+    b = _header_branch()
+    time_s, p = _day(rng)
+    ratio = np.where(time_s >= at_h * 3600.0, 1.45, 1.05)
+    end = 1.5 * BAR
+    q = np.array([float(b.flow(pi, temperature_c=20.0, resistance_ratio=ri, end_pressure_pa=end))
+                  for pi, ri in zip(p, ratio, strict=True)])
+    pe = 1.5 * BAR + 300.0 * rng.standard_normal(p.size)
+    cp = find_change(
+        b, time_s=time_s, header_pressure_pa=_noisy(rng, p, 0.0, 300.0),
+        flow_m3s=_noisy(rng, q, 0.004, 0.0), temperature_c=20.0, end_pressure_pa=pe,
+    )  # fmt: skip
+    assert cp is not None and cp.signal == "relation"
+    assert abs(cp.time_s - at_h * 3600.0) <= 600.0  # within two samples
+    assert cp.change == pytest.approx(0.40, abs=0.05)  # (1.45 - 1.05) of the clean ΔP
+    # the tail alone fits the new state
+    tail = fit_resistance(
+        b, header_pressure_pa=p[cp.index:], flow_m3s=q[cp.index:], temperature_c=20.0,
+        end_pressure_pa=np.full(p.size - cp.index, 1.5 * BAR),
+    )  # fmt: skip
+    assert tail.r == pytest.approx(1.45, rel=0.01)
+
+
+def test_find_change_sees_a_logged_end_pressure_step_and_no_change_on_a_clean_day() -> None:
+    rng = np.random.default_rng(5)
+    b = _header_branch()
+    time_s, p = _day(rng)
+    pe_true = np.where(time_s >= 16 * 3600.0, 1.8 * BAR, 1.5 * BAR)
+    q = np.array([float(b.flow(pi, temperature_c=20.0, resistance_ratio=1.1, end_pressure_pa=e))
+                  for pi, e in zip(p, pe_true, strict=True)])
+    kw = {"time_s": time_s, "header_pressure_pa": _noisy(rng, p, 0.0, 300.0),
+          "flow_m3s": _noisy(rng, q, 0.004, 0.0), "temperature_c": 20.0}
+    cp = find_change(b, end_pressure_pa=pe_true + 300.0 * rng.standard_normal(p.size), **kw)  # type: ignore[arg-type]
+    assert cp is not None and cp.signal == "end_pressure"
+    assert cp.change == pytest.approx(0.3 * BAR, rel=0.02)
+    assert abs(cp.time_s - 16 * 3600.0) <= 300.0
+    # the same day with nothing changed: no split, whatever the load does
+    q_clean = np.array([float(b.flow(pi, temperature_c=20.0, resistance_ratio=1.1,
+                                     end_pressure_pa=1.5 * BAR)) for pi in p])
+    clean = find_change(
+        b, time_s=time_s, header_pressure_pa=_noisy(rng, p, 0.0, 300.0),
+        flow_m3s=_noisy(rng, q_clean, 0.004, 0.0), temperature_c=20.0,
+        end_pressure_pa=1.5 * BAR + 300.0 * rng.standard_normal(p.size),
+    )  # fmt: skip
+    assert clean is None
+    # a fouling ramp over the day (1 % per day, far faster than real) is no step either
+    ramp = np.array([float(b.flow(pi, temperature_c=20.0, resistance_ratio=1.1 + 0.01 * k / p.size,
+                                  end_pressure_pa=1.5 * BAR)) for k, pi in enumerate(p)])
+    assert find_change(
+        b, time_s=time_s, header_pressure_pa=p, flow_m3s=_noisy(rng, ramp, 0.004, 0.0),
+        temperature_c=20.0, end_pressure_pa=np.full(p.size, 1.5 * BAR),
+    ) is None  # fmt: skip
