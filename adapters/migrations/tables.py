@@ -92,6 +92,10 @@ FIT_FLOATS = (
     # added by 0002_window_checks
     *("s_fixed_pa", "flow_span", "mean_flow_m3s", "end_pressure_pa", "residual_autocorr"),
     *("sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy"),
+    # added by 0004_window_tail: the part of a window after a step inside it
+    *("tail_offset_s", "tail_change", "tail_r", "tail_r_low", "tail_r_high", "tail_samples"),
+    *("tail_s_pa", "tail_end_pressure_pa"),
+    *("tail_sum_w", "tail_sum_x", "tail_sum_y", "tail_sum_xx", "tail_sum_xy", "tail_sum_yy"),
 )
 fits_t = sa.Table(
     "fits",
