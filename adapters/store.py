@@ -60,6 +60,7 @@ from adapters.migrations.dialects import (
     prepare_readings,
     quarantine_rows,
     raw_rows,
+    readings_from_rows,
     time_text,
     to_utc_index,
     upsert,
@@ -410,26 +411,29 @@ class SqlStore(ResultsStore):
             return empty_readings()
         raw_time = time_text(readings_t.c.time, self.dialect)
         raw_good = sa.type_coerce(readings_t.c.good, sa.types.NullType())
-        query = (
-            sa.select(raw_time.label("time"), readings_t.c.tag, readings_t.c.value, raw_good)
-            .where(
-                readings_t.c.tag.in_(tag_list), readings_t.c.time >= start, readings_t.c.time < end
-            )
-            .order_by(readings_t.c.time, readings_t.c.tag)
+        # MariaDB/MySQL compare text case-blind by default: 'ft-203' = 'FT-203'. The tag
+        # comes back there too, and only exact matches are kept.
+        case_blind = self.dialect in ("mysql", "mariadb")
+        columns = [raw_time, readings_t.c.value, raw_good]
+        query = sa.select(*([readings_t.c.tag] if case_blind else []), *columns).where(
+            readings_t.c.tag == sa.bindparam("tag"),
+            readings_t.c.time >= start,
+            readings_t.c.time < end,
         )
+        # One query per tag: each is a range scan of the (tag, time) primary key, where
+        # one IN (...) query over all tags sorted by time needs the whole result sorted
+        # (SQLite: a temporary B-tree) and carries the tag text in every row. The rows
+        # come back in tag turns; `readings_from_rows` orders them by time.
+        rows: list[Any] = []
+        counts: list[int] = []
         with self._read() as conn:
-            rows = raw_rows(conn, query)
-        if not rows:
-            return empty_readings()
-        time, tag, value, good = zip(*rows, strict=True)
-        return pd.DataFrame(
-            {
-                "time": to_utc_index(time),
-                "tag": pd.Series(tag, dtype=object),
-                "value": pd.Series(value, dtype=object).astype("float64"),
-                "good": pd.Series(good, dtype=object).astype(bool),
-            }
-        )
+            for tag in tag_list:
+                part = raw_rows(conn, query, {"tag": tag})
+                if case_blind:
+                    part = [r[1:] for r in part if r[0] == tag]
+                counts.append(len(part))
+                rows += part
+        return readings_from_rows(rows, tag_list, counts)
 
     def quarantine_counts(
         self, source: str | None = None, since: datetime | None = None

@@ -22,7 +22,7 @@ from sqlalchemy.dialects.mysql import insert as mysql_insert
 from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 
-from adapters.base import QUARANTINE_COLUMNS, READING_COLUMNS, StoreError
+from adapters.base import QUARANTINE_COLUMNS, READING_COLUMNS, StoreError, empty_readings
 
 CHUNK = 20_000  # rows per executemany: bounds the parameter lists held in memory
 
@@ -95,13 +95,42 @@ def time_text(column: sa.ColumnElement[Any], dialect: str) -> sa.ColumnElement[A
     return sa.cast(column, sa.String())
 
 
-def raw_rows(conn: sa.Connection, query: sa.Select[Any]) -> list[Any]:
+def raw_rows(
+    conn: sa.Connection, query: sa.Select[Any], params: Mapping[str, Any] | None = None
+) -> list[Any]:
     """All rows as the driver returns them (no per-row Row objects: bulk reads)."""
-    result = conn.execute(query)
+    result = conn.execute(query, dict(params or {}))
     try:
         return list(result.cursor.fetchall())
     finally:
         result.close()
+
+
+def readings_from_rows(
+    rows: Sequence[Sequence[Any]], tags: Sequence[str], counts: Sequence[int]
+) -> pd.DataFrame:
+    """A readings frame sorted by time, then tag, from driver rows (time text, value, good)
+    of *tags* in turn, ``counts[i]`` rows of ``tags[i]``; *tags* sorted.
+
+    Columns are built by numpy from one object array, not by transposing the rows in
+    Python (``zip(*rows)`` over a million tuples costs more than the query).
+    """
+    if not rows:
+        return empty_readings()
+    table = np.array(rows, dtype=object).reshape(len(rows), 3)
+    time = to_utc_index(table[:, 0])
+    # A stable sort on time keeps the tags' sorted turn among equal times.
+    order = np.argsort(time.asi8, kind="stable")
+    return pd.DataFrame(
+        {
+            "time": time[order],
+            "tag": pd.Series(
+                np.repeat(np.asarray(tags, dtype=object), np.asarray(counts))[order], dtype=object
+            ),
+            "value": pd.Series(table[order, 1], dtype=object).astype("float64"),
+            "good": table[order, 2].astype(bool),
+        }
+    )
 
 
 def copy_readings_pg(conn: sa.Connection, columns: Mapping[str, list[Any]]) -> None:

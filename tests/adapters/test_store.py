@@ -214,6 +214,38 @@ def test_read_readings_types_window_and_precision(store: SqlStore) -> None:
     assert store.read_readings(["FT-999"], T0, T0 + timedelta(hours=2)).empty
 
 
+def test_read_readings_sorted_by_time_then_tag_across_tags(store: SqlStore) -> None:
+    # Tags with different sample counts, shared and own times, one not asked for, and
+    # tags that differ only in case (a case-blind collation must not merge or reorder
+    # them): the rows of all asked tags, ordered by time and then tag as Python sorts.
+    tags = ["PT-100", "FT-203", "ft-203", "TT-100"]
+    frame = pd.concat(
+        [
+            _readings(5, tags[:2]),
+            _readings(3, ["ft-203"], start=T0 + timedelta(seconds=30)),
+            _readings(4, ["TT-100"]),
+            _readings(2, ["LT-303"]),
+        ],
+        ignore_index=True,
+    )
+    frame.loc[frame["tag"] == "FT-203", "value"] = np.arange(5) + 0.25
+    frame.loc[(frame["tag"] == "PT-100").to_numpy().nonzero()[0][1], "value"] = np.nan
+    store.store_batch(_batch(frame), source="csv")
+    out = store.read_readings(tags, T0, T0 + timedelta(minutes=3))
+    want = frame[frame["tag"].isin(tags) & (frame["time"] < T0 + timedelta(minutes=3))]
+    want = (
+        want.assign(key=want["tag"].map({t: i for i, t in enumerate(sorted(tags))}))
+        .sort_values(["time", "key"])
+        .drop(columns="key")
+        .reset_index(drop=True)
+    )
+    assert out["tag"].tolist() == want["tag"].tolist()
+    assert out["time"].tolist() == want["time"].tolist()
+    np.testing.assert_array_equal(out["value"].to_numpy(), want["value"].to_numpy())
+    assert out["tag"].dtype == object and out["good"].dtype == bool
+    assert int(out["value"].isna().sum()) == 1
+
+
 def test_naive_times_are_refused(store: SqlStore) -> None:
     frame = _readings(2, ["FT-203"])
     frame["time"] = frame["time"].dt.tz_localize(None)
