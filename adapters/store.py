@@ -127,6 +127,10 @@ _IDENT = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,62}$")
 Watermarks = ResultsStore.Watermarks
 
 
+def _reopen(url: str, schema: str | None, busy_timeout_s: float) -> SqlStore:
+    return SqlStore(url, schema=schema, migrate=False, busy_timeout_s=busy_timeout_s)
+
+
 def _name(value: Any, name: str, limit: int) -> str:
     if not isinstance(value, str) or not value or len(value) > limit:
         raise ValueError(f"{name} must be a non-empty string of at most {limit} characters")
@@ -172,6 +176,7 @@ class SqlStore(ResultsStore):
             )
         self.url = parsed
         self.schema = schema
+        self.busy_timeout_s = busy_timeout_s
         self.dialect = parsed.get_backend_name()
         if self.dialect == "sqlite":
             if schema is not None:
@@ -295,6 +300,15 @@ class SqlStore(ResultsStore):
 
     def __repr__(self) -> str:
         return f"SqlStore({self.url.render_as_string(hide_password=True)!r})"
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        """Pickled as the way to open it again (a worker process opens its own
+        connections); the schema is up to date already. An in-memory SQLite database
+        lives in this process only and cannot be reopened."""
+        if self.dialect == "sqlite" and self.url.database in (None, "", ":memory:"):
+            raise TypeError("an in-memory SQLite store cannot be opened in another process")
+        url = self.url.render_as_string(hide_password=False)
+        return (_reopen, (url, self.schema, self.busy_timeout_s))
 
     # readings and ingest bookkeeping -------------------------------------------------
     def store_batch(self, batch: Batch, *, source: str) -> int:

@@ -11,6 +11,7 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import os
 import sys
 from collections.abc import Callable, Sequence
 from datetime import UTC, datetime, timedelta
@@ -317,7 +318,8 @@ low flow, instrument faults, header imbalance. Dates without a zone are site tim
 
 examples:
   branchwatch analyze site.toml --from 2026-04-01 --to 2026-09-01 --findings findings.json
-  branchwatch analyze site.toml --from 2026-08-01 --to 2026-08-02 --fits fits.csv""",
+  branchwatch analyze site.toml --from 2026-08-01 --to 2026-08-02 --fits fits.csv
+  branchwatch analyze site.toml --from 2025-09-01 --to 2026-09-01 --jobs 2   (a year)""",
     )
     p.add_argument("--from", dest="start", required=True, metavar="DATE", help="first day")
     p.add_argument("--to", dest="end", required=True, metavar="DATE",
@@ -325,6 +327,36 @@ examples:
     p.add_argument("--findings", metavar="FILE", type=Path, help="write findings as JSON")
     p.add_argument("--fits", metavar="FILE", type=Path, help="write the fits as CSV")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument(
+        "--jobs", type=_positive_int, default=default_jobs(), metavar="N",
+        help=f"""analyse N windows at a time, each in a worker process with its own
+        database connection (default {default_jobs()}: this machine's cores, at most
+        {MAX_DEFAULT_JOBS}). This process writes the results in window order, so a long
+        backfill stopped part-way keeps every window before the stop, and the daemon
+        (or 'analyze --from' the next window) goes on from there. Each worker holds one
+        window's readings in memory: lower N on a small machine or for a very large
+        site; --jobs 1 does everything in this process.""",
+    )
+
+
+#: The default of ``analyze --jobs`` never exceeds this many processes: reading from one
+#: database, more workers mostly queue on it.
+MAX_DEFAULT_JOBS = 4
+
+
+def default_jobs() -> int:
+    """Worker processes for a backfill: the usable cores, at most `MAX_DEFAULT_JOBS`."""
+    return max(1, min(len(os.sched_getaffinity(0)), MAX_DEFAULT_JOBS))
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be 1 or more, got {value}")
+    return value
 
 
 def _cmd_analyze(args: argparse.Namespace) -> int:
@@ -337,7 +369,8 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
         raise UserError("--to must be after --from")
     store, source = _open(site)
     try:
-        summary = _analyze_with_progress(site, store, source, start, end, quiet=args.quiet)
+        summary = _analyze_with_progress(site, store, source, start, end, quiet=args.quiet,
+                                         jobs=args.jobs)
         if args.fits:
             fits = store.read_fits(start=start, end=end)
             _write_fits_csv(fits, args.fits)
@@ -485,7 +518,7 @@ def _cmd_status(args: argparse.Namespace) -> int:
 
 def _analyze_with_progress(
     site: Site, store: ResultsStore, source: ReadingsSource, start: datetime, end: datetime,
-    *, quiet: bool,
+    *, quiet: bool, jobs: int,
 ) -> Any:
     """`monitor.jobs.analyze` with a progress bar on stderr, recorded as a job run."""
     from tqdm import tqdm
@@ -500,7 +533,7 @@ def _analyze_with_progress(
 
         return _run_recorded(
             store, "analyze",
-            lambda: analyze(site, store, source, start, end, progress=progress),
+            lambda: analyze(site, store, source, start, end, progress=progress, jobs=jobs),
         )
 
 
@@ -555,7 +588,8 @@ def _cmd_demo(args: argparse.Namespace) -> int:
         summary = _run_recorded(store, "ingest", lambda: ingest(site, store, source))
         print(f"  {summary.stored} readings stored, {summary.quarantined} rows quarantined")
         start, end = DEMO_START, DEMO_START + timedelta(days=args.days)
-        result = _analyze_with_progress(site, store, source, start, end, quiet=args.quiet)
+        result = _analyze_with_progress(site, store, source, start, end, quiet=args.quiet,
+                                        jobs=default_jobs())
         fits = store.read_fits()
         _write_fits_csv(fits, folder / "fits.csv")
         report = write_report(site, store, day=end - timedelta(hours=12),

@@ -4,17 +4,22 @@ Each job is a function of (site, store, source, time window) that can be run aga
 the same arguments and change nothing the second time: readings are upserted on
 (tag, time), fits on (branch, window), findings on (branch, kind, start). The daemon
 (`monitor.daemon`) calls them on schedule; the CLI calls them once (`ingest`, `analyze`);
-a backfill maps `analyze_windows` over branches and days.
+a backfill maps the window analysis over days, in worker processes (`analyze_windows`).
 """
 
 from __future__ import annotations
 
+import atexit
 import logging
 import math
-from collections import Counter
-from collections.abc import Callable, Iterator, Mapping
+import multiprocessing
+import pickle
+from collections import Counter, deque
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from concurrent.futures import Future, ProcessPoolExecutor
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, timedelta
+from itertools import islice
 from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo
@@ -32,7 +37,7 @@ from monitor.alarms import (
     evaluate_frozen,
     evaluate_low_flow,
 )
-from monitor.analysis import analyze_window
+from monitor.analysis import WindowAnalysis, analyze_window
 from monitor.config import BranchConfig, Site
 from monitor.diagnose import (
     BranchSettings,
@@ -48,6 +53,7 @@ __all__ = [
     "AnalyzeSummary",
     "IngestSummary",
     "analyze",
+    "analyze_windows",
     "catch_up",
     "diagnose_site",
     "evaluate_alarms",
@@ -233,19 +239,23 @@ def analyze(
     end: datetime,
     *,
     progress: Callable[[int, int], None] | None = None,
+    jobs: int = 1,
 ) -> AnalyzeSummary:
     """Fit every branch over every whole window in [start, end), then diagnose.
 
     Each window's fits, screening counts, balance and data health are written in one
-    transaction, so an interrupted backfill keeps every finished window and a rerun
-    rewrites the same rows. The diagnosis then runs over the whole stored history up to
-    *end* and upserts its findings on (branch, kind, start).
+    transaction, in window order, so an interrupted backfill keeps every window up to the
+    first unfinished one and a rerun rewrites the same rows. The diagnosis then runs over
+    the whole stored history up to *end* and upserts its findings on (branch, kind, start).
+
+    With *jobs* > 1 and more than one window, the windows are read and analysed in that
+    many worker processes (see `analyze_windows`); the results are the same.
     """
+    if jobs < 1:
+        raise ValueError(f"jobs must be >= 1, got {jobs}")
     spans = list(windows(start, end, site.window, site.timezone))
     n_fits = n_ok = n_read = 0
-    for i, (ws, we) in enumerate(spans):
-        readings = read_window(site, store, source, ws, we)
-        result = analyze_window(site, readings, ws, we)
+    for i, result in enumerate(analyze_windows(site, store, source, spans, jobs=jobs)):
         store.store_window(
             fits=result.fits, screening=result.screening, balance=result.balance,
             health=result.health,
@@ -263,6 +273,87 @@ def analyze(
     return AnalyzeSummary(
         windows=len(spans), fits=n_fits, fits_ok=n_ok, readings=n_read, findings=findings
     )
+
+
+def analyze_windows(
+    site: Site,
+    store: ResultsStore,
+    source: ReadingsSource,
+    spans: Sequence[tuple[datetime, datetime]],
+    *,
+    jobs: int = 1,
+) -> Iterator[WindowAnalysis]:
+    """Read and analyse each window of *spans*, yielding the results in window order.
+
+    With *jobs* > 1 and several windows, worker processes do the work: each opens its
+    own store connection (the store pickles as a way to reopen it; SQL stores reopen
+    their URL) and, where the source keeps the readings (SQL), its own source from the
+    site file (`open_source`). At most two windows per worker are in flight, so memory
+    stays bounded on a long backfill. A store that cannot be reopened elsewhere (an
+    in-memory database) is served in this process instead, as is a single window.
+
+    Results come in window order even when a later window finishes first: the caller
+    writes them in that order, so the stored windows of an interrupted run have no holes
+    and `catch_up`, which resumes after the last stored window, misses none. An error in
+    a window is raised when its turn comes, after every earlier window was yielded.
+    """
+    workers = min(jobs, len(spans))
+    shipped = _reopenable(store) if workers > 1 else None
+    if workers <= 1 or shipped is None:
+        for ws, we in spans:
+            yield analyze_window(site, read_window(site, store, source, ws, we), ws, we)
+        return
+    context = multiprocessing.get_context("spawn")  # no inherited connections or threads
+    with ProcessPoolExecutor(
+        workers, mp_context=context, initializer=_worker_start,
+        initargs=(site, shipped, source.keeps_readings),
+    ) as pool:
+        pending: deque[Future[WindowAnalysis]] = deque()
+        todo = iter(spans)
+        try:
+            for span in islice(todo, 2 * workers):
+                pending.append(pool.submit(_worker_window, span))
+            while pending:
+                result = pending.popleft().result()
+                for span in islice(todo, 1):
+                    pending.append(pool.submit(_worker_window, span))
+                yield result
+        finally:
+            for future in pending:
+                future.cancel()
+
+
+def _reopenable(store: ResultsStore) -> bytes | None:
+    """The store pickled for the workers, or None when it cannot be reopened elsewhere."""
+    try:
+        return pickle.dumps(store)
+    except (TypeError, AttributeError, pickle.PicklingError) as exc:
+        log.info("windows analysed in this process: the store cannot be reopened (%s)", exc)
+        return None
+
+
+#: What a worker process works with: set once by `_worker_start`.
+_WORKER: dict[str, Any] = {}
+
+
+def _worker_start(site: Site, store: bytes, own_source: bool) -> None:
+    _WORKER["site"] = site
+    _WORKER["store"] = opened = pickle.loads(store)
+    atexit.register(opened.close)
+    # Ingested readings are in the store: no source needed (nor opened) then.
+    _WORKER["source"] = source = open_source(site) if own_source else None
+    if source is not None:
+        atexit.register(source.close)
+
+
+def _worker_window(span: tuple[datetime, datetime]) -> WindowAnalysis:
+    site, store, source = _WORKER["site"], _WORKER["store"], _WORKER["source"]
+    ws, we = span
+    if source is None:
+        readings = store.read_readings(list(site.tags), ws, we)
+    else:
+        readings = read_window(site, store, source, ws, we)
+    return analyze_window(site, readings, ws, we)
 
 
 def diagnosis_settings(site: Site) -> DiagnosisSettings:

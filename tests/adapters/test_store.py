@@ -7,6 +7,7 @@ by `unique_name` and dropped afterwards, so runs never see each other's rows.
 from __future__ import annotations
 
 import math
+import pickle
 from collections.abc import Iterator
 from datetime import UTC, datetime, timedelta
 from typing import Any
@@ -244,6 +245,20 @@ def test_read_readings_sorted_by_time_then_tag_across_tags(store: SqlStore) -> N
     np.testing.assert_array_equal(out["value"].to_numpy(), want["value"].to_numpy())
     assert out["tag"].dtype == object and out["good"].dtype == bool
     assert int(out["value"].isna().sum()) == 1
+
+
+def test_store_pickles_as_the_way_to_reopen_it(store: SqlStore) -> None:
+    # worker processes of a backfill open their own connections this way
+    store.store_batch(_batch(_readings(3, ["FT-203"])), source="csv")
+    again = pickle.loads(pickle.dumps(store))
+    try:
+        assert isinstance(again, SqlStore) and again is not store
+        assert (again.schema, again.dialect) == (store.schema, store.dialect)
+        assert len(_all(again, ["FT-203"])) == 3
+    finally:
+        again.close()
+    with pytest.raises(TypeError, match="in-memory"):
+        pickle.dumps(SqlStore("sqlite://"))
 
 
 def test_naive_times_are_refused(store: SqlStore) -> None:
