@@ -406,17 +406,31 @@ def _hampel(
     win = np.lib.stride_tricks.sliding_window_view(padded, HAMPEL_WINDOW).copy()
     win_codes = np.lib.stride_tricks.sliding_window_view(padded_codes, HAMPEL_WINDOW)
     win[win_codes != codes[:, None]] = np.nan
-    med = _rolling_median(win)
-    mad = _rolling_median(np.abs(win - med[:, None]))
     # A window of identical values has MAD 0, and the MAD of 7 noisy samples is often
     # far below the true scatter: Hampel's rule alone flags a few % of plain Gaussian
     # noise. Flooring the scale at the tag's noise (configured, and estimated from the
     # whole window) brings that down to the 3-sigma rate (0.27 %).
-    floor = np.maximum(np.maximum(noise, noise_rel * np.abs(med)), _noise_estimate(values, codes))
+    base_floor = np.maximum(noise, _noise_estimate(values, codes))
+    # The median lies between the window's least and greatest value, so a sample within
+    # k·floor of all of them cannot be flagged: medians (two sorts per window) are taken
+    # only for the rest — most samples of a quiet signal are settled by this bound, and
+    # windows with a missing value always go the full way.
+    with np.errstate(invalid="ignore"):
+        reach = np.maximum(values - win.min(axis=1), win.max(axis=1) - values)
+        maybe = ~(reach <= k * base_floor)
+    out = np.zeros(n, dtype=bool)
+    idx = np.flatnonzero(maybe)
+    if len(idx) == 0:
+        return out
+    win, x = win[idx], values[idx]
+    med = _rolling_median(win)
+    mad = _rolling_median(np.abs(win - med[:, None]))
+    floor = np.maximum(base_floor[idx], noise_rel[idx] * np.abs(med))
     scale = np.maximum(MAD_TO_SIGMA * mad, floor)
     enough = np.sum(~np.isnan(win), axis=1) > half  # a majority of the window is known
     with np.errstate(invalid="ignore"):
-        return enough & (np.abs(values - med) > k * scale)
+        out[idx] = enough & (np.abs(x - med) > k * scale)
+    return out
 
 
 def _noise_estimate(values: np.ndarray, codes: np.ndarray) -> np.ndarray:

@@ -112,6 +112,18 @@ def test_hampel_matches_its_definition_on_noisy_data() -> None:
     assert expected_a.sum() >= 15  # every injected spike found (a noise outlier may join)
 
 
+def test_hampel_matches_its_definition_on_quantised_readings() -> None:
+    # A meter resolving 1e-4 m3/s: many samples sit exactly k × floor from their
+    # neighbours, the edge of the shortcut that skips the medians of quiet samples.
+    rng = np.random.default_rng(8)
+    b = 0.002 + 1e-4 * np.round(rng.normal(0.0, 0.4, 600))
+    b[rng.choice(600, 30, replace=False)] += 1e-4 * rng.choice([3.0, 3.5, 5.0], 30)
+    res = screen(_series("FT-100", b), {"FT-100": FLOW})
+    expected = _hampel_by_definition(b, FLOW.noise_si, FLOW.noise_rel_si)
+    np.testing.assert_array_equal(res.for_tag("FT-100")["spike"].to_numpy(), expected)
+    assert 0 < expected.sum() < 60
+
+
 def test_implausible_rate_is_flagged_once() -> None:
     values = _noisy(120, 3.0e5, 300.0, seed=2)
     values[60:] += 4.0e5  # +4 bar within one second: no pump or valve does that
