@@ -31,7 +31,6 @@ import math
 import time
 import tomllib
 from collections import Counter
-from collections.abc import Sequence
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
@@ -50,11 +49,12 @@ from model.simulate import (
     Simulation,
     StepRestriction,
 )
+from monitor.alarms import AlarmState, FrozenSettings, evaluate_frozen
 from monitor.analysis import analyze_window
 from monitor.config import Site, parse_site
 from monitor.demo import simulate_site
 from monitor.diagnose import Finding, diagnose
-from monitor.jobs import diagnosis_settings, windows
+from monitor.jobs import _alarm_checks, diagnosis_settings, windows
 
 EXAMPLE = Path(__file__).resolve().parent.parent / "config" / "example-site.toml"
 YEAR_START = datetime(2026, 1, 1, tzinfo=UTC)
@@ -176,6 +176,8 @@ class SiteResult:
     wall_s: float = 0.0
     windows: int = 0
     history: pd.DataFrame | None = None
+    #: frozen-meter alarms of the ingest-time check: (tag, time the ingest raised it)
+    frozen_alarms: list[tuple[str, datetime]] = field(default_factory=list)
 
 
 def run_site(seed: int, step_s: float) -> SiteResult:
@@ -213,10 +215,30 @@ def run_site(seed: int, step_s: float) -> SiteResult:
         balance=pd.DataFrame(balance) if balance else None,
     )
     res = SiteResult(seed, injected, findings, r_errors, 0.0, windows=len(spans),
-                     history=history)
+                     history=history, frozen_alarms=frozen_alarms(site, sim))
     _false_findings(site, res, end)
     res.wall_s, res.cpu_s = time.perf_counter() - w0, time.process_time() - c0
     return res
+
+
+def frozen_alarms(site: Site, sim: Simulation) -> list[tuple[str, datetime]]:
+    """The near-real-time frozen-meter check (`monitor.alarms.evaluate_frozen`, as
+    `monitor.jobs.evaluate_alarms` runs it) over the year of every checked tag. The daemon
+    runs it at each ingest, every ``[schedule] ingest_every``: an alarm raised by a sample
+    counts from the first ingest at or after that sample."""
+    hold = FrozenSettings(hold=timedelta(seconds=site.analysis.frozen_hold))
+    every = pd.Timedelta(seconds=site.schedule.ingest_every)
+    times = pd.DatetimeIndex(sim.times).tz_localize("UTC")
+    out: list[tuple[str, datetime]] = []
+    for branch, condition, tag, _ in _alarm_checks(site):
+        if not condition.startswith("frozen") or tag not in sim.values:
+            continue
+        series = pd.Series(sim.values[tag], index=times)
+        _, events = evaluate_frozen(series, AlarmState(branch=branch, condition=condition),
+                                    hold, times[-1].to_pydatetime(), tag=tag)
+        out += [(tag, pd.Timestamp(e.time).ceil(every).to_pydatetime())
+                for e in events if e.action == "activated"]
+    return out
 
 
 def _r_error(site: Site, sim: Simulation, fit: dict[str, Any], i0: int, i1: int,
@@ -259,8 +281,10 @@ class Outcome:
     delay_h: float
 
 
-def judge(inj: Injected, findings: Sequence[Finding], site: Site) -> Outcome:
-    """Was the fault found in time, with the right kind, and how fast?"""
+def judge(inj: Injected, res: SiteResult, site: Site) -> Outcome:
+    """Was the fault found in time, with the right kind, and how fast? A frozen meter is
+    found by the daily diagnosis (instrument finding) or by the ingest-time alarm."""
+    findings = res.findings
     onset = pd.Timestamp(inj.onset)
     own = sorted(
         (f for f in findings if f.branch == inj.branch and pd.Timestamp(f.detected) >= onset
@@ -270,6 +294,11 @@ def judge(inj: Injected, findings: Sequence[Finding], site: Site) -> Outcome:
     right = [f for f in own if f.kind == inj.kind]
     wrong = [f for f in own if f.kind in RESISTANCE_KINDS and f.kind != inj.kind]
     first_right = pd.Timestamp(right[0].detected) if right else None
+    if inj.kind == "instrument":
+        alarms = [pd.Timestamp(t) for tag, t in res.frozen_alarms
+                  if tag == inj.tag and onset <= pd.Timestamp(t) <= pd.Timestamp(inj.horizon)]
+        if alarms and (first_right is None or min(alarms) < first_right):
+            first_right = min(alarms)
     wrong_first = bool(wrong) and (first_right is None
                                    or pd.Timestamp(wrong[0].detected) <= first_right)
     deadline = pd.Timestamp(inj.deadline)
@@ -288,7 +317,7 @@ def summarize(results: list[SiteResult], site: Site, step_s: float) -> None:
     within_24h: dict[str, list[bool]] = {k: [] for k in GOALS}
     for res in results:
         for inj in res.injected:
-            o = judge(inj, res.findings, site)
+            o = judge(inj, res, site)
             outcomes[inj.kind].append(o)
             within_24h[inj.kind].append(o.found_in_time and o.delay_h <= 24.0)
     print(f"\n{len(results)} site-years of the example site ({len(site.branches)} branches), "
@@ -332,6 +361,27 @@ def summarize(results: list[SiteResult], site: Site, step_s: float) -> None:
           f"{rate:.2f} per clean branch-year ({dict(by_kind)}); goal <= "
           f"{GOAL_FALSE_PER_BRANCH_YEAR}: "
           f"{'met' if rate <= GOAL_FALSE_PER_BRANCH_YEAR else 'NOT met'}")
+    splits = spurious = 0
+    for r in results:
+        h = r.history
+        if h is None or "tail_offset_s" not in h.columns:
+            continue
+        cut = h[np.isfinite(pd.to_numeric(h["tail_offset_s"], errors="coerce"))]
+        splits += len(cut)
+        for _, w in cut.iterrows():
+            stepped = any(i.branch == w["branch"] and i.kind != "fouling"
+                          and w["window_start"] <= pd.Timestamp(i.onset) < w["window_end"]
+                          for i in r.injected)
+            spurious += not stepped
+    print(f"windows read as their tail (a step found inside them): {splits}, "
+          f"{spurious} of them with no step injected in the window")
+    stray = [(r.seed, tag, t) for r in results for tag, t in r.frozen_alarms
+             if not any(i.kind == "instrument" and i.tag == tag
+                        and pd.Timestamp(i.onset) <= pd.Timestamp(t) <= pd.Timestamp(i.horizon)
+                        for i in r.injected)]
+    checked = sum(1 for _, c, _, _ in _alarm_checks(site) if c.startswith("frozen"))
+    print(f"frozen-meter alarms (ingest-time check) on live meters: {len(stray)} over "
+          f"{checked * len(results)} tag-years")
     print(f"header imbalance findings: {imbalance} in {len(results)} site-years "
           "(every site-year has a frozen branch meter)")
     print(f"findings on faulted branches detected after their fault's horizon (+3 days), "
@@ -343,7 +393,7 @@ def summarize(results: list[SiteResult], site: Site, step_s: float) -> None:
     print(f"median |r - r_true| / r_true: {100 * med_err:.2f} % over {len(errors)} fits "
           f"(95th percentile {100 * p95:.2f} %); goal <= {100 * GOAL_R_ERROR:.0f} %: "
           f"{'met' if med_err <= GOAL_R_ERROR else 'NOT met'}")
-    misses = [(r.seed, inj, judge(inj, r.findings, site)) for r in results for inj in r.injected]
+    misses = [(r.seed, inj, judge(inj, r, site)) for r in results for inj in r.injected]
     misses = [m for m in misses if not m[2].found_in_time]
     if misses:
         print("\nnot found in time:")

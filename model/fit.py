@@ -32,6 +32,7 @@ back-pressure changed: ``y − r_b·x − s_b = c``) or like a change of resista
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import math
 from dataclasses import dataclass
@@ -285,6 +286,8 @@ class ChangePoint:
     index : first sample of the tail, as an index into the arrays given to `find_change`
     time_s : its time [s], on the caller's clock
     reduction : 1 − SSE(head and tail fitted apart) / SSE(one fit) [-]
+    gain : that drop of the SSE over the residual variance of the split fit [-]: about
+        the number of parameters when nothing changed, hundreds for a real step
     change : size of the change: the tail's departure from the head's model over the
         tail's mean clean dynamic ΔP [-] (``signal`` "relation"), or the step of the
         logged end pressure [Pa] (``signal`` "end_pressure")
@@ -295,6 +298,7 @@ class ChangePoint:
     index: int
     time_s: float
     reduction: float
+    gain: float
     change: float
     signal: str
 
@@ -316,29 +320,30 @@ def _candidates(t: NDArray[np.float64], min_head_s: float, min_tail_s: float,
 
 def _relation_change(
     y: NDArray[np.float64], x: NDArray[np.float64], w: NDArray[np.float64],
-    t: NDArray[np.float64], two: bool, min_head_s: float, min_tail_s: float,
-    min_samples: int,
+    t: NDArray[np.float64], min_head_s: float, min_tail_s: float, min_samples: int,
 ) -> ChangePoint | None:
-    """Best split of ``y ≈ r·x (+ s)`` into a head and a tail fitted apart (least squares
-    from prefix sums: every split point in one pass)."""
+    """Best split of ``y ≈ r·x + s`` into a head and a tail fitted apart (least squares
+    from prefix sums: every split point in one pass).
+
+    Each part has its own offset, and so does the one fit it is compared with: a
+    back-pressure that differs from the model all day (an unlogged gas blanket) is an
+    offset, not a step, and must not split every day where the load turns.
+    """
     ks = _candidates(t, min_head_s, min_tail_s, min_samples)
-    if ks.size == 0:
+    n = y.shape[0]
+    if ks.size == 0 or n <= 4:
         return None
     scale = float(np.mean(np.abs(x))) or 1.0
     xs, ys = x / scale, y / scale  # O(1) numbers: the sums below lose nothing
     cw, cx, cy, cxx, cxy, cyy = _prefix(w, w * xs, w * ys, w * xs * xs, w * xs * ys, w * ys * ys)
-    n = y.shape[0]
 
     def sse(a: NDArray[np.intp] | int, b: NDArray[np.intp] | int) -> Any:
         sw, sx, sy = cw[b] - cw[a], cx[b] - cx[a], cy[b] - cy[a]
         sxx, sxy, syy = cxx[b] - cxx[a], cxy[b] - cxy[a], cyy[b] - cyy[a]
-        if two:
-            det = sw * sxx - sx * sx
-            with np.errstate(divide="ignore", invalid="ignore"):
-                fit = (sxx * sy * sy - 2.0 * sx * sy * sxy + sw * sxy * sxy) / det
-            return np.maximum(syy - np.where(det > 0, fit, sy * sy / sw), 0.0)
+        det = sw * sxx - sx * sx
         with np.errstate(divide="ignore", invalid="ignore"):
-            return np.maximum(syy - np.where(sxx > 0, sxy * sxy / sxx, 0.0), 0.0)
+            fit = (sxx * sy * sy - 2.0 * sx * sy * sxy + sw * sxy * sxy) / det
+        return np.maximum(syy - np.where(det > 0, fit, sy * sy / sw), 0.0)
 
     whole = float(sse(0, n))
     if not whole > 0.0:
@@ -346,18 +351,23 @@ def _relation_change(
     split = sse(0, ks) + sse(ks, n)
     best = int(np.argmin(split))
     k = int(ks[best])
-    reduction = 1.0 - float(split[best]) / whole
-    # the head's model, and the tail's mean departure from it
-    sw, sx, sy = cw[k], cx[k], cy[k]
-    sxx, sxy = cxx[k], cxy[k]
-    if two and sw * sxx - sx * sx > 0:
-        det = sw * sxx - sx * sx
-        r_h, s_h = (sw * sxy - sx * sy) / det, (sxx * sy - sx * sxy) / det
-    else:
-        r_h, s_h = (sxy / sxx if sxx > 0 else 0.0), 0.0
-    tw, tx, ty = cw[n] - cw[k], cx[n] - cx[k], cy[n] - cy[k]
-    change = (ty - r_h * tx - s_h * tw) / tx if tx > 0 else math.nan
-    return ChangePoint(k, float(t[k]), reduction, float(change), "relation")
+    rest = float(split[best])
+    reduction = 1.0 - rest / whole
+    gain = (whole - rest) / 2.0 / max(rest / (n - 4), 1e-300)  # F with 2 and n − 4 dof
+    # size: one fit of the whole window with the tail allowed either an extra offset or
+    # an extra ratio, whichever fits better; as a fraction of the clean dynamic ΔP
+    after = (np.arange(n) >= k).astype(float)
+    sw = np.sqrt(w)
+    best_sse, change = math.inf, math.nan
+    for extra in (after, after * xs):
+        a = np.column_stack([xs, np.ones(n), extra]) * sw[:, None]
+        coef, *_ = np.linalg.lstsq(a, ys * sw, rcond=None)
+        e = float(np.sum((ys * sw - a @ coef) ** 2))
+        if e < best_sse:
+            tail_x = float(np.mean(xs[k:]))
+            size = coef[2] / tail_x if extra is after else coef[2]
+            best_sse, change = e, float(size) if tail_x > 0 else math.nan
+    return ChangePoint(k, float(t[k]), reduction, gain, float(change), "relation")
 
 
 def _level_change(
@@ -383,8 +393,9 @@ def _level_change(
     best = int(np.argmin(split))
     k = int(ks[best])
     step = (c1[n] - c1[k]) / (n - k) - c1[k] / k
-    return ChangePoint(k, float(t[k]), 1.0 - float(split[best]) / whole, float(step),
-                       "end_pressure")
+    rest = float(split[best])
+    gain = (whole - rest) / max(rest / (n - 2), 1e-300)  # F with 1 and n − 2 dof
+    return ChangePoint(k, float(t[k]), 1.0 - rest / whole, gain, float(step), "end_pressure")
 
 
 def find_change(
@@ -401,7 +412,7 @@ def find_change(
     min_head_s: float = 3600.0,
     min_tail_s: float = 3600.0,
     min_samples: int = 6,
-    min_reduction: float = 0.75,
+    min_gain: float = 60.0,
     min_change: float = 0.05,
     min_pressure_step_pa: float = 1.0e4,
 ) -> ChangePoint | None:
@@ -410,12 +421,15 @@ def find_change(
     The window's samples (in time order, *time_s* [s]) are split at every admissible
     point into a head and a tail, each fitted apart — ``y ≈ r·x`` as in `fit_resistance`,
     ``y ≈ r·x + s`` where the back-pressure is fitted — and the split that explains most
-    of the one-fit residual is kept when it explains at least *min_reduction* of it and
-    the tail departs from the head's model by at least *min_change* of its clean dynamic
-    ΔP (a throttled valve, a blockage, an unlogged back-pressure step). A logged end
-    pressure is scanned for a single mean shift the same way, kept when it is at least
-    *min_pressure_step_pa* [Pa]. Both parts must last *min_head_s* / *min_tail_s* [s]
-    and hold *min_samples* samples. A fouling ramp never passes: it does not jump.
+    of the one-fit residual is kept when the drop of the residual sum of squares is at
+    least *min_gain* times the split fit's residual variance (a change-point F statistic,
+    with a threshold far above what noise and serially correlated residuals make of the
+    best of a day's split points) and the tail departs from the head's model by at least
+    *min_change* of its clean dynamic ΔP (a throttled valve, a blockage, an unlogged
+    back-pressure step). A logged end pressure is scanned for a single mean shift the
+    same way, kept when it is at least *min_pressure_step_pa* [Pa]. Both parts must last
+    *min_head_s* / *min_tail_s* [s] and hold *min_samples* samples. A fouling ramp never
+    passes: it does not jump.
 
     Fitting the tail alone then gives the new state within the window the step came in,
     rather than a day's mixture of old and new; the rest as in `fit_resistance`.
@@ -442,19 +456,17 @@ def find_change(
     y, x, w = win.y[inner], win.x[inner], win.w[inner]
     found: list[ChangePoint] = []
     if win.fit_static or win.static_pa is not None:
-        static = 0.0 if win.fit_static or win.static_pa is None else win.static_pa
-        rel = _relation_change(y - static, x, w, t, win.fit_static, min_head_s, min_tail_s,
-                               min_samples)
-        if rel is not None and rel.reduction >= min_reduction and abs(rel.change) >= min_change:
+        rel = _relation_change(y, x, w, t, min_head_s, min_tail_s, min_samples)
+        if rel is not None and rel.gain >= min_gain and abs(rel.change) >= min_change:
             found.append(rel)
     if end_pressure_pa is not None:
         pe = _as_1d("end_pressure_pa", end_pressure_pa, win.keep.shape[0])[keep]
         lvl = _level_change(pe, t, min_head_s, min_tail_s, min_samples)
-        if (lvl is not None and lvl.reduction >= min_reduction
+        if (lvl is not None and lvl.gain >= min_gain
                 and abs(lvl.change) >= min_pressure_step_pa):
             found.append(lvl)
     if not found:
         return None
     best = max(found, key=lambda c: c.reduction)
     index = int(np.flatnonzero(keep)[best.index])
-    return ChangePoint(index, best.time_s, best.reduction, best.change, best.signal)
+    return dataclasses.replace(best, index=index)

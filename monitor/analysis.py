@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from model.fit import FitResult, fit_resistance
+from model.fit import FitResult, find_change, fit_resistance
 from monitor.config import BranchConfig, Site
 from monitor.quality import ScreenSettings, TagLimits, running_mask, screen
 
@@ -33,6 +33,11 @@ __all__ = ["WindowAnalysis", "analyze_window", "logging_interval", "screen_setti
 DEFAULT_METER_UNCERTAINTY = 0.02
 #: A window needs this many steady samples for the header balance [-].
 MIN_BALANCE_SAMPLES = 10
+#: Fewest samples on each side of a step inside a window, and in the tail's own fit [-]
+#: (an hour of 10-minute data), and the shortest side [s].
+TAIL_MIN_SAMPLES = 6
+TAIL_MIN_S = 1800.0
+TAIL_SUMS = ("sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy")
 
 
 @dataclass(frozen=True)
@@ -244,7 +249,50 @@ def _fit_row(
     end_tag = branch.end_pressure_tag
     if end_tag is not None:
         row["end_pressure_pa"] = float(np.median(grid.column(end_tag)[mask]))
+    if fit.usable:
+        row.update(_tail(site, branch, grid, mask, start, floor, p, q, t, conditions))
     return row
+
+
+def _tail(
+    site: Site, branch: BranchConfig, grid: _Grid, mask: np.ndarray, start: pd.Timestamp,
+    floor: float, p: np.ndarray, q: np.ndarray, t: np.ndarray,
+    conditions: dict[str, np.ndarray],
+) -> dict[str, Any]:
+    """The fit of the samples after a step part-way through the window, if there is one.
+
+    The step is looked for with `model.fit.find_change` (resistance relation, or a logged
+    end pressure); the tail — at least half an hour — is fitted on its own, so the diagnosis
+    sees the new state in the window the step came in instead of a mixture of a day.
+    """
+    seconds = ((grid.index - start) / pd.Timedelta(seconds=1)).to_numpy(float)
+    kwargs = {k: v[mask] for k, v in conditions.items()}
+    change = find_change(
+        branch.model, time_s=seconds[mask], header_pressure_pa=p[mask], flow_m3s=q[mask],
+        temperature_c=t[mask], min_flow_m3s=floor, min_samples=TAIL_MIN_SAMPLES,
+        min_head_s=TAIL_MIN_S, min_tail_s=TAIL_MIN_S, **kwargs,
+    )
+    if change is None:
+        return {}
+    tail = mask & (seconds >= change.time_s)
+    logged: dict[str, Any] = {k: v[tail] for k, v in conditions.items()}
+    fit = fit_resistance(
+        branch.model, header_pressure_pa=p[tail], flow_m3s=q[tail], temperature_c=t[tail],
+        min_flow_m3s=floor, min_samples=TAIL_MIN_SAMPLES, **logged,
+    )
+    if not fit.usable:
+        return {}
+    out: dict[str, Any] = {
+        "tail_offset_s": change.time_s, "tail_change": change.change, "tail_r": fit.r,
+        "tail_r_low": fit.r_low, "tail_r_high": fit.r_high, "tail_samples": fit.samples,
+        "tail_s_pa": fit.s_pa if fit.identifiable and fit.fit_static else math.nan,
+        **{f"tail_{k}": getattr(fit, k) for k in TAIL_SUMS},
+    }
+    if branch.end_pressure_tag is not None:
+        out["tail_end_pressure_pa"] = float(np.median(grid.column(branch.end_pressure_tag)[tail]))
+    log.debug("%s: step inside the window at %s (%s, %.3g)", branch.name,
+              start + pd.Timedelta(seconds=change.time_s), change.signal, change.change)
+    return out
 
 
 def _fit_fields(fit: FitResult) -> dict[str, Any]:

@@ -79,6 +79,7 @@ __all__ = [
     "HISTORY_COLUMNS",
     "KINDS",
     "SCREENING_COLUMNS",
+    "TAIL_COLUMNS",
     "BranchSettings",
     "DiagnosisSettings",
     "Finding",
@@ -237,6 +238,15 @@ HISTORY_COLUMNS: dict[str, tuple[str, ...]] = {
         "bp_sse_static", "bp_sse_resistance",
     ),
 }  # fmt: skip
+#: A window's tail (optional): where a step part-way through it came [s after the window
+#: start] and the fit of the samples after it (`monitor.analysis`). The diagnosis reads
+#: such a window as its tail — the new state — so the step is named in the window it came
+#: in, and dated to the step itself.
+TAIL_COLUMNS: dict[str, str] = {
+    "r": "tail_r", "r_low": "tail_r_low", "r_high": "tail_r_high",
+    "samples": "tail_samples", "s_pa": "tail_s_pa", "end_pressure_pa": "tail_end_pressure_pa",
+    **{c: f"tail_{c}" for c in ("sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy")},
+}  # fmt: skip
 #: Screening counts per window and tag; ``branch`` names the branch the tag belongs to
 #: (the header's tags use `DiagnosisSettings.header_name`). ``first_flagged`` (optional)
 #: is the time of the first flagged sample.
@@ -322,7 +332,7 @@ def diagnose(
 
     findings: list[Finding] = []
     header = flags.get(cfg.header_name, pd.DataFrame({"window_start": []}))
-    hist = hist.reset_index(drop=True)
+    hist = _read_tails(hist.reset_index(drop=True))
     by_window = None
     if bal is not None and not bal.empty:
         by_window = bal.drop_duplicates("window_start").set_index("window_start")
@@ -593,6 +603,33 @@ def _offset_comparison(
             "ratio_if_resistance": ratio, "sse_static": sse_s, "sse_resistance": sse_r}  # fmt: skip
 
 
+def _read_tails(hist: pd.DataFrame) -> pd.DataFrame:
+    """Windows with a tail (`TAIL_COLUMNS`) read as their tail; ``change_at`` is when the
+    window's state began: the step inside it, else the window start."""
+    hist = hist.copy()
+    hist["change_at"] = hist["window_start"]
+    if "tail_r" not in hist.columns or "tail_offset_s" not in hist.columns:
+        return hist
+    tail = np.isfinite(_numeric(hist, "tail_r")) & np.isfinite(_numeric(hist, "tail_offset_s"))
+    if not tail.any():
+        return hist
+    for col, src in TAIL_COLUMNS.items():
+        if src not in hist.columns:
+            continue
+        value = _numeric(hist, src)
+        # a tail's s is NaN where it was not identifiable; other NaNs were not logged
+        tail_col = tail if col == "s_pa" else tail & np.isfinite(value)
+        if col not in hist.columns or hist[col].dtype == object:
+            hist[col] = _numeric(hist, col)
+        hist.loc[tail_col, col] = value[tail_col]
+    if "identifiable" in hist.columns:
+        hist["identifiable"] = hist["identifiable"].astype(object)
+        hist.loc[tail, "identifiable"] = np.isfinite(_numeric(hist, "s_pa"))[tail]
+    offset = pd.to_timedelta(_numeric(hist, "tail_offset_s")[tail], unit="s")
+    hist.loc[tail, "change_at"] = hist.loc[tail, "window_start"] + offset
+    return hist
+
+
 def _numeric(frame: pd.DataFrame, c: str) -> NDArray[np.float64]:
     """Column *c* of *frame* as floats (NaN where missing or not a number)."""
     if c in frame.columns:
@@ -620,6 +657,8 @@ class _Replay:
             rows["r"], dtype=np.float64
         )  # a copy: back-pressure shifts edit it
         self.ws = list(rows["window_start"])
+        # when each window's state began: a step inside it, else its start
+        self.at = list(rows["change_at"]) if "change_at" in rows.columns else self.ws
         self.we = list(rows["window_end"])
         self.t0 = self.ws[0] if self.ws else pd.Timestamp(0, tz="UTC")
         # window starts in days since the first window [d]
@@ -769,11 +808,11 @@ class _Replay:
                 delta = v - ref
                 if abs(delta) >= max(self.cfg.bp_step_z * sigma, self.cfg.min_bp_step_pa):
                     self._open(_Open(
-                        "back_pressure", self.ws[i], self.we[i], 0.95,
+                        "back_pressure", self.at[i], self.we[i], 0.95,
                         {"step_pa": delta, "step_sigma": delta / sigma, "before_pa": ref,
                          "after_pa": v},
                         f"{self.name}: the back-pressure at its end moved by "
-                        f"{delta / 1e5:+.2f} bar on {self.ws[i]:%Y-%m-%d} "
+                        f"{delta / 1e5:+.2f} bar on {self.at[i]:%Y-%m-%d} "
                         f"(from {ref / 1e5:.2f} to {v / 1e5:.2f} bar gauge).",
                         ref=ref, step=delta,
                     ))  # fmt: skip
@@ -891,12 +930,15 @@ class _Replay:
         """A jump so large against the scatter, on a window whose own r interval is
         narrow and which fits one cause cleanly, is reported in that same window rather
         than after the next one (the next window can still end it: `_steps`)."""
-        if e <= 0 or z < self.cfg.at_once_z or e < self.cfg.at_once_rel * pred:
+        if abs(z) < self.cfg.at_once_z or abs(e) < self.cfg.at_once_rel * pred:
             return False
         lo, hi = self.col["r_low"][i], self.col["r_high"][i]
-        if not (math.isfinite(lo) and math.isfinite(hi)) or hi - lo > 0.5 * e:
+        if not (math.isfinite(lo) and math.isfinite(hi)) or hi - lo > 0.5 * abs(e):
             return False
-        return self._classify(i)[0] is not None
+        kind = self._classify(i)[0]
+        # r falls at once only when the back-pressure fell (or a restriction cleared,
+        # which `_steps` handles as the end of the open finding)
+        return kind is not None if e > 0 else kind == "back_pressure"
 
     def _offset_rise(self, dc: float) -> bool:
         """The constant offset came within one or two windows (a back-pressure step), not
@@ -1033,7 +1075,7 @@ class _Replay:
             if kind != "back_pressure":
                 self._restart(i)  # r fell: cleared or improved; nothing to report
                 return
-        start = self.ws[first]
+        start = self.at[first]
         ref = float(self.r[j] - e)
         e = float(self.r[i] - ref)  # the full step (window i is past a deferred one)
         # r_baseline: the reference the cost of the change is counted from
@@ -1093,9 +1135,20 @@ class _Replay:
             return None, 0.0, cmp
         llr = cmp["offset_llr"]
         if abs(llr) < self.cfg.offset_evidence:
+            if self._termination_known(j):
+                # too narrow a flow range to tell the shapes apart, but the back-pressure
+                # is logged or fixed (open end, logged level or header pressure): the
+                # change is the branch's own resistance
+                return "restriction", 0.7, cmp
             return None, 0.0, cmp
         conf = 1.0 / (1.0 + math.exp(-abs(llr)))
         return ("back_pressure" if llr > 0 else "restriction"), conf, cmp
+
+    def _termination_known(self, j: int) -> bool:
+        """Window j's fit held the back-pressure known (not fitted: s_pa is NaN) because
+        the termination is open or its level or pressure is logged, not because s could
+        not be separated from r."""
+        return bool(self.ident[j]) and not math.isfinite(self.col["s_pa"][j])
 
     def _meter_disagrees(self, j: int) -> dict[str, float] | None:
         """A real restriction leaves Σ branch − total unchanged (both meters see the
