@@ -336,12 +336,17 @@ def screen(
         raise ValueError(f"readings lacks columns {sorted(missing)}")
     if not isinstance(readings["time"].dtype, pd.DatetimeTZDtype):
         raise ValueError("readings time must be timezone-aware UTC (datetime64[ns, UTC])")
-    frame = readings.loc[:, list(READING_COLUMNS)].copy()
+    frame = readings.loc[:, list(READING_COLUMNS)]
+    # By tag, then time: one factorisation gives the tag codes (sorted, so the codes
+    # follow the sorted tags) and the sort is on integers.
+    codes, tags = pd.factorize(frame["tag"], sort=True)
+    t_ns = frame["time"].dt.tz_convert("UTC").to_numpy("datetime64[ns]").view("int64")
+    order = np.lexsort((t_ns, codes))
+    codes, t_ns = codes[order], t_ns[order]
+    frame = frame.take(order).reset_index(drop=True)
     frame["time"] = frame["time"].dt.tz_convert("UTC")
-    frame = frame.sort_values(["tag", "time"], kind="stable").reset_index(drop=True)
     value = frame["value"].to_numpy("float64")
-    codes, tags = pd.factorize(frame["tag"])
-    t_s = (frame["time"].to_numpy("datetime64[ns]").view("int64") / 1e9).astype("float64")
+    t_s = (t_ns / 1e9).astype("float64")
     n = len(frame)
 
     limits = [specs.get(tag, TagLimits(kind="other")) for tag in tags]
