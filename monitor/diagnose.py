@@ -625,8 +625,8 @@ def _read_tails(hist: pd.DataFrame) -> pd.DataFrame:
     if "identifiable" in hist.columns:
         hist["identifiable"] = hist["identifiable"].astype(object)
         hist.loc[tail, "identifiable"] = np.isfinite(_numeric(hist, "s_pa"))[tail]
-    offset = pd.to_timedelta(_numeric(hist, "tail_offset_s")[tail], unit="s")
-    hist.loc[tail, "change_at"] = hist.loc[tail, "window_start"] + offset
+    offset = np.where(tail, _numeric(hist, "tail_offset_s"), 0.0)
+    hist["change_at"] = (hist["window_start"] + pd.to_timedelta(offset, unit="s")).dt.floor("s")
     return hist
 
 

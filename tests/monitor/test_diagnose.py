@@ -49,6 +49,7 @@ def make_history(
     logged_end_pressure: bool = False,
     seasonal_error: float = 0.0,
     dp_design_pa: float = 1.0e5,
+    tails: bool = False,
 ) -> pd.DataFrame:
     rng = np.random.default_rng(seed)
     tk = np.arange(days)[:, None] + (np.arange(SAMPLES)[None, :] + 0.5) / SAMPLES
@@ -98,7 +99,32 @@ def make_history(
     )
     if logged_end_pressure:
         hist["end_pressure_pa"] = end_pressure.mean(1)
+    if tails:
+        _add_tails(hist, tk, x, y, faults)
     return hist
+
+
+def _add_tails(hist: pd.DataFrame, tk: np.ndarray, x: np.ndarray, y: np.ndarray,
+               faults: tuple[Fault, ...]) -> None:
+    """What `monitor.analysis` adds to a window a step came part-way through: the fit of
+    the samples after the step (``tail_*``; here the step time is known)."""
+    for f in faults:
+        d = int(np.floor(f.day))
+        after = tk[d] >= f.day
+        if f.kind == "ramp" or after.all() or after.sum() < 6:
+            continue
+        xt, yt = x[d][after], y[d][after]
+        r_t = float((xt * yt).sum() / (xt * xt).sum())
+        for col, value in {
+            "tail_offset_s": (f.day - d) * 86400.0, "tail_r": r_t,
+            "tail_r_low": r_t - 0.01, "tail_r_high": r_t + 0.01,
+            "tail_samples": float(after.sum()), "tail_sum_w": float(after.sum()),
+            "tail_sum_x": xt.sum(), "tail_sum_y": yt.sum(), "tail_sum_xx": (xt * xt).sum(),
+            "tail_sum_xy": (xt * yt).sum(), "tail_sum_yy": (yt * yt).sum(),
+        }.items():
+            if col not in hist.columns:
+                hist[col] = np.nan
+            hist.loc[d, col] = value
 
 
 def run(hist: pd.DataFrame, **kw: object) -> list[Finding]:
@@ -180,6 +206,29 @@ def test_restriction_step_with_narrow_fit_interval_named_by_the_next_window(
         assert [(g.kind, g.start) for g in first] == [(f.kind, f.start)]  # same key
         assert first[0].evidence["confirmed"] == 0.0
         assert first[0].confidence < f.confidence
+
+
+@pytest.mark.parametrize(("kind", "fault"), [
+    ("restriction", Fault("step", 80.62, 0.30)),
+    ("back_pressure", Fault("bp_step", 80.71, 2.5e4)),
+    ("back_pressure", Fault("bp_step", 80.55, -2.5e4)),
+])  # fmt: skip
+def test_step_inside_a_window_is_named_in_that_window_from_its_tail(
+    kind: str, fault: Fault
+) -> None:
+    # The analysis found the step part-way through the window and fitted the samples
+    # after it (the tail): the finding is detected at the end of that same window (within
+    # a day of the step: issue 4 goal) and starts at the step, not at midnight.
+    hist = make_history(120, seed=41, sigma=0.002, faults=(fault,), tails=True)
+    hist = hist.assign(r_low=hist["r"] - 0.005, r_high=hist["r"] + 0.005)
+    found = run(hist)
+    assert [f.kind for f in found] == [kind], found
+    assert days_after_t0(found[0].detected) == np.floor(fault.day) + 1.0
+    assert days_after_t0(found[0].start) == pytest.approx(fault.day, abs=2.0 / 86400)
+    # without the tail the same history waits for the next window
+    plain = run(hist.drop(columns=[c for c in hist.columns if c.startswith("tail_")]))
+    assert [f.kind for f in plain] == [kind]
+    assert days_after_t0(plain[0].detected) == np.floor(fault.day) + 2.0
 
 
 @pytest.mark.parametrize(("seed", "length"), [(33, 60.0), (34, 30.0)])
