@@ -58,6 +58,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import numpy as np
 import pandas as pd
@@ -207,6 +208,7 @@ class DiagnosisSettings:
     spike_count: int = 30  # same, when the sample count is not given [-]
     spike_min_count: int = 10  # and never fewer spikes than this in a window [-]
     low_flow_deadband: float = 0.05  # fraction of the minimum to clear low flow [-]
+    timezone: str = "UTC"  # the site's zone: dates in finding messages are site time
 
     def __post_init__(self) -> None:
         for name in ("baseline_windows", "level_windows", "min_trend_windows"):
@@ -217,6 +219,10 @@ class DiagnosisSettings:
                 raise ValueError(f"{name} must be positive, got {getattr(self, name)}")
         if not 0 < self.trend_alpha < 1:
             raise ValueError(f"trend_alpha must be in (0, 1), got {self.trend_alpha}")
+        try:
+            ZoneInfo(self.timezone)
+        except (ZoneInfoNotFoundError, ValueError) as exc:
+            raise ValueError(f"timezone {self.timezone!r} is not a known zone name") from exc
 
     def for_branch(self, name: str) -> BranchSettings:
         """The settings of branch *name* (the default ones when not configured)."""
@@ -671,6 +677,14 @@ class _Replay:
         self.s_shift = 0.0  # back-pressure change found from r, taken out of later r [Pa]
         self._new_segment()
 
+    def _when(self, t: pd.Timestamp, j: int | None = None) -> str:
+        """*t* as the site's date — with the time of day when it is a step inside window
+        *j* rather than the window's start — for the messages an engineer reads."""
+        local = pd.Timestamp(t).tz_convert(self.cfg.timezone)
+        if j is not None and pd.Timestamp(t) != self.ws[j]:
+            return f"{local:%Y-%m-%d %H:%M}"
+        return f"{local:%Y-%m-%d}"
+
     def _numbers(self, j: int) -> dict[str, float]:
         """The numeric columns of window j."""
         return {c: float(v[j]) for c, v in self.col.items()}
@@ -812,7 +826,7 @@ class _Replay:
                         {"step_pa": delta, "step_sigma": delta / sigma, "before_pa": ref,
                          "after_pa": v},
                         f"{self.name}: the back-pressure at its end moved by "
-                        f"{delta / 1e5:+.2f} bar on {self.at[i]:%Y-%m-%d} "
+                        f"{delta / 1e5:+.2f} bar on {self._when(self.at[i], i)} "
                         f"(from {ref / 1e5:.2f} to {v / 1e5:.2f} bar gauge).",
                         ref=ref, step=delta,
                     ))  # fmt: skip
@@ -1082,7 +1096,7 @@ class _Replay:
         evidence = {"step_r": e, "step_sigma": z, "r_before": ref, "r_baseline": ref,
                     "r_after": float(self.r[i]), "cusum": self.cusum,
                     "sigma_r": self.base.sigma_r, **extra}  # fmt: skip
-        day = f"{start:%Y-%m-%d}"
+        day = self._when(start, first)
         if kind == "back_pressure":
             c = extra.get("static_offset_pa", math.nan)
             size = f" by about {c / 1e5:+.2f} bar" if math.isfinite(c) else ""
@@ -1229,10 +1243,10 @@ class _Replay:
         elif cross.eta is None:
             when = "the rate is too uncertain to forecast the cleaning date"
         else:
-            lo = "now" if cross.eta_low is None else f"{t_last + cross.eta_low * _DAY:%Y-%m-%d}"
-            hi = "later" if cross.eta_high is None else f"{t_last + cross.eta_high * _DAY:%Y-%m-%d}"
+            lo = "now" if cross.eta_low is None else self._when(t_last + cross.eta_low * _DAY)
+            hi = "later" if cross.eta_high is None else self._when(t_last + cross.eta_high * _DAY)
             when = (f"at this rate it reaches the cleaning limit {limit:.2f} about "
-                    f"{t_last + cross.eta * _DAY:%Y-%m-%d} (between {lo} and {hi})")  # fmt: skip
+                    f"{self._when(t_last + cross.eta * _DAY)} (between {lo} and {hi})")  # fmt: skip
         fouling.message = (
             f"{self.name} is fouling: resistance ratio {fouling.ref:.2f} → "
             f"{cross.level_now:.2f}, rising {fit.slope * 30:.3f} per month; {when}."

@@ -225,6 +225,10 @@ def test_step_inside_a_window_is_named_in_that_window_from_its_tail(
     assert [f.kind for f in found] == [kind], found
     assert days_after_t0(found[0].detected) == np.floor(fault.day) + 1.0
     assert days_after_t0(found[0].start) == pytest.approx(fault.day, abs=2.0 / 86400)
+    # the message gives the step's date and time in the site's zone
+    local = run(hist, settings=DiagnosisSettings(timezone="Europe/Berlin"))[0]
+    when = pd.Timestamp(found[0].start).tz_convert("Europe/Berlin")
+    assert f"{when:%Y-%m-%d %H:%M}" in local.message, local.message
     # without the tail the same history waits for the next window
     plain = run(hist.drop(columns=[c for c in hist.columns if c.startswith("tail_")]))
     assert [f.kind for f in plain] == [kind]
@@ -374,6 +378,8 @@ def test_bad_input_names_the_argument() -> None:
         diagnose(hist, now=datetime(2025, 2, 1))
     with pytest.raises(ValueError, match="cleaning_limit_r"):
         BranchSettings(cleaning_limit_r=0.9)
+    with pytest.raises(ValueError, match="Europe/Fenwick"):
+        DiagnosisSettings(timezone="Europe/Fenwick")
     empty = pd.DataFrame({"branch": [], "window_start": [], "window_end": [], "r": []})
     assert diagnose(empty, now=T0) == []
 
