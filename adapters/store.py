@@ -35,6 +35,8 @@ from __future__ import annotations
 
 import logging
 import re
+import signal
+import threading
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from datetime import UTC, date, datetime
@@ -125,6 +127,33 @@ _IDENT = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,62}$")
 
 #: What `SqlStore.watermarks` returns (defined with the interface).
 Watermarks = ResultsStore.Watermarks
+
+
+@contextmanager
+def _interrupt_deferred() -> Iterator[None]:
+    """Hold Ctrl-C (SIGINT) back until the block ends, then raise KeyboardInterrupt.
+
+    A KeyboardInterrupt inside a driver call leaves the SQLite connection's statement
+    alive in a reference cycle until the garbage collector runs: its transaction keeps
+    the write lock, and the next write (the job's own record of the interruption) waits
+    for the busy timeout and fails. Deferred, the transaction commits or rolls back
+    whole first. Only Python's default handler in the main thread is replaced: a
+    program that installed its own (the daemon) keeps it.
+    """
+    if (
+        threading.current_thread() is not threading.main_thread()
+        or signal.getsignal(signal.SIGINT) is not signal.default_int_handler
+    ):
+        yield
+        return
+    caught: list[int] = []
+    signal.signal(signal.SIGINT, lambda signum, _frame: caught.append(signum))
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, signal.default_int_handler)
+        if caught:
+            raise KeyboardInterrupt
 
 
 def _reopen(url: str, schema: str | None, busy_timeout_s: float) -> SqlStore:
@@ -271,9 +300,12 @@ class SqlStore(ResultsStore):
 
     @contextmanager
     def _write(self) -> Iterator[sa.Connection]:
-        """One write transaction; database errors come out as `StoreError`."""
+        """One write transaction; database errors come out as `StoreError`.
+
+        Ctrl-C during it takes effect when it has ended (`_interrupt_deferred`).
+        """
         try:
-            with self.engine.connect() as conn:
+            with _interrupt_deferred(), self.engine.connect() as conn:
                 conn = conn.execution_options(bw_write=True)
                 with conn.begin():
                     yield conn

@@ -14,9 +14,12 @@ import logging
 import math
 import multiprocessing
 import pickle
+import signal
+import threading
 from collections import Counter, deque
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
+from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, timedelta
 from itertools import islice
@@ -311,8 +314,9 @@ def analyze_windows(
         pending: deque[Future[WindowAnalysis]] = deque()
         todo = iter(spans)
         try:
-            for span in islice(todo, 2 * workers):
-                pending.append(pool.submit(_worker_window, span))
+            with _sigint_ignored():  # the workers start on the first submits
+                for span in islice(todo, 2 * workers):
+                    pending.append(pool.submit(_worker_window, span))
             while pending:
                 result = pending.popleft().result()
                 for span in islice(todo, 1):
@@ -321,6 +325,24 @@ def analyze_windows(
         finally:
             for future in pending:
                 future.cancel()
+
+
+@contextmanager
+def _sigint_ignored() -> Iterator[None]:
+    """Processes started inside are born with SIGINT ignored (the setting survives exec).
+
+    Ctrl-C reaches the whole process group: only this process should act on it — stop
+    handing out windows and wait for the ones in hand — not the workers, whose
+    interrupted imports would print tracebacks and break the pool.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield  # signals are the main thread's; the daemon's jobs run elsewhere
+        return
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
 
 
 def _reopenable(store: ResultsStore) -> bytes | None:

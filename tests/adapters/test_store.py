@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import math
 import pickle
+import signal
 from collections.abc import Iterator
 from datetime import UTC, datetime, timedelta
 from typing import Any
@@ -259,6 +260,26 @@ def test_store_pickles_as_the_way_to_reopen_it(store: SqlStore) -> None:
         again.close()
     with pytest.raises(TypeError, match="in-memory"):
         pickle.dumps(SqlStore("sqlite://"))
+
+
+def test_ctrl_c_in_a_write_lets_the_transaction_end_first(
+    store: SqlStore, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # SIGINT arrives while the batch's transaction is open: the batch is stored whole,
+    # then KeyboardInterrupt is raised, and the store takes the next write at once.
+    real_upsert = store_module.upsert
+
+    def interrupted(*args: Any, **kwargs: Any) -> None:
+        real_upsert(*args, **kwargs)
+        signal.raise_signal(signal.SIGINT)
+
+    monkeypatch.setattr(store_module, "upsert", interrupted)
+    with pytest.raises(KeyboardInterrupt):
+        store.store_batch(_batch(_readings(3, ["FT-203"])), source="csv")
+    monkeypatch.setattr(store_module, "upsert", real_upsert)
+    assert signal.getsignal(signal.SIGINT) is signal.default_int_handler
+    assert len(_all(store, ["FT-203"])) == 3
+    assert store.store_batch(_batch(_readings(4, ["FT-203"]), "b.csv"), source="csv") == 1
 
 
 def test_naive_times_are_refused(store: SqlStore) -> None:
