@@ -11,10 +11,11 @@ through `SqlStore.store_batch`.
   (`monitor.analysis.analyze_window`, then `monitor.diagnose.diagnose` over the fits).
 * A year of a 100-branch site (goal <= 5 min), on ``--days`` days:
   first the same in-process loop, for the shares of reading and computing; then the real
-  `monitor.jobs.analyze` with ``--jobs`` worker processes (read, compute, write every
-  window, diagnose), wall and CPU of all processes. The year is estimated from it: worker
-  start and the first window once, the steady per-window time of the later windows
-  x 364, and the diagnosis of a whole year's history timed on its own
+  `monitor.jobs.analyze` (read, compute, write every window, diagnose) in this process
+  and with ``--jobs`` worker processes (from the second window on, as a long backfill
+  runs), wall and CPU of all processes. The year is estimated from each: the first
+  windows (worker start included) once, the steady per-window time of the later windows
+  for the rest of the 365, and the diagnosis of a whole year's history timed on its own
   (`monitor.jobs.diagnose_site` over 365 windows made by repeating the measured windows'
   stored fits, screening counts and balances with shifted window times).
 
@@ -243,15 +244,20 @@ class JobsTiming:
     jobs: int
 
     @property
+    def head(self) -> int:
+        """Windows before the steady pace: the first (analysed in this process, timed)
+        and, with workers, their first round (worker start included)."""
+        return min(1 + self.jobs if self.jobs > 1 else 1, len(self.written))
+
+    @property
     def first_round(self) -> float:
-        """Until the first round of windows (one per worker) is written: worker start
-        and one window's work [s]."""
-        return self.written[min(self.jobs, len(self.written)) - 1]
+        """Until the `head` windows are written [s]."""
+        return self.written[self.head - 1]
 
     @property
     def per_window(self) -> float:
-        """Steady wall time per window after the first round (the workers overlap) [s]."""
-        later = len(self.written) - self.jobs
+        """Steady wall time per window after the head (the workers overlap) [s]."""
+        later = len(self.written) - self.head
         if later < 1:
             return math.nan
         return (self.written[-1] - self.first_round) / later
@@ -261,8 +267,10 @@ def run_jobs(site: Site, store: SqlStore, days: int, jobs: int) -> JobsTiming:
     """`monitor.jobs.analyze` over *days* windows with *jobs* processes, timed."""
     marks: list[float] = []
     w0, c0 = time.perf_counter(), cpu_all()
+    # Workers whatever the run's length, as a year's backfill would take them.
     summary = analyze(site, store, StoredReadings(), START, START + timedelta(days=days),
-                      jobs=jobs, progress=lambda i, n: marks.append(time.perf_counter()))
+                      jobs=jobs, progress=lambda i, n: marks.append(time.perf_counter()),
+                      parallel_after_s=0.0)
     wall, cpu = time.perf_counter() - w0, cpu_all() - c0
     assert summary.windows == days == len(marks), (summary.windows, days, len(marks))
     return JobsTiming(wall=wall, cpu=cpu, written=[m - w0 for m in marks], jobs=jobs)
@@ -302,15 +310,16 @@ def report_jobs(n_branches: int, days: int, par: JobsTiming) -> float:
     print(f"  monitor.jobs.analyze, {procs} (read, compute, write {days} windows, "
           f"diagnose {days} days):")
     print(f"    wall {par.wall:.2f} s, cpu {par.cpu:.2f} s (all processes); first "
-          f"{min(jobs, days)} window(s) written after {par.first_round:.2f} s"
-          f"{' (worker start included)' if jobs > 1 else ''}, then {par.per_window:.2f} s "
-          f"wall per window")
+          f"{par.head} window(s) written after {par.first_round:.2f} s"
+          f"{' (the first here, then worker start)' if jobs > 1 else ''}, then "
+          f"{par.per_window:.2f} s wall per window")
     bd = n_branches * days
     print(f"    per branch-day: wall {1e3 * par.wall / bd:.2f} ms, "
           f"cpu {1e3 * par.cpu / bd:.2f} ms (the whole run)")
-    later = YEAR_DAYS - min(jobs, YEAR_DAYS)
+    later = YEAR_DAYS - par.head
     windows_year = par.first_round + par.per_window * later
-    print(f"    a year's windows: {windows_year:.1f} s wall (first round + {later} x steady)")
+    print(f"    a year's windows: {windows_year:.1f} s wall (first {par.head} + {later} x "
+          f"steady)")
     return windows_year
 
 
@@ -343,9 +352,9 @@ def main() -> None:
     parser.add_argument("--profile", action="store_true",
                         help="print a cProfile of the one-day case's compute")
     args = parser.parse_args()
-    if args.days <= args.jobs:
-        parser.error("--days must exceed --jobs (the steady per-window time needs a window "
-                     "after the first round)")
+    if args.days < args.jobs + 2:
+        parser.error("--days must be at least --jobs + 2 (the steady per-window time needs "
+                     "a window after the workers' first round)")
 
     with tempfile.TemporaryDirectory(prefix="bw-speed-") as tmp:
         folder = Path(tmp)

@@ -331,11 +331,13 @@ examples:
         "--jobs", type=_positive_int, default=default_jobs(), metavar="N",
         help=f"""analyse N windows at a time, each in a worker process with its own
         database connection (default {default_jobs()}: this machine's cores, at most
-        {MAX_DEFAULT_JOBS}). This process writes the results in window order, so a long
-        backfill stopped part-way keeps every window before the stop, and the daemon
-        (or 'analyze --from' the next window) goes on from there. Each worker holds one
-        window's readings in memory: lower N on a small machine or for a very large
-        site; --jobs 1 does everything in this process.""",
+        {MAX_DEFAULT_JOBS}). Workers take a few seconds to start: they are used only
+        when the first window shows that the rest would take several times that here
+        (a long backfill, a large site). This process writes the results in window
+        order: a long backfill stopped part-way (Ctrl-C) keeps every window before the
+        stop, and the daemon (or 'analyze --from' the next window) goes on from there.
+        Each worker holds one window's readings in memory: lower N on a small machine
+        or for a very large site; --jobs 1 does everything in this process.""",
     )
 
 

@@ -16,6 +16,7 @@ import multiprocessing
 import pickle
 import signal
 import threading
+import time
 from collections import Counter, deque
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
@@ -53,6 +54,7 @@ from monitor.diagnose import (
 log = logging.getLogger(__name__)
 
 __all__ = [
+    "PARALLEL_AFTER_S",
     "AnalyzeSummary",
     "IngestSummary",
     "analyze",
@@ -234,6 +236,12 @@ def read_window(
     return read_tags(site, store, source, list(site.tags), start, end)
 
 
+#: Worker processes start only when the remaining windows would take at least this long
+#: in this process, judged by the first window [s]: each worker spends a few seconds on
+#: imports before its first window, which a short run never wins back.
+PARALLEL_AFTER_S = 10.0
+
+
 def analyze(
     site: Site,
     store: ResultsStore,
@@ -243,6 +251,7 @@ def analyze(
     *,
     progress: Callable[[int, int], None] | None = None,
     jobs: int = 1,
+    parallel_after_s: float = PARALLEL_AFTER_S,
 ) -> AnalyzeSummary:
     """Fit every branch over every whole window in [start, end), then diagnose.
 
@@ -251,14 +260,17 @@ def analyze(
     first unfinished one and a rerun rewrites the same rows. The diagnosis then runs over
     the whole stored history up to *end* and upserts its findings on (branch, kind, start).
 
-    With *jobs* > 1 and more than one window, the windows are read and analysed in that
-    many worker processes (see `analyze_windows`); the results are the same.
+    With *jobs* > 1, a backfill long enough to gain from it (*parallel_after_s*) has its
+    windows read and analysed in that many worker processes (see `analyze_windows`); the
+    results are the same.
     """
     if jobs < 1:
         raise ValueError(f"jobs must be >= 1, got {jobs}")
     spans = list(windows(start, end, site.window, site.timezone))
     n_fits = n_ok = n_read = 0
-    for i, result in enumerate(analyze_windows(site, store, source, spans, jobs=jobs)):
+    results = analyze_windows(site, store, source, spans, jobs=jobs,
+                              parallel_after_s=parallel_after_s)
+    for i, result in enumerate(results):
         store.store_window(
             fits=result.fits, screening=result.screening, balance=result.balance,
             health=result.health,
@@ -285,31 +297,48 @@ def analyze_windows(
     spans: Sequence[tuple[datetime, datetime]],
     *,
     jobs: int = 1,
+    parallel_after_s: float = PARALLEL_AFTER_S,
 ) -> Iterator[WindowAnalysis]:
     """Read and analyse each window of *spans*, yielding the results in window order.
 
-    With *jobs* > 1 and several windows, worker processes do the work: each opens its
-    own store connection (the store pickles as a way to reopen it; SQL stores reopen
-    their URL) and, where the source keeps the readings (SQL), its own source from the
-    site file (`open_source`). At most two windows per worker are in flight, so memory
-    stays bounded on a long backfill. A store that cannot be reopened elsewhere (an
-    in-memory database) is served in this process instead, as is a single window.
+    With *jobs* > 1, the first window is analysed here and timed; when the rest would
+    take longer than *parallel_after_s* at that pace, worker processes do them: each
+    opens its own store connection (the store pickles as a way to reopen it; SQL stores
+    reopen their URL) and, where the source keeps the readings (SQL), its own source from
+    the site file (`open_source`). At most two windows per worker are in flight, so
+    memory stays bounded on a long backfill. A store that cannot be reopened elsewhere
+    (an in-memory database) is served in this process throughout.
 
     Results come in window order even when a later window finishes first: the caller
     writes them in that order, so the stored windows of an interrupted run have no holes
     and `catch_up`, which resumes after the last stored window, misses none. An error in
     a window is raised when its turn comes, after every earlier window was yielded.
     """
-    workers = min(jobs, len(spans))
-    shipped = _reopenable(store) if workers > 1 else None
-    if workers <= 1 or shipped is None:
-        for ws, we in spans:
+    rest = list(spans)
+    # Workers for two windows or more after the first: one alone would gain nothing.
+    shipped = _reopenable(store) if jobs > 1 and len(rest) > 2 else None
+    if shipped is not None:
+        ws, we = rest.pop(0)
+        started = time.perf_counter()
+        yield analyze_window(site, read_window(site, store, source, ws, we), ws, we)
+        if (time.perf_counter() - started) * len(rest) < parallel_after_s:
+            shipped = None
+    if shipped is None:
+        for ws, we in rest:
             yield analyze_window(site, read_window(site, store, source, ws, we), ws, we)
         return
+    yield from _in_workers(site, shipped, source.keeps_readings, rest, min(jobs, len(rest)))
+
+
+def _in_workers(
+    site: Site, shipped: bytes, own_source: bool, spans: Sequence[tuple[datetime, datetime]],
+    workers: int,
+) -> Iterator[WindowAnalysis]:
+    """`analyze_windows` in *workers* processes, results in window order."""
     context = multiprocessing.get_context("spawn")  # no inherited connections or threads
     with ProcessPoolExecutor(
         workers, mp_context=context, initializer=_worker_start,
-        initargs=(site, shipped, source.keeps_readings),
+        initargs=(site, shipped, own_source),
     ) as pool:
         pending: deque[Future[WindowAnalysis]] = deque()
         todo = iter(spans)

@@ -18,6 +18,7 @@ import pytest
 
 from adapters.base import open_store
 from adapters.store import SqlStore
+from monitor import jobs as jobs_module
 from monitor.cli import main
 from monitor.config import Site, load_site
 from monitor.demo import DEMO_START, prepare_demo
@@ -77,20 +78,39 @@ def _fits(store: SqlStore) -> pd.DataFrame:
             .sort_values(["branch", "window_start"]).reset_index(drop=True))
 
 
-def test_workers_store_the_same_fits_as_in_process(demo_folder: Path, tmp_path: Path) -> None:
+def _spy_workers(monkeypatch: pytest.MonkeyPatch) -> list[int]:
+    """Counts of windows handed to worker processes, one entry per pool."""
+    handed: list[int] = []
+    real = jobs_module._in_workers
+
+    def spy(*args: Any) -> Any:
+        handed.append(len(args[3]))
+        return real(*args)
+
+    monkeypatch.setattr(jobs_module, "_in_workers", spy)
+    return handed
+
+
+def test_workers_store_the_same_fits_as_in_process(
+    demo_folder: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     site = load_site(demo_folder / "site.toml")
     source = open_source(site)
+    handed = _spy_workers(monkeypatch)
     results = {}
     for jobs in (1, 2):
         (tmp_path / str(jobs)).mkdir()
         store = SqlStore(_copy_store(site, tmp_path / str(jobs)))
         done: list[tuple[int, int]] = []
         summary = analyze(site, store, source, DEMO_START, END, jobs=jobs,
-                          progress=lambda i, n, done=done: done.append((i, n)))
+                          progress=lambda i, n, done=done: done.append((i, n)),
+                          parallel_after_s=0.0)
         n = len(_spans(site))
         assert n >= 4 and done == [(i, n) for i in range(1, n + 1)]
         results[jobs] = (summary, _fits(store), store.read_screening(), store.read_balance())
         store.close()
+    # the first window in this process (timed), the others in the workers
+    assert handed == [len(_spans(site)) - 1]
     (one, fits1, screen1, bal1), (two, fits2, screen2, bal2) = results[1], results[2]
     assert (one.windows, one.fits, one.fits_ok, one.readings) == (
         two.windows, two.fits, two.fits_ok, two.readings)
@@ -109,7 +129,8 @@ def test_a_failing_window_keeps_every_window_before_it(
     spans = _spans(site)
     store = FailingStore(_copy_store(site, tmp_path), fail_at=spans[2][0])
     with pytest.raises(RuntimeError, match="historian connection lost"):
-        analyze(site, store, open_source(site), DEMO_START, END, jobs=jobs)
+        analyze(site, store, open_source(site), DEMO_START, END, jobs=jobs,
+                parallel_after_s=0.0)
     starts = sorted(set(store.read_fits()["window_start"]))
     # windows after the failing one may have finished in a worker: none is written
     assert starts == [pd.Timestamp(a) for a, _ in spans[:2]]
@@ -128,7 +149,7 @@ def test_an_interrupted_run_keeps_the_windows_written_so_far(
 
     with pytest.raises(KeyboardInterrupt):
         analyze(site, store, open_source(site), DEMO_START, END, jobs=2,
-                progress=stop_after_two)
+                progress=stop_after_two, parallel_after_s=0.0)
     starts = sorted(set(store.read_fits()["window_start"]))
     assert starts == [pd.Timestamp(a) for a, _ in _spans(site)[:2]]
     store.close()
@@ -139,10 +160,23 @@ def test_a_store_that_cannot_be_reopened_is_served_in_process(demo_folder: Path)
     memory = SqlStore("sqlite://")
     with pytest.raises(TypeError, match="in-memory"):
         pickle.dumps(memory)
-    summary = analyze(site, memory, open_source(site), DEMO_START, END, jobs=2)
+    summary = analyze(site, memory, open_source(site), DEMO_START, END, jobs=2,
+                      parallel_after_s=0.0)
     assert summary.windows == len(_spans(site)) >= 2
     assert summary.fits == summary.windows * len(site.branches)
     memory.close()
+
+
+def test_a_short_run_stays_in_process(
+    demo_folder: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # a few small windows take far less than the workers' start: no pool at all
+    site = load_site(demo_folder / "site.toml")
+    handed = _spy_workers(monkeypatch)
+    store = SqlStore(_copy_store(site, tmp_path))
+    summary = analyze(site, store, open_source(site), DEMO_START, END, jobs=2)
+    assert handed == [] and summary.windows == len(_spans(site))
+    store.close()
 
 
 def test_jobs_must_be_positive(demo_folder: Path) -> None:
