@@ -301,12 +301,7 @@ def judge(inj: Injected, res: SiteResult, site: Site) -> Outcome:
             first_right = min(alarms)
     wrong_first = bool(wrong) and (first_right is None
                                    or pd.Timestamp(wrong[0].detected) <= first_right)
-    deadline = pd.Timestamp(inj.deadline)
-    if inj.kind in ("restriction", "back_pressure"):
-        # one day of data after the step: the end of the first whole window after it
-        spans = windows(inj.onset - DAY, inj.onset + 3 * DAY, site.window, site.timezone)
-        after = [we for ws, we in spans if ws >= inj.onset]
-        deadline = pd.Timestamp(after[0]) if after else deadline
+    deadline = pd.Timestamp(inj.deadline)  # steps: 24 h after the onset
     found_in_time = first_right is not None and first_right <= deadline
     delay = (first_right - onset).total_seconds() / 3600 if first_right is not None else math.nan
     return Outcome(found_in_time, first_right is not None, wrong_first, delay)
@@ -314,43 +309,36 @@ def judge(inj: Injected, res: SiteResult, site: Site) -> Outcome:
 
 def summarize(results: list[SiteResult], site: Site, step_s: float) -> None:
     outcomes: dict[str, list[Outcome]] = {k: [] for k in GOALS}
-    within_24h: dict[str, list[bool]] = {k: [] for k in GOALS}
     for res in results:
         for inj in res.injected:
-            o = judge(inj, res, site)
-            outcomes[inj.kind].append(o)
-            within_24h[inj.kind].append(o.found_in_time and o.delay_h <= 24.0)
+            outcomes[inj.kind].append(judge(inj, res, site))
     print(f"\n{len(results)} site-years of the example site ({len(site.branches)} branches), "
           f"samples every {step_s:g} s (1-minute data would be {step_s / 60:g}x the rows), "
           f"daily windows")
-    print(f"{'kind':<14}{'faults':>7}{'in time':>9}{'ever':>7}{'<=24 h':>8}"
-          f"{'wrong kind':>11}{'median delay':>14}  goal")
+    print(f"{'kind':<14}{'faults':>7}{'in time':>9}{'ever':>7}"
+          f"{'wrong kind':>11}{'median delay':>14}{'max delay':>11}  goal")
     met: dict[str, bool] = {}
     labels = {
-        "restriction": "found within 1 day (next whole window), >= 95 %",
+        "restriction": "found within 24 h of the step, >= 95 %",
         "fouling": "found before r passes 1.25, >= 95 %",
-        "back_pressure": "right kind within 1 day (next whole window), >= 90 %",
+        "back_pressure": "right kind within 24 h of the step, >= 90 %",
         "instrument": "frozen meter found within 6 h",
     }
     for kind, rows in outcomes.items():
         n = len(rows)
         in_time = sum(o.found_in_time for o in rows) / n if n else math.nan
         ever = sum(o.found_ever for o in rows) / n if n else math.nan
-        h24 = sum(within_24h[kind]) / n if n else math.nan
         wrong = sum(o.wrong_kind for o in rows) / n if n else math.nan
         delays = [o.delay_h for o in rows if o.found_ever]
         med = float(np.median(delays)) if delays else math.nan
+        top = float(np.max(delays)) if delays else math.nan
         met[kind] = in_time >= GOALS[kind]
-        print(f"{kind:<14}{n:>7}{in_time:>9.0%}{ever:>7.0%}{h24:>8.0%}{wrong:>11.0%}"
-              f"{med:>12.1f} h  {labels[kind]}: {'met' if met[kind] else 'NOT met'}")
-    print("in time: by the goal's time (for steps: the end of the first whole window after "
-          "the step, i.e. one day of data); <=24 h: found right and detected <= 24 h after "
-          "the onset")
-    for kind in ("restriction", "back_pressure"):
-        n = len(within_24h[kind])
-        h24 = sum(within_24h[kind]) / n if n else math.nan
-        print(f"  strict reading for {kind}: {h24:.0%} detected within 24 h of the onset "
-              f"(goal {GOALS[kind]:.0%}: {'met' if h24 >= GOALS[kind] else 'NOT met'})")
+        print(f"{kind:<14}{n:>7}{in_time:>9.0%}{ever:>7.0%}{wrong:>11.0%}"
+              f"{med:>12.1f} h{top:>9.1f} h  {labels[kind]}: "
+              f"{'met' if met[kind] else 'NOT met'}")
+    print("in time: found with the right kind by the goal's time; delay: detected - onset "
+          "(a daily window is analysed when it ends; frozen meters also by the ingest-time "
+          "alarm)")
     clean = sum(r.clean_branch_years for r in results)
     false = [f for r in results for f in r.false_findings]
     rate = len(false) / clean if clean else math.nan

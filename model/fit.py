@@ -60,6 +60,7 @@ __all__ = [
     "OffsetComparison",
     "compare_offset_hypotheses",
     "find_change",
+    "find_level_step",
     "fit_ratio",
     "fit_resistance",
     "offset_hypotheses",
@@ -370,11 +371,35 @@ def _relation_change(
     return ChangePoint(k, float(t[k]), reduction, gain, float(change), "relation")
 
 
-def _level_change(
-    v: NDArray[np.float64], t: NDArray[np.float64], min_head_s: float, min_tail_s: float,
-    min_samples: int,
+def find_level_step(
+    time_s: ArrayLike,
+    values: ArrayLike,
+    *,
+    min_head_s: float = 3600.0,
+    min_tail_s: float = 3600.0,
+    min_samples: int = 6,
+    min_gain: float = 60.0,
+    min_step: float = 1.0e4,
 ) -> ChangePoint | None:
-    """Best single mean shift of a logged pressure [Pa] (prefix sums, one pass)."""
+    """A single step of a logged level — a termination pressure [Pa] — inside a window.
+
+    The best split into two means (prefix sums: every split point in one pass) is kept
+    when the drop of the sum of squares is *min_gain* times the split's residual
+    variance and the step is at least *min_step* (unit of *values*); both parts as in
+    `find_change`. Samples with a NaN are left out; ``index`` refers to *values*.
+
+    >>> t = np.arange(48) * 1800.0
+    >>> v = np.where(t >= 15 * 3600, 2.3e5, 2.0e5) + np.tile([150.0, -150.0], 24)
+    >>> step = find_level_step(t, v)
+    >>> step.time_s / 3600, round(step.change)
+    (15.0, 30000)
+    """
+    t_all = _as_1d("time_s", time_s)
+    v_all = _as_1d("values", values, t_all.shape[0])
+    keep = np.isfinite(t_all) & np.isfinite(v_all)
+    t, v = t_all[keep], v_all[keep]
+    if t.size < 2 * min_samples or np.any(np.diff(t) <= 0):
+        return None
     ks = _candidates(t, min_head_s, min_tail_s, min_samples)
     if ks.size == 0:
         return None
@@ -392,10 +417,13 @@ def _level_change(
     split = sse(0, ks) + sse(ks, n)
     best = int(np.argmin(split))
     k = int(ks[best])
-    step = (c1[n] - c1[k]) / (n - k) - c1[k] / k
+    step = float((c1[n] - c1[k]) / (n - k) - c1[k] / k)
     rest = float(split[best])
     gain = (whole - rest) / max(rest / (n - 2), 1e-300)  # F with 1 and n − 2 dof
-    return ChangePoint(k, float(t[k]), 1.0 - rest / whole, gain, float(step), "end_pressure")
+    if gain < min_gain or abs(step) < min_step:
+        return None
+    index = int(np.flatnonzero(keep)[k])
+    return ChangePoint(index, float(t[k]), 1.0 - rest / whole, gain, step, "end_pressure")
 
 
 def find_change(
@@ -454,19 +482,18 @@ def find_change(
         return None
     inner = keep[win.keep]  # the window's samples that also have a time
     y, x, w = win.y[inner], win.x[inner], win.w[inner]
-    found: list[ChangePoint] = []
+    rel = None
     if win.fit_static or win.static_pa is not None:
         rel = _relation_change(y, x, w, t, min_head_s, min_tail_s, min_samples)
-        if rel is not None and rel.gain >= min_gain and abs(rel.change) >= min_change:
-            found.append(rel)
+    if rel is not None and (rel.gain < min_gain or abs(rel.change) < min_change):
+        rel = None
+    if rel is not None:
+        rel = dataclasses.replace(rel, index=int(np.flatnonzero(keep)[rel.index]))
+    lvl = None
     if end_pressure_pa is not None:
-        pe = _as_1d("end_pressure_pa", end_pressure_pa, win.keep.shape[0])[keep]
-        lvl = _level_change(pe, t, min_head_s, min_tail_s, min_samples)
-        if (lvl is not None and lvl.gain >= min_gain
-                and abs(lvl.change) >= min_pressure_step_pa):
-            found.append(lvl)
-    if not found:
-        return None
-    best = max(found, key=lambda c: c.reduction)
-    index = int(np.flatnonzero(keep)[best.index])
-    return dataclasses.replace(best, index=index)
+        pe = np.where(keep, _as_1d("end_pressure_pa", end_pressure_pa, keep.shape[0]), np.nan)
+        lvl = find_level_step(t_all, pe, min_head_s=min_head_s, min_tail_s=min_tail_s,
+                              min_samples=min_samples, min_gain=min_gain,
+                              min_step=min_pressure_step_pa)
+    found = [c for c in (rel, lvl) if c is not None]
+    return max(found, key=lambda c: c.reduction) if found else None

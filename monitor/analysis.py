@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from model.fit import FitResult, find_change, fit_resistance
+from model.fit import FitResult, find_change, find_level_step, fit_resistance
 from monitor.config import BranchConfig, Site
 from monitor.quality import ScreenSettings, TagLimits, running_mask, screen
 
@@ -114,8 +114,8 @@ def analyze_window(
         ).to_numpy(bool)
         steady = _steady_by_tag(grid, flow_tags, [site.header_pressure_tag], settings)
     base = running & steady.get(site.header_pressure_tag, np.zeros(len(running), bool))
-    fits = [_fit_row(site, branch, grid, base & steady.get(branch.flow_tag or "", base), t0, t1)
-            for branch in site.branches]
+    fits = [_fit_row(site, branch, grid, base & steady.get(branch.flow_tag or "", base), t0, t1,
+                     running) for branch in site.branches]
     keep_all = base.copy()
     for tag in flow_tags:
         keep_all &= steady.get(tag, False)
@@ -209,7 +209,7 @@ def _steady_by_tag(
 
 def _fit_row(
     site: Site, branch: BranchConfig, grid: _Grid, keep: np.ndarray,
-    start: pd.Timestamp, end: pd.Timestamp,
+    start: pd.Timestamp, end: pd.Timestamp, running: np.ndarray,
 ) -> dict[str, Any]:
     row: dict[str, Any] = {"branch": branch.name, "window_start": start, "window_end": end}
     if branch.flow_tag is None or grid.empty:
@@ -237,6 +237,7 @@ def _fit_row(
             ends = grid.column(branch.end_pressure_tag)
             if np.isfinite(ends).any():
                 row["end_pressure_pa"] = float(np.nanmedian(ends))
+            row.update(_tail(branch, grid, mask, running, start, floor, p, q, t, conditions))
         return row
     kwargs = {k: v[mask] for k, v in conditions.items()}
     fit = fit_resistance(
@@ -249,47 +250,64 @@ def _fit_row(
     end_tag = branch.end_pressure_tag
     if end_tag is not None:
         row["end_pressure_pa"] = float(np.median(grid.column(end_tag)[mask]))
-    if fit.usable:
-        row.update(_tail(site, branch, grid, mask, start, floor, p, q, t, conditions))
+    # a window a step came part-way through is also where the robust fit of the whole of
+    # it may not converge: look for the step whatever the status
+    row.update(_tail(branch, grid, mask, running, start, floor, p, q, t, conditions))
     return row
 
 
 def _tail(
-    site: Site, branch: BranchConfig, grid: _Grid, mask: np.ndarray, start: pd.Timestamp,
-    floor: float, p: np.ndarray, q: np.ndarray, t: np.ndarray,
+    branch: BranchConfig, grid: _Grid, mask: np.ndarray, running: np.ndarray,
+    start: pd.Timestamp, floor: float, p: np.ndarray, q: np.ndarray, t: np.ndarray,
     conditions: dict[str, np.ndarray],
 ) -> dict[str, Any]:
-    """The fit of the samples after a step part-way through the window, if there is one.
+    """Where a step part-way through the window came, and the state after it.
 
-    The step is looked for with `model.fit.find_change` (resistance relation, or a logged
-    end pressure); the tail — at least half an hour — is fitted on its own, so the diagnosis
-    sees the new state in the window the step came in instead of a mixture of a day.
+    The step is looked for with `model.fit.find_change` on the fit's samples (resistance
+    relation, or a logged end pressure), else on the logged end pressure alone wherever
+    the pump ran (`model.fit.find_level_step`: a back-pressure step late in the day may
+    leave too few steady flow samples after it). The samples after the step — at least
+    half an hour — are fitted on their own, so the diagnosis sees the new state in the
+    window the step came in instead of a mixture of a day.
     """
     seconds = ((grid.index - start) / pd.Timedelta(seconds=1)).to_numpy(float)
-    kwargs = {k: v[mask] for k, v in conditions.items()}
-    change = find_change(
-        branch.model, time_s=seconds[mask], header_pressure_pa=p[mask], flow_m3s=q[mask],
-        temperature_c=t[mask], min_flow_m3s=floor, min_samples=TAIL_MIN_SAMPLES,
-        min_head_s=TAIL_MIN_S, min_tail_s=TAIL_MIN_S, **kwargs,
-    )
+    change = None
+    if int(mask.sum()) >= 2 * TAIL_MIN_SAMPLES:
+        change = find_change(
+            branch.model, time_s=seconds[mask], header_pressure_pa=p[mask], flow_m3s=q[mask],
+            temperature_c=t[mask], min_flow_m3s=floor, min_samples=TAIL_MIN_SAMPLES,
+            min_head_s=TAIL_MIN_S, min_tail_s=TAIL_MIN_S,
+            **{k: v[mask] for k, v in conditions.items()},
+        )  # fmt: skip
+    ends = None if branch.end_pressure_tag is None else grid.column(branch.end_pressure_tag)
+    if change is None and ends is not None:
+        logged = running & np.isfinite(ends)
+        change = find_level_step(seconds[logged], ends[logged], min_head_s=TAIL_MIN_S,
+                                 min_tail_s=TAIL_MIN_S, min_samples=TAIL_MIN_SAMPLES)
     if change is None:
         return {}
+    out: dict[str, Any] = {"tail_offset_s": change.time_s, "tail_change": change.change}
+    if ends is not None:
+        after = running & np.isfinite(ends) & (seconds >= change.time_s)
+        if after.any():
+            out["tail_end_pressure_pa"] = float(np.median(ends[after]))
     tail = mask & (seconds >= change.time_s)
-    logged: dict[str, Any] = {k: v[tail] for k, v in conditions.items()}
-    fit = fit_resistance(
-        branch.model, header_pressure_pa=p[tail], flow_m3s=q[tail], temperature_c=t[tail],
-        min_flow_m3s=floor, min_samples=TAIL_MIN_SAMPLES, **logged,
-    )
-    if not fit.usable:
-        return {}
-    out: dict[str, Any] = {
-        "tail_offset_s": change.time_s, "tail_change": change.change, "tail_r": fit.r,
-        "tail_r_low": fit.r_low, "tail_r_high": fit.r_high, "tail_samples": fit.samples,
-        "tail_s_pa": fit.s_pa if fit.identifiable and fit.fit_static else math.nan,
-        **{f"tail_{k}": getattr(fit, k) for k in TAIL_SUMS},
-    }
-    if branch.end_pressure_tag is not None:
-        out["tail_end_pressure_pa"] = float(np.median(grid.column(branch.end_pressure_tag)[tail]))
+    fit = None
+    if int(tail.sum()) >= TAIL_MIN_SAMPLES:
+        logged_tail: dict[str, Any] = {k: v[tail] for k, v in conditions.items()}
+        fit = fit_resistance(
+            branch.model, header_pressure_pa=p[tail], flow_m3s=q[tail], temperature_c=t[tail],
+            min_flow_m3s=floor, min_samples=TAIL_MIN_SAMPLES, **logged_tail,
+        )
+    if fit is not None and fit.usable:
+        out.update({
+            "tail_r": fit.r, "tail_r_low": fit.r_low, "tail_r_high": fit.r_high,
+            "tail_samples": fit.samples,
+            "tail_s_pa": fit.s_pa if fit.identifiable and fit.fit_static else math.nan,
+            **{f"tail_{k}": getattr(fit, k) for k in TAIL_SUMS},
+        })  # fmt: skip
+    elif "tail_end_pressure_pa" not in out:
+        return {}  # a step in the relation, but nothing to say about the state after it
     log.debug("%s: step inside the window at %s (%s, %.3g)", branch.name,
               start + pd.Timedelta(seconds=change.time_s), change.signal, change.change)
     return out

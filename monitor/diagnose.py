@@ -611,27 +611,36 @@ def _offset_comparison(
 
 def _read_tails(hist: pd.DataFrame) -> pd.DataFrame:
     """Windows with a tail (`TAIL_COLUMNS`) read as their tail; ``change_at`` is when the
-    window's state began: the step inside it, else the window start."""
+    window's state began: the step inside it, else the window start. A tail may carry a
+    logged end pressure only (a back-pressure step too late for a fit after it)."""
     hist = hist.copy()
     hist["change_at"] = hist["window_start"]
-    if "tail_r" not in hist.columns or "tail_offset_s" not in hist.columns:
+    if "tail_offset_s" not in hist.columns:
         return hist
-    tail = np.isfinite(_numeric(hist, "tail_r")) & np.isfinite(_numeric(hist, "tail_offset_s"))
-    if not tail.any():
+    step = np.isfinite(_numeric(hist, "tail_offset_s"))
+    if not step.any():
         return hist
+    fitted = step & np.isfinite(_numeric(hist, "tail_r"))
+    # the back-pressure was not fitted at all (a known termination) in the whole window:
+    # nor was it in the tail
+    known = np.zeros(len(hist), dtype=bool)
+    if "identifiable" in hist.columns:
+        known = (hist["identifiable"].astype("boolean").fillna(False).to_numpy(bool)
+                 & ~np.isfinite(_numeric(hist, "s_pa")))
     for col, src in TAIL_COLUMNS.items():
         if src not in hist.columns:
             continue
         value = _numeric(hist, src)
+        rows = step if col == "end_pressure_pa" else fitted
         # a tail's s is NaN where it was not identifiable; other NaNs were not logged
-        tail_col = tail if col == "s_pa" else tail & np.isfinite(value)
+        rows = rows if col == "s_pa" else rows & np.isfinite(value)
         if col not in hist.columns or hist[col].dtype == object:
             hist[col] = _numeric(hist, col)
-        hist.loc[tail_col, col] = value[tail_col]
+        hist.loc[rows, col] = value[rows]
     if "identifiable" in hist.columns:
         hist["identifiable"] = hist["identifiable"].astype(object)
-        hist.loc[tail, "identifiable"] = np.isfinite(_numeric(hist, "s_pa"))[tail]
-    offset = np.where(tail, _numeric(hist, "tail_offset_s"), 0.0)
+        hist.loc[fitted, "identifiable"] = (known | np.isfinite(_numeric(hist, "s_pa")))[fitted]
+    offset = np.where(step, _numeric(hist, "tail_offset_s"), 0.0)
     hist["change_at"] = (hist["window_start"] + pd.to_timedelta(offset, unit="s")).dt.floor("s")
     return hist
 
