@@ -130,3 +130,31 @@ def test_screening_counts_name_the_frozen_meter_and_its_branch() -> None:
     assert row["branch"] == "B5-spray"
     assert 120 <= row["frozen"] <= 241
     assert got.screening.set_index("tag").loc["FT-110", "frozen"] == 0
+
+
+@pytest.mark.parametrize(("period", "step_s"), [("1 min", 60.0), ("10 min", 600.0)])
+def test_step_inside_the_window_gives_its_time_and_the_state_after_it(
+    period: str, step_s: float
+) -> None:
+    # B2-compressor's valve is throttled to r = 1.4 at 06:00 of the second day (the
+    # simulated truth): that window's row says when, and fits the samples after it apart;
+    # no other branch and no other window is split.
+    site = _site(period)
+    readings = _readings(site, step_s)
+    rows = {}
+    for day in range(2):
+        a, b = START + timedelta(days=day), START + timedelta(days=day + 1)
+        got = analyze_window(site, readings[(readings["time"] >= a) & (readings["time"] < b)],
+                             a, b)
+        rows.update({(day, f["branch"]): f for f in got.fits})
+    split = {key for key, f in rows.items() if math.isfinite(f.get("tail_offset_s", math.nan))}
+    assert split == {(1, "B2-compressor")}
+    f = rows[(1, "B2-compressor")]
+    # the samples next to the step are not steady and left out: the tail starts at most
+    # half a steady-state window (and a sample) from the step
+    near = screen_settings(site, step_s).steady_window_s / 2 + step_s
+    assert abs(f["tail_offset_s"] - 6 * 3600.0) <= near
+    assert f["tail_r"] == pytest.approx(1.4, rel=0.02)
+    assert f["tail_r_low"] <= f["tail_r"] <= f["tail_r_high"]
+    assert f["tail_change"] == pytest.approx(0.4, abs=0.06)
+    assert f["tail_samples"] < f["samples"]
