@@ -22,7 +22,7 @@ through `SqlStore.store_batch`.
 Wall and CPU time are printed: the machine is shared.
 
     .venv/bin/python benchmarks/analysis_speed.py [--big 500] [--year-branches 100]
-        [--days 8] [--jobs 2] [--profile]
+        [--days 10] [--jobs 2] [--profile]
 """
 
 from __future__ import annotations
@@ -343,7 +343,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--big", type=int, default=500, help="branches of the one-day case")
     parser.add_argument("--year-branches", type=int, default=100)
-    parser.add_argument("--days", type=int, default=8,
+    parser.add_argument("--days", type=int, default=10,
                         help="days of the year case actually run (the year is estimated)")
     parser.add_argument("--jobs", type=int, default=2,
                         help="worker processes of the year case's analyze, which also runs "
@@ -352,9 +352,9 @@ def main() -> None:
     parser.add_argument("--profile", action="store_true",
                         help="print a cProfile of the one-day case's compute")
     args = parser.parse_args()
-    if args.days < args.jobs + 2:
-        parser.error("--days must be at least --jobs + 2 (the steady per-window time needs "
-                     "a window after the workers' first round)")
+    if args.days < args.jobs + 4:
+        parser.error("--days must be at least --jobs + 4 (the steady per-window time needs "
+                     "a few windows after the workers' first round)")
 
     with tempfile.TemporaryDirectory(prefix="bw-speed-") as tmp:
         folder = Path(tmp)
