@@ -497,13 +497,13 @@ def _frozen(
         return out
     v, t, c = values[idx], t_s[idx], codes[idx]
     breaks = np.r_[True, (c[1:] != c[:-1]) | (np.abs(np.diff(v)) > tol[idx][1:])]
-    run = np.cumsum(breaks)
-    df = pd.DataFrame({"run": run, "v": v, "t": t})
-    g = df.groupby("run")
-    span = g["v"].transform("max") - g["v"].transform("min")
-    duration = g["t"].transform("max") - g["t"].transform("min")
+    # Runs are contiguous: their extremes by reduceat over the run starts.
+    starts = np.flatnonzero(breaks)
+    run = np.cumsum(breaks) - 1
+    span = (np.maximum.reduceat(v, starts) - np.minimum.reduceat(v, starts))[run]
+    duration = (np.maximum.reduceat(t, starts) - np.minimum.reduceat(t, starts))[run]
     at_rest = is_flow[idx] & (np.abs(v) <= noise[idx])
-    out[idx] = (duration.to_numpy() >= frozen_s) & (span.to_numpy() <= tol[idx]) & ~at_rest
+    out[idx] = (duration >= frozen_s) & (span <= tol[idx]) & ~at_rest
     return out
 
 
