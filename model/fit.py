@@ -58,11 +58,13 @@ __all__ = [
     "ChangePoint",
     "FitResult",
     "OffsetComparison",
+    "StepRule",
     "compare_offset_hypotheses",
     "find_change",
     "find_level_step",
     "fit_ratio",
     "fit_resistance",
+    "fit_with_change",
     "offset_hypotheses",
 ]
 
@@ -305,7 +307,10 @@ class ChangePoint:
 
 
 def _prefix(*columns: NDArray[np.float64]) -> list[NDArray[np.float64]]:
-    return [np.concatenate([[0.0], np.cumsum(c)]) for c in columns]
+    """Prefix sums of each column, with a leading 0 (one cumsum over all of them)."""
+    stacked = np.zeros((len(columns), columns[0].shape[0] + 1))
+    np.cumsum(np.vstack(columns), axis=1, out=stacked[:, 1:])
+    return list(stacked)
 
 
 def _candidates(t: NDArray[np.float64], min_head_s: float, min_tail_s: float,
@@ -313,7 +318,7 @@ def _candidates(t: NDArray[np.float64], min_head_s: float, min_tail_s: float,
     """Tail starts k (head = samples [0, k)) that leave both parts long enough."""
     n = t.shape[0]
     k = np.arange(n)
-    step = float(np.median(np.diff(t))) if n > 1 else 0.0
+    step = float(np.partition(np.diff(t), (n - 1) // 2)[(n - 1) // 2]) if n > 1 else 0.0
     ok = (k >= min_samples) & (n - k >= min_samples)
     ok &= (t - t[0] >= min_head_s) & (t[-1] - t + step >= min_tail_s)
     return k[ok]
@@ -321,7 +326,7 @@ def _candidates(t: NDArray[np.float64], min_head_s: float, min_tail_s: float,
 
 def _relation_change(
     y: NDArray[np.float64], x: NDArray[np.float64], w: NDArray[np.float64],
-    t: NDArray[np.float64], min_head_s: float, min_tail_s: float, min_samples: int,
+    t: NDArray[np.float64], rule: StepRule,
 ) -> ChangePoint | None:
     """Best split of ``y ≈ r·x + s`` into a head and a tail fitted apart (least squares
     from prefix sums: every split point in one pass).
@@ -330,7 +335,7 @@ def _relation_change(
     back-pressure that differs from the model all day (an unlogged gas blanket) is an
     offset, not a step, and must not split every day where the load turns.
     """
-    ks = _candidates(t, min_head_s, min_tail_s, min_samples)
+    ks = _candidates(t, rule.min_head_s, rule.min_tail_s, rule.min_samples)
     n = y.shape[0]
     if ks.size == 0 or n <= 4:
         return None
@@ -355,6 +360,8 @@ def _relation_change(
     rest = float(split[best])
     reduction = 1.0 - rest / whole
     gain = (whole - rest) / 2.0 / max(rest / (n - 4), 1e-300)  # F with 2 and n − 4 dof
+    if gain < rule.min_gain:
+        return None  # the common case: nothing happened, no need to size it
     # size: one fit of the whole window with the tail allowed either an extra offset or
     # an extra ratio, whichever fits better; as a fraction of the clean dynamic ΔP
     after = (np.arange(n) >= k).astype(float)
@@ -368,6 +375,8 @@ def _relation_change(
             tail_x = float(np.mean(xs[k:]))
             size = coef[2] / tail_x if extra is after else coef[2]
             best_sse, change = e, float(size) if tail_x > 0 else math.nan
+    if not abs(change) >= rule.min_change:
+        return None
     return ChangePoint(k, float(t[k]), reduction, gain, float(change), "relation")
 
 
@@ -426,6 +435,45 @@ def find_level_step(
     return ChangePoint(index, float(t[k]), 1.0 - rest / whole, gain, step, "end_pressure")
 
 
+@dataclass(frozen=True)
+class StepRule:
+    """What counts as a step inside a window (`find_change`): both parts last
+    *min_head_s* / *min_tail_s* [s] and hold *min_samples* samples; the split's F
+    statistic is at least *min_gain* [-]; the change is at least *min_change* of the clean
+    dynamic ΔP [-], or *min_pressure_step_pa* [Pa] for a logged end pressure."""
+
+    min_head_s: float = 3600.0
+    min_tail_s: float = 3600.0
+    min_samples: int = 6
+    min_gain: float = 60.0
+    min_change: float = 0.05
+    min_pressure_step_pa: float = 1.0e4
+
+
+def _change_in(
+    win: _Window, time_s: ArrayLike, end_pressure_pa: ArrayLike | None, rule: StepRule
+) -> ChangePoint | None:
+    t_all = _as_1d("time_s", time_s, win.keep.shape[0])
+    keep = win.keep & np.isfinite(t_all)
+    t = t_all[keep]
+    if t.size < 2 * rule.min_samples or np.any(np.diff(t) <= 0):
+        return None
+    inner = keep[win.keep]  # the window's samples that also have a time
+    rel = None
+    if win.fit_static or win.static_pa is not None:
+        rel = _relation_change(win.y[inner], win.x[inner], win.w[inner], t, rule)
+    if rel is not None:
+        rel = dataclasses.replace(rel, index=int(np.flatnonzero(keep)[rel.index]))
+    lvl = None
+    if end_pressure_pa is not None:
+        pe = np.where(keep, _as_1d("end_pressure_pa", end_pressure_pa, keep.shape[0]), np.nan)
+        lvl = find_level_step(t_all, pe, min_head_s=rule.min_head_s,
+                              min_tail_s=rule.min_tail_s, min_samples=rule.min_samples,
+                              min_gain=rule.min_gain, min_step=rule.min_pressure_step_pa)
+    found = [c for c in (rel, lvl) if c is not None]
+    return max(found, key=lambda c: c.reduction) if found else None
+
+
 def find_change(
     branch: Branch,
     *,
@@ -437,30 +485,25 @@ def find_change(
     end_pressure_pa: ArrayLike | None = None,
     valve_position: ArrayLike | None = None,
     min_flow_m3s: float = 0.0,
-    min_head_s: float = 3600.0,
-    min_tail_s: float = 3600.0,
-    min_samples: int = 6,
-    min_gain: float = 60.0,
-    min_change: float = 0.05,
-    min_pressure_step_pa: float = 1.0e4,
+    rule: StepRule | None = None,
 ) -> ChangePoint | None:
     """A step part-way through one window of one branch, or None.
 
     The window's samples (in time order, *time_s* [s]) are split at every admissible
-    point into a head and a tail, each fitted apart — ``y ≈ r·x`` as in `fit_resistance`,
-    ``y ≈ r·x + s`` where the back-pressure is fitted — and the split that explains most
-    of the one-fit residual is kept when the drop of the residual sum of squares is at
-    least *min_gain* times the split fit's residual variance (a change-point F statistic,
-    with a threshold far above what noise and serially correlated residuals make of the
-    best of a day's split points) and the tail departs from the head's model by at least
-    *min_change* of its clean dynamic ΔP (a throttled valve, a blockage, an unlogged
+    point into a head and a tail, each fitted apart with ``y ≈ r·x + s`` (``y`` and ``x``
+    as in `fit_resistance`), and the split that explains most of the one fit's residual
+    is kept when the drop of the residual sum of squares is at least ``min_gain`` times
+    the split fit's residual variance (a change-point F statistic, with a threshold far
+    above what noise and serially correlated residuals make of the best of a day's split
+    points) and the tail departs from the whole window's model by at least
+    ``min_change`` of its clean dynamic ΔP (a throttled valve, a blockage, an unlogged
     back-pressure step). A logged end pressure is scanned for a single mean shift the
-    same way, kept when it is at least *min_pressure_step_pa* [Pa]. Both parts must last
-    *min_head_s* / *min_tail_s* [s] and hold *min_samples* samples. A fouling ramp never
+    same way (`find_level_step`). Thresholds: *rule* (`StepRule`). A fouling ramp never
     passes: it does not jump.
 
     Fitting the tail alone then gives the new state within the window the step came in,
-    rather than a day's mixture of old and new; the rest as in `fit_resistance`.
+    rather than a day's mixture of old and new. `fit_with_change` does both the fit of
+    the whole window and this search from one evaluation of the model.
     """
     win = _window(
         branch,
@@ -475,25 +518,40 @@ def find_change(
         configured_static_pa=None,
         min_flow_m3s=min_flow_m3s,
     )
-    t_all = _as_1d("time_s", time_s, win.keep.shape[0])
-    keep = win.keep & np.isfinite(t_all)
-    t = t_all[keep]
-    if t.size < 2 * min_samples or np.any(np.diff(t) <= 0):
-        return None
-    inner = keep[win.keep]  # the window's samples that also have a time
-    y, x, w = win.y[inner], win.x[inner], win.w[inner]
-    rel = None
-    if win.fit_static or win.static_pa is not None:
-        rel = _relation_change(y, x, w, t, min_head_s, min_tail_s, min_samples)
-    if rel is not None and (rel.gain < min_gain or abs(rel.change) < min_change):
-        rel = None
-    if rel is not None:
-        rel = dataclasses.replace(rel, index=int(np.flatnonzero(keep)[rel.index]))
-    lvl = None
-    if end_pressure_pa is not None:
-        pe = np.where(keep, _as_1d("end_pressure_pa", end_pressure_pa, keep.shape[0]), np.nan)
-        lvl = find_level_step(t_all, pe, min_head_s=min_head_s, min_tail_s=min_tail_s,
-                              min_samples=min_samples, min_gain=min_gain,
-                              min_step=min_pressure_step_pa)
-    found = [c for c in (rel, lvl) if c is not None]
-    return max(found, key=lambda c: c.reduction) if found else None
+    return _change_in(win, time_s, end_pressure_pa, rule or StepRule())
+
+
+def fit_with_change(
+    branch: Branch,
+    *,
+    time_s: ArrayLike,
+    header_pressure_pa: ArrayLike,
+    flow_m3s: ArrayLike,
+    temperature_c: ArrayLike,
+    level_m: ArrayLike | None = None,
+    end_pressure_pa: ArrayLike | None = None,
+    valve_position: ArrayLike | None = None,
+    min_flow_m3s: float = 0.0,
+    rule: StepRule | None = None,
+    **options: Any,
+) -> tuple[FitResult, ChangePoint | None]:
+    """`fit_resistance` of the window and `find_change` in it, the model evaluated once.
+
+    *options* go to `fit_ratio`; the rest as in those two.
+    """
+    win = _window(
+        branch,
+        header_pressure_pa=header_pressure_pa,
+        flow_m3s=flow_m3s,
+        temperature_c=temperature_c,
+        level_m=level_m,
+        end_pressure_pa=end_pressure_pa,
+        valve_position=valve_position,
+        weights=None,
+        fit_static=None,
+        configured_static_pa=None,
+        min_flow_m3s=min_flow_m3s,
+    )
+    fit = fit_ratio(win.y, win.x, flow=win.q, weights=win.w, fit_static=win.fit_static,
+                    static_pa=win.static_pa, **options)
+    return fit, _change_in(win, time_s, end_pressure_pa, rule or StepRule())

@@ -12,14 +12,21 @@ from __future__ import annotations
 
 import logging
 import math
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, field, fields
 from datetime import datetime
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from model.fit import FitResult, find_change, find_level_step, fit_resistance
+from model.fit import (
+    ChangePoint,
+    FitResult,
+    StepRule,
+    find_level_step,
+    fit_resistance,
+    fit_with_change,
+)
 from monitor.config import BranchConfig, Site
 from monitor.quality import ScreenSettings, TagLimits, running_mask, screen
 
@@ -33,10 +40,9 @@ __all__ = ["WindowAnalysis", "analyze_window", "logging_interval", "screen_setti
 DEFAULT_METER_UNCERTAINTY = 0.02
 #: A window needs this many steady samples for the header balance [-].
 MIN_BALANCE_SAMPLES = 10
-#: Fewest samples on each side of a step inside a window, and in the tail's own fit [-]
-#: (an hour of 10-minute data), and the shortest side [s].
-TAIL_MIN_SAMPLES = 6
-TAIL_MIN_S = 1800.0
+#: A step inside a window: each side at least half an hour and 6 samples (an hour of
+#: 10-minute data), as in the tail's own fit; other thresholds `StepRule`'s.
+TAIL_RULE = StepRule(min_head_s=1800.0, min_tail_s=1800.0, min_samples=6)
 TAIL_SUMS = ("sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy")
 
 
@@ -137,6 +143,7 @@ class _Grid:
     index: pd.DatetimeIndex
     values: np.ndarray  # bins × tags [SI]
     columns: dict[str, int]
+    _seconds: dict[int, np.ndarray] = field(default_factory=dict, compare=False, repr=False)
 
     @classmethod
     def of(
@@ -169,6 +176,13 @@ class _Grid:
 
     def rows(self, keep: np.ndarray) -> _Grid:
         return _Grid(self.index[keep], self.values[keep], self.columns)
+
+    def seconds(self, start: pd.Timestamp) -> np.ndarray:
+        """Bin times as seconds after *start* [s] (computed once per grid)."""
+        key = int(start.value)
+        if key not in self._seconds:
+            self._seconds[key] = ((self.index - start) / pd.Timedelta(seconds=1)).to_numpy(float)
+        return self._seconds[key]
 
     def column(self, tag: str) -> np.ndarray:
         return self.values[:, self.columns[tag]]
@@ -237,12 +251,17 @@ def _fit_row(
             ends = grid.column(branch.end_pressure_tag)
             if np.isfinite(ends).any():
                 row["end_pressure_pa"] = float(np.nanmedian(ends))
-            row.update(_tail(branch, grid, mask, running, start, floor, p, q, t, conditions))
+            seconds = grid.seconds(start)
+            row.update(_tail(branch, grid, mask, running, seconds, None, floor, p, q, t,
+                             conditions))
         return row
     kwargs = {k: v[mask] for k, v in conditions.items()}
-    fit = fit_resistance(
-        branch.model, header_pressure_pa=p[mask], flow_m3s=q[mask], temperature_c=t[mask],
-        min_flow_m3s=floor, **kwargs,
+    seconds = grid.seconds(start)
+    # the whole window's fit, and a step part-way through it (a window a step came in is
+    # also where the robust fit of the whole of it may not converge: looked for anyway)
+    fit, change = fit_with_change(
+        branch.model, time_s=seconds[mask], header_pressure_pa=p[mask], flow_m3s=q[mask],
+        temperature_c=t[mask], min_flow_m3s=floor, rule=TAIL_RULE, **kwargs,
     )
     row.update(_fit_fields(fit))
     row["temperature_c"] = float(np.mean(t[mask]))
@@ -250,40 +269,33 @@ def _fit_row(
     end_tag = branch.end_pressure_tag
     if end_tag is not None:
         row["end_pressure_pa"] = float(np.median(grid.column(end_tag)[mask]))
-    # a window a step came part-way through is also where the robust fit of the whole of
-    # it may not converge: look for the step whatever the status
-    row.update(_tail(branch, grid, mask, running, start, floor, p, q, t, conditions))
+    row.update(_tail(branch, grid, mask, running, seconds, change, floor, p, q, t, conditions))
     return row
 
 
 def _tail(
     branch: BranchConfig, grid: _Grid, mask: np.ndarray, running: np.ndarray,
-    start: pd.Timestamp, floor: float, p: np.ndarray, q: np.ndarray, t: np.ndarray,
-    conditions: dict[str, np.ndarray],
+    seconds: np.ndarray, change: ChangePoint | None, floor: float, p: np.ndarray,
+    q: np.ndarray, t: np.ndarray, conditions: dict[str, np.ndarray],
 ) -> dict[str, Any]:
     """Where a step part-way through the window came, and the state after it.
 
-    The step is looked for with `model.fit.find_change` on the fit's samples (resistance
-    relation, or a logged end pressure), else on the logged end pressure alone wherever
-    the pump ran (`model.fit.find_level_step`: a back-pressure step late in the day may
-    leave too few steady flow samples after it). The samples after the step — at least
-    half an hour — are fitted on their own, so the diagnosis sees the new state in the
-    window the step came in instead of a mixture of a day.
+    *change* is what `model.fit.fit_with_change` found on the fit's samples (resistance
+    relation, or a logged end pressure); without one, the logged end pressure alone is
+    searched wherever the pump ran (`model.fit.find_level_step`: a back-pressure step late
+    in the day may leave too few steady flow samples after it). The samples after the
+    step — at least half an hour — are fitted on their own, so the diagnosis sees the new
+    state in the window the step came in instead of a mixture of a day. *seconds* are
+    the grid's times from the window start [s].
     """
-    seconds = ((grid.index - start) / pd.Timedelta(seconds=1)).to_numpy(float)
-    change = None
-    if int(mask.sum()) >= 2 * TAIL_MIN_SAMPLES:
-        change = find_change(
-            branch.model, time_s=seconds[mask], header_pressure_pa=p[mask], flow_m3s=q[mask],
-            temperature_c=t[mask], min_flow_m3s=floor, min_samples=TAIL_MIN_SAMPLES,
-            min_head_s=TAIL_MIN_S, min_tail_s=TAIL_MIN_S,
-            **{k: v[mask] for k, v in conditions.items()},
-        )  # fmt: skip
     ends = None if branch.end_pressure_tag is None else grid.column(branch.end_pressure_tag)
     if change is None and ends is not None:
         logged = running & np.isfinite(ends)
-        change = find_level_step(seconds[logged], ends[logged], min_head_s=TAIL_MIN_S,
-                                 min_tail_s=TAIL_MIN_S, min_samples=TAIL_MIN_SAMPLES)
+        change = find_level_step(
+            seconds[logged], ends[logged], min_head_s=TAIL_RULE.min_head_s,
+            min_tail_s=TAIL_RULE.min_tail_s, min_samples=TAIL_RULE.min_samples,
+            min_gain=TAIL_RULE.min_gain, min_step=TAIL_RULE.min_pressure_step_pa,
+        )
     if change is None:
         return {}
     out: dict[str, Any] = {"tail_offset_s": change.time_s, "tail_change": change.change}
@@ -293,11 +305,11 @@ def _tail(
             out["tail_end_pressure_pa"] = float(np.median(ends[after]))
     tail = mask & (seconds >= change.time_s)
     fit = None
-    if int(tail.sum()) >= TAIL_MIN_SAMPLES:
+    if int(tail.sum()) >= TAIL_RULE.min_samples:
         logged_tail: dict[str, Any] = {k: v[tail] for k, v in conditions.items()}
         fit = fit_resistance(
             branch.model, header_pressure_pa=p[tail], flow_m3s=q[tail], temperature_c=t[tail],
-            min_flow_m3s=floor, min_samples=TAIL_MIN_SAMPLES, **logged_tail,
+            min_flow_m3s=floor, min_samples=TAIL_RULE.min_samples, **logged_tail,
         )
     if fit is not None and fit.usable:
         out.update({
@@ -308,8 +320,8 @@ def _tail(
         })  # fmt: skip
     elif "tail_end_pressure_pa" not in out:
         return {}  # a step in the relation, but nothing to say about the state after it
-    log.debug("%s: step inside the window at %s (%s, %.3g)", branch.name,
-              start + pd.Timedelta(seconds=change.time_s), change.signal, change.change)
+    log.debug("%s: step inside the window %.0f s after its start (%s, %.3g)", branch.name,
+              change.time_s, change.signal, change.change)
     return out
 
 
