@@ -408,9 +408,6 @@ def _hampel(
     half = HAMPEL_WINDOW // 2
     padded = np.pad(values, half, constant_values=np.nan)
     padded_codes = np.pad(codes, half, constant_values=-1)
-    win = np.lib.stride_tricks.sliding_window_view(padded, HAMPEL_WINDOW).copy()
-    win_codes = np.lib.stride_tricks.sliding_window_view(padded_codes, HAMPEL_WINDOW)
-    win[win_codes != codes[:, None]] = np.nan
     # A window of identical values has MAD 0, and the MAD of 7 noisy samples is often
     # far below the true scatter: Hampel's rule alone flags a few % of plain Gaussian
     # noise. Flooring the scale at the tag's noise (configured, and estimated from the
@@ -418,16 +415,24 @@ def _hampel(
     base_floor = np.maximum(noise, _noise_estimate(values, codes))
     # The median lies between the window's least and greatest value, so a sample within
     # k·floor of all of them cannot be flagged: medians (two sorts per window) are taken
-    # only for the rest — most samples of a quiet signal are settled by this bound, and
-    # windows with a missing value always go the full way.
+    # only for the rest — most samples of a quiet signal are settled by this bound. The
+    # bound may take in neighbours of another tag (they only widen it) and skips missing
+    # values (the median does too); a missing sample itself always goes the full way.
+    low, high = values.copy(), values.copy()
+    for j in range(HAMPEL_WINDOW):
+        if j != half:
+            np.fmin(low, padded[j : j + n], out=low)
+            np.fmax(high, padded[j : j + n], out=high)
     with np.errstate(invalid="ignore"):
-        reach = np.maximum(values - win.min(axis=1), win.max(axis=1) - values)
-        maybe = ~(reach <= k * base_floor)
+        maybe = ~(np.maximum(values - low, high - values) <= k * base_floor)
     out = np.zeros(n, dtype=bool)
     idx = np.flatnonzero(maybe)
     if len(idx) == 0:
         return out
-    win, x = win[idx], values[idx]
+    win = np.lib.stride_tricks.sliding_window_view(padded, HAMPEL_WINDOW)[idx]  # a copy
+    win_codes = np.lib.stride_tricks.sliding_window_view(padded_codes, HAMPEL_WINDOW)[idx]
+    x = values[idx]
+    win[win_codes != codes[idx, None]] = np.nan
     med = _rolling_median(win)
     mad = _rolling_median(np.abs(win - med[:, None]))
     floor = np.maximum(base_floor[idx], noise_rel[idx] * np.abs(med))

@@ -124,6 +124,43 @@ def test_hampel_matches_its_definition_on_quantised_readings() -> None:
     assert 0 < expected.sum() < 60
 
 
+def _hampel_with_gaps_by_definition(x: np.ndarray, floor: float, floor_rel: float) -> np.ndarray:
+    """Hampel 1974 on one tag with missing samples: the window's known values only, and
+    a majority of the 7 must be known; the noise σ from successive known samples."""
+    known = x[np.isfinite(x)]
+    sigma = 1.4826 * np.median(np.abs(np.diff(known))) / np.sqrt(2.0)
+    out = np.zeros(len(x), dtype=bool)
+    for i in range(len(x)):
+        w = x[max(0, i - 3) : i + 4]
+        w = w[np.isfinite(w)]
+        if len(w) <= 3 or not np.isfinite(x[i]):
+            continue
+        med = np.median(w)
+        mad = np.median(np.abs(w - med))
+        out[i] = abs(x[i] - med) > 3.0 * max(1.4826 * mad, floor, floor_rel * abs(med), sigma)
+    return out
+
+
+def test_hampel_matches_its_definition_with_gaps_and_tag_edges() -> None:
+    # Missing samples and tag boundaries inside windows: the shortcut that skips the
+    # medians of quiet samples must not change a flag.
+    rng = np.random.default_rng(11)
+    parts, expected = [], {}
+    for j, (tag, level, sigma) in enumerate(
+        [("FT-101", 0.03, 3e-4), ("FT-102", 0.031, 1e-5), ("FT-103", 0.002, 2e-4)]
+    ):
+        x = level + rng.normal(0.0, sigma, 300)
+        x[rng.choice(300, 12, replace=False)] += rng.choice([-1, 1], 12) * 8 * sigma
+        x[rng.choice(300, 25, replace=False)] = np.nan
+        x[:2] += 10 * sigma * (j + 1)  # spikes where the window meets the previous tag
+        parts.append(_series(tag, x))
+        expected[tag] = _hampel_with_gaps_by_definition(x, FLOW.noise_si, FLOW.noise_rel_si)
+    res = screen(pd.concat(parts), {t: FLOW for t in expected})
+    for tag, want in expected.items():
+        np.testing.assert_array_equal(res.for_tag(tag)["spike"].to_numpy(), want)
+    assert sum(int(w.sum()) for w in expected.values()) >= 10
+
+
 def test_implausible_rate_is_flagged_once() -> None:
     values = _noisy(120, 3.0e5, 300.0, seed=2)
     values[60:] += 4.0e5  # +4 bar within one second: no pump or valve does that
