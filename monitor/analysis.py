@@ -120,11 +120,19 @@ def analyze_window(
         ).to_numpy(bool)
         steady = _steady_by_tag(grid, flow_tags, [site.header_pressure_tag], settings)
     base = running & steady.get(site.header_pressure_tag, np.zeros(len(running), bool))
-    fits = [_fit_row(site, branch, grid, base & steady.get(branch.flow_tag or "", base), t0, t1,
-                     running) for branch in site.branches]
     keep_all = base.copy()
     for tag in flow_tags:
         keep_all &= steady.get(tag, False)
+    inferred = _inferred_flow(site, grid)
+    fits = []
+    for branch in site.branches:
+        if branch.flow_tag is None and inferred is not None and inferred[0] == branch.name:
+            # every metered flow steady: the difference is as steady as they are
+            fits.append(_fit_row(site, branch, grid, keep_all, t0, t1, running,
+                                 flow=inferred[1]))
+        else:
+            keep = base & steady.get(branch.flow_tag or "", base)
+            fits.append(_fit_row(site, branch, grid, keep, t0, t1, running))
     balance = _balance(site, grid, keep_all, t0, t1)
     return WindowAnalysis(
         fits=fits, screening=screening, balance=balance, health=health, samples=len(readings)
@@ -224,13 +232,17 @@ def _steady_by_tag(
 def _fit_row(
     site: Site, branch: BranchConfig, grid: _Grid, keep: np.ndarray,
     start: pd.Timestamp, end: pd.Timestamp, running: np.ndarray,
+    flow: np.ndarray | None = None,
 ) -> dict[str, Any]:
+    """The fit row of one branch; *flow* [m^3/s] stands in for a branch without a meter."""
     row: dict[str, Any] = {"branch": branch.name, "window_start": start, "window_end": end}
-    if branch.flow_tag is None or grid.empty:
-        return {**row, **_empty("no flow meter on this branch" if branch.flow_tag is None
-                                else "no readings in this window")}
+    if (branch.flow_tag is None and flow is None) or grid.empty:
+        return {**row, **_empty("no readings in this window" if grid.empty else
+                                "no flow meter on this branch, and its flow cannot be had "
+                                "from the header balance (it needs the total flow meter and "
+                                "every other branch metered)")}
     p = grid.column(site.header_pressure_tag)
-    q = grid.column(branch.flow_tag)
+    q = flow if flow is not None else grid.column(branch.flow_tag or "")
     if site.header_temperature_tag is not None:
         t = grid.column(site.header_temperature_tag)
     else:
@@ -264,6 +276,14 @@ def _fit_row(
         temperature_c=t[mask], min_flow_m3s=floor, rule=TAIL_RULE, **kwargs,
     )
     row.update(_fit_fields(fit))
+    if flow is not None:
+        # r ∝ 1/Q²: a flow off by δQ reads as r off by about 2·δQ/Q, the same every day
+        # (changes of r still show; its level is this uncertain)
+        u_m3h = _balance_u(site, grid, mask)
+        rel = 2.0 * u_m3h / (3600.0 * float(np.mean(q[mask])))
+        row["message"] = (f"{row['message']}; flow from the header balance (total meter "
+                          f"minus the metered branches, ±{u_m3h:.1f} m3/h at 95 %, so the "
+                          f"level of r is uncertain by about ±{100 * rel:.0f} %)")
     row["temperature_c"] = float(np.mean(t[mask]))
     row["header_pressure_pa"] = float(np.mean(p[mask]))
     end_tag = branch.end_pressure_tag
@@ -376,6 +396,27 @@ def _screening_counts(
             out[c] = np.zeros(len(tags), dtype="int64")
     out["samples"] = np.bincount(codes, minlength=len(tags)).astype("int64")
     return pd.DataFrame(out)
+
+
+def _inferred_flow(site: Site, grid: _Grid) -> tuple[str, np.ndarray] | None:
+    """(name, flow per bin [m^3/s]) of the one branch without a flow meter, from the header
+    balance: total meter − Σ metered branches (NaN where any is missing); None unless the
+    site has a total meter and exactly one unmetered branch."""
+    unmetered = [b for b in site.branches if b.flow_tag is None]
+    if site.total_flow_tag is None or len(unmetered) != 1 or grid.empty:
+        return None
+    metered = [grid.columns[b.flow_tag] for b in site.branches if b.flow_tag is not None]
+    flow = grid.column(site.total_flow_tag) - grid.values[:, metered].sum(axis=1)
+    return unmetered[0].name, flow
+
+
+def _balance_u(site: Site, grid: _Grid, mask: np.ndarray) -> float:
+    """Expanded (95 %) uncertainty of the balance's flow over the *mask* samples [m3/h]:
+    each meter's ±``[analysis] meter_uncertainty`` of its mean reading, combined."""
+    tags = [site.total_flow_tag, *(b.flow_tag for b in site.branches)]
+    means = [float(np.mean(grid.column(t)[mask])) for t in tags if t is not None]
+    u = site.analysis.meter_uncertainty
+    return 3600.0 * math.sqrt(sum((u * m) ** 2 for m in means))
 
 
 def _balance(

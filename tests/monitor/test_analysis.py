@@ -158,3 +158,26 @@ def test_step_inside_the_window_gives_its_time_and_the_state_after_it(
     assert f["tail_r_low"] <= f["tail_r"] <= f["tail_r_high"]
     assert f["tail_change"] == pytest.approx(0.4, abs=0.06)
     assert f["tail_samples"] < f["samples"]
+
+
+def test_unmetered_branch_is_fitted_from_the_header_balance() -> None:
+    # B6-chiller without its meter: its flow is the total meter less the five metered
+    # branches, and its r comes out as with the meter (simulated truth r = 1.0; the
+    # combined meter noise of six meters widens the interval, not the estimate).
+    metered = _site("1 min")
+    doc = tomllib.loads(EXAMPLE.read_text(encoding="utf-8"))
+    doc["analysis"]["sample_period"] = "1 min"
+    six = next(b for b in doc["branch"] if b["name"] == "B6-chiller")
+    del six["flow"]
+    six.pop("min_flow", None)
+    site = parse_site(doc, path=EXAMPLE)
+    readings = _readings(metered, 60.0)
+    a, b = START, START + timedelta(days=1)
+    part = readings[(readings["time"] >= a) & (readings["time"] < b)]
+    with_meter = {f["branch"]: f for f in analyze_window(metered, part, a, b).fits}
+    without = {f["branch"]: f for f in analyze_window(site, part, a, b).fits}
+    got, want = without["B6-chiller"], with_meter["B6-chiller"]
+    assert got["status"] == "ok" and "header balance" in got["message"], got["message"]
+    assert got["r"] == pytest.approx(want["r"], rel=0.03)
+    assert "uncertain by about" in got["message"]  # the meters set how well the level is known
+    assert without["B5-spray"]["r"] == pytest.approx(with_meter["B5-spray"]["r"], rel=1e-9)
