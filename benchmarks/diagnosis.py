@@ -54,7 +54,7 @@ from monitor.analysis import analyze_window
 from monitor.config import Site, parse_site
 from monitor.demo import simulate_site
 from monitor.diagnose import Finding, diagnose
-from monitor.jobs import _alarm_checks, diagnosis_settings, windows
+from monitor.jobs import alarm_checks, diagnosis_settings, windows
 
 EXAMPLE = Path(__file__).resolve().parent.parent / "config" / "example-site.toml"
 YEAR_START = datetime(2026, 1, 1, tzinfo=UTC)
@@ -230,7 +230,7 @@ def frozen_alarms(site: Site, sim: Simulation) -> list[tuple[str, datetime]]:
     every = pd.Timedelta(seconds=site.schedule.ingest_every)
     times = pd.DatetimeIndex(sim.times).tz_localize("UTC")
     out: list[tuple[str, datetime]] = []
-    for branch, condition, tag, _ in _alarm_checks(site):
+    for branch, condition, tag, _ in alarm_checks(site):
         if not condition.startswith("frozen") or tag not in sim.values:
             continue
         series = pd.Series(sim.values[tag], index=times)
@@ -367,7 +367,7 @@ def summarize(results: list[SiteResult], site: Site, step_s: float) -> None:
              if not any(i.kind == "instrument" and i.tag == tag
                         and pd.Timestamp(i.onset) <= pd.Timestamp(t) <= pd.Timestamp(i.horizon)
                         for i in r.injected)]
-    checked = sum(1 for _, c, _, _ in _alarm_checks(site) if c.startswith("frozen"))
+    checked = sum(1 for _, c, _, _ in alarm_checks(site) if c.startswith("frozen"))
     print(f"frozen-meter alarms (ingest-time check) on live meters: {len(stray)} over "
           f"{checked * len(results)} tag-years")
     print(f"header imbalance findings: {imbalance} in {len(results)} site-years "

@@ -301,21 +301,25 @@ def _tail(
     """Where a step part-way through the window came, and the state after it.
 
     *change* is what `model.fit.fit_with_change` found on the fit's samples (resistance
-    relation, or a logged end pressure); without one, the logged end pressure alone is
-    searched wherever the pump ran (`model.fit.find_level_step`: a back-pressure step late
-    in the day may leave too few steady flow samples after it). The samples after the
+    relation, or a logged end pressure). A logged end pressure is searched again wherever
+    the pump ran (`model.fit.find_level_step`), and a step found there wins: it is dated
+    better, and a back-pressure step late in the day may leave too few steady flow
+    samples after it for the fit's samples to show it. The samples after the
     step — at least half an hour — are fitted on their own, so the diagnosis sees the new
     state in the window the step came in instead of a mixture of a day. *seconds* are
     the grid's times from the window start [s].
     """
     ends = None if branch.end_pressure_tag is None else grid.column(branch.end_pressure_tag)
-    if change is None and ends is not None:
+    if ends is not None:
+        # the logged end pressure wherever the pump ran dates its own step best: the
+        # steady flow samples may be sparse just after it
         logged = running & np.isfinite(ends)
-        change = find_level_step(
+        step = find_level_step(
             seconds[logged], ends[logged], min_head_s=TAIL_RULE.min_head_s,
             min_tail_s=TAIL_RULE.min_tail_s, min_samples=TAIL_RULE.min_samples,
             min_gain=TAIL_RULE.min_gain, min_step=TAIL_RULE.min_pressure_step_pa,
         )
+        change = step or change
     if change is None:
         return {}
     out: dict[str, Any] = {"tail_offset_s": change.time_s, "tail_change": change.change}

@@ -397,10 +397,22 @@ _FIT_CSV_COLUMNS = (
     "branch", "window_start", "window_end", "r", "r_low", "r_high", "samples", "status",
     "s_pa", "identifiable", "flow_min_m3s", "flow_max_m3s", "mean_flow_m3s",
     "residual_std_pa", "temperature_c", "header_pressure_pa", "message",
+    "step_at", "r_after_step", "r_after_step_low", "r_after_step_high",
 )
 
 
 def _write_fits_csv(fits: pd.DataFrame, path: Path) -> None:
+    """One row per branch and window; where a step came part-way through a window,
+    ``step_at`` says when (UTC) and ``r_after_step`` what the samples after it give."""
+    fits = fits.copy()
+    if "tail_offset_s" in fits.columns:
+        offset = pd.to_numeric(fits["tail_offset_s"], errors="coerce")
+        at = fits["window_start"] + pd.to_timedelta(offset, unit="s")
+        fits["step_at"] = [t.floor("s").isoformat() if pd.notna(t) else "" for t in at]
+        for src, dst in (("tail_r", "r_after_step"), ("tail_r_low", "r_after_step_low"),
+                         ("tail_r_high", "r_after_step_high")):
+            if src in fits.columns:
+                fits[dst] = fits[src]
     cols = [c for c in _FIT_CSV_COLUMNS if c in fits.columns]
     out = fits[cols].copy()
     for c in ("window_start", "window_end"):

@@ -57,10 +57,12 @@ __all__ = [
     "PARALLEL_AFTER_S",
     "AnalyzeSummary",
     "IngestSummary",
+    "alarm_checks",
     "analyze",
     "analyze_windows",
     "catch_up",
     "diagnose_site",
+    "diagnosis_settings",
     "evaluate_alarms",
     "ingest",
     "open_source",
@@ -416,7 +418,8 @@ def diagnosis_settings(site: Site) -> DiagnosisSettings:
                 min_flow_m3s=b.min_flow_m3s if b.min_flow_m3s > 0 else None,
             )
             for b in site.branches
-        }
+        },
+        timezone=site.timezone,
     )
 
 
@@ -571,7 +574,7 @@ def evaluate_alarms(
         for r in stored.to_dict(orient="records")
     }
     findings = _open_findings(store)
-    checks = _alarm_checks(site)
+    checks = alarm_checks(site)
     tags = sorted({tag for _, _, tag, _ in checks})
     since_all = min(
         (states[(b, c)].last_sample or now - timedelta(seconds=ALARM_FIRST_LOOKBACK_S)
@@ -613,7 +616,7 @@ def evaluate_alarms(
     return events
 
 
-def _alarm_checks(site: Site) -> list[tuple[str, str, str, float | None]]:
+def alarm_checks(site: Site) -> list[tuple[str, str, str, float | None]]:
     """(branch, condition, tag, limit) of every near-real-time check of the site.
 
     A tag shared by several branches (a common return header) is judged once, under

@@ -61,10 +61,17 @@ def test_each_fault_is_found_and_named_right(demo: dict[str, Any]) -> None:
     back_pressure = _found(demo, "B4-process", "back_pressure")
     instrument = _found(demo, "B3-quench", "instrument")
     assert fouling and restriction and back_pressure and instrument
-    # dated near the truth (demo_faults): throttled valve on day 70, set point on day 95
-    day = timedelta(days=1)
-    assert abs(restriction[0].start - (DEMO_START + 70 * day)) <= 1.5 * day
-    assert abs(back_pressure[0].start - (DEMO_START + 95 * day)) <= 1.5 * day
+    # dated to the hour of the truth (demo_faults): throttled valve on day 70 at 09:30,
+    # set point raised on day 95 at 14:00 (10-minute data: the samples within half an
+    # hour of a step are not steady) — and found within a day of it (issue 4 goal)
+    day, hour = timedelta(days=1), timedelta(hours=1)
+    for found, truth in ((restriction[0], DEMO_START + 70 * day + 9.5 * hour),
+                         (back_pressure[0], DEMO_START + 95 * day + 14 * hour)):
+        assert abs(found.start - truth) <= hour, found
+        assert found.detected - truth <= day, found
+    # the message dates the step in the site's time zone, as the report does
+    local = pd.Timestamp(restriction[0].start).tz_convert(demo["site"].timezone)
+    assert f"{local:%Y-%m-%d %H:%M}" in restriction[0].message
     # the frozen meter (days 120-124) is an instrument fault, never fouling of B3
     assert not _found(demo, "B3-quench", "fouling")
     assert instrument[0].start >= DEMO_START + 119 * day
@@ -157,7 +164,7 @@ def test_cli_analyze_writes_findings_and_fits_files(
             "message"} <= set(rows[0])
     table = pd.read_csv(fits)
     assert {"branch", "window_start", "window_end", "r", "r_low", "r_high",
-            "samples"} <= set(table.columns)
+            "samples", "step_at", "r_after_step"} <= set(table.columns)
     assert main(["status", site_file]) == 0
     assert "open findings" in capsys.readouterr().out
 
