@@ -57,10 +57,15 @@ def utc_datetime(value: Any, name: str) -> datetime:
 
 metadata = sa.MetaData()
 T = UTCDateTime
+#: A tag name: compared byte for byte everywhere (a binary collation on MariaDB/MySQL,
+#: whose default compares text case-blind; added by 0005_tag_case).
+Tag = sa.String(100).with_variant(
+    mysql.VARCHAR(100, charset="utf8mb4", collation="utf8mb4_bin"), "mysql", "mariadb"
+)
 readings_t = sa.Table(
     "readings",
     metadata,
-    sa.Column("tag", sa.String(100), primary_key=True),
+    sa.Column("tag", Tag, primary_key=True),
     sa.Column("time", T(), primary_key=True),
     sa.Column("value", sa.Double()),
     sa.Column("good", sa.Boolean(), nullable=False),
@@ -182,7 +187,7 @@ job_runs_t = sa.Table(
 data_health_t = sa.Table(
     "data_health",
     metadata,
-    sa.Column("tag", sa.String(100), primary_key=True),
+    sa.Column("tag", Tag, primary_key=True),
     sa.Column("day", sa.Date(), primary_key=True),
     sa.Column("flag", sa.String(40), primary_key=True),
     sa.Column("count", sa.BigInteger(), nullable=False),
@@ -193,7 +198,7 @@ window_checks_t = sa.Table(
     sa.Column("branch", sa.String(100), primary_key=True),
     sa.Column("window_start", T(), primary_key=True),
     sa.Column("window_end", T(), primary_key=True),
-    sa.Column("tag", sa.String(100), primary_key=True),
+    sa.Column("tag", Tag, primary_key=True),
     sa.Column("frozen", sa.BigInteger(), nullable=False),
     sa.Column("out_of_range", sa.BigInteger(), nullable=False),
     sa.Column("spikes", sa.BigInteger(), nullable=False),
@@ -212,7 +217,7 @@ header_balance_t = sa.Table(
 readings_raw = sa.Table(
     "readings",
     sa.MetaData(),
-    sa.Column("tag", sa.String(100), primary_key=True),
+    sa.Column("tag", Tag, primary_key=True),
     sa.Column("time", sa.types.NullType(), primary_key=True),
     sa.Column("value", sa.Double()),
     sa.Column("good", sa.Boolean(), nullable=False),

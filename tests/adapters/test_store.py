@@ -127,7 +127,7 @@ def test_migrations_create_schema_and_reopen_is_a_noop(opener: Any) -> None:
             MigrationContext.configure(
                 conn, opts={"version_table": "branchwatch_schema_version"}
             ).get_current_revision()
-            == "0004_window_tail"
+            == "0005_tag_case"
         )
         # The tables the store queries through agree with what the migration built.
         diff = compare_metadata(MigrationContext.configure(conn), tables.metadata)
@@ -138,7 +138,7 @@ def test_migrations_create_schema_and_reopen_is_a_noop(opener: Any) -> None:
     assert len(_all(second, ["FT-203"])) == 3
     with second.engine.connect() as conn:
         versions = conn.execute(sa.text("SELECT version_num FROM branchwatch_schema_version"))
-        assert [v for (v,) in versions] == ["0004_window_tail"]
+        assert [v for (v,) in versions] == ["0005_tag_case"]
 
 
 def test_store_batch_is_idempotent(store: SqlStore) -> None:
@@ -503,3 +503,15 @@ def test_an_old_schema_is_upgraded_in_place(opener: Any) -> None:
     fits = new.read_fits()
     assert list(fits["r"]) == [1.1] and math.isnan(fits["sum_w"].iloc[0])
     assert new.cursors("csv")["inbox/a.csv"]["offset"] == 100
+
+
+def test_tags_differing_only_in_case_are_two_tags(store: SqlStore) -> None:
+    # ISA-5.1 tags are upper case by habit, but a historian may export both spellings:
+    # on every backend they are two series (MariaDB's default collation would make the
+    # second a duplicate of the first and drop it; migration 0005 makes tags binary).
+    frame = pd.concat([_readings(4, ["FT-203"]), _readings(4, ["ft-203"])], ignore_index=True)
+    frame.loc[frame["tag"] == "ft-203", "value"] = -1.0
+    assert store.store_batch(_batch(frame), source="csv") == 8
+    out = _all(store, ["FT-203", "ft-203"])
+    assert sorted(out.groupby("tag").size().items()) == [("FT-203", 4), ("ft-203", 4)]
+    assert (out.loc[out["tag"] == "ft-203", "value"] == -1.0).all()
