@@ -60,7 +60,6 @@ __all__ = [
     "OffsetComparison",
     "StepRule",
     "compare_offset_hypotheses",
-    "find_change",
     "find_level_step",
     "fit_ratio",
     "fit_resistance",
@@ -286,7 +285,7 @@ class ChangePoint:
 
     Attributes
     ----------
-    index : first sample of the tail, as an index into the arrays given to `find_change`
+    index : first sample of the tail, as an index into the arrays given to `fit_with_change`
     time_s : its time [s], on the caller's clock
     reduction : 1 − SSE(head and tail fitted apart) / SSE(one fit) [-]
     gain : that drop of the SSE over the residual variance of the split fit [-]: about
@@ -395,7 +394,7 @@ def find_level_step(
     The best split into two means (prefix sums: every split point in one pass) is kept
     when the drop of the sum of squares is *min_gain* times the split's residual
     variance and the step is at least *min_step* (unit of *values*); both parts as in
-    `find_change`. Samples with a NaN are left out; ``index`` refers to *values*.
+    `fit_with_change`. Samples with a NaN are left out; ``index`` refers to *values*.
 
     >>> t = np.arange(48) * 1800.0
     >>> v = np.where(t >= 15 * 3600, 2.3e5, 2.0e5) + np.tile([150.0, -150.0], 24)
@@ -437,7 +436,7 @@ def find_level_step(
 
 @dataclass(frozen=True)
 class StepRule:
-    """What counts as a step inside a window (`find_change`): both parts last
+    """What counts as a step inside a window (`fit_with_change`): both parts last
     *min_head_s* / *min_tail_s* [s] and hold *min_samples* samples; the split's F
     statistic is at least *min_gain* [-]; the change is at least *min_change* of the clean
     dynamic ΔP [-], or *min_pressure_step_pa* [Pa] for a logged end pressure."""
@@ -474,53 +473,6 @@ def _change_in(
     return max(found, key=lambda c: c.reduction) if found else None
 
 
-def find_change(
-    branch: Branch,
-    *,
-    time_s: ArrayLike,
-    header_pressure_pa: ArrayLike,
-    flow_m3s: ArrayLike,
-    temperature_c: ArrayLike,
-    level_m: ArrayLike | None = None,
-    end_pressure_pa: ArrayLike | None = None,
-    valve_position: ArrayLike | None = None,
-    min_flow_m3s: float = 0.0,
-    rule: StepRule | None = None,
-) -> ChangePoint | None:
-    """A step part-way through one window of one branch, or None.
-
-    The window's samples (in time order, *time_s* [s]) are split at every admissible
-    point into a head and a tail, each fitted apart with ``y ≈ r·x + s`` (``y`` and ``x``
-    as in `fit_resistance`), and the split that explains most of the one fit's residual
-    is kept when the drop of the residual sum of squares is at least ``min_gain`` times
-    the split fit's residual variance (a change-point F statistic, with a threshold far
-    above what noise and serially correlated residuals make of the best of a day's split
-    points) and the tail departs from the whole window's model by at least
-    ``min_change`` of its clean dynamic ΔP (a throttled valve, a blockage, an unlogged
-    back-pressure step). A logged end pressure is scanned for a single mean shift the
-    same way (`find_level_step`). Thresholds: *rule* (`StepRule`). A fouling ramp never
-    passes: it does not jump.
-
-    Fitting the tail alone then gives the new state within the window the step came in,
-    rather than a day's mixture of old and new. `fit_with_change` does both the fit of
-    the whole window and this search from one evaluation of the model.
-    """
-    win = _window(
-        branch,
-        header_pressure_pa=header_pressure_pa,
-        flow_m3s=flow_m3s,
-        temperature_c=temperature_c,
-        level_m=level_m,
-        end_pressure_pa=end_pressure_pa,
-        valve_position=valve_position,
-        weights=None,
-        fit_static=None,
-        configured_static_pa=None,
-        min_flow_m3s=min_flow_m3s,
-    )
-    return _change_in(win, time_s, end_pressure_pa, rule or StepRule())
-
-
 def fit_with_change(
     branch: Branch,
     *,
@@ -535,9 +487,23 @@ def fit_with_change(
     rule: StepRule | None = None,
     **options: Any,
 ) -> tuple[FitResult, ChangePoint | None]:
-    """`fit_resistance` of the window and `find_change` in it, the model evaluated once.
+    """`fit_resistance` of one window, and a step part-way through it (or None).
 
-    *options* go to `fit_ratio`; the rest as in those two.
+    The window's samples (in time order, *time_s* [s]) are split at every admissible
+    point into a head and a tail, each fitted apart with ``y ≈ r·x + s`` (``y`` and ``x``
+    as in `fit_resistance`), and the split that explains most of the one fit's residual
+    is kept when the drop of the residual sum of squares is at least ``min_gain`` times
+    the split fit's residual variance (a change-point F statistic, with a threshold far
+    above what noise and serially correlated residuals make of the best of a day's split
+    points) and the tail departs from the whole window's model by at least
+    ``min_change`` of its clean dynamic ΔP (a throttled valve, a blockage, an unlogged
+    back-pressure step). A logged end pressure is scanned for a single mean shift the
+    same way (`find_level_step`). Thresholds: *rule* (`StepRule`). A fouling ramp never
+    passes: it does not jump. Fitting the tail alone then gives the new state within the
+    window the step came in, rather than a day's mixture of old and new.
+
+    The model is evaluated once for both. *options* go to `fit_ratio`; the rest as in
+    `fit_resistance`. Returns ``(FitResult, ChangePoint | None)``.
     """
     win = _window(
         branch,

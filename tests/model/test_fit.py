@@ -12,9 +12,9 @@ from model.branch import Branch, HeldHeader, Tank
 from model.elements import ControlValve, Equipment, Fittings, Pipe
 from model.fit import (
     compare_offset_hypotheses,
-    find_change,
     fit_ratio,
     fit_resistance,
+    fit_with_change,
     offset_hypotheses,
 )
 
@@ -336,7 +336,7 @@ def _day(rng: np.random.Generator, n: int = 288) -> tuple[np.ndarray, np.ndarray
 
 
 @pytest.mark.parametrize("at_h", [2.0, 13.5, 22.5])
-def test_find_change_places_a_restriction_step_inside_the_window(at_h: float) -> None:
+def test_step_search_places_a_restriction_step_inside_the_window(at_h: float) -> None:
     rng = np.random.default_rng(int(at_h * 10))
     b = _header_branch()
     time_s, p = _day(rng)
@@ -345,7 +345,7 @@ def test_find_change_places_a_restriction_step_inside_the_window(at_h: float) ->
     q = np.array([float(b.flow(pi, temperature_c=20.0, resistance_ratio=ri, end_pressure_pa=end))
                   for pi, ri in zip(p, ratio, strict=True)])
     pe = 1.5 * BAR + 300.0 * rng.standard_normal(p.size)
-    cp = find_change(
+    _, cp = fit_with_change(
         b, time_s=time_s, header_pressure_pa=_noisy(rng, p, 0.0, 300.0),
         flow_m3s=_noisy(rng, q, 0.004, 0.0), temperature_c=20.0, end_pressure_pa=pe,
     )  # fmt: skip
@@ -360,7 +360,7 @@ def test_find_change_places_a_restriction_step_inside_the_window(at_h: float) ->
     assert tail.r == pytest.approx(1.45, rel=0.01)
 
 
-def test_find_change_sees_a_logged_end_pressure_step_and_no_change_on_a_clean_day() -> None:
+def test_step_search_sees_a_logged_end_pressure_step_and_no_change_on_a_clean_day() -> None:
     rng = np.random.default_rng(5)
     b = _header_branch()
     time_s, p = _day(rng)
@@ -369,14 +369,15 @@ def test_find_change_sees_a_logged_end_pressure_step_and_no_change_on_a_clean_da
                   for pi, e in zip(p, pe_true, strict=True)])
     kw = {"time_s": time_s, "header_pressure_pa": _noisy(rng, p, 0.0, 300.0),
           "flow_m3s": _noisy(rng, q, 0.004, 0.0), "temperature_c": 20.0}
-    cp = find_change(b, end_pressure_pa=pe_true + 300.0 * rng.standard_normal(p.size), **kw)  # type: ignore[arg-type]
+    _, cp = fit_with_change(b, end_pressure_pa=pe_true + 300.0 * rng.standard_normal(p.size),
+                            **kw)  # type: ignore[arg-type]
     assert cp is not None and cp.signal == "end_pressure"
     assert cp.change == pytest.approx(0.3 * BAR, rel=0.02)
     assert abs(cp.time_s - 16 * 3600.0) <= 300.0
     # the same day with nothing changed: no split, whatever the load does
     q_clean = np.array([float(b.flow(pi, temperature_c=20.0, resistance_ratio=1.1,
                                      end_pressure_pa=1.5 * BAR)) for pi in p])
-    clean = find_change(
+    _, clean = fit_with_change(
         b, time_s=time_s, header_pressure_pa=_noisy(rng, p, 0.0, 300.0),
         flow_m3s=_noisy(rng, q_clean, 0.004, 0.0), temperature_c=20.0,
         end_pressure_pa=1.5 * BAR + 300.0 * rng.standard_normal(p.size),
@@ -385,7 +386,7 @@ def test_find_change_sees_a_logged_end_pressure_step_and_no_change_on_a_clean_da
     # a fouling ramp over the day (1 % per day, far faster than real) is no step either
     ramp = np.array([float(b.flow(pi, temperature_c=20.0, resistance_ratio=1.1 + 0.01 * k / p.size,
                                   end_pressure_pa=1.5 * BAR)) for k, pi in enumerate(p)])
-    assert find_change(
+    assert fit_with_change(
         b, time_s=time_s, header_pressure_pa=p, flow_m3s=_noisy(rng, ramp, 0.004, 0.0),
         temperature_c=20.0, end_pressure_pa=np.full(p.size, 1.5 * BAR),
-    ) is None  # fmt: skip
+    )[1] is None  # fmt: skip

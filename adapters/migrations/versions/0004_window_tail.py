@@ -3,7 +3,7 @@
 Revision ID: 0004_window_tail
 Revises: 0003_alarm_memory
 
-When the analysis finds a step inside a window (`model.fit.find_change`), it fits the
+When the analysis finds a step inside a window (`model.fit.fit_with_change`), it fits the
 samples after it apart: ``fits`` keeps where that tail starts (seconds after the window
 start), its ratio and interval, samples, fitted back-pressure, logged end pressure, the
 size of the change and the tail's fit sums, so that the diagnosis can name the step in
