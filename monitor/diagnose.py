@@ -1245,7 +1245,18 @@ class _Replay:
             "days_to_limit_low": nan if cross.eta_low is None else cross.eta_low,
             "days_to_limit_high": nan if cross.eta_high is None else cross.eta_high,
         }  # fmt: skip
-        fouling.confidence = (1.0 - mk.p) * (1.0 - math.exp(-rise / self.cfg.min_rise_r))
+        # How sure the branch is fouled: the trend's verdict while r climbs, and once it
+        # levels off (a deposit that stopped growing is still there) how far the recent
+        # level stands above the baseline, against the day-to-day scatter.
+        level = median(self.r[self.trend[-7:]])
+        above = max(level - fouling.ref, 0.0)
+        settled = (1.0 - math.exp(-above / self.cfg.min_rise_r)
+                   if above >= self.cfg.min_rise_sigma * self.base.sigma_r else 0.0)
+        fouling.evidence["r_recent"] = level
+        fouling.confidence = max(
+            (1.0 - mk.p) * (1.0 - math.exp(-rise / self.cfg.min_rise_r)), settled
+        )
+        rising = mk.p < self.cfg.trend_alpha and fit.slope > 0
         t_last = self.ws[i]
         if cross.reached:
             when = f"it is at or past the cleaning limit {limit:.2f}"
@@ -1256,10 +1267,20 @@ class _Replay:
             hi = "later" if cross.eta_high is None else self._when(t_last + cross.eta_high * _DAY)
             when = (f"at this rate it reaches the cleaning limit {limit:.2f} about "
                     f"{self._when(t_last + cross.eta * _DAY)} (between {lo} and {hi})")  # fmt: skip
-        fouling.message = (
-            f"{self.name} is fouling: resistance ratio {fouling.ref:.2f} → "
-            f"{cross.level_now:.2f}, rising {fit.slope * 30:.3f} per month; {when}."
-        )
+        if rising:
+            fouling.message = (
+                f"{self.name} is fouling: resistance ratio {fouling.ref:.2f} → "
+                f"{cross.level_now:.2f}, rising {fit.slope * 30:.3f} per month; {when}."
+            )
+        else:
+            span = float((self.we[pts[-1]] - self.ws[pts[0]]) / _DAY)
+            where = (f"at or past the cleaning limit {limit:.2f}" if level >= limit
+                     else f"below the cleaning limit {limit:.2f}")
+            fouling.message = (
+                f"{self.name} has fouled: resistance ratio {fouling.ref:.2f} → {level:.2f} "
+                f"since {self._when(fouling.start)}, not rising over the last "
+                f"{span:.0f} days ({fit.slope * 30:+.3f} per month); {where}."
+            )
 
     def _trend_ref(self, pts: Sequence[int]) -> float:
         """Reference level of a rise: the baseline, or the level after the last step."""

@@ -235,6 +235,23 @@ def test_step_inside_a_window_is_named_in_that_window_from_its_tail(
     assert days_after_t0(plain[0].detected) == np.floor(fault.day) + 2.0
 
 
+def test_fouling_that_levelled_off_stays_a_sure_finding() -> None:
+    # A deposit that stopped growing is still there: long after the ramp ended, the open
+    # finding keeps its confidence and says r no longer rises, rather than fading with
+    # the trend test of a flat stretch.
+    hist = make_history(400, seed=12, faults=(Fault("ramp", 60.0, 1.5, 60.0),))
+    found = [f for f in run(hist) if f.kind == "fouling"]
+    assert len(found) == 1 and found[0].end is None
+    f = found[0]
+    assert f.confidence > 0.9
+    assert "has fouled" in f.message and "not rising" in f.message, f.message
+    assert f.evidence["r_recent"] == pytest.approx(1.5, abs=0.05)
+    # while it still climbed, the message said so
+    during = [g for g in run(hist[hist["window_end"] <= pd.Timestamp(T0) + pd.Timedelta(days=110)])
+              if g.kind == "fouling"]
+    assert during and "is fouling" in during[0].message and "rising" in during[0].message
+
+
 @pytest.mark.parametrize(("seed", "length"), [(33, 60.0), (34, 30.0)])
 def test_fast_fouling_ramp_on_precise_fits_is_never_a_step(seed: int, length: float) -> None:
     # Daily increments of 0.8–1.7 % on fits with 0.2 % scatter (the σ floor is 0.4 %):
