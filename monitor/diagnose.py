@@ -207,6 +207,9 @@ class DiagnosisSettings:
     spike_fraction: float = 0.02  # spikes per sample that make a window suspect [-]
     spike_count: int = 30  # same, when the sample count is not given [-]
     spike_min_count: int = 10  # and never fewer spikes than this in a window [-]
+    #: out-of-range samples that make a window suspect [-]: a lone reading beyond the
+    #: range is a spike (screened out like one); a failed meter keeps reading there
+    out_of_range_min_count: int = 3
     low_flow_deadband: float = 0.05  # fraction of the minimum to clear low flow [-]
     timezone: str = "UTC"  # the site's zone: dates in finding messages are site time
 
@@ -380,7 +383,10 @@ def _flag_windows(
         )
     else:
         spike_bad = counts["spikes"] > cfg.spike_count
-    bad = (counts["frozen"] > 0) | (counts["out_of_range"] > 0) | spike_bad
+    bad = (
+        (counts["frozen"] > 0) | (counts["out_of_range"] >= cfg.out_of_range_min_count)
+        | spike_bad
+    )
     scr = scr.assign(
         frozen=counts["frozen"], out_of_range=counts["out_of_range"], spikes=counts["spikes"]
     )[bad]

@@ -338,6 +338,19 @@ def test_frozen_meter_is_instrument_never_fouling() -> None:
     assert "FT-203" in found[0].message
 
 
+def test_lone_out_of_range_sample_is_no_instrument_fault() -> None:
+    # One reading of -41 m3/h in a day (a spike through zero, screened out) is not a sick
+    # meter; a meter that keeps reading beyond its range for a while is.
+    hist = make_history(60, seed=16)
+    base = {"branch": "CW-3", "window_start": hist["window_start"],
+            "window_end": hist["window_end"], "tag": "FT-203", "frozen": 0, "spikes": 0,
+            "samples": 96}  # fmt: skip
+    lone = pd.DataFrame({**base, "out_of_range": np.where(hist.index == 40, 1, 0)})
+    assert run(hist, screening=lone) == []
+    stuck = pd.DataFrame({**base, "out_of_range": np.where(hist.index == 40, 30, 0)})
+    assert [f.kind for f in run(hist, screening=stuck)] == ["instrument"]
+
+
 def test_meter_step_with_balance_is_instrument() -> None:
     # The meter reads 12 % low from day 90: the fitted r rises by 1/0.88² ≈ +29 %, and
     # Σ branch − total moves by the meter's change (a real restriction would not move it).
