@@ -207,6 +207,8 @@ class DiagnosisSettings:
     spike_fraction: float = 0.02  # spikes per sample that make a window suspect [-]
     spike_count: int = 30  # same, when the sample count is not given [-]
     spike_min_count: int = 10  # and never fewer spikes than this in a window [-]
+    #: windows in a row a meter must look spiky (spikes alone) to be reported [windows]
+    spike_windows: int = 2
     #: out-of-range samples that make a window suspect [-]: a lone reading beyond the
     #: range is a spike (screened out like one); a failed meter keeps reading there
     out_of_range_min_count: int = 3
@@ -356,7 +358,7 @@ def diagnose(
                          {c: v[pos] for c, v in numbers.items()})  # fmt: skip
         findings.extend(replay.run(events[events["branch"] == branch]))
     for name, fl in flags.items():
-        findings.extend(_instrument_findings(name, fl, last_screened[name]))
+        findings.extend(_instrument_findings(name, fl, last_screened[name], cfg))
     if bal is not None:
         findings.extend(_imbalance_findings(bal, cfg))
     findings.sort(key=lambda f: (f.start, f.branch, f.kind))
@@ -1386,20 +1388,27 @@ def _runs(starts: Sequence[pd.Timestamp], ends: Sequence[pd.Timestamp], bad: Seq
     return out
 
 
-def _instrument_findings(name: str, flagged: pd.DataFrame, last_end: pd.Timestamp
-                         ) -> list[Finding]:  # fmt: skip
+def _instrument_findings(name: str, flagged: pd.DataFrame, last_end: pd.Timestamp,
+                         cfg: DiagnosisSettings) -> list[Finding]:  # fmt: skip
     starts, ends = list(flagged["window_start"]), list(flagged["window_end"])
     out = []
     for a, b, _ in _runs(starts, ends, [True] * len(starts), 1):
         last = (b if b is not None else len(starts)) - 1
         run = flagged.iloc[a : last + 1]
         counts = {c: float(run[c].sum()) for c in ("frozen", "out_of_range", "spikes")}
+        detected = ends[a]
+        if not (counts["frozen"] or counts["out_of_range"]):
+            # spikes alone: a busy control loop has its spiky day; a failing transmitter
+            # keeps glitching day after day (its windows are left out of r either way)
+            if len(run) < cfg.spike_windows:
+                continue
+            detected = ends[a + cfg.spike_windows - 1]
         what = [c.replace("_", " ") for c, v in counts.items() if v > 0]
         end = ends[last] if ends[last] < last_end else None
         out.append(Finding(
             branch=name, kind="instrument",
             start=pd.Timestamp(run["first_flagged"].iloc[0]).to_pydatetime(),
-            detected=ends[a].to_pydatetime(),
+            detected=detected.to_pydatetime(),
             end=None if end is None else end.to_pydatetime(),
             confidence=0.9 if counts["frozen"] or counts["out_of_range"] else 0.7,
             evidence={**counts, "windows": float(len(run))},

@@ -351,6 +351,21 @@ def test_lone_out_of_range_sample_is_no_instrument_fault() -> None:
     assert [f.kind for f in run(hist, screening=stuck)] == ["instrument"]
 
 
+def test_spiky_meter_is_reported_when_it_stays_spiky() -> None:
+    # 12 spikes in 96 samples on one day is a busy control loop; on two days in a row
+    # the transmitter is glitching: reported at the end of the second day.
+    hist = make_history(60, seed=17)
+    base = {"branch": "CW-3", "window_start": hist["window_start"],
+            "window_end": hist["window_end"], "tag": "FT-203", "frozen": 0,
+            "out_of_range": 0, "samples": 96}  # fmt: skip
+    one = pd.DataFrame({**base, "spikes": np.where(hist.index == 40, 12, 0)})
+    assert run(hist, screening=one) == []
+    two = pd.DataFrame({**base, "spikes": np.where(hist.index.isin([40, 41]), 12, 0)})
+    found = run(hist, screening=two)
+    assert [f.kind for f in found] == ["instrument"] and "spikes" in found[0].message
+    assert days_after_t0(found[0].start) == 40 and days_after_t0(found[0].detected) == 42
+
+
 def test_meter_step_with_balance_is_instrument() -> None:
     # The meter reads 12 % low from day 90: the fitted r rises by 1/0.88² ≈ +29 %, and
     # Σ branch − total moves by the meter's change (a real restriction would not move it).
