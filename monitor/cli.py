@@ -325,7 +325,10 @@ examples:
     p.add_argument("--to", dest="end", required=True, metavar="DATE",
                    help="end of the period (exclusive)")
     p.add_argument("--findings", metavar="FILE", type=Path, help="write findings as JSON")
-    p.add_argument("--fits", metavar="FILE", type=Path, help="write the fits as CSV")
+    p.add_argument("--fits", metavar="FILE", type=Path,
+                   help="write the fits as CSV: one row per branch and window, r with its "
+                   "95 %% interval; step_at and r_after_step where a step came part-way "
+                   "through the window")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument(
         "--jobs", type=_positive_int, default=default_jobs(), metavar="N",
