@@ -1,6 +1,6 @@
 """The small interfaces between branchwatch and the outside world.
 
-``monitor/`` talks to data and people only through these three families:
+``monitor/`` talks to data only through these two families:
 
 * `ReadingsSource` — where historian readings come from (a folder of CSV exports, a SQL
   table). Implementations: ``csv`` (`adapters.csv_source`), ``sql``
@@ -8,8 +8,6 @@
 * `ResultsStore` — where everything branchwatch learns is kept (ingested readings of file
   sources, fits, findings, alarms, maintenance events, cursors, quarantine, job runs).
   Implementation: ``sqlalchemy`` (`adapters.store`).
-* `Notifier` — who is told about alarms (e-mail, webhook). Implementations in
-  `adapters.notify`.
 
 Each implementation registers under a short alias that the site config names
 (``[source] kind = "csv"``); `source_class` and friends look the alias up.
@@ -54,7 +52,6 @@ __all__ = [
     "READING_COLUMNS",
     "Batch",
     "BranchwatchAdapterError",
-    "Notifier",
     "ReadingsSource",
     "ResultsStore",
     "SourceUnavailable",
@@ -63,7 +60,6 @@ __all__ = [
     "UnknownTagError",
     "empty_quarantine",
     "empty_readings",
-    "notifier_class",
     "open_store",
     "source_class",
 ]
@@ -377,27 +373,10 @@ class ResultsStore(abc.ABC):
         """Release the connection pool."""
 
 
-class Notifier(abc.ABC):
-    """Tells people about alarms and reports."""
-
-    alias: ClassVar[str] = ""
-    _registry: ClassVar[dict[str, type[Notifier]]] = {}
-
-    def __init_subclass__(cls, **kwargs: Any) -> None:
-        super().__init_subclass__(**kwargs)
-        if cls.alias:
-            Notifier._registry[cls.alias] = cls
-
-    @abc.abstractmethod
-    def send(self, subject: str, body: str) -> None:
-        """Deliver one message; raise `SourceUnavailable`-like errors after retries."""
-
-
 #: Where each alias lives; the module is imported on first use, so that an optional
 #: dependency (a database driver) is only needed by the sites that use it.
 _MODULES: dict[str, dict[str, str]] = {
     "source": {"csv": "adapters.csv_source", "sql": "adapters.sql_source"},
-    "notifier": {"email": "adapters.notify", "webhook": "adapters.notify"},
 }
 
 
@@ -421,11 +400,6 @@ def _lookup(registry: Mapping[str, type[Any]], alias: str, family: str) -> type[
 def source_class(alias: str) -> type[ReadingsSource]:
     """The `ReadingsSource` implementation registered under *alias*."""
     return _lookup(ReadingsSource._registry, alias, "source")
-
-
-def notifier_class(alias: str) -> type[Notifier]:
-    """The `Notifier` implementation registered under *alias*."""
-    return _lookup(Notifier._registry, alias, "notifier")
 
 
 def open_store(url: str, *, alias: str = "sqlalchemy") -> ResultsStore:
