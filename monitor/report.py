@@ -102,7 +102,8 @@ h1 {{ font-size: 1.5em; margin-bottom: .1em; }} h2 {{ font-size: 1.15em; margin-
 .caution {{ background: #fff6e0; border-left: 4px solid #d39b00; padding: .6em .9em; }}
 table {{ border-collapse: collapse; width: 100%; font-size: .93em; }}
 th, td {{ text-align: left; padding: .3em .5em; border-bottom: 1px solid #e3e6ed; }}
-th {{ background: #f1f3f7; }} td.num {{ text-align: right; font-variant-numeric: tabular-nums; }}
+th {{ background: #f1f3f7; }}
+td.num, th.num {{ text-align: right; font-variant-numeric: tabular-nums; }}
 .finding {{ border: 1px solid #d5dae4; border-radius: 6px; padding: .6em .9em; margin: .7em 0; }}
 .finding h3 {{ margin: 0 0 .3em 0; font-size: 1em; }}
 .kind {{ display: inline-block; padding: 0 .5em; border-radius: 3px; background: #e8ecf4;
@@ -203,9 +204,10 @@ def _branches(inputs: ReportInputs) -> str:
             f"<td class=num><span{low}>{flow:.1f}</span> / {b.min_flow_m3s * 3600:.0f}</td>"
             f"<td>{_local(site, last['window_end'])}</td></tr>"
         )
-    return ("<h2>Branches</h2><table><tr><th>branch</th><th>resistance ratio r</th>"
-            "<th>95 % interval</th><th>7-day change</th><th>cleaning limit</th>"
-            "<th>mean flow / minimum [m³/h]</th><th>last window ended</th></tr>"
+    return ("<h2>Branches</h2><table><tr><th>branch</th><th class=num>resistance ratio r</th>"
+            "<th class=num>95 % interval</th><th class=num>7-day change</th>"
+            "<th class=num>cleaning limit</th><th class=num>mean flow / minimum [m³/h]</th>"
+            "<th>last window ended</th></tr>"
             + "".join(rows) + "</table><p class=ev>r = 1.00 is the branch as designed and "
             "clean; 1.40 means 40 % more hydraulic resistance.</p>")
 
@@ -259,7 +261,7 @@ def _health(inputs: ReportInputs) -> str:
                          fill_value=0)
     shown = [c for c in ("samples", "usable", "frozen", "spike", "out_of_range", "gap",
                          "pump_off", "bad_quality") if c in wide.columns]
-    head = "".join(f"<th>{_e(c.replace('_', ' '))}</th>" for c in shown)
+    head = "".join(f"<th class=num>{_e(c.replace('_', ' '))}</th>" for c in shown)
     body = "".join(
         f"<tr><td>{_e(tag)}</td>" + "".join(f"<td class=num>{int(row[c])}</td>" for c in shown)
         + "</tr>" for tag, row in wide.iterrows()
@@ -277,9 +279,13 @@ def _method() -> str:
         "losses, IEC 60534 control valve, rated equipment pressure drop, water properties at "
         "the logged temperature). Fouling is a sustained rise of r (Theil–Sen slope, "
         "Mann–Kendall test with the Hamed–Rao correction); a restriction is a step; a "
-        "back-pressure change moves the termination pressure and leaves r alone; meters that "
-        "freeze, spike or leave their range are set aside and reported, never read as "
-        "fouling. Energy figures use the pump efficiency of the site file.</p>"
+        "back-pressure change moves the termination pressure and leaves r alone. A step "
+        "part-way through a day is located within the day and the samples after it are "
+        "fitted on their own, so it is named when that day's analysis runs and dated to its "
+        "hour. Meters that freeze, keep spiking or stay out of their range are set aside and "
+        "reported, never "
+        "read as fouling. A branch without its own meter gets its flow from the total meter "
+        "less the others. Energy figures use the pump efficiency of the site file.</p>"
     )
 
 
