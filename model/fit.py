@@ -323,6 +323,31 @@ def _candidates(t: NDArray[np.float64], min_head_s: float, min_tail_s: float,
     return k[ok]
 
 
+def _line_residual(x: NDArray[np.float64], y: NDArray[np.float64],
+                   sw: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Weighted residuals of the least-squares line ``y ≈ r·x + s`` [unit of y]."""
+    a = np.column_stack([x, np.ones_like(x)]) * sw[:, None]
+    coef, *_ = np.linalg.lstsq(a, y * sw, rcond=None)
+    return np.asarray(y * sw - a @ coef, dtype=float)
+
+
+def _independence(residual: NDArray[np.float64]) -> float:
+    """(1 − ρ)/(1 + ρ) for the lag-1 autocorrelation ρ > 0 of *residual*, else 1 [-].
+
+    The F statistic of a split counts every sample as independent; residuals that wander
+    (an unlogged back-pressure drifting, a model error following the load) carry fewer
+    independent samples — about n·(1 − ρ)/(1 + ρ) for AR(1) residuals, the effective
+    sample size of Bayley & Hammersley (1946; reference from memory) — and make a chance
+    split look significant.
+    """
+    e = residual - float(np.mean(residual))
+    den = float(np.dot(e, e))
+    if e.size < 3 or den <= 0.0:
+        return 1.0
+    rho = float(np.dot(e[1:], e[:-1])) / den
+    return (1.0 - rho) / (1.0 + rho) if rho > 0.0 else 1.0
+
+
 def _relation_change(
     y: NDArray[np.float64], x: NDArray[np.float64], w: NDArray[np.float64],
     t: NDArray[np.float64], rule: StepRule,
@@ -361,10 +386,15 @@ def _relation_change(
     gain = (whole - rest) / 2.0 / max(rest / (n - 4), 1e-300)  # F with 2 and n − 4 dof
     if gain < rule.min_gain:
         return None  # the common case: nothing happened, no need to size it
+    sw = np.sqrt(w)
+    residual = np.concatenate([_line_residual(xs[:k], ys[:k], sw[:k]),
+                               _line_residual(xs[k:], ys[k:], sw[k:])])
+    gain *= _independence(residual)
+    if gain < rule.min_gain:
+        return None
     # size: one fit of the whole window with the tail allowed either an extra offset or
     # an extra ratio, whichever fits better; as a fraction of the clean dynamic ΔP
     after = (np.arange(n) >= k).astype(float)
-    sw = np.sqrt(w)
     best_sse, change = math.inf, math.nan
     for extra in (after, after * xs):
         a = np.column_stack([xs, np.ones(n), extra]) * sw[:, None]
@@ -428,6 +458,8 @@ def find_level_step(
     step = float((c1[n] - c1[k]) / (n - k) - c1[k] / k)
     rest = float(split[best])
     gain = (whole - rest) / max(rest / (n - 2), 1e-300)  # F with 1 and n − 2 dof
+    if gain >= min_gain:  # wandering readings count as fewer samples (`_independence`)
+        gain *= _independence(np.concatenate([v[:k] - np.mean(v[:k]), v[k:] - np.mean(v[k:])]))
     if gain < min_gain or abs(step) < min_step:
         return None
     index = int(np.flatnonzero(keep)[k])

@@ -8,9 +8,11 @@ import numpy as np
 import pytest
 from scipy import optimize
 
+import model.fit as fit_module
 from model.branch import Branch, HeldHeader, Tank
 from model.elements import ControlValve, Equipment, Fittings, Pipe
 from model.fit import (
+    ChangePoint,
     compare_offset_hypotheses,
     fit_ratio,
     fit_resistance,
@@ -390,3 +392,32 @@ def test_step_search_sees_a_logged_end_pressure_step_and_no_change_on_a_clean_da
         b, time_s=time_s, header_pressure_pa=p, flow_m3s=_noisy(rng, ramp, 0.004, 0.0),
         temperature_c=20.0, end_pressure_pa=np.full(p.size, 1.5 * BAR),
     )[1] is None  # fmt: skip
+
+
+def test_step_search_is_not_fooled_by_a_wandering_back_pressure(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # The held header's real pressure wanders slowly about its set point (AR(1), lag-1
+    # correlation 0.99 per 5 min, ±0.05 bar; invented, unlogged): the one fit's residuals
+    # drift all day, which an F test counting every sample as independent reads as a
+    # step. A real throttling (+35 %) on top of the same wander is still found.
+    def day(ratio_after: float) -> ChangePoint | None:
+        rng = np.random.default_rng(31)
+        b = _header_branch()
+        time_s, p = _day(rng)
+        wander = np.zeros(p.size)
+        for k in range(1, p.size):
+            wander[k] = 0.99 * wander[k - 1] + 0.05 * BAR * math.sqrt(1 - 0.99**2) * rng.normal()
+        ratio = np.where(time_s >= 15 * 3600.0, ratio_after, 1.05)
+        q = np.array([float(b.flow(pi, temperature_c=20.0, resistance_ratio=ri,
+                                   end_pressure_pa=1.5 * BAR + wi))
+                      for pi, ri, wi in zip(p, ratio, wander, strict=True)])
+        return fit_with_change(b, time_s=time_s, header_pressure_pa=p,
+                               flow_m3s=_noisy(rng, q, 0.003, 0.0), temperature_c=20.0)[1]
+
+    assert day(1.05) is None
+    stepped = day(1.40)
+    assert stepped is not None and abs(stepped.time_s - 15 * 3600.0) <= 600.0
+    # the test has teeth: counting every sample as independent splits the quiet day
+    monkeypatch.setattr(fit_module, "_independence", lambda residual: 1.0)
+    assert day(1.05) is not None
