@@ -317,7 +317,8 @@ def _candidates(t: NDArray[np.float64], min_head_s: float, min_tail_s: float,
     """Tail starts k (head = samples [0, k)) that leave both parts long enough."""
     n = t.shape[0]
     k = np.arange(n)
-    step = float(np.partition(np.diff(t), (n - 1) // 2)[(n - 1) // 2]) if n > 1 else 0.0
+    step = float(np.min(np.diff(t))) if n > 1 else 0.0  # the sampling step: the last
+    # sample stands for one step of time
     ok = (k >= min_samples) & (n - k >= min_samples)
     ok &= (t - t[0] >= min_head_s) & (t[-1] - t + step >= min_tail_s)
     return k[ok]
@@ -479,6 +480,8 @@ class StepRule:
     min_gain: float = 60.0
     min_change: float = 0.05
     min_pressure_step_pa: float = 1.0e4
+    #: scan a given end pressure too (off where the caller scans it on more samples)
+    end_pressure: bool = True
 
 
 def _change_in(
@@ -496,7 +499,7 @@ def _change_in(
     if rel is not None:
         rel = dataclasses.replace(rel, index=int(np.flatnonzero(keep)[rel.index]))
     lvl = None
-    if end_pressure_pa is not None:
+    if end_pressure_pa is not None and rule.end_pressure:
         pe = np.where(keep, _as_1d("end_pressure_pa", end_pressure_pa, keep.shape[0]), np.nan)
         lvl = find_level_step(t_all, pe, min_head_s=rule.min_head_s,
                               min_tail_s=rule.min_tail_s, min_samples=rule.min_samples,

@@ -41,8 +41,9 @@ DEFAULT_METER_UNCERTAINTY = 0.02
 #: A window needs this many steady samples for the header balance [-].
 MIN_BALANCE_SAMPLES = 10
 #: A step inside a window: each side at least half an hour and 6 samples (an hour of
-#: 10-minute data), as in the tail's own fit; other thresholds `StepRule`'s.
-TAIL_RULE = StepRule(min_head_s=1800.0, min_tail_s=1800.0, min_samples=6)
+#: 10-minute data), as in the tail's own fit; other thresholds `StepRule`'s. A logged end
+#: pressure is scanned by `_tail` on every running sample instead of the fit's samples.
+TAIL_RULE = StepRule(min_head_s=1800.0, min_tail_s=1800.0, min_samples=6, end_pressure=False)
 TAIL_SUMS = ("sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy")
 
 
