@@ -254,6 +254,7 @@ def _fit_row(
         mask &= np.isfinite(values)
     floor = max(branch.min_flow_m3s * 0.25, 1e-4)
     mask &= q > floor
+    seconds = grid.seconds(start)
     if mask.sum() < site.analysis.min_samples:
         row.update(_empty(
             f"{int(mask.sum())} steady samples with flow above {floor * 3600:.1f} m3/h; "
@@ -264,12 +265,10 @@ def _fit_row(
             ends = grid.column(branch.end_pressure_tag)
             if np.isfinite(ends).any():
                 row["end_pressure_pa"] = float(np.nanmedian(ends))
-            seconds = grid.seconds(start)
             row.update(_tail(branch, grid, mask, running, seconds, None, floor, p, q, t,
                              conditions))
         return row
     kwargs = {k: v[mask] for k, v in conditions.items()}
-    seconds = grid.seconds(start)
     # the whole window's fit, and a step part-way through it (a window a step came in is
     # also where the robust fit of the whole of it may not converge: looked for anyway)
     fit, change = fit_with_change(
