@@ -522,11 +522,18 @@ def _cmd_status(args: argparse.Namespace) -> int:
     for r in marks.fits.itertuples():
         print(f"  {r.branch:<16} {r.last_window_end:%Y-%m-%d %H:%M}Z")
     print("\nlast job runs:")
+    later: set[str] = set()  # jobs with a newer run than the row at hand (newest first)
     for r in runs.itertuples():
-        print(f"  {r.started:%Y-%m-%d %H:%M:%S}Z  {r.job:<8} {r.status}")
-    print(f"\nopen findings: {len(open_findings)}")
+        status = r.status
+        if status == "running" and r.job in later:
+            # a newer run started since: this one was killed or crashed before recording
+            # its end (what it wrote before that is kept)
+            status = "did not finish (no end recorded)"
+        later.add(str(r.job))
+        print(f"  {r.started:%Y-%m-%d %H:%M:%S}Z  {r.job:<8} {status}")
+    print(f"\nopen findings: {len(open_findings)} (times in site time, {site.timezone})")
     for r in open_findings.itertuples():
-        print(f"  {r.branch:<16} {r.kind:<14} since {r.start:%Y-%m-%d}: {r.message}")
+        print(f"  {r.branch:<16} {r.kind:<14} since {_local(site, r.start)}: {r.message}")
     if quarantine:
         print("\nquarantined rows by reason: "
               + ", ".join(f"{k} {v}" for k, v in sorted(quarantine.items())))

@@ -186,3 +186,21 @@ def test_morning_report_names_each_open_finding(demo: dict[str, Any]) -> None:
     assert "data:image/png;base64," in text  # the trends are embedded
     again = write_report(site, store, day=day, now=datetime.now(UTC))
     assert again == path  # one file per day: a rerun replaces it
+
+
+def test_status_tells_a_killed_run_from_a_running_one(
+    demo: dict[str, Any], capsys: pytest.CaptureFixture[str]
+) -> None:
+    # A run killed outright cannot record its end: once a newer run of the same job has
+    # started, status says the old one did not finish instead of "running" forever.
+    from datetime import UTC, datetime
+
+    store = demo["store"]
+    killed = datetime(2030, 1, 1, 6, 0, tzinfo=UTC)
+    store.record_job_run("analyze", killed, None, "running")
+    store.record_job_run("analyze", killed + timedelta(minutes=5), None, "running")
+    assert main(["status", str(demo["paths"].site_file)]) == 0
+    out = capsys.readouterr().out
+    assert "2030-01-01 06:00:00Z  analyze  did not finish" in out
+    assert "2030-01-01 06:05:00Z  analyze  running" in out  # the newest may still run
+    assert "open findings:" in out and "site time" in out
