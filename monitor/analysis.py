@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import logging
 import math
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, fields
 from datetime import datetime
 from typing import Any
 
@@ -152,7 +152,7 @@ class _Grid:
     index: pd.DatetimeIndex
     values: np.ndarray  # bins × tags [SI]
     columns: dict[str, int]
-    _seconds: dict[int, np.ndarray] = field(default_factory=dict, compare=False, repr=False)
+    seconds: np.ndarray  # bin times from the window start [s]
 
     @classmethod
     def of(
@@ -177,21 +177,15 @@ class _Grid:
         counts = np.bincount(cells, minlength=size)
         with np.errstate(invalid="ignore", divide="ignore"):
             mean = np.where(counts > 0, sums / counts, np.nan)
-        return cls(grid, mean.reshape(len(grid), len(tags)), columns)
+        seconds = ((grid - start) / pd.Timedelta(seconds=1)).to_numpy(float)
+        return cls(grid, mean.reshape(len(grid), len(tags)), columns, seconds)
 
     @property
     def empty(self) -> bool:
         return len(self.index) == 0
 
     def rows(self, keep: np.ndarray) -> _Grid:
-        return _Grid(self.index[keep], self.values[keep], self.columns)
-
-    def seconds(self, start: pd.Timestamp) -> np.ndarray:
-        """Bin times as seconds after *start* [s] (computed once per grid)."""
-        key = int(start.value)
-        if key not in self._seconds:
-            self._seconds[key] = ((self.index - start) / pd.Timedelta(seconds=1)).to_numpy(float)
-        return self._seconds[key]
+        return _Grid(self.index[keep], self.values[keep], self.columns, self.seconds[keep])
 
     def column(self, tag: str) -> np.ndarray:
         return self.values[:, self.columns[tag]]
@@ -254,7 +248,7 @@ def _fit_row(
         mask &= np.isfinite(values)
     floor = max(branch.min_flow_m3s * 0.25, 1e-4)
     mask &= q > floor
-    seconds = grid.seconds(start)
+    seconds = grid.seconds
     if mask.sum() < site.analysis.min_samples:
         row.update(_empty(
             f"{int(mask.sum())} steady samples with flow above {floor * 3600:.1f} m3/h; "
