@@ -413,7 +413,10 @@ class CsvSource(ReadingsSource):
         text = header.decode("utf-8", errors="replace").lstrip("\ufeff").rstrip("\r\n")
         names = [n.strip() for n in next(csv.reader([text], delimiter=self.delimiter), [])]
         if len(names) < 2:
-            return "no usable header line (need a time column and at least one more)"
+            other = [d for d in (",", ";", "\t", "|") if d != self.delimiter and d in text]
+            hint = (f"; it splits on {other[0]!r}: set [source] delimiter = {other[0]!r}"
+                    if other else "")
+            return f"no usable header line (need a time column and at least one more){hint}"
         tag_col, value_col = _find(names, _TAG_NAMES), _find(names, _VALUE_NAMES)
         kind = self.layout
         if kind == "auto":

@@ -300,8 +300,24 @@ def _cmd_ingest(args: argparse.Namespace) -> int:
         for reason, count in sorted(summary.quarantine_reasons.items(), key=lambda kv: -kv[1]):
             print(f"  {count:>6}  {reason}")
     for note, count in sorted(summary.notes.items()):
-        print(f"note: {note.replace('_', ' ')}: {count}")
+        why = _NOTE_HELP.get(note, "")
+        print(f"note: {note.replace('_', ' ')}: {count}{' (' + why + ')' if why else ''}")
     return EXIT_OK
+
+
+#: What an ingest note means for the person reading it, where the name alone does not say.
+_NOTE_HELP = {
+    "files_unsettled": "changed in the last [source] settle_seconds: maybe still being "
+                       "written, left for the next ingest",
+    "unterminated_last_line": "the last line has no line end yet: read when it is finished",
+    "unknown_tag_columns": "columns the site file does not name: ignored",
+    "unknown_tag_rows": "rows of tags the site file does not name: quarantined once per tag",
+    "file_changed": "a file already read changed before its read position: read again whole, "
+                    "stored readings kept",
+    "duplicate_file": "the same content as a file already read: skipped",
+    "out_of_order_rows": "rows earlier than the row before them: stored by their time",
+    "duplicate_rows": "the same time and tag twice in one export: the last row kept",
+}
 
 
 # ---------------------------------------------------------------------------------------

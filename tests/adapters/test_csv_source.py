@@ -270,3 +270,11 @@ def test_file_without_usable_header_is_quarantined_once(tmp_path: Path) -> None:
     got = ingest(src, cursors)
     assert got.notes["bad_header"] == 1 and reasons(got.quarantined)[1].startswith("no usable")
     assert ingest(src, cursors).batches == 0
+
+
+def test_header_with_another_delimiter_names_the_setting(tmp_path: Path) -> None:
+    # A ';' export dropped into a ','-configured inbox: the reason says which setting.
+    write(tmp_path / "a.csv", "timestamp;PT-100;FT-203\n2026-05-01T00:00:00Z;1;2\n")
+    got = ingest(CsvSource(TAGS, path=tmp_path, settle_seconds=0), {})
+    reason = reasons(got.quarantined)[1]
+    assert reason.startswith("no usable header line") and "delimiter = ';'" in reason, reason
