@@ -53,7 +53,16 @@ ureg.define("bara = bar")
 ureg.define("psia = psi")
 ureg.define("kPaa = kPa")
 ureg.define("m3 = meter**3")
-ureg.define("gpm = gallon / minute")
+ureg.define("gpm = gallon / minute = GPM = usgpm = USgpm")
+# What flow meters and historians write for litres per minute and per second, defined on
+# the library's own litre and minute (no factor typed here).
+ureg.define("lpm = liter / minute = LPM = Lpm")
+ureg.define("lps = liter / second = LPS")
+ureg.define("m3h = meter ** 3 / hour = cmh = CMH")
+
+#: Spellings that parse as something else: meter displays write "l/m" for litres per
+#: minute, which would otherwise read as litres per metre.
+_SPELLINGS = {"l/m": "l/min", "L/m": "L/min", "ltr/min": "l/min", "m3/hr": "m3/h"}
 
 #: The SI unit used inside the model for each kind of quantity a tag can carry.
 SI_UNITS: dict[str, str] = {
@@ -85,12 +94,16 @@ def converter(unit: str, kind_or_si: str) -> Callable[[npt.ArrayLike], np.ndarra
     unit = unit.strip()
     if unit in ("%", "percent"):
         unit = "percent"
+    unit = _SPELLINGS.get(unit, unit)
     try:
         src = ureg.Unit(unit)
         dst = ureg.Unit(target)
         ureg.Quantity(1.0, src).to(dst)
     except (pint.errors.PintError, AttributeError, TypeError, ValueError) as exc:
-        raise UnitError(f"unit {unit!r} does not convert to {target!r} ({exc})") from exc
+        what = f" (a {kind_or_si} unit)" if kind_or_si in SI_UNITS else ""
+        raise UnitError(
+            f"unit {unit!r} does not convert to {target!r}{what}: {exc}"
+        ) from exc
     offset = -ATMOSPHERE_PA if unit in _ABSOLUTE and target == "Pa" else 0.0
 
     def convert(values: npt.ArrayLike) -> np.ndarray:

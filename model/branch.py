@@ -265,8 +265,8 @@ class Branch:
         if isinstance(term, OpenDischarge) and term.exit_loss_k > 0:
             if any(f.counts.get("exit", 0) for f in fittings):
                 raise ValueError(
-                    f"branch {self.name!r}: the open discharge already adds the exit loss; "
-                    "remove 'exit' from the fittings or set exit_loss_k=0"
+                    f"branch {self.name!r}: the open discharge already adds the exit loss "
+                    f"(K = {self.termination.exit_loss_k:g}); remove 'exit' from the fittings"
                 )
             last_d = self._last_diameter(elements)
             if last_d is None:
