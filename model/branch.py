@@ -266,7 +266,7 @@ class Branch:
             if any(f.counts.get("exit", 0) for f in fittings):
                 raise ValueError(
                     f"branch {self.name!r}: the open discharge already adds the exit loss "
-                    f"(K = {self.termination.exit_loss_k:g}); remove 'exit' from the fittings"
+                    f"(K = {term.exit_loss_k:g}); remove 'exit' from the fittings"
                 )
             last_d = self._last_diameter(elements)
             if last_d is None:
