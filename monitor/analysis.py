@@ -267,7 +267,8 @@ def _fit_row(
     # also where the robust fit of the whole of it may not converge: looked for anyway)
     fit, change = fit_with_change(
         branch.model, time_s=seconds[mask], header_pressure_pa=p[mask], flow_m3s=q[mask],
-        temperature_c=t[mask], min_flow_m3s=floor, rule=TAIL_RULE, **kwargs,
+        temperature_c=t[mask], min_flow_m3s=floor, rule=TAIL_RULE,
+        min_samples=site.analysis.min_samples, **kwargs,
     )
     row.update(_fit_fields(fit))
     if flow is not None:

@@ -181,3 +181,18 @@ def test_unmetered_branch_is_fitted_from_the_header_balance() -> None:
     assert got["r"] == pytest.approx(want["r"], rel=0.03)
     assert "uncertain by about" in got["message"]  # the meters set how well the level is known
     assert without["B5-spray"]["r"] == pytest.approx(with_meter["B5-spray"]["r"], rel=1e-9)
+
+
+def test_min_samples_setting_is_the_fits_own_bound() -> None:
+    # issue 12: [analysis] min_samples below 10 was accepted while the fit kept a fixed 10
+    # ("7 usable samples, fewer than the 10 needed"); one setting, honoured by the fit too
+    doc = tomllib.loads(EXAMPLE.read_text(encoding="utf-8"))
+    doc["analysis"].update(sample_period="1 h", min_samples=5)
+    site = parse_site(doc, path=EXAMPLE)
+    readings = _readings(site, 600.0)
+    result = analyze_window(site, readings, START, START + timedelta(hours=12))
+    for fit in result.fits:
+        assert "10 needed" not in str(fit["message"]), fit["message"]
+        if fit["samples"] >= 5:
+            assert fit["status"] == "ok", fit["message"]
+    assert sum(5 <= fit["samples"] < 10 for fit in result.fits) >= 3
