@@ -15,6 +15,7 @@ frozen          no change beyond the tolerance for longer than the frozen time  
 spike           Hampel filter: 7-point window, |x − median| > 3·1.4826·MAD       yes
                 (Hampel 1974), the scale floored at the tag's noise level
                 (configured absolute and relative, and estimated from the data)
+                and at its resolution (the level spacing of a coarse signal)
 rate            change from the previous accepted sample faster than plausible   yes
 gap             first sample after a gap longer than the maximum gap             no
 pump_off        header pressure (or total flow) below the running threshold      yes
@@ -412,7 +413,11 @@ def _hampel(
     # far below the true scatter: Hampel's rule alone flags a few % of plain Gaussian
     # noise. Flooring the scale at the tag's noise (configured, and estimated from the
     # whole window) brings that down to the 3-sigma rate (0.27 %).
-    base_floor = np.maximum(noise, _noise_estimate(values, codes))
+    # A coarse transmitter (readings on a few levels) steps by whole resolution steps:
+    # the floor is at least one step, so a move to a neighbouring level is never a spike.
+    base_floor = np.maximum.reduce(
+        [noise, _noise_estimate(values, codes), _resolution(values, codes)]
+    )
     # The median lies between the window's least and greatest value, so a sample within
     # k·floor of all of them cannot be flagged: medians (two sorts per window) are taken
     # only for the rest — most samples of a quiet signal are settled by this bound. The
@@ -457,6 +462,27 @@ def _noise_estimate(values: np.ndarray, codes: np.ndarray) -> np.ndarray:
         diffs = pd.Series(np.abs(np.diff(values[idx]))[same])
         med = diffs.groupby(codes[idx[1:]][same]).median()
         out[med.index.to_numpy()] = MAD_TO_SIGMA * med.to_numpy() / np.sqrt(2.0)
+    return out[codes]
+
+
+def _resolution(values: np.ndarray, codes: np.ndarray) -> np.ndarray:
+    """Per sample, its tag's resolution estimated from the data [SI].
+
+    The median gap between successive distinct values of the tag: for a signal that
+    falls on a few levels (a coarse gauge, a low-resolution analog input) that is the
+    level spacing; for a signal that resolves its noise it is far below the noise and
+    changes nothing. NaN samples are skipped.
+    """
+    out = np.zeros(int(codes.max()) + 1 if len(codes) else 0)
+    idx = np.flatnonzero(np.isfinite(values))
+    if len(idx) >= 2:
+        order = idx[np.lexsort((values[idx], codes[idx]))]
+        v, c = values[order], codes[order]
+        step = np.diff(v)
+        distinct = (c[1:] == c[:-1]) & (step > 0)
+        if distinct.any():
+            med = pd.Series(step[distinct]).groupby(c[1:][distinct]).median()
+            out[med.index.to_numpy()] = med.to_numpy()
     return out[codes]
 
 

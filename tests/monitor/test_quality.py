@@ -85,6 +85,9 @@ def _hampel_by_definition(
 ) -> np.ndarray:
     # the noise of the whole series, from successive differences (white noise: σ√2)
     sigma = 1.4826 * np.median(np.abs(np.diff(x))) / np.sqrt(2.0)
+    # and its resolution: the median spacing of its distinct values
+    levels = np.unique(x)
+    step = float(np.median(np.diff(levels))) if len(levels) > 1 else 0.0
     out = np.zeros(len(x), dtype=bool)
     for i in range(len(x)):
         w = x[max(0, i - 3) : i + 4]
@@ -92,7 +95,8 @@ def _hampel_by_definition(
             continue
         med = np.median(w)
         mad = np.median(np.abs(w - med))
-        out[i] = abs(x[i] - med) > k * max(1.4826 * mad, floor, floor_rel * abs(med), sigma)
+        scale = max(1.4826 * mad, floor, floor_rel * abs(med), sigma, step)
+        out[i] = abs(x[i] - med) > k * scale
     return out
 
 
@@ -122,6 +126,20 @@ def test_hampel_matches_its_definition_on_quantised_readings() -> None:
     expected = _hampel_by_definition(b, FLOW.noise_si, FLOW.noise_rel_si)
     np.testing.assert_array_equal(res.for_tag("FT-100")["spike"].to_numpy(), expected)
     assert 0 < expected.sum() < 60
+
+
+def test_a_coarse_gauge_stepping_between_levels_is_not_spiking() -> None:
+    # issue 12: a gauge resolving 0.05 bar at about 0.07 bar working pressure reads 0.05
+    # or 0.10 bar, now one level, now the other; that is its resolution, not spikes. A
+    # real spike (1 bar) is still flagged.
+    rng = np.random.default_rng(21)
+    levels = 0.05e5 * np.round((0.07e5 + rng.normal(0.0, 0.02e5, 900)) / 0.05e5)
+    levels[450] = 1.1e5
+    res = screen(_series("PT-100", levels, freq="1s"), {"PT-100": PRESSURE})
+    spikes = _flagged(res.for_tag("PT-100"), "spike")
+    assert spikes == [450]
+    expected = _hampel_by_definition(levels, PRESSURE.noise_si, PRESSURE.noise_rel_si)
+    np.testing.assert_array_equal(res.for_tag("PT-100")["spike"].to_numpy(), expected)
 
 
 def _hampel_with_gaps_by_definition(x: np.ndarray, floor: float, floor_rel: float) -> np.ndarray:
