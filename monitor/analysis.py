@@ -12,13 +12,14 @@ from __future__ import annotations
 
 import logging
 import math
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, fields, replace
 from datetime import datetime
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
+from adapters.units import from_si
 from model.fit import (
     ChangePoint,
     FitResult,
@@ -28,7 +29,13 @@ from model.fit import (
     fit_with_change,
 )
 from monitor.config import BranchConfig, Site
-from monitor.quality import ScreenSettings, TagLimits, running_mask, screen
+from monitor.quality import (
+    ScreenSettings,
+    TagLimits,
+    resolution_by_tag,
+    running_mask,
+    screen,
+)
 
 log = logging.getLogger(__name__)
 
@@ -40,10 +47,21 @@ __all__ = ["WindowAnalysis", "analyze_window", "logging_interval", "screen_setti
 DEFAULT_METER_UNCERTAINTY = 0.02
 #: A window needs this many steady samples for the header balance [-].
 MIN_BALANCE_SAMPLES = 10
-#: A step inside a window: each side at least half an hour and 6 samples (an hour of
-#: 10-minute data), as in the tail's own fit; other thresholds `StepRule`'s. A logged end
-#: pressure is scanned by `_tail` on every running sample instead of the fit's samples.
+#: A step inside a daily window: each side at least half an hour and 6 samples (an hour
+#: of 10-minute data), as in the tail's own fit; other thresholds `StepRule`'s. A logged
+#: end pressure is scanned by `_tail` on every running sample instead of the fit's
+#: samples. Shorter windows scale the sides down (`tail_rule`).
 TAIL_RULE = StepRule(min_head_s=1800.0, min_tail_s=1800.0, min_samples=6, end_pressure=False)
+
+
+def tail_rule(window_s: float, grid_s: float) -> StepRule:
+    """`TAIL_RULE` for a window of *window_s* on a grid of *grid_s* [s]: each side at most
+    half an hour, at least an eighth of the window and 6 grid steps."""
+    side = min(TAIL_RULE.min_head_s, max(window_s / 8.0, 6.0 * grid_s))
+    return replace(TAIL_RULE, min_head_s=side, min_tail_s=side)
+#: Samples at or below a quarter of the branch's minimum flow, and never less than this,
+#: carry too little dynamic drop to fit [m^3/s] (0.36 m3/h).
+MIN_FIT_FLOW_M3S = 1e-4
 TAIL_SUMS = ("sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy")
 
 
@@ -66,12 +84,18 @@ def screen_settings(site: Site, logging_interval_s: float | None = None) -> Scre
     period, nor a frozen hour, with the thresholds of a 1-minute one.
     """
     grid = max(site.analysis.sample_period, logging_interval_s or 0.0)
+    a = site.analysis
+    # minute windows on second data (a test rig, a commissioning run) need the steady
+    # and settling times scaled to the window; daily windows keep 15 and 10 minutes
+    steady = a.steady_window or max(6 * grid, min(900.0, a.window / 4))
     return ScreenSettings(
         running_pressure_pa=site.running_pressure_pa,
         max_gap_s=max(600.0, 5 * grid),
-        steady_window_s=max(900.0, 6 * grid),
+        steady_window_s=steady,
+        steady_pressure_rel=a.steady_pressure_band,
+        steady_flow_rel=a.steady_flow_band,
         frozen_s=max(3600.0, 12 * grid),
-        settling_s=max(600.0, 2 * grid),
+        settling_s=max(2 * grid, min(600.0, a.window / 4)),
     )
 
 
@@ -112,6 +136,7 @@ def analyze_window(
     # log less often than the grid): drop them, or each would count as a stop and a start.
     grid = grid.rows(np.isfinite(grid.column(site.header_pressure_tag)))
     flow_tags = [b.flow_tag for b in site.branches if b.flow_tag]
+    variation: dict[str, np.ndarray] = {}
     if grid.empty:
         running = np.zeros(0, dtype=bool)
         steady: dict[str, np.ndarray] = {}
@@ -119,7 +144,11 @@ def analyze_window(
         running = running_mask(
             grid.frame([site.header_pressure_tag]), site.header_pressure_tag, None, settings
         ).to_numpy(bool)
-        steady = _steady_by_tag(grid, flow_tags, [site.header_pressure_tag], settings)
+        steady, variation = _steady_by_tag(
+            grid, flow_tags, [site.header_pressure_tag], settings)
+    why = _Verdicts(site, settings, variation, resolution_by_tag(result.flags),
+                    _empty_grid_cause(site, result.flags, settings))
+    rule = tail_rule((t1 - t0).total_seconds(), freq.total_seconds())
     base = running & steady.get(site.header_pressure_tag, np.zeros(len(running), bool))
     keep_all = base.copy()
     for tag in flow_tags:
@@ -129,11 +158,11 @@ def analyze_window(
     for branch in site.branches:
         if branch.flow_tag is None and inferred is not None and inferred[0] == branch.name:
             # every metered flow steady: the difference is as steady as they are
-            fits.append(_fit_row(site, branch, grid, keep_all, t0, t1, running,
+            fits.append(_fit_row(site, branch, grid, keep_all, t0, t1, running, why, rule,
                                  flow=inferred[1]))
         else:
             keep = base & steady.get(branch.flow_tag or "", base)
-            fits.append(_fit_row(site, branch, grid, keep, t0, t1, running))
+            fits.append(_fit_row(site, branch, grid, keep, t0, t1, running, why, rule))
     balance = _balance(site, grid, keep_all, t0, t1)
     return WindowAnalysis(
         fits=fits, screening=screening, balance=balance, health=health, samples=len(readings)
@@ -197,8 +226,9 @@ class _Grid:
 
 def _steady_by_tag(
     grid: _Grid, flow_tags: list[str], pressure_tags: list[str], settings: ScreenSettings
-) -> dict[str, np.ndarray]:
-    """Per tag, True where it is steady by `monitor.quality.steady_mask`'s rule.
+) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
+    """Per tag, True where it is steady by `monitor.quality.steady_mask`'s rule, and the
+    rolling variation (std / mean) that the rule compares with its limit [-].
 
     One rolling pass over all the tags at once (the rule is per column); `steady_mask`
     is the AND of these over its tags.
@@ -208,6 +238,7 @@ def _steady_by_tag(
     step = index.to_series().diff().median() if len(index) > 1 else window
     need = max(2, int(0.5 * window / step)) if pd.notna(step) and step > pd.Timedelta(0) else 2
     out: dict[str, np.ndarray] = {}
+    variation: dict[str, np.ndarray] = {}
     groups = (
         (flow_tags, settings.steady_flow_rel, settings.steady_flow_floor_m3s),
         (pressure_tags, settings.steady_pressure_rel, settings.steady_pressure_floor_pa),
@@ -218,21 +249,23 @@ def _steady_by_tag(
         roll = grid.frame(list(tags)).rolling(window, center=True, min_periods=need)
         std = roll.std().to_numpy()
         mean = roll.mean().to_numpy()
+        cv = std / np.maximum(np.abs(mean), floor)
         with np.errstate(invalid="ignore"):
-            ok = std / np.maximum(np.abs(mean), floor) <= limit  # NaN compares False
+            ok = cv <= limit  # NaN compares False
         out.update({tag: ok[:, j] for j, tag in enumerate(tags)})
-    return out
+        variation.update({tag: cv[:, j] for j, tag in enumerate(tags)})
+    return out, variation
 
 
 def _fit_row(
     site: Site, branch: BranchConfig, grid: _Grid, keep: np.ndarray,
-    start: pd.Timestamp, end: pd.Timestamp, running: np.ndarray,
-    flow: np.ndarray | None = None,
+    start: pd.Timestamp, end: pd.Timestamp, running: np.ndarray, why: _Verdicts,
+    rule: StepRule, flow: np.ndarray | None = None,
 ) -> dict[str, Any]:
     """The fit row of one branch; *flow* [m^3/s] stands in for a branch without a meter."""
     row: dict[str, Any] = {"branch": branch.name, "window_start": start, "window_end": end}
     if (branch.flow_tag is None and flow is None) or grid.empty:
-        return {**row, **_empty("no readings in this window" if grid.empty else
+        return {**row, **_empty(why.empty_grid if grid.empty else
                                 "no flow meter on this branch, and its flow cannot be had "
                                 "from the header balance (it needs the total flow meter and "
                                 "every other branch metered)")}
@@ -246,13 +279,21 @@ def _fit_row(
     mask = keep & np.isfinite(p) & np.isfinite(q) & np.isfinite(t)
     for values in conditions.values():
         mask &= np.isfinite(values)
-    floor = max(branch.min_flow_m3s * 0.25, 1e-4)
+    floor = max(branch.min_flow_m3s * 0.25, MIN_FIT_FLOW_M3S)
     mask &= q > floor
     seconds = grid.seconds
+    # a signal too coarse for a fit is the verdict even where it also looks unsteady
+    flowing = running & np.isfinite(p) & np.isfinite(q) & (q > floor)
+    coarse = None if flowing.sum() < site.analysis.min_samples else why.too_coarse(
+        branch, q[flowing], t[flowing])
+    if coarse is not None:
+        row.update(_empty(coarse, status="not_identifiable"))
+        row["mean_flow_m3s"] = float(np.mean(q[flowing]))
+        return row
     if mask.sum() < site.analysis.min_samples:
         row.update(_empty(
-            f"{int(mask.sum())} steady samples with flow above {floor * 3600:.1f} m3/h; "
-            f"{site.analysis.min_samples} needed", status="too_few_samples"))
+            why.too_few(branch, grid, keep, running, mask, floor, q),
+            status="too_few_samples"))
         row["mean_flow_m3s"] = float(np.nanmean(q)) if np.isfinite(q).any() else math.nan
         if branch.end_pressure_tag is not None:
             # the logged back-pressure still tells its story when r cannot be fitted
@@ -260,14 +301,14 @@ def _fit_row(
             if np.isfinite(ends).any():
                 row["end_pressure_pa"] = float(np.nanmedian(ends))
             row.update(_tail(branch, grid, mask, running, seconds, None, floor, p, q, t,
-                             conditions))
+                             conditions, rule))
         return row
     kwargs = {k: v[mask] for k, v in conditions.items()}
     # the whole window's fit, and a step part-way through it (a window a step came in is
     # also where the robust fit of the whole of it may not converge: looked for anyway)
     fit, change = fit_with_change(
         branch.model, time_s=seconds[mask], header_pressure_pa=p[mask], flow_m3s=q[mask],
-        temperature_c=t[mask], min_flow_m3s=floor, rule=TAIL_RULE,
+        temperature_c=t[mask], min_flow_m3s=floor, rule=rule,
         min_samples=site.analysis.min_samples, **kwargs,
     )
     row.update(_fit_fields(fit))
@@ -284,14 +325,15 @@ def _fit_row(
     end_tag = branch.end_pressure_tag
     if end_tag is not None:
         row["end_pressure_pa"] = float(np.median(grid.column(end_tag)[mask]))
-    row.update(_tail(branch, grid, mask, running, seconds, change, floor, p, q, t, conditions))
+    row.update(_tail(branch, grid, mask, running, seconds, change, floor, p, q, t, conditions,
+                     rule))
     return row
 
 
 def _tail(
     branch: BranchConfig, grid: _Grid, mask: np.ndarray, running: np.ndarray,
     seconds: np.ndarray, change: ChangePoint | None, floor: float, p: np.ndarray,
-    q: np.ndarray, t: np.ndarray, conditions: dict[str, np.ndarray],
+    q: np.ndarray, t: np.ndarray, conditions: dict[str, np.ndarray], rule: StepRule,
 ) -> dict[str, Any]:
     """Where a step part-way through the window came, and the state after it.
 
@@ -310,9 +352,9 @@ def _tail(
         # steady flow samples may be sparse just after it
         logged = running & np.isfinite(ends)
         step = find_level_step(
-            seconds[logged], ends[logged], min_head_s=TAIL_RULE.min_head_s,
-            min_tail_s=TAIL_RULE.min_tail_s, min_samples=TAIL_RULE.min_samples,
-            min_gain=TAIL_RULE.min_gain, min_step=TAIL_RULE.min_pressure_step_pa,
+            seconds[logged], ends[logged], min_head_s=rule.min_head_s,
+            min_tail_s=rule.min_tail_s, min_samples=rule.min_samples,
+            min_gain=rule.min_gain, min_step=rule.min_pressure_step_pa,
         )
         change = step or change
     if change is None:
@@ -324,11 +366,11 @@ def _tail(
             out["tail_end_pressure_pa"] = float(np.median(ends[after]))
     tail = mask & (seconds >= change.time_s)
     fit = None
-    if int(tail.sum()) >= TAIL_RULE.min_samples:
+    if int(tail.sum()) >= rule.min_samples:
         logged_tail: dict[str, Any] = {k: v[tail] for k, v in conditions.items()}
         fit = fit_resistance(
             branch.model, header_pressure_pa=p[tail], flow_m3s=q[tail], temperature_c=t[tail],
-            min_flow_m3s=floor, min_samples=TAIL_RULE.min_samples, **logged_tail,
+            min_flow_m3s=floor, min_samples=rule.min_samples, **logged_tail,
         )
     if fit is not None and fit.usable:
         out.update({
@@ -439,3 +481,120 @@ def _balance(
         "window_start": start, "window_end": end, "residual_m3s": residual,
         "uncertainty_m3s": uncertainty, "samples": int(ok.sum()),
     }
+
+
+#: A signal whose resolution is more than this share of what it must measure (the
+#: branch's clean dynamic drop; for a flow meter, its flow) gives no fit: each sample
+#: then fixes r no better than ±this share, and a signal stepping between a few levels
+#: does not average down. A rule of this project, not a published figure.
+COARSE_SHARE = 0.2
+
+
+def _in_unit(site: Site, tag: str, value_si: float) -> str:
+    """*value_si* in *tag*'s own plant unit, with three significant digits."""
+    spec = site.tags[tag]
+    return f"{float(from_si([value_si], spec.unit, spec.kind)[0]):.3g} {spec.unit}"
+
+
+def _duration(seconds: float) -> str:
+    return f"{seconds / 60:.0f} min" if seconds >= 60 else f"{seconds:.0f} s"
+
+
+def _empty_grid_cause(site: Site, flags: pd.DataFrame, settings: ScreenSettings) -> str:
+    """Why a window has no usable header pressure sample, naming the setting to change."""
+    tag = site.header_pressure_tag
+    own = flags[flags["tag"] == tag] if len(flags) else flags
+    if own.empty:
+        return f"no readings of the header pressure {tag} in this window"
+    n = len(own)
+    off = int(own["pump_off"].sum())
+    if off == n:
+        median = float(np.nanmedian(own["value"].to_numpy(float)))
+        return (f"the pump counted as stopped all window: {tag} read a median "
+                f"{_in_unit(site, tag, median)}, below the running pressure "
+                f"{_in_unit(site, tag, settings.running_pressure_pa)} "
+                "([header] running_pressure: set it below the pressure the pumps run at)")
+    counts = {f: int(own[f].sum()) for f in ("bad_quality", "no_value", "out_of_range",
+                                              "frozen", "spike", "rate", "pump_off",
+                                              "startup")}
+    parts = ", ".join(f"{c} {f.replace('_', ' ')}" for f, c in counts.items() if c)
+    return f"no usable sample of the header pressure {tag}: of {n}, {parts or 'none usable'}"
+
+
+@dataclass(frozen=True)
+class _Verdicts:
+    """Why a branch-window gave no fit, in words that name the cause and its setting."""
+
+    site: Site
+    settings: ScreenSettings
+    variation: dict[str, np.ndarray]  # rolling std/mean per tag on the grid [-]
+    resolution: dict[str, float]  # per tag, from the data [SI]
+    empty_grid: str
+
+    def too_few(self, branch: BranchConfig, grid: _Grid, keep: np.ndarray,
+                running: np.ndarray, mask: np.ndarray, floor: float, q: np.ndarray) -> str:
+        """The shortfall of steady samples, each bin counted under its first cause."""
+        site, st = self.site, self.settings
+        need = site.analysis.min_samples
+        left = np.ones(len(running), dtype=bool)
+        parts: list[str] = []
+
+        def take(bad: np.ndarray, text: str) -> None:
+            hit = left & bad
+            if hit.any():
+                parts.append(f"{int(hit.sum())} {text}")
+                left[hit] = False
+
+        pt = site.header_pressure_tag
+        take(~running, f"with the pump counted as stopped ({pt} below "
+                       f"{_in_unit(site, pt, st.running_pressure_pa)}, "
+                       "[header] running_pressure)")
+        window = _duration(st.steady_window_s)
+        for tag, limit, key in ((pt, st.steady_pressure_rel, "steady_pressure_band"),
+                                (branch.flow_tag, st.steady_flow_rel, "steady_flow_band")):
+            cv = self.variation.get(tag or "")
+            if cv is None:
+                continue
+            with np.errstate(invalid="ignore"):
+                bad = ~(cv <= limit)
+            moved = cv[left & bad & np.isfinite(cv)]
+            most = f" up to {100 * float(moved.max()):.1f} %" if moved.size else ""
+            take(bad, f"where {tag} was not steady (it varied{most} over {window}; "
+                      f"{100 * limit:.1f} % allowed, [analysis] {key})")
+        whose = ("a quarter of the branch's min_flow" if floor > MIN_FIT_FLOW_M3S
+                 else "the fit's floor for any branch")
+        take(~(q > floor), f"with flow at or below {_in_unit(site, branch.flow_tag, floor)}"
+                           f" ({whose})" if branch.flow_tag else
+             "with flow at or below the fit's floor")
+        take(~mask, "with a condition tag (level, end pressure, valve position, "
+                    "temperature) missing or unusable")
+        why = "; ".join(parts) if parts else "no sample in the window"
+        return (f"{int(mask.sum())} steady samples, {need} needed ([analysis] min_samples) "
+                f"of {len(running)} on the {_duration(grid_step(grid, st))} grid: {why}")
+
+    def too_coarse(self, branch: BranchConfig, q: np.ndarray, t: np.ndarray) -> str | None:
+        """'not identifiable: …' when a signal resolves too little of what it measures."""
+        site = self.site
+        q_med = float(np.median(q))
+        t_med = float(np.nanmedian(t)) if np.isfinite(t).any() else 20.0
+        drop = float(branch.model.dp_dynamic(q_med, temperature_c=t_med))
+        pt = site.header_pressure_tag
+        p_res = self.resolution.get(pt, 0.0)
+        if drop > 0 and p_res > COARSE_SHARE * drop:
+            return (f"not identifiable: {pt} resolves {_in_unit(site, pt, p_res)}, the "
+                    f"branch's dynamic drop is {_in_unit(site, pt, drop)} (a fit needs a "
+                    f"resolution finer than {100 * COARSE_SHARE:.0f} % of the drop)")
+        ft = branch.flow_tag
+        q_res = self.resolution.get(ft or "", 0.0)
+        if ft and q_med > 0 and 2.0 * q_res > COARSE_SHARE * q_med:
+            return (f"not identifiable: {ft} resolves {_in_unit(site, ft, q_res)} at a flow "
+                    f"of {_in_unit(site, ft, q_med)} (r goes with 1/Q², so each step moves "
+                    f"it by {200 * q_res / q_med:.0f} %)")
+        return None
+
+
+def grid_step(grid: _Grid, settings: ScreenSettings) -> float:
+    """The grid's bin width [s] (the steady-state window when the grid has one row)."""
+    if len(grid.seconds) > 1:
+        return float(np.min(np.diff(grid.seconds)))
+    return settings.steady_window_s

@@ -149,6 +149,8 @@ class HeaderSection(_Strict):
     temperature: TagRef | None = None
     total_flow: TagRef | None = None
     design_temperature: Annotated[float, _quantity("degC")] = 20.0
+    #: below this header pressure the pumps count as stopped (no [pump] section needed)
+    running_pressure: Pressure | None = None
 
 
 class PumpPoint(_Strict):
@@ -162,7 +164,8 @@ class PumpSection(_Strict):
     speed: TagRef | None = None
     design_speed: Fraction = 1.0
     efficiency: Fraction = 0.70
-    running_pressure: Pressure = 50_000.0
+    #: the older place of [header] running_pressure, still read
+    running_pressure: Pressure | None = None
 
 
 class PipeSpec(_Strict):
@@ -263,6 +266,12 @@ class AnalysisSection(_Strict):
     low_flow_off_delay: Duration = 300.0
     #: a flow or pressure reading that does not move at all for this long is frozen
     frozen_hold: Duration = 3600.0
+    #: the steady-state test: over this window (default: a quarter of the analysis
+    #: window, at most 15 min, at least 6 grid steps) the header pressure and a branch's
+    #: flow may vary (std / mean) by at most these shares
+    steady_window: Duration | None = None
+    steady_pressure_band: float = Field(default=0.03, gt=0, lt=1)
+    steady_flow_band: float = Field(default=0.05, gt=0, lt=1)
 
 
 class ScheduleSection(_Strict):
@@ -520,13 +529,26 @@ def _build(doc: SiteFile, path: Path) -> Site:
         pump_speed_tag=speed_tag,
         design_speed=doc.pump.design_speed if doc.pump else 1.0,
         pump_efficiency=doc.pump.efficiency if doc.pump else 0.70,
-        running_pressure_pa=doc.pump.running_pressure if doc.pump else 50_000.0,
+        running_pressure_pa=_running_pressure(doc, path),
         analysis=doc.analysis,
         schedule=doc.schedule,
         report_folder=(path.parent / doc.report.folder).resolve(),
         branches=tuple(branches),
         tags=tags,
     )
+
+
+def _running_pressure(doc: SiteFile, path: Path) -> float:
+    """[header] running_pressure, or the [pump] section's, or 0.5 bar [Pa gauge]."""
+    header = doc.header.running_pressure
+    pump = doc.pump.running_pressure if doc.pump else None
+    if header is not None and pump is not None and header != pump:
+        raise ConfigError(
+            f"{path.name}: header.running_pressure and pump.running_pressure disagree "
+            f"({header / 1e5:g} bar against {pump / 1e5:g} bar); keep the one in [header]"
+        )
+    found = header if header is not None else pump
+    return 50_000.0 if found is None else found
 
 
 def _resolve_sqlite(url: str, base: Path) -> str:

@@ -54,6 +54,7 @@ __all__ = [
     "ScreenResult",
     "ScreenSettings",
     "TagLimits",
+    "resolution_by_tag",
     "running_mask",
     "screen",
     "steady_mask",
@@ -484,6 +485,18 @@ def _resolution(values: np.ndarray, codes: np.ndarray) -> np.ndarray:
             med = pd.Series(step[distinct]).groupby(c[1:][distinct]).median()
             out[med.index.to_numpy()] = med.to_numpy()
     return out[codes]
+
+
+def resolution_by_tag(flags: pd.DataFrame) -> dict[str, float]:
+    """Each tag's resolution estimated from its usable samples [SI] (see `_resolution`);
+    *flags* as in `ScreenResult.flags`."""
+    use = flags[flags["usable"].to_numpy(bool)] if "usable" in flags else flags
+    if use.empty:
+        return {}
+    codes, tags = pd.factorize(use["tag"])
+    res = _resolution(use["value"].to_numpy("float64"), codes)
+    first = np.unique(codes, return_index=True)[1]
+    return {str(tags[c]): float(res[i]) for c, i in zip(codes[first], first, strict=True)}
 
 
 def _too_fast(
