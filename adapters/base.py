@@ -1,6 +1,6 @@
 """The small interfaces between branchwatch and the outside world.
 
-``monitor/`` talks to data only through these two families:
+``monitor/`` talks to data and people only through these families:
 
 * `ReadingsSource` — where historian readings come from (a folder of CSV exports, a SQL
   table). Implementations: ``csv`` (`adapters.csv_source`), ``sql``
@@ -8,6 +8,8 @@
 * `ResultsStore` — where everything branchwatch learns is kept (ingested readings of file
   sources, fits, findings, alarms, maintenance events, cursors, quarantine, job runs).
   Implementation: ``sqlalchemy`` (`adapters.store`).
+* `Notifier` — how a `Message` reaches people. Implementations: ``email`` and
+  ``webhook`` (`adapters.notify`).
 
 Each implementation registers under a short alias that the site config names
 (``[source] kind = "csv"``); `source_class` and friends look the alias up.
@@ -33,7 +35,10 @@ Exceptions
     BranchwatchAdapterError (Exception)
     ├── SourceUnavailable (ConnectionError)   the source cannot be reached now; retry later
     ├── UnknownTagError (KeyError)            a configured tag the source does not have
-    └── StoreError (RuntimeError)             the results store refused a write or read
+    ├── StoreError (RuntimeError)             the results store refused a write or read
+    ├── NotifyError (ConnectionError)         a message could not go now; try again later
+    └── NotifyRejected (ValueError)           a message can never go as it is (login or
+                                              recipient refused): do not retry
 """
 
 from __future__ import annotations
@@ -52,6 +57,10 @@ __all__ = [
     "READING_COLUMNS",
     "Batch",
     "BranchwatchAdapterError",
+    "Message",
+    "Notifier",
+    "NotifyError",
+    "NotifyRejected",
     "ReadingsSource",
     "ResultsStore",
     "SourceUnavailable",
@@ -60,6 +69,7 @@ __all__ = [
     "UnknownTagError",
     "empty_quarantine",
     "empty_readings",
+    "notifier_class",
     "open_store",
     "source_class",
 ]
@@ -91,6 +101,14 @@ class UnknownTagError(BranchwatchAdapterError, KeyError):
 
 class StoreError(BranchwatchAdapterError, RuntimeError):
     """The results store refused a read or a write."""
+
+
+class NotifyError(BranchwatchAdapterError, ConnectionError):
+    """A message could not be delivered now (server down, timeout, dropped): retry later."""
+
+
+class NotifyRejected(BranchwatchAdapterError, ValueError):
+    """A message can never be delivered as it is (login, sender or recipient refused)."""
 
 
 def empty_readings() -> pd.DataFrame:
@@ -373,10 +391,59 @@ class ResultsStore(abc.ABC):
         """Release the connection pool."""
 
 
+@dataclass(frozen=True)
+class Message:
+    """One notification.
+
+    ``key`` is its idempotency key: the outbox sends each key once per channel. ``kind``
+    is ``alarm``, ``digest`` or ``test``; ``priority`` ``high``, ``medium`` or ``low``;
+    ``text`` the plain-text body; ``html`` an HTML attachment (the morning report) named
+    ``attachment_name``; ``data`` extra fields for a webhook's JSON.
+    """
+
+    key: str
+    subject: str
+    text: str
+    kind: str = "alarm"
+    priority: str = "medium"
+    html: str | None = None
+    attachment_name: str = "report.html"
+    data: Mapping[str, Any] = field(default_factory=dict)
+
+
+class Notifier(abc.ABC):
+    """A way of telling people: `send` delivers one `Message` or raises.
+
+    `send` raises `NotifyError` when trying again later may work and `NotifyRejected`
+    when it cannot; it must not block longer than its timeout. Implementations register
+    under ``alias``; `notifier_class` finds them.
+    """
+
+    alias: ClassVar[str] = ""
+    _registry: ClassVar[dict[str, type[Notifier]]] = {}
+
+    def __init_subclass__(cls, **kwargs: Any) -> None:
+        super().__init_subclass__(**kwargs)
+        if cls.alias:
+            Notifier._registry[cls.alias] = cls
+
+    def __init__(self, *, name: str = "") -> None:
+        self.name = name or self.alias
+
+    @abc.abstractmethod
+    def send(self, message: Message) -> None:
+        """Deliver *message* once, or raise `NotifyError` / `NotifyRejected`."""
+
+    def describe(self) -> str:
+        """Where messages go, with no secret in it (for logs and ``status``)."""
+        return self.name
+
+
 #: Where each alias lives; the module is imported on first use, so that an optional
 #: dependency (a database driver) is only needed by the sites that use it.
 _MODULES: dict[str, dict[str, str]] = {
     "source": {"csv": "adapters.csv_source", "sql": "adapters.sql_source"},
+    "notifier": {"email": "adapters.notify", "webhook": "adapters.notify"},
 }
 
 
@@ -400,6 +467,11 @@ def _lookup(registry: Mapping[str, type[Any]], alias: str, family: str) -> type[
 def source_class(alias: str) -> type[ReadingsSource]:
     """The `ReadingsSource` implementation registered under *alias*."""
     return _lookup(ReadingsSource._registry, alias, "source")
+
+
+def notifier_class(alias: str) -> type[Notifier]:
+    """The `Notifier` implementation registered under *alias*."""
+    return _lookup(Notifier._registry, alias, "notifier")
 
 
 def open_store(url: str, *, alias: str = "sqlalchemy") -> ResultsStore:
