@@ -263,6 +263,16 @@ class AnalysisSection(_Strict):
     low_flow_off_delay: Duration = 300.0
     #: a flow or pressure reading that does not move at all for this long is frozen
     frozen_hold: Duration = 3600.0
+    #: a tag whose newest reading is older than this raises a stale-data alarm; default
+    #: (none given) max(1 h, 4 x [schedule] ingest_every, 3 x sample_period)
+    stale_after: Duration | None = None
+
+    @field_validator("stale_after")
+    @classmethod
+    def _positive_age(cls, value: float | None) -> float | None:
+        if value is not None and not value > 0:
+            raise ValueError(f"must be a positive duration like '2 h', got {value} s")
+        return value
 
 
 class ScheduleSection(_Strict):
