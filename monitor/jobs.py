@@ -10,11 +10,14 @@ a backfill maps the window analysis over days, in worker processes (`analyze_win
 from __future__ import annotations
 
 import atexit
+import ctypes
 import logging
 import math
 import multiprocessing
+import os
 import pickle
 import signal
+import sys
 import threading
 import time
 from collections import Counter, deque
@@ -350,11 +353,7 @@ def _in_workers(
     workers: int,
 ) -> Iterator[WindowAnalysis]:
     """`analyze_windows` in *workers* processes, results in window order."""
-    context = multiprocessing.get_context("spawn")  # no inherited connections or threads
-    with ProcessPoolExecutor(
-        workers, mp_context=context, initializer=_worker_start,
-        initargs=(site, shipped, own_source),
-    ) as pool:
+    with worker_pool(site, shipped, own_source, workers) as pool:
         pending: deque[Future[WindowAnalysis]] = deque()
         todo = iter(spans)
         try:
@@ -369,6 +368,53 @@ def _in_workers(
         finally:
             for future in pending:
                 future.cancel()
+
+
+def worker_pool(site: Site, shipped: bytes, own_source: bool, workers: int
+                ) -> ProcessPoolExecutor:
+    """The process pool of a backfill: *workers* spawned processes, each with the site,
+    its own store connection (*shipped*: the pickled store) and, when *own_source*, its
+    own source; each exits when this process dies (`_die_with_parent`)."""
+    context = multiprocessing.get_context("spawn")  # no inherited connections or threads
+    return ProcessPoolExecutor(
+        workers, mp_context=context, initializer=_worker_start,
+        initargs=(site, shipped, own_source, os.getpid()),
+    )
+
+
+#: prctl option that asks the kernel for a signal when the parent dies (linux/prctl.h).
+_PR_SET_PDEATHSIG = 1
+#: How often the portable fallback looks for its parent [s].
+PARENT_CHECK_S = 1.0
+
+
+def _die_with_parent(parent_pid: int) -> None:
+    """Make this worker end when *parent_pid* (the process that started it) dies.
+
+    A worker outliving its parent (the parent killed with SIGKILL, or crashed) holds its
+    memory and a database connection for as long as its last window takes and then idles
+    for ever. On Linux the kernel sends SIGKILL at the parent's death
+    (``prctl(PR_SET_PDEATHSIG)``); everywhere a daemon thread also checks every second
+    that the parent is still this process's parent and exits when it is not. A parent
+    already gone before either was set up is caught by the first check.
+    """
+    if sys.platform.startswith("linux"):
+        try:
+            libc = ctypes.CDLL(None, use_errno=True)
+            if libc.prctl(_PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0) != 0:
+                log.debug("prctl(PR_SET_PDEATHSIG) failed: errno %d", ctypes.get_errno())
+        except (OSError, AttributeError) as exc:
+            log.debug("prctl not available (%s): the parent check alone", exc)
+
+    def watch() -> None:
+        while True:
+            if os.getppid() != parent_pid:
+                os._exit(1)  # the parent is gone: nobody will read this worker's results
+            time.sleep(PARENT_CHECK_S)
+
+    if os.getppid() != parent_pid:
+        os._exit(1)
+    threading.Thread(target=watch, name="parent-watch", daemon=True).start()
 
 
 @contextmanager
@@ -402,7 +448,8 @@ def _reopenable(store: ResultsStore) -> bytes | None:
 _WORKER: dict[str, Any] = {}
 
 
-def _worker_start(site: Site, store: bytes, own_source: bool) -> None:
+def _worker_start(site: Site, store: bytes, own_source: bool, parent_pid: int) -> None:
+    _die_with_parent(parent_pid)
     _WORKER["site"] = site
     _WORKER["store"] = opened = pickle.loads(store)
     atexit.register(opened.close)
