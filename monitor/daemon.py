@@ -261,13 +261,14 @@ def mask_secret(text: str, url: str) -> str:
     which the daemon names in its log before any store or source exists.
     """
     try:
-        password = urllib.parse.urlsplit(url).password
+        raw = urllib.parse.urlsplit(url).password  # as written in the URL (%-encoded)
     except ValueError:
-        password = None
-    if not password:
+        raw = None
+    if not raw:
         return text
-    for secret in {password, urllib.parse.quote_plus(password),
-                   urllib.parse.quote(password, safe="")}:
+    plain = urllib.parse.unquote(raw)
+    for secret in sorted({raw, plain, urllib.parse.quote_plus(plain),
+                          urllib.parse.quote(plain, safe="")}, key=len, reverse=True):
         text = text.replace(secret, "***")
     return text
 
@@ -305,7 +306,7 @@ def wait_for(
                           reason)
                 return None
             wait = delay if left is None else min(delay, left)
-            log.warning("%s: not reachable (try %d: %s); next try in %.0f s", what, attempt,
+            log.warning("%s: not reachable (try %d: %s); next try in %.3g s", what, attempt,
                         reason, wait)
             stop.wait(wait)
             delay = min(delay * 2, max_delay_s)
