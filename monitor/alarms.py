@@ -474,8 +474,9 @@ def _stale_message(
                 f"{limit}); check that the historian export or database link delivers it")
     local = pd.Timestamp(known).tz_convert(timezone)
     return (f"No new data from {subject} since {local:%Y-%m-%d %H:%M} site time: "
-            f"{format_age(age.total_seconds())} old, more than the {limit} allowed; the "
-            "other alarms judge nothing newer: check the historian export or database link")
+            f"{format_age(age.total_seconds())} old, more than the {limit} allowed, and the "
+            "low-flow and frozen-meter checks see nothing after it: check the historian "
+            "export or database link")
 
 
 def format_age(seconds: float) -> str:

@@ -726,7 +726,7 @@ def _stale_alarms(
     ]
     new_src, happened = evaluate_stale(
         max(known) if known else None, src_state, settings, now,
-        subject=f"source {source.name} (no tag)", timezone=site.timezone,
+        subject=f"any tag of source {source.name}", timezone=site.timezone,
     )
     events.extend(happened)
     if new_src != src_state or key not in states:

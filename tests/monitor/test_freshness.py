@@ -290,3 +290,18 @@ def test_report_header_gives_the_data_age_and_flags_stale_data(
     old = write_report(site, store, day=newest - timedelta(hours=12),
                        now=newest + timedelta(hours=3, minutes=10)).read_text()
     assert f"Data up to {local}, 3 h 10 min old" in old and "STALE DATA" in old
+
+
+def test_a_bad_age_limit_is_refused_naming_the_key(tmp_path: Path) -> None:
+    from monitor.config import ConfigError, load_site
+
+    example = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"
+    text = example.read_text().replace('# stale_after = "2 h"', 'stale_after = "0 s"')
+    assert 'stale_after = "0 s"' in text
+    bad = tmp_path / "site.toml"
+    bad.write_text(text)
+    with pytest.raises(ConfigError, match="stale_after"):
+        load_site(bad)
+    good = tmp_path / "good.toml"
+    good.write_text(text.replace('stale_after = "0 s"', 'stale_after = "2 h"'))
+    assert stale_after(load_site(good)) == 7200.0
