@@ -286,3 +286,23 @@ def test_the_portable_parent_check_ends_a_worker_whose_parent_died() -> None:
         finally:
             if middle.poll() is None:
                 middle.kill()
+
+
+def test_run_judges_the_alarms_when_its_ingest_fails(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str],
+) -> None:
+    # No inbox folder: every ingest fails (the export share is gone), and the stale-data
+    # alarm of the source is raised all the same.
+    site_file = tmp_path / "site.toml"
+    site_file.write_text(EXAMPLE.read_text())
+    assert main(["run", str(site_file), "--for", "2"]) == 0
+    assert "failures {'ingest': 1}" in capsys.readouterr().out
+    store = open_store(load_site(site_file).store_url)
+    try:
+        alarms = store.read_alarms()
+        runs = store.job_runs(job="ingest")
+    finally:
+        store.close()
+    row = alarms[alarms["condition"] == "stale source"].iloc[0]
+    assert row["state"] == "unack" and "No data from any tag" in row["message"]
+    assert set(runs["status"]) == {"failed"}
