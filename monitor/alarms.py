@@ -1,8 +1,11 @@
-"""Low-flow alarms with the ISA-18.2 / IEC 62682 alarm life cycle.
+"""Near-real-time alarms with the ISA-18.2 / IEC 62682 alarm life cycle.
 
-The check runs on every ingest, per branch, on the branch's flow samples — independent
-of the daily fit. Everything here is a pure function of its inputs: the caller keeps the
-`AlarmState` (in the results store) and passes it back in with the next samples.
+Three conditions, each its own alarm: **low flow** per branch, **frozen** transmitter per
+flow and pressure tag, and **stale data** (communication loss) per tag and per source.
+The checks run on every ingest — independent of the daily fit, and the stale-data check
+also when the ingest failed, which is when it matters. Everything here is a pure
+function of its inputs: the caller keeps the `AlarmState` (in the results store) and
+passes it back in with the next samples.
 
 Life cycle (ISA-18.2 state names)::
 
@@ -24,6 +27,10 @@ alarm per condition, not one per sample. Defaults from memory of the ISA-18.2 ta
 (REFERENCES.md): flow deadband 5 % of range, delays 15 s. Historian data often comes
 every minute, so with the default delays a condition must be seen on two consecutive
 samples; set the delays to suit the site's logging interval.
+
+The stale-data alarm has no on-delay (its age limit is the delay) and an off-delay
+that defaults to zero: it is judged once per ingest, and fresh data stays fresh for the
+whole age limit, so it cannot chatter faster than that.
 
 `alarm_rate_summary` computes the EEMUA 191 figures of an event log: floods (> 10
 alarms in 10 min), chattering alarms (3 activations within 1 min) and stale alarms
@@ -50,11 +57,15 @@ __all__ = [
     "AlarmState",
     "FrozenSettings",
     "LowFlowSettings",
+    "StaleSettings",
     "State",
     "acknowledge",
     "alarm_rate_summary",
+    "describe_condition",
     "evaluate_frozen",
     "evaluate_low_flow",
+    "evaluate_stale",
+    "format_age",
     "remove_from_service",
     "reset",
     "return_to_service",
@@ -210,6 +221,34 @@ def _expire_shelf(s: AlarmState, t: datetime) -> tuple[AlarmState, list[AlarmEve
     return s, []
 
 
+def _new_samples(
+    series: pd.Series, state: AlarmState, now: datetime
+) -> tuple[pd.Series, pd.Timestamp]:
+    """The samples of *series* not yet judged: after ``state.last_sample``, up to *now*,
+    not NaN, in time order, indexed in UTC; and *now* as a timestamp.
+
+    The input checks every sample-driven alarm shares: a Series on aware times and an
+    aware *now*.
+    """
+    if not isinstance(series, pd.Series):
+        raise TypeError(f"series must be a pandas Series, got {type(series).__name__}")
+    index = pd.DatetimeIndex(series.index)
+    if index.tz is None:
+        raise ValueError("series must be indexed by timezone-aware (UTC) times")
+    t_now = _aware(now, "now")
+    data = pd.Series(series.to_numpy(dtype=float), index=index.tz_convert("UTC")).sort_index()
+    if state.last_sample is not None:
+        data = data[data.index > pd.Timestamp(state.last_sample)]
+    return data[(data.index <= t_now) & data.notna()], t_now
+
+
+def _aware(when: datetime, name: str) -> pd.Timestamp:
+    t = pd.Timestamp(when)
+    if t.tzinfo is None:
+        raise ValueError(f"{name} must be timezone-aware (UTC), got {when!r}")
+    return t
+
+
 def evaluate_low_flow(
     series: pd.Series,
     state: AlarmState,
@@ -233,18 +272,7 @@ def evaluate_low_flow(
     -------
     (new state, events in time order)
     """
-    if not isinstance(series, pd.Series):
-        raise TypeError(f"series must be a pandas Series, got {type(series).__name__}")
-    index = pd.DatetimeIndex(series.index)
-    if index.tz is None:
-        raise ValueError("series must be indexed by timezone-aware (UTC) times")
-    t_now = pd.Timestamp(now)
-    if t_now.tzinfo is None:
-        raise ValueError(f"now must be timezone-aware (UTC), got {now!r}")
-    data = pd.Series(series.to_numpy(dtype=float), index=index.tz_convert("UTC")).sort_index()
-    if state.last_sample is not None:
-        data = data[data.index > pd.Timestamp(state.last_sample)]
-    data = data[(data.index <= t_now) & data.notna()]
+    data, t_now = _new_samples(series, state, now)
     s, events = state, []
     for ts, q in zip(data.index, data.to_numpy(), strict=True):
         t = ts.to_pydatetime()
@@ -325,14 +353,7 @@ def evaluate_frozen(
     life cycle as `evaluate_low_flow`; *scale* and *unit_label* only shape the message
     (e.g. 3600 and "m3/h" for a flow in m³/s).
     """
-    index = pd.DatetimeIndex(series.index)
-    if index.tz is None:
-        raise ValueError("series must be indexed by timezone-aware (UTC) times")
-    t_now = pd.Timestamp(now)
-    data = pd.Series(series.to_numpy(dtype=float), index=index.tz_convert("UTC")).sort_index()
-    if state.last_sample is not None:
-        data = data[data.index > pd.Timestamp(state.last_sample)]
-    data = data[(data.index <= t_now) & data.notna()]
+    data, t_now = _new_samples(series, state, now)
     s, events = state, []
     for ts, v in zip(data.index, data.to_numpy(), strict=True):
         t = ts.to_pydatetime()
@@ -367,6 +388,124 @@ def evaluate_frozen(
     s, ev = _expire_shelf(s, t_now.to_pydatetime())
     events += ev
     return s, events
+
+
+@dataclass(frozen=True)
+class StaleSettings:
+    """Data-freshness (communication loss) alarm settings.
+
+    stale_after : a tag whose newest reading is older than this is stale [s]
+    off_delay : how long the data must have been fresh again, judged at successive
+        evaluations, before the alarm returns [s] (default 0: see the module notes)
+    """
+
+    stale_after: timedelta
+    off_delay: timedelta = timedelta(0)
+
+    def __post_init__(self) -> None:
+        if self.stale_after <= timedelta(0):
+            raise ValueError(f"stale_after must be positive, got {self.stale_after}")
+        if self.off_delay < timedelta(0):
+            raise ValueError(f"off_delay must not be negative, got {self.off_delay}")
+
+
+def evaluate_stale(
+    newest: datetime | None,
+    state: AlarmState,
+    settings: StaleSettings,
+    now: datetime,
+    *,
+    subject: str,
+    timezone: str = "UTC",
+) -> tuple[AlarmState, list[AlarmEvent]]:
+    """Judge the age of the newest reading at *now* (one evaluation per ingest).
+
+    Parameters
+    ----------
+    newest : time of the newest reading known of the tag (or of any tag of the source);
+        None when none is known. The state keeps the newest seen (``last_sample``), so a
+        store or source that cannot be read now still ages the data it delivered before.
+    state : the alarm's state after the previous call
+    settings : age limit and off-delay
+    now : evaluation time (UTC)
+    subject : what the message names, e.g. "FT-203 (CW-3)" or "source csv:inbox"
+    timezone : the site's zone, for the time in the message
+
+    The condition is ``now - newest > stale_after`` (or nothing ever read); it comes on at
+    once (no on-delay: the age limit is the delay) and clears after ``off_delay`` of fresh
+    data. ``last_value`` holds the age [s] (NaN when nothing was ever read).
+    """
+    t_now = _aware(now, "now").to_pydatetime()
+    known = state.last_sample
+    if newest is not None:
+        t_new = _aware(newest, "newest").to_pydatetime()
+        known = t_new if known is None else max(known, t_new)
+    age = (t_now - known) if known is not None else None
+    s, events = _expire_shelf(state, t_now)
+    s = dataclasses.replace(
+        s, last_sample=known, last_value=math.nan if age is None else age.total_seconds()
+    )
+    if s.state == State.OUT_OF_SERVICE:
+        return s, events
+    stale = age is None or age > settings.stale_after
+    if stale:
+        s = dataclasses.replace(s, clear_since=None)
+        if not s.active:
+            s, ev = _annunciate_on(s, t_now, _stale_message(subject, known, age, settings,
+                                                            timezone))
+            events += ev
+        return s, events
+    if s.active:
+        since = s.clear_since or t_now
+        s = dataclasses.replace(s, clear_since=since)
+        if t_now - since >= settings.off_delay:
+            s, ev = _annunciate_off(s, t_now, latching=False)
+            events += ev
+    return s, events
+
+
+def _stale_message(
+    subject: str, known: datetime | None, age: timedelta | None, settings: StaleSettings,
+    timezone: str,
+) -> str:
+    limit = format_age(settings.stale_after.total_seconds())
+    if known is None or age is None:
+        return (f"No data from {subject} yet: nothing read since this check began (limit "
+                f"{limit}); check that the historian export or database link delivers it")
+    local = pd.Timestamp(known).tz_convert(timezone)
+    return (f"No new data from {subject} since {local:%Y-%m-%d %H:%M} site time: "
+            f"{format_age(age.total_seconds())} old, more than the {limit} allowed, and the "
+            "low-flow and frozen-meter checks see nothing after it: check the historian "
+            "export or database link")
+
+
+def format_age(seconds: float) -> str:
+    """An age as a person says it: '45 s', '12 min', '3 h 10 min', '95 d 4 h'.
+
+    >>> format_age(3 * 3600 + 10 * 60 + 20), format_age(95 * 86400 + 4 * 3600 + 59)
+    ('3 h 10 min', '95 d 4 h')
+    """
+    if not math.isfinite(seconds):
+        return "unknown age"
+    s = max(int(seconds), 0)
+    days, rest = divmod(s, 86_400)
+    hours, rest = divmod(rest, 3600)
+    minutes, secs = divmod(rest, 60)
+    if days:
+        return f"{days} d {hours} h" if hours else f"{days} d"
+    if hours:
+        return f"{hours} h {minutes} min" if minutes else f"{hours} h"
+    return f"{minutes} min" if minutes else f"{secs} s"
+
+
+def describe_condition(branch: str, condition: str) -> str:
+    """Which alarm, in words: 'low flow on B2', 'frozen PT-100', 'stale FT-203',
+    'stale source (no tag has fresh data)'."""
+    if condition == "low_flow":
+        return f"low flow on {branch}"
+    if condition == "stale source":
+        return "stale source (no tag has fresh data)"
+    return condition.replace("_", " ")
 
 
 def acknowledge(state: AlarmState, now: datetime, by: str) -> tuple[AlarmState, list[AlarmEvent]]:

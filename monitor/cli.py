@@ -275,24 +275,61 @@ def _register_ingest(verbs: Any) -> None:
 One ingest pass: every export file (or database row) the store has not seen yet is read,
 converted to SI, and stored. Bad rows are quarantined with file, line and reason and never
 stop the pass. Running it twice stores nothing new; a pass killed part-way resumes where
-the last stored batch ended.""",
+the last stored batch ended. Then the alarms are evaluated (low flow, frozen meter, stale
+data; see 'branchwatch alarms --help') — also when the ingest failed, so a source that
+has stopped delivering raises its stale-data alarm.""",
     )
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
 
 
 def _cmd_ingest(args: argparse.Namespace) -> int:
-    from monitor.jobs import ingest
+    from monitor.jobs import ingest, ingest_and_watch
 
     site = _site(args)
     store, source = _open(site)
     try:
-        summary = _run_recorded(store, "ingest", lambda: ingest(site, store, source))
+        watch = ingest_and_watch(site, store, source, run_ingest=lambda: _run_recorded(
+            store, "ingest", lambda: ingest(site, store, source)))
     finally:
         source.close()
         store.close()
+    summary = watch.summary
     if args.json:
-        print(json.dumps(summary.to_json_dict(), indent=2, default=str))
-        return EXIT_OK
+        print(json.dumps({**(summary.to_json_dict() if summary is not None else {}),
+                          "error": None if watch.error is None else str(watch.error),
+                          "alarm_events": [_event_json(site, e) for e in watch.events]},
+                         indent=2, default=str))
+    else:
+        if summary is not None:
+            _print_ingest(summary)
+        _print_alarm_events(site, watch.events)
+    if watch.error is not None:
+        raise watch.error  # one line for a user's error (main), a traceback for a bug
+    return EXIT_OK
+
+
+def _event_json(site: Site, e: Any) -> dict[str, Any]:
+    from monitor.alarms import describe_condition
+
+    return {"time": pd.Timestamp(e.time).isoformat(), "site_time": _local(site, e.time),
+            "branch": e.branch, "condition": e.condition,
+            "alarm": describe_condition(e.branch, e.condition), "action": e.action,
+            "state": e.state.value, "message": e.message}
+
+
+def _print_alarm_events(site: Site, events: Sequence[Any]) -> None:
+    """Alarm events of this evaluation, times in site time."""
+    from monitor.alarms import describe_condition
+
+    if not events:
+        return
+    print(f"alarms ({len(events)} changes, site time {site.timezone}):")
+    for e in events:
+        print(f"  {_local(site, e.time)}  {describe_condition(e.branch, e.condition)}: "
+              f"{e.action} -> {e.state.value}" + (f"  {e.message}" if e.message else ""))
+
+
+def _print_ingest(summary: Any) -> None:
     print(f"read {summary.read} readings in {summary.batches} batches; stored "
           f"{summary.stored} new, {summary.duplicates} already stored")
     if summary.quarantined:
@@ -302,7 +339,6 @@ def _cmd_ingest(args: argparse.Namespace) -> int:
     for note, count in sorted(summary.notes.items()):
         why = _NOTE_HELP.get(note, "")
         print(f"note: {note.replace('_', ' ')}: {count}{' (' + why + ')' if why else ''}")
-    return EXIT_OK
 
 
 #: What an ingest note means for the person reading it, where the name alone does not say.
@@ -506,6 +542,9 @@ def _register_status(verbs: Any) -> None:
 
 
 def _cmd_status(args: argparse.Namespace) -> int:
+    from monitor.alarms import format_age
+    from monitor.jobs import stale_after
+
     site = _site(args)
     store = open_store(site.store_url)
     try:
@@ -516,10 +555,20 @@ def _cmd_status(args: argparse.Namespace) -> int:
     finally:
         store.close()
     open_findings = findings[findings["end"].isna()] if not findings.empty else findings
+    now = datetime.now(UTC)
+    limit_s = stale_after(site)
+    newest = {str(t): pd.Timestamp(v) for t, v in
+              zip(marks.readings["tag"], marks.readings["last"], strict=True)}
+    ages = {t: (now - v.to_pydatetime()).total_seconds() for t, v in newest.items()}
+    stale = sorted([t for t, a in ages.items() if a > limit_s]
+                   + [t for t in site.tags if t not in newest])
     if args.json:
         print(json.dumps({
             "site": site.name,
             "readings_last": _iso_map(marks.readings, "tag", "last"),
+            "readings_age_s": {t: round(a, 1) for t, a in ages.items()},
+            "stale_after_s": limit_s,
+            "stale_tags": stale,
             "fits_last": _iso_map(marks.fits, "branch", "last_window_end"),
             "jobs": _jsonable(runs.to_dict(orient="records")),
             "open_findings": len(open_findings),
@@ -527,11 +576,19 @@ def _cmd_status(args: argparse.Namespace) -> int:
         }, indent=2, default=str))
         return EXIT_OK
     print(site.name)
-    print("\nnewest reading per tag:")
+    print(f"\nnewest reading per tag (site time, {site.timezone}; stale after "
+          f"{format_age(limit_s)}):")
     if marks.readings.empty:
         print("  none yet: run 'branchwatch ingest'")
-    for r in marks.readings.itertuples():
-        print(f"  {r.tag:<10} {r.last:%Y-%m-%d %H:%M}Z")
+    for tag in sorted(set(site.tags) | set(newest)):
+        if tag not in newest:
+            print(f"  {tag:<10} no reading stored  STALE")
+            continue
+        flag = "  STALE" if tag in stale else ""
+        print(f"  {tag:<10} {_local(site, newest[tag])}  {format_age(ages[tag]):>12} old{flag}")
+    if stale:
+        print(f"  {len(stale)} of {len(set(site.tags) | set(newest))} tags stale: check the "
+              "historian export or database link ('branchwatch alarms' lists the alarms)")
     print("\nlast analysed window per branch:")
     if marks.fits.empty:
         print("  none yet: run 'branchwatch analyze'")
@@ -658,12 +715,15 @@ def _register_alarms(verbs: Any) -> None:
     p = _add_verb(
         verbs, "alarms", _cmd_alarms, "list, acknowledge, shelve alarms",
         """\
-Two kinds of alarm are checked on every ingest: low flow per branch, and frozen meter
-per flow and pressure transmitter. They follow the ISA-18.2 life cycle: normal -> unack
+Three kinds of alarm are checked on every ingest, also when the ingest failed: low
+flow per branch, frozen meter per flow and pressure transmitter, and stale data
+(condition "stale TAG" per tag, and "stale source" under the name 'source' when no tag
+has fresh data; [analysis] stale_after). They follow the ISA-18.2 life cycle: normal -> unack
 (active, not yet acknowledged) -> ack -> normal; rtn_unack when the condition cleared
 before anyone acknowledged; shelved for a time; out_of_service during maintenance. An
 action applies to every alarm of the branch unless --condition names one. Without an
-action, lists the alarms that are not normal and the latest journal entries.
+action, lists the alarms that are not normal and the latest journal entries; times are
+site time.
 
 examples:
   branchwatch alarms site.toml
@@ -678,7 +738,8 @@ examples:
     action.add_argument("--out-of-service", metavar="BRANCH", help="take it out of service")
     action.add_argument("--in-service", metavar="BRANCH", help="return it to service")
     p.add_argument("--condition", metavar="NAME",
-                   help='only this alarm of the branch, e.g. "low_flow" or "frozen FT-310"')
+                   help='only this alarm of the branch, e.g. "low_flow", "frozen FT-310" or '
+                   '"stale FT-310"')
     p.add_argument("--until", metavar="TIME", help="end of the shelf (site time)")
     p.add_argument("--by", default="", help="who (kept in the alarm journal)")
     p.add_argument("--all", action="store_true", help="list normal alarms too")
@@ -700,8 +761,15 @@ def _cmd_alarms(args: argparse.Namespace) -> int:
             _print_alarms(frame, store, site, show_all=args.all)
             return EXIT_OK
         action, branch = chosen[0]
-        if branch != "header":
+        if branch not in ("header", "source"):
             site.branch(branch)
+        until = None
+        if action == "shelve" and args.until:
+            until = _parse_time(args.until, site, "--until")
+            if until <= now:
+                raise UserError(f"--until {args.until!r} ({_local(site, until)} site time) is "
+                                f"not in the future (now {_local(site, now)}); give a later "
+                                "time to shelve until")
         rows = [r for r in frame.to_dict(orient="records") if str(r["branch"]) == branch
                 and (args.condition is None or str(r["condition"]) == args.condition)]
         if not rows:
@@ -716,8 +784,8 @@ def _cmd_alarms(args: argparse.Namespace) -> int:
             if action == "ack":
                 new, _ = life.acknowledge(state, now, args.by)
             elif action == "shelve":
-                new, _ = life.shelve(state, _parse_time(args.until, site, "--until"), now=now,
-                                     by=args.by)
+                assert until is not None
+                new, _ = life.shelve(state, until, now=now, by=args.by)
             elif action == "unshelve":
                 new, _ = life.unshelve(state, now=now, by=args.by)
             elif action == "out_of_service":
@@ -740,19 +808,24 @@ def _cmd_alarms(args: argparse.Namespace) -> int:
 
 def _print_alarms(frame: pd.DataFrame, store: ResultsStore, site: Site, *,
                   show_all: bool) -> None:
+    from monitor.alarms import describe_condition
+
     shown = frame if show_all else frame[frame["state"] != "normal"]
+    print(f"times in site time ({site.timezone})")
     if shown.empty:
         print("no alarms" + ("" if show_all else " standing (all normal)"))
     for r in shown.to_dict(orient="records"):
         since = r.get("activated")
-        when = f" since {pd.Timestamp(since):%Y-%m-%d %H:%M}Z" if since is not None and \
+        when = f" since {_local(site, since)}" if since is not None and \
             not pd.isna(since) else ""
-        print(f"  {r['branch']:<16} {r['condition']:<9} {r['state']:<15}{when}  {r['message']}")
+        print(f"  {r['branch']:<16} {r['condition']:<14} {r['state']:<15}{when}  "
+              f"{r['message']}")
     journal = store.alarm_events()
     if not journal.empty:
         print("\nlatest journal entries:")
         for r in journal.tail(10).to_dict(orient="records"):
-            print(f"  {pd.Timestamp(r['time']):%Y-%m-%d %H:%M}Z  {r['branch']:<16} "
+            what = describe_condition(str(r["branch"]), str(r["condition"]))
+            print(f"  {_local(site, r['time'])}  {what:<36} "
                   f"{r['from_state'] or '-'} -> {r['to_state']}")
 
 
@@ -798,11 +871,15 @@ def _register_run(verbs: Any) -> None:
         verbs, "run", _cmd_run, "run the daemon: ingest, alarms, daily analysis",
         """\
 Run until stopped (Ctrl-C or SIGTERM): ingest new readings every
-[schedule] ingest_every and evaluate low-flow alarms on them; analyse the windows that
-closed since the last run every day at [schedule] analyze_at (site time), catching up
-after downtime; write the morning report at [schedule] report_at. A failed job is
-logged and retried at its next run; stopping waits for the running job, and every job
-writes in transactions, so nothing is half-stored.""",
+[schedule] ingest_every and evaluate the alarms on them (low flow, frozen meter, stale
+data: also when the ingest failed); analyse the windows that closed since the last run
+every day at [schedule] analyze_at (site time), catching up after downtime; write the
+morning report at [schedule] report_at. On start it ingests at once, then runs an
+analysis or morning report whose scheduled time passed while it was not running. A
+results store that cannot be opened at start is tried again, waiting longer each time
+(up to 5 min), until it can. A failed job is logged and retried at its next run;
+stopping waits for the running job, and every job writes in transactions, so nothing is
+half-stored.""",
     )
     p.add_argument("--health-file", type=Path,
                    help="write a JSON heartbeat here (default: beside the store)")
@@ -811,15 +888,29 @@ writes in transactions, so nothing is half-stored.""",
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
-    from monitor.daemon import Daemon
-    from monitor.jobs import catch_up, evaluate_alarms, ingest, write_report
+    from monitor.daemon import Daemon, wait_for
+    from monitor.jobs import catch_up, ingest, ingest_and_watch, open_source, write_report
 
     site = _site(args)
-    store, source = _open(site)
+    where = f"results store {mask_secret_url(site.store_url)}"
+    # A store that is down at start is waited for, not given up on: the daemon is often
+    # started by the system before its database server is ready.
+    store = wait_for(lambda: open_store(site.store_url), what=where,
+                     secret_url=site.store_url, give_up_after_s=args.duration,
+                     retry_on=(BranchwatchAdapterError, ConnectionError, OSError))
+    if store is None:
+        raise UserError(f"{where} could not be opened within --for {args.duration:g} s")
+    try:
+        source = open_source(site)
+    except Exception:
+        store.close()
+        raise
 
     def ingest_job() -> None:
-        _run_recorded(store, "ingest", lambda: ingest(site, store, source))
-        evaluate_alarms(site, store, source, now=datetime.now(UTC))
+        watch = ingest_and_watch(site, store, source, run_ingest=lambda: _run_recorded(
+            store, "ingest", lambda: ingest(site, store, source)))
+        if watch.error is not None:
+            raise watch.error  # counted as a failed run; the alarms were judged
 
     def analyze_job() -> None:
         _run_recorded(store, "analyze",
@@ -830,9 +921,14 @@ def _cmd_run(args: argparse.Namespace) -> int:
         _run_recorded(store, "report", lambda: write_report(
             site, store, day=now - timedelta(days=1), now=now))
 
+    def last_ok(job: str) -> datetime | None:
+        runs = store.job_runs(limit=50, job=job)
+        ok = runs[runs["status"] == "ok"] if not runs.empty else runs
+        return None if ok.empty else pd.Timestamp(ok["started"].max()).to_pydatetime()
+
     health = args.health_file or site.report_folder / "branchwatch-health.json"
     daemon = Daemon(site, {"ingest": ingest_job, "analyze": analyze_job, "report": report_job},
-                    health_file=health)
+                    health_file=health, last_ok=last_ok)
     print(f"branchwatch running for {site.name}; heartbeat in {health}; Ctrl-C stops")
     try:
         stats = daemon.run(duration_s=args.duration)
@@ -841,6 +937,13 @@ def _cmd_run(args: argparse.Namespace) -> int:
         store.close()
     print(f"stopped: runs {stats.runs}, failures {stats.failures}")
     return EXIT_OK
+
+
+def mask_secret_url(url: str) -> str:
+    """*url* with its password shown as ***."""
+    from monitor.daemon import mask_secret
+
+    return mask_secret(url, url)
 
 
 _VERBS: list[Callable[[Any], None]] = [

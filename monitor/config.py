@@ -272,6 +272,16 @@ class AnalysisSection(_Strict):
     steady_window: Duration | None = None
     steady_pressure_band: float = Field(default=0.03, gt=0, lt=1)
     steady_flow_band: float = Field(default=0.05, gt=0, lt=1)
+    #: a tag whose newest reading is older than this raises a stale-data alarm; default
+    #: (none given) max(1 h, 4 x [schedule] ingest_every, 3 x sample_period)
+    stale_after: Duration | None = None
+
+    @field_validator("stale_after", "steady_window")
+    @classmethod
+    def _positive_age(cls, value: float | None) -> float | None:
+        if value is not None and not value > 0:
+            raise ValueError(f"must be a positive duration like '2 h', got {value} s")
+        return value
 
 
 class ScheduleSection(_Strict):

@@ -2,8 +2,8 @@
 
 Three jobs, each an idempotent function of (site, store, source, time):
 
-* ``ingest``  every ``schedule.ingest_every`` (default 15 min): new readings in, low-flow
-  alarms evaluated on what arrived;
+* ``ingest``  every ``schedule.ingest_every`` (default 15 min): new readings in, alarms
+  evaluated on what arrived (also when the ingest failed: stale data is then the news);
 * ``analyze`` daily at ``schedule.analyze_at`` site time: fit the windows that closed
   since the last run (catching up after downtime), diagnose, store findings;
 * ``report``  daily at ``schedule.report_at`` site time: the morning report.
@@ -15,6 +15,15 @@ explicit id and ``replace_existing=True``, so a restart does not add copies;
 no persistent job store (the schedule is rebuilt from the site file at each start). The
 daily jobs run in the site's zone, outside 01:00–04:00 (config validation refuses that
 band), and are idempotent on their date, so a DST change cannot double or drop a day.
+
+On start, one **start-up pass** runs at once, in order: an ingest, then each daily job
+whose last successful run (``last_ok``, from the store's job runs) is older than its
+last scheduled time — a morning report missed while the machine was down is written
+then, after the analysis it needs. The regular schedule goes on from there.
+
+`wait_for` opens what the daemon cannot start without (the results store) with retries
+and a growing wait, so a daemon started before its database server waits for it instead
+of exiting; each try is one log line, with the password masked (`mask_secret`).
 
 A job that raises is logged, recorded as a failed run in the store and counted; it does
 not stop the loop. SIGTERM and SIGINT stop the scheduler after the running job ends; each
@@ -29,25 +38,35 @@ import logging
 import signal
 import threading
 import time
+import urllib.parse
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from types import FrameType
-from typing import Any
+from typing import Any, TypeVar
 
 from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_EXECUTED, EVENT_JOB_MISSED, JobEvent
 from apscheduler.schedulers.background import BackgroundScheduler
 from apscheduler.triggers.cron import CronTrigger
+from apscheduler.triggers.date import DateTrigger
 from apscheduler.triggers.interval import IntervalTrigger
 
 from monitor.config import Site
 
 log = logging.getLogger(__name__)
 
-__all__ = ["Daemon", "DaemonStats"]
+__all__ = ["Daemon", "DaemonStats", "mask_secret", "wait_for"]
+
+T = TypeVar("T")
 
 MISFIRE_GRACE_S = 3600  # a daily job up to an hour late still runs (e.g. after a reboot)
+#: The shortest ingest interval the scheduler accepts [s].
+MIN_INTERVAL_S = 10
+#: The id of the one-off job that runs at start (ingest, then missed daily jobs).
+STARTUP_JOB = "start-up"
+#: Daily jobs that are made up for at start when missed, in this order.
+DAILY_JOBS = ("analyze", "report")
 
 
 @dataclass
@@ -70,11 +89,15 @@ class Daemon:
     """
 
     def __init__(
-        self, site: Site, jobs: dict[str, Callable[[], Any]], *, health_file: Path | None = None
+        self, site: Site, jobs: dict[str, Callable[[], Any]], *, health_file: Path | None = None,
+        last_ok: Callable[[str], datetime | None] | None = None,
     ) -> None:
+        """*last_ok* gives the start time of a job's last successful run (None: never);
+        without it, missed daily runs are not made up at start."""
         self.site = site
         self.jobs = jobs
         self.health_file = health_file
+        self.last_ok = last_ok
         self.stats = DaemonStats()
         self._stop = threading.Event()
         self.scheduler = BackgroundScheduler(
@@ -89,23 +112,57 @@ class Daemon:
     def schedule(self) -> None:
         """Add the jobs with explicit ids; safe to call again."""
         sched = self.site.schedule
+        every = max(MIN_INTERVAL_S, int(sched.ingest_every))
         triggers: dict[str, Any] = {
-            "ingest": IntervalTrigger(seconds=max(10, int(sched.ingest_every))),
+            "ingest": IntervalTrigger(seconds=every),
             "analyze": _daily(sched.analyze_at, self.site.timezone),
             "report": _daily(sched.report_at, self.site.timezone),
         }
+        now = datetime.now(UTC)
         for job_id, func in self.jobs.items():
             trigger = triggers.get(job_id)
             if trigger is None:
                 raise ValueError(f"no schedule for job {job_id!r}; known: {sorted(triggers)}")
             extra: dict[str, Any] = {}
-            if job_id == "ingest":
-                extra["next_run_time"] = datetime.now(UTC)  # catch up at once on start
+            if job_id == "ingest":  # the start-up pass ingests now
+                extra["next_run_time"] = now + timedelta(seconds=every)
             # (never pass next_run_time=None: APScheduler takes that as "paused")
             self.scheduler.add_job(
                 func, trigger, id=job_id, name=job_id, replace_existing=True, **extra
             )
-        log.info("scheduled %s for site %r", ", ".join(self.jobs), self.site.name)
+        first = [j for j in ("ingest", *DAILY_JOBS) if j in self.jobs
+                 and (j == "ingest" or self.missed(j, triggers[j], now))]
+        if first:
+            self.scheduler.add_job(
+                self._startup, DateTrigger(run_date=now), args=(first,), id=STARTUP_JOB,
+                name=STARTUP_JOB, replace_existing=True,
+            )
+        log.info("scheduled %s for site %r; at start: %s", ", ".join(self.jobs),
+                 self.site.name, ", ".join(first) or "nothing")
+
+    def missed(self, job_id: str, trigger: Any, now: datetime) -> bool:
+        """True when *job_id* last succeeded before its last scheduled time (or never)."""
+        if self.last_ok is None:
+            return False
+        due = last_fire_time(trigger, now)
+        if due is None:
+            return False
+        ok = self.last_ok(job_id)
+        if ok is None or ok < due:
+            log.info("job %s: last successful run %s is before its last scheduled time %s: "
+                     "it runs now", job_id, ok.isoformat() if ok else "never", due.isoformat())
+            return True
+        return False
+
+    def _startup(self, job_ids: list[str]) -> None:
+        """The start-up pass: each job in turn, a failure logged and counted, not fatal."""
+        for job_id in job_ids:
+            try:
+                self.jobs[job_id]()
+            except Exception as exc:  # one job's failure must not skip the next
+                self._count(job_id, exc)
+            else:
+                self._count(job_id, None)
 
     def run(self, *, duration_s: float | None = None) -> DaemonStats:
         """Run until SIGTERM/SIGINT (or *duration_s* seconds, for tests and trials)."""
@@ -146,13 +203,18 @@ class Daemon:
     def _on_event(self, event: JobEvent) -> None:
         job = event.job_id
         s = self.stats
-        now = datetime.now(UTC).isoformat()
         if event.code == EVENT_JOB_MISSED:
             s.missed[job] = s.missed.get(job, 0) + 1
             log.warning("job %s missed its run time %s", job, event.scheduled_run_time)
             return
+        if job == STARTUP_JOB:
+            return  # counted per job by `_startup`
+        self._count(job, getattr(event, "exception", None))
+
+    def _count(self, job: str, exc: BaseException | None) -> None:
+        s = self.stats
+        now = datetime.now(UTC).isoformat()
         s.runs[job] = s.runs.get(job, 0) + 1
-        exc = getattr(event, "exception", None)
         if exc is not None:
             s.failures[job] = s.failures.get(job, 0) + 1
             s.last_error[job] = f"{now} {type(exc).__name__}: {exc}"
@@ -165,7 +227,8 @@ class Daemon:
         if self.health_file is None:
             return
         jobs = {j.id: (j.next_run_time.isoformat() if j.next_run_time else None)
-                for j in self.scheduler.get_jobs()} if self.scheduler.running else {}
+                for j in self.scheduler.get_jobs()
+                if j.id != STARTUP_JOB} if self.scheduler.running else {}
         payload = {"site": self.site.name, "written": datetime.now(UTC).isoformat(),
                    "next_runs": jobs, **self.stats.__dict__}
         tmp = self.health_file.with_suffix(".tmp")
@@ -177,3 +240,74 @@ class Daemon:
 def _daily(clock: str, timezone: str) -> CronTrigger:
     hour, minute = (int(x) for x in clock.split(":"))
     return CronTrigger(hour=hour, minute=minute, timezone=timezone)
+
+
+def last_fire_time(trigger: Any, now: datetime, *, horizon: timedelta = timedelta(days=8)
+                   ) -> datetime | None:
+    """The latest time at or before *now* at which *trigger* fires (None within
+    *horizon*): stepped forward from *now* - *horizon* (a daily trigger fires daily)."""
+    t = trigger.get_next_fire_time(None, now - horizon)
+    last = None
+    while t is not None and t <= now:
+        last = t
+        t = trigger.get_next_fire_time(t, t + timedelta(seconds=1))
+    return None if last is None else last.astimezone(UTC)
+
+
+def mask_secret(text: str, url: str) -> str:
+    """*text* with the password of *url* (plain and URL-quoted) replaced by ***.
+
+    The same rule as the SQL source's masking of its own messages, for the store URL,
+    which the daemon names in its log before any store or source exists.
+    """
+    try:
+        raw = urllib.parse.urlsplit(url).password  # as written in the URL (%-encoded)
+    except ValueError:
+        raw = None
+    if not raw:
+        return text
+    plain = urllib.parse.unquote(raw)
+    for secret in sorted({raw, plain, urllib.parse.quote_plus(plain),
+                          urllib.parse.quote(plain, safe="")}, key=len, reverse=True):
+        text = text.replace(secret, "***")
+    return text
+
+
+def wait_for(
+    opener: Callable[[], T],
+    *,
+    what: str,
+    secret_url: str = "",
+    stop: threading.Event | None = None,
+    first_delay_s: float = 2.0,
+    max_delay_s: float = 300.0,
+    give_up_after_s: float | None = None,
+    retry_on: tuple[type[BaseException], ...] = (Exception,),
+) -> T | None:
+    """Call *opener* until it returns, waiting longer after each failure (doubling from
+    *first_delay_s* up to *max_delay_s*); one log line per failed try, the password of
+    *secret_url* masked. Returns None when *stop* is set or *give_up_after_s* has passed.
+    """
+    delay = first_delay_s
+    started = time.monotonic()
+    attempt = 0
+    stop = stop or threading.Event()
+    while not stop.is_set():
+        attempt += 1
+        try:
+            return opener()
+        except retry_on as exc:
+            reason = mask_secret(str(exc).splitlines()[0] if str(exc) else type(exc).__name__,
+                                 secret_url)
+            left = None if give_up_after_s is None else \
+                give_up_after_s - (time.monotonic() - started)
+            if left is not None and left <= 0:
+                log.error("%s: not reachable after %d tries (%s); giving up", what, attempt,
+                          reason)
+                return None
+            wait = delay if left is None else min(delay, left)
+            log.warning("%s: not reachable (try %d: %s); next try in %.3g s", what, attempt,
+                        reason, wait)
+            stop.wait(wait)
+            delay = min(delay * 2, max_delay_s)
+    return None

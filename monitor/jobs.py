@@ -10,11 +10,14 @@ a backfill maps the window analysis over days, in worker processes (`analyze_win
 from __future__ import annotations
 
 import atexit
+import ctypes
 import logging
 import math
 import multiprocessing
+import os
 import pickle
 import signal
+import sys
 import threading
 import time
 from collections import Counter, deque
@@ -31,15 +34,23 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
-from adapters.base import ReadingsSource, ResultsStore, source_class
+from adapters.base import (
+    BranchwatchAdapterError,
+    ReadingsSource,
+    ResultsStore,
+    StoreError,
+    source_class,
+)
 from monitor.alarms import (
     AlarmEvent,
     AlarmState,
     FrozenSettings,
     LowFlowSettings,
+    StaleSettings,
     State,
     evaluate_frozen,
     evaluate_low_flow,
+    evaluate_stale,
 )
 from monitor.analysis import WindowAnalysis, analyze_window
 from monitor.config import BranchConfig, Site
@@ -57,6 +68,7 @@ __all__ = [
     "PARALLEL_AFTER_S",
     "AnalyzeSummary",
     "IngestSummary",
+    "WatchPass",
     "alarm_checks",
     "analyze",
     "analyze_windows",
@@ -65,7 +77,11 @@ __all__ = [
     "diagnosis_settings",
     "evaluate_alarms",
     "ingest",
+    "ingest_and_watch",
+    "newest_readings",
     "open_source",
+    "stale_after",
+    "tag_owners",
     "windows",
     "write_report",
 ]
@@ -337,11 +353,7 @@ def _in_workers(
     workers: int,
 ) -> Iterator[WindowAnalysis]:
     """`analyze_windows` in *workers* processes, results in window order."""
-    context = multiprocessing.get_context("spawn")  # no inherited connections or threads
-    with ProcessPoolExecutor(
-        workers, mp_context=context, initializer=_worker_start,
-        initargs=(site, shipped, own_source),
-    ) as pool:
+    with worker_pool(site, shipped, own_source, workers) as pool:
         pending: deque[Future[WindowAnalysis]] = deque()
         todo = iter(spans)
         try:
@@ -356,6 +368,53 @@ def _in_workers(
         finally:
             for future in pending:
                 future.cancel()
+
+
+def worker_pool(site: Site, shipped: bytes, own_source: bool, workers: int
+                ) -> ProcessPoolExecutor:
+    """The process pool of a backfill: *workers* spawned processes, each with the site,
+    its own store connection (*shipped*: the pickled store) and, when *own_source*, its
+    own source; each exits when this process dies (`_die_with_parent`)."""
+    context = multiprocessing.get_context("spawn")  # no inherited connections or threads
+    return ProcessPoolExecutor(
+        workers, mp_context=context, initializer=_worker_start,
+        initargs=(site, shipped, own_source, os.getpid()),
+    )
+
+
+#: prctl option that asks the kernel for a signal when the parent dies (linux/prctl.h).
+_PR_SET_PDEATHSIG = 1
+#: How often the portable fallback looks for its parent [s].
+PARENT_CHECK_S = 1.0
+
+
+def _die_with_parent(parent_pid: int) -> None:
+    """Make this worker end when *parent_pid* (the process that started it) dies.
+
+    A worker outliving its parent (the parent killed with SIGKILL, or crashed) holds its
+    memory and a database connection for as long as its last window takes and then idles
+    for ever. On Linux the kernel sends SIGKILL at the parent's death
+    (``prctl(PR_SET_PDEATHSIG)``); everywhere a daemon thread also checks every second
+    that the parent is still this process's parent and exits when it is not. A parent
+    already gone before either was set up is caught by the first check.
+    """
+    if sys.platform.startswith("linux"):
+        try:
+            libc = ctypes.CDLL(None, use_errno=True)
+            if libc.prctl(_PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0) != 0:
+                log.debug("prctl(PR_SET_PDEATHSIG) failed: errno %d", ctypes.get_errno())
+        except (OSError, AttributeError) as exc:
+            log.debug("prctl not available (%s): the parent check alone", exc)
+
+    def watch() -> None:
+        while True:
+            if os.getppid() != parent_pid:
+                os._exit(1)  # the parent is gone: nobody will read this worker's results
+            time.sleep(PARENT_CHECK_S)
+
+    if os.getppid() != parent_pid:
+        os._exit(1)
+    threading.Thread(target=watch, name="parent-watch", daemon=True).start()
 
 
 @contextmanager
@@ -389,7 +448,8 @@ def _reopenable(store: ResultsStore) -> bytes | None:
 _WORKER: dict[str, Any] = {}
 
 
-def _worker_start(site: Site, store: bytes, own_source: bool) -> None:
+def _worker_start(site: Site, store: bytes, own_source: bool, parent_pid: int) -> None:
+    _die_with_parent(parent_pid)
     _WORKER["site"] = site
     _WORKER["store"] = opened = pickle.loads(store)
     atexit.register(opened.close)
@@ -562,17 +622,47 @@ def evaluate_alarms(
 ) -> list[AlarmEvent]:
     """Run the near-real-time checks over the samples not yet seen; called after ingest.
 
-    Two conditions, each an ISA-18.2 alarm with its own state: **low flow** per metered
-    branch, and **frozen meter** per flow and pressure transmitter (a reading that has not
-    moved at all for ``[analysis] frozen_hold``). The alarms' memory (delays, held value,
-    last sample) is stored, so a restart neither repeats nor drops an alarm; a low-flow
-    message names the likely cause from the latest open findings.
+    Three conditions, each an ISA-18.2 alarm with its own state: **low flow** per metered
+    branch, **frozen meter** per flow and pressure transmitter (a reading that has not
+    moved at all for ``[analysis] frozen_hold``), and **stale data** per tag and per
+    source (`stale_after`). The alarms' memory (delays, held value, last sample) is
+    stored, so a restart neither repeats nor drops an alarm; a low-flow message names the
+    likely cause from the latest open findings.
+
+    A source that cannot be read now (unreachable database) leaves the low-flow and
+    frozen alarms as they were — there is nothing new to judge — and is logged; the
+    stale-data alarms are judged all the same, on the newest readings stored. Only a
+    results store that cannot be read or written stops the evaluation (raised).
     """
     stored = store.read_alarms()
     states = {
         (str(r["branch"]), str(r["condition"])): alarm_state_from_row(r)
         for r in stored.to_dict(orient="records")
     }
+    rows: list[dict[str, Any]] = []
+    events: list[AlarmEvent] = []
+    try:
+        _sample_alarms(site, store, source, states, now, rows, events)
+    except (BranchwatchAdapterError, ConnectionError, OSError) as exc:
+        if isinstance(exc, StoreError):
+            raise
+        log.warning("low-flow and frozen alarms not judged now: the readings of %s cannot be "
+                    "read (%s); the stale-data alarms are judged all the same",
+                    source.name, exc)
+    _stale_alarms(site, store, source, states, now, rows, events)
+    if rows:
+        store.upsert_alarms(rows)
+    for e in events:
+        log.warning("alarm %s %s %s: %s", e.branch, e.condition, e.action, e.message)
+    return events
+
+
+def _sample_alarms(
+    site: Site, store: ResultsStore, source: ReadingsSource,
+    states: Mapping[tuple[str, str], AlarmState], now: datetime,
+    rows: list[dict[str, Any]], events: list[AlarmEvent],
+) -> None:
+    """The low-flow and frozen checks over the new samples (appends to rows, events)."""
     findings = _open_findings(store)
     checks = alarm_checks(site)
     tags = sorted({tag for _, _, tag, _ in checks})
@@ -584,8 +674,6 @@ def evaluate_alarms(
     readings = read_tags(site, store, source, tags, since_all, now)
     good = readings[readings["good"].to_numpy(bool)]
     by_tag = {str(t): part for t, part in good.groupby("tag")}
-    rows: list[dict[str, Any]] = []
-    events: list[AlarmEvent] = []
     frozen = FrozenSettings(hold=timedelta(seconds=site.analysis.frozen_hold))
     for branch, condition, tag, limit in checks:
         key = (branch, condition)
@@ -609,11 +697,123 @@ def evaluate_alarms(
         events.extend(happened)
         if new != state or key not in states:
             rows.append(alarm_row(new, limit_m3s=limit, now=now))
-    if rows:
-        store.upsert_alarms(rows)
-    for e in events:
-        log.warning("alarm %s %s %s: %s", e.branch, e.condition, e.action, e.message)
-    return events
+
+
+#: The branch name under which the source-wide stale-data alarm is kept.
+SOURCE_ALARM_BRANCH = "source"
+SOURCE_ALARM_CONDITION = "stale source"
+
+
+def _stale_alarms(
+    site: Site, store: ResultsStore, source: ReadingsSource,
+    states: Mapping[tuple[str, str], AlarmState], now: datetime,
+    rows: list[dict[str, Any]], events: list[AlarmEvent],
+) -> None:
+    """The stale-data checks: one per tag, one for the source (appends to rows, events).
+
+    While no tag has fresh data the source alarm stands for them all and the per-tag
+    alarms are left as they were: one alarm for one lost link, not one per tag (an alarm
+    flood is what EEMUA 191 warns of). They are judged again once any data flows.
+    """
+    settings = StaleSettings(stale_after=timedelta(seconds=stale_after(site)))
+    newest = newest_readings(store)
+    owners = tag_owners(site)
+    key = (SOURCE_ALARM_BRANCH, SOURCE_ALARM_CONDITION)
+    src_state = states.get(key, AlarmState(branch=key[0], condition=key[1]))
+    known = [t for t in newest.values()] + [
+        s.last_sample for k, s in states.items()
+        if k[1].startswith("stale ") and k != key and s.last_sample is not None
+    ]
+    new_src, happened = evaluate_stale(
+        max(known) if known else None, src_state, settings, now,
+        subject=f"any tag of source {source.name}", timezone=site.timezone,
+    )
+    events.extend(happened)
+    if new_src != src_state or key not in states:
+        rows.append(alarm_row(new_src, limit_m3s=settings.stale_after.total_seconds(), now=now))
+    if new_src.active:
+        return
+    for tag, branch in owners.items():
+        k = (branch, f"stale {tag}")
+        state = states.get(k, AlarmState(branch=branch, condition=k[1]))
+        subject = f"{tag} ({branch})" if branch != "header" else f"{tag} (header)"
+        new, happened = evaluate_stale(newest.get(tag), state, settings, now,
+                                       subject=subject, timezone=site.timezone)
+        events.extend(happened)
+        if new != state or k not in states:
+            rows.append(alarm_row(new, limit_m3s=settings.stale_after.total_seconds(), now=now))
+
+
+def stale_after(site: Site) -> float:
+    """Age at which a tag's newest reading counts as stale [s].
+
+    ``[analysis] stale_after`` when given; else max(1 h, 4 x ``[schedule] ingest_every``,
+    3 x ``[analysis] sample_period``): an hour is long enough that an export written
+    hourly is not flagged between files, four ingest intervals ride out a late or
+    failed ingest or two, and three sample periods a slowly logged tag (our choice).
+    A tag the historian logs only on change (exception reporting) can sit unchanged
+    longer: give such a site a larger ``stale_after``.
+    """
+    given = site.analysis.stale_after
+    if given is not None:
+        return float(given)
+    return max(3600.0, 4.0 * site.schedule.ingest_every, 3.0 * site.analysis.sample_period)
+
+
+def newest_readings(store: ResultsStore) -> dict[str, datetime]:
+    """Tag → time of its newest stored reading (every ingested source stores its readings)."""
+    marks = store.watermarks().readings
+    return {str(t): pd.Timestamp(v).to_pydatetime()
+            for t, v in zip(marks["tag"], marks["last"], strict=True) if pd.notna(v)}
+
+
+def tag_owners(site: Site) -> dict[str, str]:
+    """Every site tag → the branch it belongs to (the first that names it), else "header"."""
+    owner: dict[str, str] = {}
+    for b in site.branches:
+        for tag in (b.flow_tag, b.end_pressure_tag, b.level_tag, b.valve_position_tag):
+            if tag is not None:
+                owner.setdefault(tag, b.name)
+    for tag in site.tags:
+        owner.setdefault(tag, "header")
+    return dict(sorted(owner.items()))
+
+
+@dataclass(frozen=True)
+class WatchPass:
+    """One ingest followed by the alarm checks.
+
+    ``summary`` is None when the ingest failed; ``error`` then says why.
+    """
+
+    summary: IngestSummary | None
+    error: BaseException | None
+    events: list[AlarmEvent]
+
+
+def ingest_and_watch(
+    site: Site, store: ResultsStore, source: ReadingsSource,
+    *, run_ingest: Callable[[], IngestSummary] | None = None,
+    clock: Callable[[], datetime] = lambda: datetime.now(UTC),
+) -> WatchPass:
+    """Ingest, then evaluate the alarms — also when the ingest failed.
+
+    A failed ingest (source unreachable, store refused a batch) is logged and returned,
+    not raised: the alarm checks run after it all the same, the stale-data check first of
+    all (this is when data stops). *run_ingest* lets the caller wrap the ingest (the CLI
+    records it as a job run); by default it is `ingest`. An error of the alarm checks
+    themselves (the store is down) is raised.
+    """
+    error: BaseException | None = None
+    summary: IngestSummary | None = None
+    try:
+        summary = run_ingest() if run_ingest is not None else ingest(site, store, source)
+    except Exception as exc:  # recorded and logged; the alarms are judged all the same
+        error = exc
+        log.error("ingest from %s failed (%s: %s); the alarm checks run all the same",
+                  source.name, type(exc).__name__, exc)
+    events = evaluate_alarms(site, store, source, now=clock())
+    return WatchPass(summary=summary, error=error, events=events)
 
 
 def alarm_checks(site: Site) -> list[tuple[str, str, str, float | None]]:
@@ -709,7 +909,8 @@ def write_report(site: Site, store: ResultsStore, *, day: datetime, now: datetim
     inputs = ReportInputs(
         site=site, day=day_start, fits=fits, findings=findings, alarms=store.read_alarms(),
         quarantine=store.quarantine_counts(), health=store.data_health(day_start, day_end),
-        generated=now,
+        generated=now, newest_reading=max(newest_readings(store).values(), default=None),
+        stale_after_s=stale_after(site),
     )
     local = pd.Timestamp(day_start).tz_convert(site.timezone)
     path = site.report_folder / f"morning-{local:%Y-%m-%d}.html"

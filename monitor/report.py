@@ -57,6 +57,10 @@ class ReportInputs:
     quarantine: dict[str, int]
     health: pd.DataFrame
     generated: datetime
+    #: time of the newest stored reading of any tag (None: none stored) and the age past
+    #: which data counts as stale [s], for the header's data age
+    newest_reading: datetime | None = None
+    stale_after_s: float | None = None
 
 
 def build_report(inputs: ReportInputs) -> str:
@@ -68,6 +72,7 @@ def build_report(inputs: ReportInputs) -> str:
         f"<h1>{_e(site.name)}</h1>",
         f"<p class=sub>Morning report for {local_day:%A %d %B %Y} (site time "
         f"{_e(site.timezone)}). Generated {_local(site, inputs.generated)}.</p>",
+        _data_age(inputs),
         f"<p class=caution>{_e(CAUTION)}</p>",
         _attention(inputs),
         _alarms(inputs),
@@ -78,6 +83,25 @@ def build_report(inputs: ReportInputs) -> str:
         "</body></html>",
     ]
     return "\n".join(p for p in parts if p)
+
+
+def _data_age(inputs: ReportInputs) -> str:
+    """'Data up to 2026-06-10 05:50, 3 h 10 min old' (site time), flagged when stale."""
+    from monitor.alarms import format_age
+
+    newest = inputs.newest_reading
+    if newest is None:
+        return ("<p class=stale>No readings stored yet: nothing below comes from the plant's "
+                "data. Check the historian export or database link.</p>")
+    age = (pd.Timestamp(inputs.generated) - pd.Timestamp(newest)).total_seconds()
+    text = (f"Data up to {_local(inputs.site, newest)}, {format_age(age)} old "
+            "when this report was generated.")
+    if inputs.stale_after_s is not None and age > inputs.stale_after_s:
+        return (f"<p class=stale>STALE DATA: {_e(text)} No new readings for more than "
+                f"{_e(format_age(inputs.stale_after_s))}: the resistance ratios and findings "
+                "below describe the plant as it was then, not today. Check the historian "
+                "export or database link.</p>")
+    return f"<p class=sub>{_e(text)}</p>"
 
 
 def _e(text: Any) -> str:
@@ -100,6 +124,8 @@ h1 {{ font-size: 1.5em; margin-bottom: .1em; }} h2 {{ font-size: 1.15em; margin-
         border-bottom: 1px solid #c9cfdb; }}
 .sub {{ color: #555e70; margin-top: 0; }}
 .caution {{ background: #fff6e0; border-left: 4px solid #d39b00; padding: .6em .9em; }}
+.stale {{ background: #fde8e6; border-left: 4px solid #b3261e; padding: .6em .9em;
+          font-weight: 600; }}
 table {{ border-collapse: collapse; width: 100%; font-size: .93em; }}
 th, td {{ text-align: left; padding: .3em .5em; border-bottom: 1px solid #e3e6ed; }}
 th {{ background: #f1f3f7; }}

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from zoneinfo import ZoneInfo
 
 import numpy as np
 import pandas as pd
@@ -23,6 +25,7 @@ from monitor.alarms import (
     shelve,
     unshelve,
 )
+from monitor.config import Site
 from monitor.diagnose import Finding
 
 T0 = datetime(2026, 3, 2, 6, 0, tzinfo=UTC)
@@ -194,3 +197,97 @@ def test_settings_reject_bad_values() -> None:
         LowFlowSettings(min_flow_m3s=0.01, range_m3s=0.0)
     with pytest.raises(ValueError, match="on_delay"):
         LowFlowSettings(min_flow_m3s=0.01, range_m3s=0.1, on_delay=timedelta(seconds=-1))
+
+
+# ---------------------------------------------------------------------------------------
+# the alarms verb: site time, the journal names its alarm, no shelving into the past
+# (ISA-18.2 shelving is for a set time ahead; a shelf that ended before it began is an
+# operator's typo, not an action). Data: the demo site (invented), see `small_site`.
+
+
+def test_describe_condition_names_which_alarm() -> None:
+    from monitor.alarms import describe_condition
+
+    assert describe_condition("B2", "low_flow") == "low flow on B2"
+    assert describe_condition("header", "frozen PT-100") == "frozen PT-100"
+    assert describe_condition("CW-3", "stale FT-203") == "stale FT-203"
+    assert describe_condition("source", "stale source").startswith("stale source")
+
+
+@pytest.fixture(scope="module")
+def alarm_site(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    from tests.monitor.small_site import ingested_site
+
+    return ingested_site(tmp_path_factory.mktemp("alarms-cli"))
+
+
+@pytest.fixture
+def judged_site(alarm_site: Path, tmp_path: Path) -> tuple[Path, Site]:
+    """A copy of the site whose alarms were judged now: its April data is stale."""
+    from adapters.base import open_store
+    from monitor.jobs import evaluate_alarms, open_source
+    from tests.monitor.small_site import copy_site
+
+    site_file, site = copy_site(alarm_site, tmp_path / "site")
+    store = open_store(site.store_url)
+    try:
+        evaluate_alarms(site, store, open_source(site), now=datetime.now(UTC))
+    finally:
+        store.close()
+    return site_file, site
+
+
+def _state(site: Site, branch: str, condition: str) -> str:
+    from adapters.base import open_store
+
+    store = open_store(site.store_url)
+    try:
+        frame = store.read_alarms()
+    finally:
+        store.close()
+    row = frame[(frame["branch"] == branch) & (frame["condition"] == condition)]
+    return str(row.iloc[0]["state"])
+
+
+def test_alarms_verb_shows_site_time_and_the_journal_names_the_alarm(
+    judged_site: tuple[Path, Site], capsys: pytest.CaptureFixture[str],
+) -> None:
+    from adapters.base import open_store
+    from monitor.cli import main
+
+    site_file, site = judged_site
+    store = open_store(site.store_url)
+    try:
+        entry = store.alarm_events().iloc[-1]
+        activated = store.read_alarms()
+    finally:
+        store.close()
+    assert main(["alarms", str(site_file)]) == 0
+    out = capsys.readouterr().out
+    assert f"times in site time ({site.timezone})" in out
+    zone = ZoneInfo(site.timezone)
+    local = pd.Timestamp(entry["time"]).tz_convert(zone).strftime("%Y-%m-%d %H:%M")
+    journal = out.split("latest journal entries:")[1]
+    assert f"{local}  stale source (no tag has fresh data)" in journal
+    assert "Z " not in journal  # no UTC stamps left
+    row = activated[activated["condition"] == "stale source"].iloc[0]
+    since = pd.Timestamp(row["activated"]).tz_convert(zone).strftime("%Y-%m-%d %H:%M")
+    assert f"since {since}" in out
+
+
+def test_shelving_into_the_past_is_refused_with_one_line(
+    judged_site: tuple[Path, Site], capsys: pytest.CaptureFixture[str],
+) -> None:
+    from monitor.cli import main
+
+    site_file, site = judged_site
+    code = main(["alarms", str(site_file), "--shelve", "source", "--until",
+                 "2026-01-01 06:00", "--by", "shift B"])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert len(err.strip().splitlines()) == 1 and "not in the future" in err
+    assert _state(site, "source", "stale source") == "unack"  # nothing changed
+    future = (datetime.now(UTC) + timedelta(days=1)).astimezone(ZoneInfo(site.timezone))
+    assert main(["alarms", str(site_file), "--shelve", "source", "--until",
+                 f"{future:%Y-%m-%d %H:%M}"]) == 0
+    assert _state(site, "source", "stale source") == "shelved"
