@@ -451,14 +451,15 @@ def _register_log(verbs: Any) -> None:
     p = _add_verb(
         verbs, "log", _cmd_log, "record maintenance on a branch (cleaning resets the baseline)",
         """\
-Record a maintenance event. A cleaning ends fouling and restriction findings and starts
-a new baseline for the branch; a valve setting ends restriction and back-pressure
-findings; a meter calibration ends instrument findings. Without an event, lists the log.
-
-examples:
-  branchwatch log site.toml B1-reactor --cleaned 2026-08-14
-  branchwatch log site.toml B2-compressor --valve-set "2026-06-10 14:00" --note "BV-210 reopened"
-  branchwatch log site.toml""",
+Record a maintenance entry, or correct or withdraw one. The diagnosis checks each entry
+against the fits after it: a cleaning that brought the resistance ratio back down ends
+the branch's fouling and restriction findings and starts a new baseline; one that did
+not keeps the finding open and says so. A valve setting is checked the same way against
+a restriction, and ends back-pressure findings; a meter calibration ends instrument
+findings. Times without a zone are site time; work dated in the future is refused.
+Without an entry to record, lists the log with each entry's id. A withdrawn entry stays
+in the log (marked, with who and when) and the diagnosis no longer reads it; a
+correction withdraws the old entry and records the corrected one.""",
     )
     p.add_argument("branch", nargs="?", help="branch name (omit to list the log)")
     group = p.add_mutually_exclusive_group()
@@ -466,31 +467,95 @@ examples:
     group.add_argument("--valve-set", metavar="TIME", help="a valve on it was (re)set")
     group.add_argument("--meter-calibrated", metavar="TIME", help="its meter was calibrated")
     group.add_argument("--other", metavar="TIME", help="any other work (new baseline)")
-    p.add_argument("--note", default="", help="free text kept with the event")
+    group.add_argument("--withdraw", metavar="ID", type=_positive_int,
+                       help="withdraw entry ID (logged in error); it stays in the log, marked")
+    group.add_argument("--correct", metavar="ID", type=_positive_int,
+                       help="correct entry ID: give the right --time and/or --note")
+    p.add_argument("--time", metavar="TIME", help="with --correct: the corrected time")
+    p.add_argument("--note", default=None,
+                   help="free text kept with the entry (with --withdraw: why)")
+    p.add_argument("--by", default=None,
+                   help="who withdraws or corrects (default: your login name)")
+    p.add_argument("--all", action="store_true", help="list withdrawn entries too")
+
+
+def _who(args: argparse.Namespace) -> str:
+    if args.by:
+        return str(args.by)
+    import getpass
+
+    try:
+        return getpass.getuser() or "unknown"
+    except (OSError, KeyError):
+        return "unknown"
+
+
+def _not_future(when: datetime, what: str, site: Site) -> None:
+    now = datetime.now(UTC)
+    if when > now + timedelta(minutes=5):
+        raise UserError(f"{what} {_local(site, when)} ({site.timezone}) is in the future; "
+                        "log maintenance once it is done")
 
 
 def _cmd_log(args: argparse.Namespace) -> int:
     site = _site(args)
     given = {k: getattr(args, k) for k in _EVENT_KINDS if getattr(args, k)}
+    if args.time is not None and args.correct is None:
+        raise UserError("--time goes with --correct ID; to record new work give "
+                        "BRANCH --cleaned TIME (or another kind)")
+    if args.correct is not None and args.time is None and args.note is None:
+        raise UserError(f"--correct {args.correct} needs the corrected --time and/or --note")
+    if given and args.branch is None:
+        raise UserError("name the branch the work was done on, e.g. "
+                        f"'branchwatch log {args.config} BRANCH --cleaned 2026-08-14'")
     store = open_store(site.store_url)
     try:
-        if args.branch is None or not given:
-            events = store.maintenance(args.branch)
-            if events.empty:
-                print("no maintenance recorded")
-            for row in events.itertuples():
-                print(f"{row.time:%Y-%m-%d %H:%M}Z  {row.branch:<16} {row.kind:<17} {row.note}")
-            return EXIT_OK
-        site.branch(args.branch)  # unknown names are refused with the list of branches
-        kind, text = next(iter(given.items()))
-        when = _parse_time(text, site, f"--{kind.replace('_', '-')}")
-        store.add_maintenance(args.branch, kind, when, args.note)
-        print(f"recorded: {args.branch} {kind.replace('_', ' ')} at {when:%Y-%m-%d %H:%M}Z")
+        if args.withdraw is not None:
+            store.withdraw_maintenance(args.withdraw, by=_who(args), note=args.note or "")
+            print(f"withdrawn: entry {args.withdraw} (kept in the log, no longer in force)")
+        elif args.correct is not None:
+            when = None if args.time is None else _parse_time(args.time, site, "--time")
+            if when is not None:
+                _not_future(when, "--time", site)
+            new_id = store.correct_maintenance(args.correct, time=when, note=args.note,
+                                               by=_who(args))
+            print(f"corrected: entry {args.correct} withdrawn, replaced by entry {new_id}")
+        elif not given:
+            _print_log(site, store.maintenance(args.branch, include_withdrawn=args.all))
+        else:
+            site.branch(args.branch)  # unknown names are refused with the list of branches
+            kind, text = next(iter(given.items()))
+            when = _parse_time(text, site, f"--{kind.replace('_', '-')}")
+            _not_future(when, f"--{kind.replace('_', '-')}", site)
+            entry = store.add_maintenance(args.branch, kind, when, args.note or "")
+            print(f"recorded: entry {entry}, {args.branch} {kind.replace('_', ' ')} at "
+                  f"{_local(site, when)} ({site.timezone})")
     except KeyError as exc:
         raise UserError(str(exc).strip('"')) from None
+    except ValueError as exc:  # the store refuses: unknown id, already withdrawn, future
+        raise UserError(str(exc)) from None
     finally:
         store.close()
     return EXIT_OK
+
+
+def _print_log(site: Site, events: pd.DataFrame) -> None:
+    if events.empty:
+        print("no maintenance recorded")
+        return
+    print(f"maintenance log (site time, {site.timezone}):")
+    print(f"  {'id':>4}  {'time':<16}  {'branch':<16} {'kind':<17} note")
+    for row in events.to_dict(orient="records"):
+        marks = []
+        if not pd.isna(row.get("replaces")):
+            marks.append(f"corrects entry {int(row['replaces'])}")
+        if not pd.isna(row.get("withdrawn_at")):
+            why = f": {row['withdrawn_note']}" if row.get("withdrawn_note") else ""
+            marks.append(f"withdrawn {_local(site, row['withdrawn_at'])} by "
+                         f"{row.get('withdrawn_by') or '?'}{why}")
+        state = f"  [{'; '.join(marks)}]" if marks else ""
+        print(f"  {int(row['id']):>4}  {_local(site, row['time']):<16}  {row['branch']:<16} "
+              f"{row['kind']:<17} {row.get('note') or ''}{state}")
 
 
 # ---------------------------------------------------------------------------------------
