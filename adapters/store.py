@@ -725,7 +725,7 @@ class SqlStore(ResultsStore):
                 return int(same)
             row = {"branch": branch, "kind": kind, "time": when, "note": note,
                    "logged_at": logged}  # fmt: skip
-            return int(conn.execute(t.insert().values(**row)).inserted_primary_key[0])
+            return _new_id(conn.execute(t.insert().values(**row)))
 
     def withdraw_maintenance(
         self, entry_id: int, *, by: str, note: str = "", now: datetime | None = None
@@ -753,7 +753,7 @@ class SqlStore(ResultsStore):
             row = {"branch": old["branch"], "kind": old["kind"], "time": when,
                    "note": old["note"] if note is None else note, "logged_at": logged,
                    "replaces": int(entry_id)}  # fmt: skip
-            new_id = int(conn.execute(t.insert().values(**row)).inserted_primary_key[0])
+            new_id = _new_id(conn.execute(t.insert().values(**row)))
             self._withdraw(conn, entry_id, by, f"corrected: replaced by entry {new_id}", logged)
         return new_id
 
@@ -911,6 +911,14 @@ class SqlStore(ResultsStore):
                 # a nullable integer (maintenance.replaces) keeps its NULLs as <NA>
                 frame[col] = frame[col].astype("Int64" if frame[col].isna().any() else "int64")
         return frame
+
+
+def _new_id(result: sa.CursorResult[Any]) -> int:
+    """The primary key of the row an insert made."""
+    key = result.inserted_primary_key
+    if key is None:
+        raise StoreError("the database did not return the new maintenance entry's id")
+    return int(key[0])
 
 
 #: How far ahead of the clock a maintenance time may be (clock skew between machines) [s].
