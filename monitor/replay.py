@@ -950,6 +950,13 @@ class BranchReplay:
         )
         rising = mk.p < self.cfg.trend_alpha and fit.slope > 0
         t_last = self.ws[i]
+        # the forecast as dates (UTC seconds since 1970), for the report to show as the
+        # message does: the interval runs from the earliest to the latest date
+        for key, eta in (("limit_date_s", cross.eta), ("limit_date_low_s", cross.eta_low),
+                         ("limit_date_high_s", cross.eta_high)):
+            fouling.evidence[key] = (
+                nan if eta is None else (t_last + eta * _DAY).timestamp()
+            )
         if cross.reached:
             when = f"it is at or past the cleaning limit {limit:.2f}"
         elif cross.eta is None:
