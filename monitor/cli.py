@@ -101,12 +101,59 @@ def _add_verb(
 ) -> argparse.ArgumentParser:
     p: argparse.ArgumentParser = verbs.add_parser(
         name, help=summary, description=description,
+        epilog="examples:\n" + "\n".join(f"  {line}" for line in EXAMPLES[name]),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     if config:
         p.add_argument("config", metavar="CONFIG", type=Path, help="site file (TOML)")
     p.set_defaults(func=func)
     return p
+
+
+#: The example command lines each verb's --help ends with (a test parses every one).
+EXAMPLES: dict[str, tuple[str, ...]] = {
+    "demo": (
+        "branchwatch demo",
+        "branchwatch demo --folder /tmp/bw-demo --days 60 --quiet",
+    ),
+    "check": ("branchwatch check site.toml",),
+    "curve": (
+        "branchwatch curve site.toml",
+        "branchwatch curve site.toml --speed 80 --plot curve.png",
+        'branchwatch curve site.toml --header-pressure "3.2 bar" --json',
+    ),
+    "ingest": (
+        "branchwatch ingest site.toml",
+        "branchwatch ingest site.toml --json",
+    ),
+    "analyze": (
+        "branchwatch analyze site.toml --from 2026-04-01 --to 2026-09-01 --findings findings.json",
+        "branchwatch analyze site.toml --from 2026-08-01 --to 2026-08-02 --fits fits.csv",
+        "branchwatch analyze site.toml --from 2025-09-01 --to 2026-09-01 --jobs 2   # a year",
+    ),
+    "log": (
+        'branchwatch log site.toml B1-reactor --cleaned 2026-08-14 --note "hydro-jetted E-110"',
+        'branchwatch log site.toml --correct 12 --time "2026-08-14 15:30"',
+        'branchwatch log site.toml --withdraw 13 --note "logged on the wrong branch"',
+    ),
+    "status": (
+        "branchwatch status site.toml",
+        "branchwatch status site.toml --json",
+    ),
+    "alarms": (
+        "branchwatch alarms site.toml",
+        'branchwatch alarms site.toml --ack B3-quench --by "J. Ortega"',
+        'branchwatch alarms site.toml --shelve B5-spray --until "2026-09-01 06:00" --by shift-B',
+    ),
+    "report": (
+        "branchwatch report site.toml",
+        "branchwatch report site.toml --date 2026-08-14",
+    ),
+    "run": (
+        "branchwatch run site.toml",
+        "branchwatch run site.toml --for 600 --health-file /tmp/bw-health.json   # a trial",
+    ),
+}
 
 
 def _site(args: argparse.Namespace) -> Site:
@@ -127,12 +174,7 @@ pressure, the total flow, and each branch's flow, velocity, share and threshold 
 pump speed, fix the header pressure, or change the water temperature.
 
 Logged conditions (tank levels, return-header pressure, valve positions) take the
-'nominal' values of their tags in the site file.
-
-examples:
-  branchwatch curve site.toml
-  branchwatch curve site.toml --speed 80 --plot curve.png
-  branchwatch curve site.toml --header-pressure "3.2 bar" --json""",
+'nominal' values of their tags in the site file.""",
     )
     p.add_argument("--speed", metavar="PCT", type=float,
                    help="pump speed in %% of design (affinity laws); default: design speed")
@@ -330,12 +372,7 @@ def _register_analyze(verbs: Any) -> None:
         """\
 Fit every branch's resistance ratio over each analysis window in the period, store the
 fits, then diagnose the whole stored history: fouling, restriction, back-pressure change,
-low flow, instrument faults, header imbalance. Dates without a zone are site time.
-
-examples:
-  branchwatch analyze site.toml --from 2026-04-01 --to 2026-09-01 --findings findings.json
-  branchwatch analyze site.toml --from 2026-08-01 --to 2026-08-02 --fits fits.csv
-  branchwatch analyze site.toml --from 2025-09-01 --to 2026-09-01 --jobs 2   (a year)""",
+low flow, instrument faults, header imbalance. Dates without a zone are site time.""",
     )
     p.add_argument("--from", dest="start", required=True, metavar="DATE", help="first day")
     p.add_argument("--to", dest="end", required=True, metavar="DATE",
@@ -728,13 +765,7 @@ per flow and pressure transmitter. They follow the ISA-18.2 life cycle: normal -
 (active, not yet acknowledged) -> ack -> normal; rtn_unack when the condition cleared
 before anyone acknowledged; shelved for a time; out_of_service during maintenance. An
 action applies to every alarm of the branch unless --condition names one. Without an
-action, lists the alarms that are not normal and the latest journal entries.
-
-examples:
-  branchwatch alarms site.toml
-  branchwatch alarms site.toml --ack B3-quench --by "J. Ortega"
-  branchwatch alarms site.toml --shelve B5-spray --until "2026-09-01 06:00" --by shift-B
-  branchwatch alarms site.toml --out-of-service B4-process --by maintenance""",
+action, lists the alarms that are not normal and the latest journal entries.""",
     )
     action = p.add_mutually_exclusive_group()
     action.add_argument("--ack", metavar="BRANCH", help="acknowledge the branch's alarm")
