@@ -10,6 +10,7 @@ was did not remove the cause, and the finding must stay open.
 
 from __future__ import annotations
 
+import os
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
@@ -294,3 +295,61 @@ def test_log_verb_refuses_with_one_line_and_exit_2(
         assert len(store.maintenance()) == 1  # nothing lost, nothing added
     finally:
         store.close()
+
+
+# -- item 1 end to end: the simulated site, its exports, ingest, analysis ---------------
+
+
+@pytest.mark.slow
+def test_simulated_site_logged_cleanings_checked_against_the_fits(tmp_path: Path) -> None:
+    """Two branches of the example site foul (simulated truth: linear ramps to r 1.6 by
+    day 50); both cleanings are logged on day 62, but only B5's really happened (the
+    simulator's Cleaning ends its ramp). B1's finding stays open and says so; B5's ends
+    at its entry. A third entry, withdrawn, is not read."""
+    from model.scenario import Cleaning, FoulingRamp
+    from monitor.config import load_site
+    from monitor.demo import simulate_site, write_exports
+    from monitor.jobs import analyze, ingest, open_source
+
+    start, days = datetime(2026, 4, 1, tzinfo=UTC), 75
+    day = timedelta(days=1)
+    path = tmp_path / "site.toml"
+    path.write_text(EXAMPLE_SITE.read_text())
+    site = load_site(path)
+    cleaned = start + 62 * day + timedelta(hours=10)
+    sim = simulate_site(site, start, start + days * day, step_s=600.0, seed=11, faults=[
+        FoulingRamp("B1-reactor", start + 16 * day, days=34, r_end=1.6),
+        FoulingRamp("B5-spray", start + 16 * day, days=34, r_end=1.6),
+        Cleaning("B5-spray", cleaned),
+    ])  # fmt: skip
+    write_exports(site, sim, tmp_path / "inbox", spoil=False)
+    for f in (tmp_path / "inbox").iterdir():  # settled exports, not being written
+        os.utime(f, (f.stat().st_mtime - 3600, f.stat().st_mtime - 3600))
+    store = SqlStore(site.store_url)
+    source = open_source(site)
+    try:
+        ingest(site, store, source)
+        # logged at the end of the shift; times are what the engineer wrote down
+        store.add_maintenance("B1-reactor", "cleaned", cleaned + timedelta(hours=6))
+        store.add_maintenance("B5-spray", "cleaned", cleaned + timedelta(hours=6))
+        wrong = store.add_maintenance("B3-quench", "cleaned", start + 40 * day)
+        store.withdraw_maintenance(wrong, by="test", note="no work on B3")
+        result = analyze(site, store, source, start, start + days * day)
+        fits = store.read_fits()
+    finally:
+        source.close()
+        store.close()
+    by = {(f.branch, f.kind): f for f in result.findings}
+    b1, b5 = by[("B1-reactor", "fouling")], by[("B5-spray", "fouling")]
+    assert b1.end is None and b5.end == cleaned + timedelta(hours=6), result.findings
+    r = fits[fits["branch"] == "B1-reactor"].set_index("window_start")["r"].dropna()
+    # the windows (site days) that start after the entry: the first three judge it
+    k = int(np.searchsorted(r.index, pd.Timestamp(cleaned + timedelta(hours=6))))
+    before, after = float(np.median(r.iloc[k - 3 : k])), float(np.median(r.iloc[k : k + 3]))
+    assert (f"The cleaning logged on 2026-06-02 had no visible effect: r {before:.2f} before, "
+            f"{after:.2f} after.") in b1.message  # fmt: skip
+    assert not [f for f in result.findings if f.branch == "B3-quench"]
+    # the cleaning that happened shows in the fits: r back near 1 after it
+    r5 = fits[fits["branch"] == "B5-spray"].set_index("window_start")["r"].dropna()
+    k5 = int(np.searchsorted(r5.index, pd.Timestamp(cleaned + timedelta(hours=6))))
+    assert float(np.median(r5.iloc[k5 : k5 + 3])) < 1.1
