@@ -486,7 +486,7 @@ _EVENT_KINDS = ("cleaned", "valve_set", "meter_calibrated", "other")
 
 def _register_log(verbs: Any) -> None:
     p = _add_verb(
-        verbs, "log", _cmd_log, "record maintenance on a branch (cleaning resets the baseline)",
+        verbs, "log", _cmd_log, "record, correct or withdraw maintenance on a branch",
         """\
 Record a maintenance entry, or correct or withdraw one. The diagnosis checks each entry
 against the fits after it: a cleaning that brought the resistance ratio back down ends
