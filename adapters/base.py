@@ -352,12 +352,31 @@ class ResultsStore(abc.ABC):
 
     # maintenance, job runs, data health, status ----------------------------------------
     @abc.abstractmethod
-    def add_maintenance(self, branch: str, kind: str, time: datetime, note: str = "") -> None:
-        """Log a maintenance event (idempotent on branch, kind, time)."""
+    def add_maintenance(
+        self, branch: str, kind: str, time: datetime, note: str = "", *,
+        now: datetime | None = None,
+    ) -> int:  # fmt: skip
+        """Log a maintenance entry, returning its id (idempotent on branch, kind, time while
+        the entry is in force); work dated after *now* is refused."""
 
     @abc.abstractmethod
-    def maintenance(self, branch: str | None = None) -> pd.DataFrame:
-        """Maintenance events (branch, kind, time, note), oldest first."""
+    def withdraw_maintenance(
+        self, entry_id: int, *, by: str, note: str = "", now: datetime | None = None
+    ) -> None:
+        """Withdraw an entry: kept and marked (who, when, why), no longer in force."""
+
+    @abc.abstractmethod
+    def correct_maintenance(
+        self, entry_id: int, *, time: datetime | None = None, note: str | None = None,
+        by: str, now: datetime | None = None,
+    ) -> int:  # fmt: skip
+        """Withdraw an entry and log its corrected copy (``replaces`` = the old id)."""
+
+    @abc.abstractmethod
+    def maintenance(
+        self, branch: str | None = None, *, include_withdrawn: bool = False
+    ) -> pd.DataFrame:
+        """Maintenance entries in force (id, branch, kind, time, note, …), oldest first."""
 
     @abc.abstractmethod
     def record_job_run(

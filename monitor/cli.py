@@ -101,12 +101,59 @@ def _add_verb(
 ) -> argparse.ArgumentParser:
     p: argparse.ArgumentParser = verbs.add_parser(
         name, help=summary, description=description,
+        epilog="examples:\n" + "\n".join(f"  {line}" for line in EXAMPLES[name]),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     if config:
         p.add_argument("config", metavar="CONFIG", type=Path, help="site file (TOML)")
     p.set_defaults(func=func)
     return p
+
+
+#: The example command lines each verb's --help ends with (a test parses every one).
+EXAMPLES: dict[str, tuple[str, ...]] = {
+    "demo": (
+        "branchwatch demo",
+        "branchwatch demo --folder /tmp/bw-demo --days 60 --quiet",
+    ),
+    "check": ("branchwatch check site.toml",),
+    "curve": (
+        "branchwatch curve site.toml",
+        "branchwatch curve site.toml --speed 80 --plot curve.png",
+        'branchwatch curve site.toml --header-pressure "3.2 bar" --json',
+    ),
+    "ingest": (
+        "branchwatch ingest site.toml",
+        "branchwatch ingest site.toml --json",
+    ),
+    "analyze": (
+        "branchwatch analyze site.toml --from 2026-04-01 --to 2026-09-01 --findings findings.json",
+        "branchwatch analyze site.toml --from 2026-08-01 --to 2026-08-02 --fits fits.csv",
+        "branchwatch analyze site.toml --from 2025-09-01 --to 2026-09-01 --jobs 2   # a year",
+    ),
+    "log": (
+        'branchwatch log site.toml B1-reactor --cleaned 2026-08-14 --note "hydro-jetted E-110"',
+        'branchwatch log site.toml --correct 12 --time "2026-08-14 15:30"',
+        'branchwatch log site.toml --withdraw 13 --note "logged on the wrong branch"',
+    ),
+    "status": (
+        "branchwatch status site.toml",
+        "branchwatch status site.toml --json",
+    ),
+    "alarms": (
+        "branchwatch alarms site.toml",
+        'branchwatch alarms site.toml --ack B3-quench --by "J. Ortega"',
+        'branchwatch alarms site.toml --shelve B5-spray --until "2026-09-01 06:00" --by shift-B',
+    ),
+    "report": (
+        "branchwatch report site.toml",
+        "branchwatch report site.toml --date 2026-08-14",
+    ),
+    "run": (
+        "branchwatch run site.toml",
+        "branchwatch run site.toml --for 600 --health-file /tmp/bw-health.json   # a trial",
+    ),
+}
 
 
 def _site(args: argparse.Namespace) -> Site:
@@ -127,12 +174,7 @@ pressure, the total flow, and each branch's flow, velocity, share and threshold 
 pump speed, fix the header pressure, or change the water temperature.
 
 Logged conditions (tank levels, return-header pressure, valve positions) take the
-'nominal' values of their tags in the site file.
-
-examples:
-  branchwatch curve site.toml
-  branchwatch curve site.toml --speed 80 --plot curve.png
-  branchwatch curve site.toml --header-pressure "3.2 bar" --json""",
+'nominal' values of their tags in the site file.""",
     )
     p.add_argument("--speed", metavar="PCT", type=float,
                    help="pump speed in %% of design (affinity laws); default: design speed")
@@ -366,12 +408,7 @@ def _register_analyze(verbs: Any) -> None:
         """\
 Fit every branch's resistance ratio over each analysis window in the period, store the
 fits, then diagnose the whole stored history: fouling, restriction, back-pressure change,
-low flow, instrument faults, header imbalance. Dates without a zone are site time.
-
-examples:
-  branchwatch analyze site.toml --from 2026-04-01 --to 2026-09-01 --findings findings.json
-  branchwatch analyze site.toml --from 2026-08-01 --to 2026-08-02 --fits fits.csv
-  branchwatch analyze site.toml --from 2025-09-01 --to 2026-09-01 --jobs 2   (a year)""",
+low flow, instrument faults, header imbalance. Dates without a zone are site time.""",
     )
     p.add_argument("--from", dest="start", required=True, metavar="DATE", help="first day")
     p.add_argument("--to", dest="end", required=True, metavar="DATE",
@@ -485,16 +522,17 @@ _EVENT_KINDS = ("cleaned", "valve_set", "meter_calibrated", "other")
 
 def _register_log(verbs: Any) -> None:
     p = _add_verb(
-        verbs, "log", _cmd_log, "record maintenance on a branch (cleaning resets the baseline)",
+        verbs, "log", _cmd_log, "record, correct or withdraw maintenance on a branch",
         """\
-Record a maintenance event. A cleaning ends fouling and restriction findings and starts
-a new baseline for the branch; a valve setting ends restriction and back-pressure
-findings; a meter calibration ends instrument findings. Without an event, lists the log.
-
-examples:
-  branchwatch log site.toml B1-reactor --cleaned 2026-08-14
-  branchwatch log site.toml B2-compressor --valve-set "2026-06-10 14:00" --note "BV-210 reopened"
-  branchwatch log site.toml""",
+Record a maintenance entry, or correct or withdraw one. The diagnosis checks each entry
+against the fits after it: a cleaning that brought the resistance ratio back down ends
+the branch's fouling and restriction findings and starts a new baseline; one that did
+not keeps the finding open and says so. A valve setting is checked the same way against
+a restriction, and ends back-pressure findings; a meter calibration ends instrument
+findings. Times without a zone are site time; work dated in the future is refused.
+Without an entry to record, lists the log with each entry's id. A withdrawn entry stays
+in the log (marked, with who and when) and the diagnosis no longer reads it; a
+correction withdraws the old entry and records the corrected one.""",
     )
     p.add_argument("branch", nargs="?", help="branch name (omit to list the log)")
     group = p.add_mutually_exclusive_group()
@@ -502,31 +540,95 @@ examples:
     group.add_argument("--valve-set", metavar="TIME", help="a valve on it was (re)set")
     group.add_argument("--meter-calibrated", metavar="TIME", help="its meter was calibrated")
     group.add_argument("--other", metavar="TIME", help="any other work (new baseline)")
-    p.add_argument("--note", default="", help="free text kept with the event")
+    group.add_argument("--withdraw", metavar="ID", type=_positive_int,
+                       help="withdraw entry ID (logged in error); it stays in the log, marked")
+    group.add_argument("--correct", metavar="ID", type=_positive_int,
+                       help="correct entry ID: give the right --time and/or --note")
+    p.add_argument("--time", metavar="TIME", help="with --correct: the corrected time")
+    p.add_argument("--note", default=None,
+                   help="free text kept with the entry (with --withdraw: why)")
+    p.add_argument("--by", default=None,
+                   help="who withdraws or corrects (default: your login name)")
+    p.add_argument("--all", action="store_true", help="list withdrawn entries too")
+
+
+def _who(args: argparse.Namespace) -> str:
+    if args.by:
+        return str(args.by)
+    import getpass
+
+    try:
+        return getpass.getuser() or "unknown"
+    except (OSError, KeyError):
+        return "unknown"
+
+
+def _not_future(when: datetime, what: str, site: Site) -> None:
+    now = datetime.now(UTC)
+    if when > now + timedelta(minutes=5):
+        raise UserError(f"{what} {_local(site, when)} ({site.timezone}) is in the future; "
+                        "log maintenance once it is done")
 
 
 def _cmd_log(args: argparse.Namespace) -> int:
     site = _site(args)
     given = {k: getattr(args, k) for k in _EVENT_KINDS if getattr(args, k)}
+    if args.time is not None and args.correct is None:
+        raise UserError("--time goes with --correct ID; to record new work give "
+                        "BRANCH --cleaned TIME (or another kind)")
+    if args.correct is not None and args.time is None and args.note is None:
+        raise UserError(f"--correct {args.correct} needs the corrected --time and/or --note")
+    if given and args.branch is None:
+        raise UserError("name the branch the work was done on, e.g. "
+                        f"'branchwatch log {args.config} BRANCH --cleaned 2026-08-14'")
     store = open_store(site.store_url)
     try:
-        if args.branch is None or not given:
-            events = store.maintenance(args.branch)
-            if events.empty:
-                print("no maintenance recorded")
-            for row in events.itertuples():
-                print(f"{row.time:%Y-%m-%d %H:%M}Z  {row.branch:<16} {row.kind:<17} {row.note}")
-            return EXIT_OK
-        site.branch(args.branch)  # unknown names are refused with the list of branches
-        kind, text = next(iter(given.items()))
-        when = _parse_time(text, site, f"--{kind.replace('_', '-')}")
-        store.add_maintenance(args.branch, kind, when, args.note)
-        print(f"recorded: {args.branch} {kind.replace('_', ' ')} at {when:%Y-%m-%d %H:%M}Z")
+        if args.withdraw is not None:
+            store.withdraw_maintenance(args.withdraw, by=_who(args), note=args.note or "")
+            print(f"withdrawn: entry {args.withdraw} (kept in the log, no longer in force)")
+        elif args.correct is not None:
+            when = None if args.time is None else _parse_time(args.time, site, "--time")
+            if when is not None:
+                _not_future(when, "--time", site)
+            new_id = store.correct_maintenance(args.correct, time=when, note=args.note,
+                                               by=_who(args))
+            print(f"corrected: entry {args.correct} withdrawn, replaced by entry {new_id}")
+        elif not given:
+            _print_log(site, store.maintenance(args.branch, include_withdrawn=args.all))
+        else:
+            site.branch(args.branch)  # unknown names are refused with the list of branches
+            kind, text = next(iter(given.items()))
+            when = _parse_time(text, site, f"--{kind.replace('_', '-')}")
+            _not_future(when, f"--{kind.replace('_', '-')}", site)
+            entry = store.add_maintenance(args.branch, kind, when, args.note or "")
+            print(f"recorded: entry {entry}, {args.branch} {kind.replace('_', ' ')} at "
+                  f"{_local(site, when)} ({site.timezone})")
     except KeyError as exc:
         raise UserError(str(exc).strip('"')) from None
+    except ValueError as exc:  # the store refuses: unknown id, already withdrawn, future
+        raise UserError(str(exc)) from None
     finally:
         store.close()
     return EXIT_OK
+
+
+def _print_log(site: Site, events: pd.DataFrame) -> None:
+    if events.empty:
+        print("no maintenance recorded")
+        return
+    print(f"maintenance log (site time, {site.timezone}):")
+    print(f"  {'id':>4}  {'time':<16}  {'branch':<16} {'kind':<17} note")
+    for row in events.to_dict(orient="records"):
+        marks = []
+        if not pd.isna(row.get("replaces")):
+            marks.append(f"corrects entry {int(row['replaces'])}")
+        if not pd.isna(row.get("withdrawn_at")):
+            why = f": {row['withdrawn_note']}" if row.get("withdrawn_note") else ""
+            marks.append(f"withdrawn {_local(site, row['withdrawn_at'])} by "
+                         f"{row.get('withdrawn_by') or '?'}{why}")
+        state = f"  [{'; '.join(marks)}]" if marks else ""
+        print(f"  {int(row['id']):>4}  {_local(site, row['time']):<16}  {row['branch']:<16} "
+              f"{row['kind']:<17} {row.get('note') or ''}{state}")
 
 
 # ---------------------------------------------------------------------------------------
@@ -723,13 +825,7 @@ has fresh data; [analysis] stale_after). They follow the ISA-18.2 life cycle: no
 before anyone acknowledged; shelved for a time; out_of_service during maintenance. An
 action applies to every alarm of the branch unless --condition names one. Without an
 action, lists the alarms that are not normal and the latest journal entries; times are
-site time.
-
-examples:
-  branchwatch alarms site.toml
-  branchwatch alarms site.toml --ack B3-quench --by "J. Ortega"
-  branchwatch alarms site.toml --shelve B5-spray --until "2026-09-01 06:00" --by shift-B
-  branchwatch alarms site.toml --out-of-service B4-process --by maintenance""",
+site time.""",
     )
     action = p.add_mutually_exclusive_group()
     action.add_argument("--ack", metavar="BRANCH", help="acknowledge the branch's alarm")

@@ -103,7 +103,8 @@ def diagnose(
     history : one row per branch-window, columns `HISTORY_COLUMNS` (times UTC-aware,
         ``r`` [-], pressures [Pa], flows [m^3/s])
     maintenance : events with columns ``branch``, ``kind`` (``cleaned``, ``valve_set``,
-        ``meter_calibrated`` or any other), ``time`` (UTC-aware)
+        ``meter_calibrated`` or any other), ``time`` (UTC-aware); rows with a
+        ``withdrawn_at`` time (withdrawn log entries) are ignored
     settings : thresholds and per-branch settings (defaults when None)
     now : the analysis time; windows ending after it and later events are ignored
     screening : instrument screening counts, columns `SCREENING_COLUMNS`
@@ -124,6 +125,8 @@ def diagnose(
             {"branch": [], "kind": [], "time": pd.Series([], dtype="datetime64[ns, UTC]")}
         )
     )
+    if "withdrawn_at" in events.columns:  # a withdrawn log entry is not maintenance
+        events = events[events["withdrawn_at"].isna()]
     events = events[events["time"] <= t_now].sort_values("time")
     flags, last_screened = _flag_windows(screening, cfg, t_now)
     bal = None

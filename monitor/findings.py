@@ -19,7 +19,9 @@ import pandas as pd
 
 __all__ = [
     "BALANCE_COLUMNS",
+    "CHECKED_BY_FITS",
     "END_BY_EVENT",
+    "EVENT_WORDS",
     "HISTORY_COLUMNS",
     "KINDS",
     "SCREENING_COLUMNS",
@@ -32,12 +34,17 @@ __all__ = [
 KINDS: tuple[str, ...] = (
     "fouling", "restriction", "back_pressure", "low_flow", "instrument", "imbalance",
 )  # fmt: skip
-#: Which open findings a maintenance event ends (any event starts a new baseline).
+#: Which open findings a maintenance event ends. Those in `CHECKED_BY_FITS` end only when
+#: the fits after the event show the resistance ratio back down (`monitor.replay`).
 END_BY_EVENT: dict[str, frozenset[str]] = {
     "cleaned": frozenset({"fouling", "restriction"}),
     "valve_set": frozenset({"restriction", "back_pressure"}),
     "meter_calibrated": frozenset({"instrument"}),
 }
+#: Findings of a raised resistance ratio: an event ends them only when r fell after it.
+CHECKED_BY_FITS: frozenset[str] = frozenset({"fouling", "restriction"})
+#: How the messages name the work of an event kind.
+EVENT_WORDS: dict[str, str] = {"cleaned": "cleaning", "valve_set": "valve setting"}
 
 
 @dataclass(frozen=True)
@@ -151,6 +158,8 @@ class DiagnosisSettings:
     #: range is a spike (screened out like one); a failed meter keeps reading there
     out_of_range_min_count: int = 3
     low_flow_deadband: float = 0.05  # fraction of the minimum to clear low flow [-]
+    #: usable windows after a cleaning or valve setting that judge whether it worked
+    verify_windows: int = 3
     timezone: str = "UTC"  # the site's zone: dates in finding messages are site time
 
     def __post_init__(self) -> None:
@@ -160,6 +169,8 @@ class DiagnosisSettings:
         for name in ("step_z", "cusum_h", "min_rise_r", "min_sigma_r", "bp_step_z"):
             if not getattr(self, name) > 0:
                 raise ValueError(f"{name} must be positive, got {getattr(self, name)}")
+        if self.verify_windows < 1:
+            raise ValueError(f"verify_windows must be at least 1, got {self.verify_windows}")
         if not 0 < self.trend_alpha < 1:
             raise ValueError(f"trend_alpha must be in (0, 1), got {self.trend_alpha}")
         try:

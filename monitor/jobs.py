@@ -910,7 +910,7 @@ def write_report(site: Site, store: ResultsStore, *, day: datetime, now: datetim
         site=site, day=day_start, fits=fits, findings=findings, alarms=store.read_alarms(),
         quarantine=store.quarantine_counts(), health=store.data_health(day_start, day_end),
         generated=now, newest_reading=max(newest_readings(store).values(), default=None),
-        stale_after_s=stale_after(site),
+        stale_after_s=stale_after(site), maintenance=store.maintenance(include_withdrawn=True),
     )
     local = pd.Timestamp(day_start).tz_convert(site.timezone)
     path = site.report_folder / f"morning-{local:%Y-%m-%d}.html"

@@ -46,8 +46,17 @@ Causes and how they are told apart (DESIGN §3)
 
 Baselines come from the commissioning period of the branch settings, else from the first
 ``baseline_windows`` good windows after the start of the history or after the last
-maintenance event (any event starts a new baseline; ``cleaned`` also ends fouling and
-restriction findings).
+maintenance event that starts one.
+
+Maintenance is checked against the data (`_settle`): a ``cleaned`` (or ``valve_set``)
+event while a fouling or restriction finding is open is judged on the first
+``verify_windows`` usable windows after it. When their median ``r`` came back down — for
+fouling below the cleaning limit and by at least half of the rise above the baseline;
+for a restriction below the middle of its step — the finding ends at the event and a new
+baseline starts, as after any other event. When it did not, the finding stays open, its
+message says so with the medians of ``r`` before and after, and the replay goes on from
+the old baseline as if the event had not been logged. Other events end the findings of
+`END_BY_EVENT` and start a new baseline at once.
 """
 
 from __future__ import annotations
@@ -55,14 +64,16 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
 from monitor.findings import (
+    CHECKED_BY_FITS,
     END_BY_EVENT,
+    EVENT_WORDS,
     TAIL_COLUMNS,
     BranchSettings,
     DiagnosisSettings,
@@ -98,6 +109,9 @@ class _Open:
     message: str
     ref: float = math.nan  # level before the change (for the return to normal)
     step: float = math.nan  # size of the change in the series' unit
+    note: str = ""  # what the last maintenance event on it did (added to the message)
+    # the numbers of that event's check (kept apart: `_fouling` rewrites the evidence)
+    event: dict[str, float] = field(default_factory=dict)
 
     def close(self, branch: str, end: pd.Timestamp | None) -> Finding:
         return Finding(
@@ -107,9 +121,22 @@ class _Open:
             detected=self.detected.to_pydatetime(),
             end=None if end is None else end.to_pydatetime(),
             confidence=float(min(max(self.confidence, 0.0), 1.0)),
-            evidence={k: float(v) for k, v in self.evidence.items()},
-            message=self.message,
+            evidence={k: float(v) for k, v in {**self.evidence, **self.event}.items()},
+            message=f"{self.message} {self.note}" if self.note else self.message,
         )
+
+
+@dataclass
+class _Verify:
+    """A cleaning or valve setting waiting for the fits after it (see `_settle`)."""
+
+    when: pd.Timestamp
+    kind: str
+    checked: list[str]  # the open findings it may end
+    r_before: float  # median r of the usable windows just before it [-]
+    n_before: int  # how many windows that median is of
+    held: list[int] = field(default_factory=list)  # windows since, not yet replayed
+    usable: list[int] = field(default_factory=list)  # those of them with a usable r
 
 
 @dataclass(frozen=True)
@@ -251,6 +278,7 @@ class BranchReplay:
         self.first_segment = True
         self.rel_errors: list[float] = []  # relative prediction errors of accepted windows
         self.s_shift = 0.0  # back-pressure change found from r, taken out of later r [Pa]
+        self.verify: _Verify | None = None  # a maintenance event waiting for its check
         self._new_segment()
 
     def _when(self, t: pd.Timestamp, j: int | None = None) -> str:
@@ -279,6 +307,7 @@ class BranchReplay:
     def _new_segment(self) -> None:
         self.base: _Baseline | None = None
         self.base_idx: list[int] = []
+        self.usable: list[int] = []  # windows of the segment with a usable r
         self._reset_level()
 
     def _reset_level(self) -> None:
@@ -308,25 +337,121 @@ class BranchReplay:
         k = 0
         for i in range(len(self.rows)):
             while k < len(ev) and ev[k][0] <= self.ws[i]:
-                when, kind = ev[k]
-                for ended in END_BY_EVENT.get(str(kind), frozenset()):
-                    self._end(ended, when)
-                self.first_segment = False
-                self._new_segment()
+                self._event(pd.Timestamp(ev[k][0]), str(ev[k][1]))
                 k += 1
-            if self.ws[i] not in self.flagged and math.isfinite(self.r[i]):
-                if self.base is None:
-                    self._collect_baseline(i)
-                else:
-                    self._pressures(i)
-                    self._steps(i)
-                    self._fouling(i)
-            elif self.ws[i] not in self.flagged and self.base is not None:
-                # no usable r (too few steady samples), but a logged termination
-                # pressure still shows a back-pressure step
-                self._pressures(i)
-            self._low_flow(i)
+            if self.verify is not None:
+                self._hold(i)
+            else:
+                self._window(i)
+        if self.verify is not None:
+            self._settle(at_end=True)
         return self.done + [f.close(self.name, None) for f in self.open.values()]
+
+    def _window(self, i: int, *, low_flow: bool = True) -> None:
+        if self.ws[i] not in self.flagged and math.isfinite(self.r[i]):
+            self.usable.append(i)
+            if self.base is None:
+                self._collect_baseline(i)
+            else:
+                self._pressures(i)
+                self._steps(i)
+                self._fouling(i)
+        elif self.ws[i] not in self.flagged and self.base is not None:
+            # no usable r (too few steady samples), but a logged termination
+            # pressure still shows a back-pressure step
+            self._pressures(i)
+        if low_flow:
+            self._low_flow(i)
+
+    # -- maintenance events ----------------------------------------------------------
+    def _event(self, when: pd.Timestamp, kind: str) -> None:
+        """A maintenance event: end what it ends, or hold the findings of a raised r
+        until the fits after it show whether it brought r down (`_settle`)."""
+        if self.verify is not None:
+            self._settle()
+        ends = END_BY_EVENT.get(kind, frozenset())
+        checked = [f for f in sorted(ends & CHECKED_BY_FITS) if f in self.open]
+        for ended in sorted(ends - set(checked)):
+            self._end(ended, when)
+        before = self.usable[-self.cfg.verify_windows :]
+        if checked and before and self.base is not None:
+            self.verify = _Verify(when, kind, checked, float(median(self.r[before])),
+                                  len(before))  # fmt: skip
+            return
+        for ended in checked:
+            self._end(ended, when)
+        self.first_segment = False
+        self._new_segment()
+
+    def _hold(self, i: int) -> None:
+        """Window i comes after an event still being checked: kept for later."""
+        v = self.verify
+        assert v is not None
+        v.held.append(i)
+        if self.ws[i] not in self.flagged and math.isfinite(self.r[i]):
+            v.usable.append(i)
+        self._low_flow(i)
+        if len(v.usable) >= self.cfg.verify_windows:
+            self._settle()
+
+    def _settle(self, *, at_end: bool = False) -> None:
+        """Judge the held event on the usable windows after it, then replay them."""
+        v = self.verify
+        assert v is not None and self.base is not None
+        self.verify = None
+        word = EVENT_WORDS.get(v.kind, v.kind.replace("_", " "))
+        day = self._when(v.when)
+        if at_end and len(v.usable) < self.cfg.verify_windows:
+            # the fits after it are too few to tell yet; the next diagnosis decides
+            after = (f", {float(median(self.r[v.usable])):.2f} in the {len(v.usable)} "
+                     "window(s) since" if v.usable else "")  # fmt: skip
+            for kind in v.checked:
+                self.open[kind].note = (
+                    f"The {word} logged on {day} is not checked yet ({len(v.usable)} of "
+                    f"{self.cfg.verify_windows} windows after it fitted): r "
+                    f"{v.r_before:.2f} before{after}."
+                )
+            return
+        if not v.usable:  # another event came before any usable window: that one decides
+            for j in v.held:
+                self._window(j, low_flow=False)
+            return
+        r_after = float(median(self.r[v.usable]))
+        worked = [kind for kind in v.checked if self._brought_down(kind, v, r_after)]
+        for kind in worked:
+            self._end(kind, v.when)
+        for kind in v.checked:
+            if kind in worked:
+                continue
+            f = self.open[kind]
+            # visible: beyond the day-to-day scatter of r (relative, so at r's level)
+            # and a fifth of the rise; the medians either side are of a few windows only
+            fall = v.r_before - r_after
+            scatter = 3.0 * self.base.sigma_r * v.r_before / self.base.r0
+            effect = (
+                "had no visible effect" if fall < max(scatter, 0.2 * (v.r_before - f.ref))
+                else f"took off only part of the rise (baseline {f.ref:.2f})"
+            )
+            f.note = (f"The {word} logged on {day} {effect}: r {v.r_before:.2f} before, "
+                      f"{r_after:.2f} after.")  # fmt: skip
+            f.event = {"event_r_before": v.r_before, "event_r_after": r_after,
+                       "event_windows_after": float(len(v.usable))}  # fmt: skip
+            logger.info("%s: %s on %s did not end the %s finding (r %.3f -> %.3f)",
+                        self.name, v.kind, day, kind, v.r_before, r_after)  # fmt: skip
+        if len(worked) == len(v.checked):
+            self.first_segment = False
+            self._new_segment()
+        for j in v.held:
+            self._window(j, low_flow=False)
+
+    def _brought_down(self, kind: str, v: _Verify, r_after: float) -> bool:
+        """The fits after the event show the raised r of finding *kind* back down."""
+        f = self.open[kind]
+        if kind == "restriction":
+            return bool(r_after < f.ref + f.step / 2)
+        rise = v.r_before - f.ref
+        back = r_after - f.ref <= 0.5 * rise if rise > 0 else True
+        return bool(r_after < self.bs.cleaning_limit_r and back)
 
     def _collect_baseline(self, i: int) -> None:
         period = self.bs.commissioning if self.first_segment else None
@@ -825,6 +950,13 @@ class BranchReplay:
         )
         rising = mk.p < self.cfg.trend_alpha and fit.slope > 0
         t_last = self.ws[i]
+        # the forecast as dates (UTC seconds since 1970), for the report to show as the
+        # message does: the interval runs from the earliest to the latest date
+        for key, eta in (("limit_date_s", cross.eta), ("limit_date_low_s", cross.eta_low),
+                         ("limit_date_high_s", cross.eta_high)):
+            fouling.evidence[key] = (
+                nan if eta is None else (t_last + eta * _DAY).timestamp()
+            )
         if cross.reached:
             when = f"it is at or past the cleaning limit {limit:.2f}"
         elif cross.eta is None:

@@ -2,9 +2,15 @@
 
 Order of the page: what needs attention (open findings, most urgent first, each with its
 evidence, cost and forecast), standing alarms, every branch at a glance (today's
-resistance ratio against its cleaning limit), the resistance trends as a picture, data
-health (what screening and the quarantine held back), and the cautions. Plots are
-embedded as PNG, so the file can be mailed or archived alone.
+resistance ratio against its cleaning limit), the maintenance log, the resistance trends
+as a picture, data health (what screening and the quarantine held back), and the
+cautions. Plots are embedded as PNG, so the file can be mailed or archived alone.
+
+Open findings are ordered by `attention_order`: a branch short of water first, then a
+raised resistance at or past the branch's cleaning limit (fouling or a restriction),
+then the lesser sudden changes (a restriction below the limit, a back-pressure change),
+then the rest; within each, the costliest first (extra pumping kWh/day, then lost flow,
+from the finding's evidence), then the most certain.
 
 `build_report` is pure: it takes frames read from the store and returns HTML text.
 """
@@ -15,7 +21,8 @@ import base64
 import html
 import io
 import math
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 from typing import Any
 
@@ -27,11 +34,14 @@ import pandas as pd
 
 from monitor.config import Site
 
-__all__ = ["ReportInputs", "build_report"]
+__all__ = ["ReportInputs", "attention_order", "build_report"]
 
-#: Which findings come first: a sudden change before a slow one.
+#: Which findings come first when neither is past its cleaning limit: a sudden change
+#: before a slow one.
 _URGENCY = {"low_flow": 0, "restriction": 1, "back_pressure": 2, "instrument": 3,
             "imbalance": 4, "fouling": 5}
+#: How far back the maintenance log of the report reaches [d].
+MAINTENANCE_DAYS = 90
 _KIND_TEXT = {"low_flow": "low flow", "restriction": "restriction",
               "back_pressure": "back-pressure change", "instrument": "instrument fault",
               "imbalance": "header imbalance", "fouling": "fouling"}
@@ -61,6 +71,8 @@ class ReportInputs:
     #: which data counts as stale [s], for the header's data age
     newest_reading: datetime | None = None
     stale_after_s: float | None = None
+    #: maintenance entries (the store's ``maintenance(include_withdrawn=True)``)
+    maintenance: pd.DataFrame = field(default_factory=pd.DataFrame)
 
 
 def build_report(inputs: ReportInputs) -> str:
@@ -77,6 +89,7 @@ def build_report(inputs: ReportInputs) -> str:
         _attention(inputs),
         _alarms(inputs),
         _branches(inputs),
+        _maintenance(inputs),
         _trends(inputs),
         _health(inputs),
         _method(),
@@ -142,6 +155,61 @@ img {{ max-width: 100%; }}
 </style></head><body>"""
 
 
+def _num(ev: Mapping[str, Any], key: str) -> float | None:
+    v = ev.get(key)
+    return float(v) if isinstance(v, int | float) and math.isfinite(float(v)) else None
+
+
+def _limit(site: Site, row: Mapping[Any, Any]) -> float | None:
+    """The cleaning limit of the finding's branch: the site file's, else the evidence's."""
+    try:
+        return float(site.branch(str(row["branch"])).cleaning_limit)
+    except KeyError:
+        return _num(row.get("evidence") or {}, "cleaning_limit_r")
+
+
+def _r_level(ev: Mapping[str, Any]) -> float | None:
+    """The raised resistance ratio a finding stands at (recent level, or after a step)."""
+    for key in ("r_recent", "r_now", "r_after"):
+        if (v := _num(ev, key)) is not None:
+            return v
+    return None
+
+
+def _tier(site: Site, row: Mapping[Any, Any]) -> int:
+    """0: short of water; 1: r at or past the cleaning limit; 2: a lesser sudden change;
+    3: the rest (fouling below the limit, instruments, header balance)."""
+    kind = str(row["kind"])
+    if kind == "low_flow":
+        return 0
+    ev = row.get("evidence") or {}
+    limit, level = _limit(site, row), _r_level(ev)
+    if (kind in ("fouling", "restriction") and limit is not None and level is not None
+            and level >= limit):
+        return 1
+    return 2 if kind in ("restriction", "back_pressure") else 3
+
+
+def attention_order(site: Site, findings: pd.DataFrame) -> pd.DataFrame:
+    """*findings* in the order the report lists them (see the module docstring)."""
+    if findings.empty:
+        return findings
+    recs = findings.to_dict(orient="records")
+
+    def key(i: int) -> tuple[float, ...]:
+        r = recs[i]
+        ev = r.get("evidence") or {}
+        kwh = _num(ev, "extra_energy_kwh_per_day") or 0.0
+        lost = _num(ev, "lost_flow_m3h") or 0.0
+        start = pd.Timestamp(r["start"]).timestamp()
+        costed = 0 if kwh > 0 or lost > 0 else 1  # a cost known and counted comes first
+        return (_tier(site, r), costed, -kwh, -lost, _URGENCY.get(str(r["kind"]), 9),
+                -float(r["confidence"]), start)
+
+    order = sorted(range(len(recs)), key=key)
+    return findings.iloc[order]
+
+
 def _attention(inputs: ReportInputs) -> str:
     site = inputs.site
     f = inputs.findings
@@ -149,44 +217,61 @@ def _attention(inputs: ReportInputs) -> str:
     if open_f.empty:
         return ("<h2>What needs attention</h2><p>Nothing: no open findings. Every branch is "
                 "within its usual range.</p>")
-    rows = open_f.assign(_u=open_f["kind"].map(_URGENCY).fillna(9)).sort_values(
-        ["_u", "start"])
+    rows = attention_order(site, open_f)
     out = [f"<h2>What needs attention ({len(rows)})</h2>"]
     for r in rows.to_dict(orient="records"):
         kind = str(r["kind"])
-        level = "urgent" if _URGENCY.get(kind, 9) <= 1 else (
+        tier = _tier(site, r)
+        level = "urgent" if tier <= 1 or kind == "restriction" else (
             "watch" if kind in ("back_pressure", "fouling") else "info")
+        ev = r.get("evidence") or {}
+        forecast = _forecast(site, r) if kind == "fouling" else ""
         out.append(
             f"<div class='finding {level}'><h3><span class=kind>{_e(_KIND_TEXT.get(kind, kind))}"
-            f"</span>{_e(r['branch'])}</h3><p>{_e(r['message'])}</p>"
+            f"</span>{_e(r['branch'])}</h3><p>{_e(r['message'])}</p>{forecast}"
             f"<p class=ev>since {_local(site, r['start'])} · first reported "
             f"{_local(site, r['detected'])} · confidence {float(r['confidence']):.0%}"
-            f"{_evidence_text(site, kind, r.get('evidence') or {})}</p></div>"
+            f"{_evidence_text(site, kind, ev)}</p></div>"
         )
     return "\n".join(out)
 
 
+def _day(site: Site, epoch_s: float) -> str:
+    return f"{pd.Timestamp(epoch_s, unit='s', tz='UTC').tz_convert(site.timezone):%Y-%m-%d}"
+
+
+def _forecast(site: Site, row: Mapping[Any, Any]) -> str:
+    """The date r reaches the cleaning limit, with its interval, from the evidence."""
+    ev = row.get("evidence") or {}
+    limit = _num(ev, "cleaning_limit_r") or _limit(site, row)
+    lim = f"{limit:.2f}" if limit is not None else "its cleaning limit"
+    level = _r_level(ev)
+    days = _num(ev, "days_to_limit")
+    if (days is not None and days <= 0) or (
+            level is not None and limit is not None and level >= limit):
+        text = f"at or past the cleaning limit {lim} (r {level:.2f})" if level is not None \
+            else f"at or past the cleaning limit {lim}"
+        return f"<p class=forecast><b>Forecast:</b> {_e(text)}.</p>"
+    when = _num(ev, "limit_date_s")
+    if when is None:
+        return (f"<p class=forecast><b>Forecast:</b> the rate is too uncertain to say when "
+                f"r reaches the cleaning limit {_e(lim)}.</p>")
+    lo, hi = _num(ev, "limit_date_low_s"), _num(ev, "limit_date_high_s")
+    span = (f" (between {_day(site, lo) if lo is not None else 'now'} and "
+            f"{_day(site, hi) if hi is not None else 'later'})")
+    return (f"<p class=forecast><b>Forecast:</b> r reaches the cleaning limit {_e(lim)} "
+            f"about <b>{_day(site, when)}</b>{_e(span)}.</p>")
+
+
 def _evidence_text(site: Site, kind: str, ev: dict[str, Any]) -> str:
     bits = []
-
-    def num(key: str) -> float | None:
-        v = ev.get(key)
-        return float(v) if isinstance(v, int | float) and math.isfinite(float(v)) else None
-
-    if (q := num("lost_flow_m3h")) is not None:
+    if (q := _num(ev, "lost_flow_m3h")) is not None:
         bits.append(f"flow lost {q:.1f} m³/h")
-    if (e := num("extra_energy_kwh_per_day")) is not None:
+    if (e := _num(ev, "extra_energy_kwh_per_day")) is not None:
         bits.append(f"extra pumping {e:.0f} kWh/day")
-    if kind == "fouling":
-        if (s := num("slope_per_day")) is not None:
-            bits.append(f"r rising {s * 30:.3f} per month")
-        days = num("days_to_limit")
-        if days is not None and days > 0:
-            lo, hi = num("days_to_limit_low"), num("days_to_limit_high")
-            when = pd.Timestamp.now(tz="UTC") + pd.Timedelta(days=days)
-            span = f" ({lo:.0f}–{hi:.0f} days)" if lo is not None and hi is not None else ""
-            bits.append(f"cleaning limit in about {days:.0f} days, {when:%d %b}{span}")
-    if kind == "back_pressure" and (s := num("step_pa")) is not None:
+    if kind == "fouling" and (s := _num(ev, "slope_per_day")) is not None:
+        bits.append(f"r rising {s * 30:.3f} per month")
+    if kind == "back_pressure" and (s := _num(ev, "step_pa")) is not None:
         bits.append(f"step {s / 1e5:+.2f} bar")
     return (" · " + " · ".join(_e(b) for b in bits)) if bits else ""
 
@@ -236,6 +321,34 @@ def _branches(inputs: ReportInputs) -> str:
             "<th>last window ended</th></tr>"
             + "".join(rows) + "</table><p class=ev>r = 1.00 is the branch as designed and "
             "clean; 1.40 means 40 % more hydraulic resistance.</p>")
+
+
+def _maintenance(inputs: ReportInputs) -> str:
+    """The entries of the last `MAINTENANCE_DAYS` days up to the report day, site time;
+    withdrawn entries are shown as such (the diagnosis does not read them)."""
+    site, m = inputs.site, inputs.maintenance
+    head = f"<h2>Maintenance log (last {MAINTENANCE_DAYS} days)</h2>"
+    end = pd.Timestamp(inputs.day) + pd.Timedelta(days=1)
+    if not m.empty:
+        m = m[(m["time"] < end) & (m["time"] >= end - pd.Timedelta(days=MAINTENANCE_DAYS))]
+    if m.empty:
+        return head + "<p>No maintenance logged.</p>"
+    rows = []
+    for r in m.sort_values("time", ascending=False).to_dict(orient="records"):
+        state = ""
+        withdrawn = r.get("withdrawn_at")
+        if withdrawn is not None and not pd.isna(withdrawn):
+            state = (f"withdrawn {_local(site, withdrawn)} by {r.get('withdrawn_by') or '?'}"
+                     + (f": {r['withdrawn_note']}" if r.get("withdrawn_note") else ""))
+        rows.append(
+            f"<tr{' class=ev' if state else ''}><td class=num>{_e(r.get('id', ''))}</td>"
+            f"<td>{_local(site, r['time'])}</td><td>{_e(r['branch'])}</td>"
+            f"<td>{_e(str(r['kind']).replace('_', ' '))}</td><td>{_e(r.get('note') or '')}</td>"
+            f"<td>{_e(state)}</td></tr>"
+        )
+    return (head + f"<table><tr><th class=num>entry</th><th>time ({_e(site.timezone)})</th>"
+            "<th>branch</th><th>work</th><th>note</th><th>withdrawn</th></tr>"
+            + "".join(rows) + "</table>")
 
 
 def _trends(inputs: ReportInputs) -> str:

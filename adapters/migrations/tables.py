@@ -171,7 +171,13 @@ maintenance_t = sa.Table(
     sa.Column("kind", sa.String(40), nullable=False),
     sa.Column("time", T(), nullable=False),
     sa.Column("note", sa.Text()),
-    sa.UniqueConstraint("branch", "kind", "time", name="uq_maintenance_event"),
+    # 0006_maintenance_entries: entries are withdrawn (kept, marked), never deleted; a
+    # correction withdraws the old entry and logs one that ``replaces`` it
+    sa.Column("logged_at", T()),
+    sa.Column("withdrawn_at", T()),
+    sa.Column("withdrawn_by", sa.String(100)),
+    sa.Column("withdrawn_note", sa.Text()),
+    sa.Column("replaces", sa.BigInteger()),
 )
 job_runs_t = sa.Table(
     "job_runs",
@@ -233,3 +239,4 @@ sa.Index("ix_fits_window_start", fits_t.c.window_start)
 sa.Index("ix_findings_detected", findings_t.c.detected)
 sa.Index("ix_alarm_events_time", alarm_events_t.c.time)
 sa.Index("ix_job_runs_started", job_runs_t.c.started)
+sa.Index("ix_maintenance_branch_time", maintenance_t.c.branch, maintenance_t.c.time)
