@@ -35,6 +35,19 @@ re-reads that one instant (inclusive). Rows of that instant that arrived late ar
 picked up (no gap), and the ones already stored are dropped by the store's idempotent
 upsert on (tag, time) (no double in the store).
 
+Back-filled rows (``overlap``): a historian that buffers during a network outage
+(store-and-forward) inserts the buffered rows late, with their own, older times — behind
+the watermark. So each pass starts ``overlap`` (default 2 h) before the stored watermark
+and reads that span again; the store keeps each (tag, time) once and counts only new
+readings, and the watermark still advances to the newest instant read. The limit, stated
+plainly: **a row whose time is more than ``overlap`` behind the watermark when it is
+inserted is missed** — it lies before where the next pass starts, and the source cannot see that it arrived
+(it would have to compare the whole table with the store), so nothing is logged for it.
+Set ``overlap`` longer than the longest outage the historian buffers (its
+store-and-forward capacity), or re-read a period with ``analyze --from --to`` (the SQL
+source keeps its readings, analysis reads the table). The cost is re-reading the overlap
+on every pass (``overlap = "0 s"`` turns it off).
+
 When the database goes away, each query is retried with exponential backoff
 (``max_tries``, ``backoff_seconds``, doubling); after the last try `SourceUnavailable`
 names the host (never the password) and what to check. The watermark only moves with a
@@ -99,9 +112,10 @@ _AMBIGUOUS = "ambiguous local time"
 class SqlSource(ReadingsSource):
     """A long or wide historian table; see the module docstring for the rules.
 
-    *window* [s, as timedelta] is the span of one incremental batch; *start* the first
-    instant to read when no watermark is stored (default: the oldest row); *timezone* the
-    zone of naive time columns.
+    *window* [s, as timedelta] is the span of one incremental batch; *overlap* [s, as
+    timedelta] how far before the stored watermark each pass starts (back-filled rows);
+    *start* the first instant to read when no watermark is stored (default: the oldest
+    row); *timezone* the zone of naive time columns.
     """
 
     alias = "sql"
@@ -124,6 +138,7 @@ class SqlSource(ReadingsSource):
         timezone: str = "UTC",
         quality_map: Mapping[str, bool] | None = None,
         window: timedelta = timedelta(days=1),
+        overlap: timedelta = timedelta(hours=2),
         start: datetime | None = None,
         max_tries: int = 5,
         backoff_seconds: float = 1.0,
@@ -136,6 +151,8 @@ class SqlSource(ReadingsSource):
             raise ValueError("table must name the readings table")
         if window <= timedelta(0):
             raise ValueError(f"window must be positive, got {window}")
+        if overlap < timedelta(0):
+            raise ValueError(f"overlap must be zero or positive, got {overlap}")
         if max_tries < 1:
             raise ValueError(f"max_tries must be at least 1, got {max_tries}")
         if start is not None and start.tzinfo is None:
@@ -148,7 +165,7 @@ class SqlSource(ReadingsSource):
         self.time_column, self.tag_column = time_column, tag_column
         self.value_column, self.quality_column = value_column, quality_column
         self.quality_map: Mapping[str, bool] = dict(quality_map or DEFAULT_QUALITY_MAP)
-        self.window, self.start = window, start
+        self.window, self.overlap, self.start = window, overlap, start
         self.max_tries, self.backoff_seconds = int(max_tries), float(backoff_seconds)
         self._si = {tag: si_scale_offset(spec) for tag, spec in self.tags.items()}
         self._url = _resolve_url(url, url_env, secrets_file)
@@ -194,7 +211,8 @@ class SqlSource(ReadingsSource):
         return readings
 
     def batches(self, cursors: Mapping[str, Mapping[str, Any]]) -> Iterator[Batch]:
-        """Windows from the stored watermark up to the newest row (tie rule: module doc)."""
+        """Windows from ``overlap`` before the stored watermark up to the newest row
+        (tie rule and back-filled rows: module doc)."""
         tags = list(self.tags)
         stored = (cursors.get(self.cursor_key) or {}).get("time")
         oldest, newest = self._run("find the time span", self._span)
@@ -202,6 +220,10 @@ class SqlSource(ReadingsSource):
             return
         lo = pd.Timestamp(stored) if stored else pd.Timestamp(self.start or oldest)
         lo = lo.tz_convert("UTC") if lo.tzinfo else lo.tz_localize("UTC")
+        if stored and self.overlap:
+            lo -= self.overlap
+            if self.start is not None:
+                lo = max(lo, pd.Timestamp(self.start).tz_convert("UTC"))
         while lo <= newest:
             hi = lo + self.window
             readings, quarantine, notes = self._window(tags, lo.to_pydatetime(), hi.to_pydatetime())
