@@ -41,8 +41,9 @@ the watermark. So each pass starts ``overlap`` (default 2 h) before the stored w
 and reads that span again; the store keeps each (tag, time) once and counts only new
 readings, and the watermark still advances to the newest instant read. The limit, stated
 plainly: **a row whose time is more than ``overlap`` behind the watermark when it is
-inserted is missed** — it lies before where the next pass starts, and the source cannot see that it arrived
-(it would have to compare the whole table with the store), so nothing is logged for it.
+inserted is missed** — it lies before where the next pass starts, and the source cannot
+see that it arrived (it would have to compare the whole table with the store), so nothing
+is logged for it.
 Set ``overlap`` longer than the longest outage the historian buffers (its
 store-and-forward capacity), or re-read a period with ``analyze --from --to`` (the SQL
 source keeps its readings, analysis reads the table). The cost is re-reading the overlap
