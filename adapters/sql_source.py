@@ -18,6 +18,11 @@ environment variable holding the URL) or ``secrets_file`` (a file whose first
 non-comment line is the URL); a plain ``url`` is accepted only without a password. The
 password is masked in every message and log line.
 
+Values: NULL is "no value" — a blank value (long layout, quarantined) or a tag not sampled
+at that instant (wide layout, skipped). NaN and infinity are values that went wrong:
+quarantined once per tag and window with reason ``value is NaN/inf`` and the count, and
+counted (``nonfinite_values``).
+
 Time: columns with a time zone (PostgreSQL ``timestamptz``) are exact. Naive columns hold
 wall time in ``timezone``; a wall time that falls in the repeated hour of a fall-back
 change cannot be placed from the database (row order is not a clock), so it is
@@ -59,6 +64,7 @@ from __future__ import annotations
 
 import functools
 import logging
+import math
 import os
 import time
 import urllib.parse
@@ -86,6 +92,7 @@ from adapters.base import (
 from adapters.source_tools import (
     DEFAULT_QUALITY_MAP,
     TIME_REASONS,
+    nonfinite_groups,
     parse_times,
     quality_good,
     quarantine_frame,
@@ -216,8 +223,8 @@ class SqlSource(ReadingsSource):
         (tie rule and back-filled rows: module doc)."""
         tags = list(self.tags)
         stored = (cursors.get(self.cursor_key) or {}).get("time")
-        oldest, newest = self._run("find the time span", self._span)
-        if newest is None or oldest is None:
+        oldest, newest, last = self._run("find the time span", self._span)
+        if newest is None or oldest is None or last is None:
             return
         lo = pd.Timestamp(stored) if stored else pd.Timestamp(self.start or oldest)
         lo = lo.tz_convert("UTC") if lo.tzinfo else lo.tz_localize("UTC")
@@ -232,7 +239,9 @@ class SqlSource(ReadingsSource):
                 after = self._run("find the next row", functools.partial(self._next, after=hi))
                 lo = max(after, hi) if after is not None else hi
                 continue
-            mark = newest if hi > newest else hi
+            # the newest row's own time, not the padded bound: a local wall-time column
+            # is searched 3 h beyond it, and rows arriving there later must not be skipped
+            mark = last if hi > last else hi
             yield Batch(readings, quarantine, self.cursor_key, {"time": mark.isoformat()}, notes)
             lo = hi
 
@@ -331,7 +340,11 @@ class SqlSource(ReadingsSource):
             return when.replace(tzinfo=None)
         return (when + pad).astimezone(self.zone).replace(tzinfo=None)
 
-    def _span(self, conn: sa.Connection) -> tuple[pd.Timestamp | None, pd.Timestamp | None]:
+    def _span(
+        self, conn: sa.Connection
+    ) -> tuple[pd.Timestamp | None, pd.Timestamp | None, pd.Timestamp | None]:
+        """(oldest, newest) padded for local wall time, and the newest row's own time (a
+        repeated wall time read as daylight time: the earlier instant)."""
         table = self._reflect(conn)
         t = table.c[self.time_column]
         query = sa.select(sa.func.min(t), sa.func.max(t))
@@ -339,9 +352,10 @@ class SqlSource(ReadingsSource):
             query = query.where(table.c[self.tag_column].in_(list(self.tags)))
         low, high = conn.execute(query).one()
         if low is None:
-            return None, None
+            return None, None, None
         pad = timedelta(0) if self._aware(table) or self.zone.key == "UTC" else _LOCAL_PAD
-        return self._utc_bound(low, -pad), self._utc_bound(high, pad)
+        last = self._utc_bound(high, timedelta(0))
+        return self._utc_bound(low, -pad), self._utc_bound(high, pad), last
 
     def _next(self, conn: sa.Connection, after: pd.Timestamp) -> pd.Timestamp | None:
         table = self._reflect(conn)
@@ -408,7 +422,7 @@ class SqlSource(ReadingsSource):
         if self.layout == "long":
             readings = self._long(columns, times, keep, bad, notes)
         else:
-            readings = self._wide(columns, tags, times, keep)
+            readings = self._wide(columns, tags, times, keep, bad, notes)
         notes["quarantined"] += len(bad)
         return readings, quarantine_frame(bad), {k: v for k, v in notes.items() if v}
 
@@ -455,6 +469,12 @@ class SqlSource(ReadingsSource):
     ) -> pd.DataFrame:
         tags = np.asarray(columns[1], dtype=object)
         values = _floats(columns[2])
+        odd = keep & _nonfinite(columns[2], values)
+        if odd.any():
+            notes["nonfinite_values"] += int(odd.sum())
+            for first, reason in nonfinite_groups(odd, tags):
+                bad.append((*self._place(columns, first), reason, repr(_row(columns, first))))
+            keep = keep & ~odd
         blank = keep & ~np.isfinite(values)
         for i in np.flatnonzero(blank):
             row = (columns[0][i], columns[1][i], columns[2][i])
@@ -476,10 +496,17 @@ class SqlSource(ReadingsSource):
         tags: list[str],
         times: pd.DatetimeIndex,
         keep: npt.NDArray[np.bool_],
+        bad: list[tuple[str, int, str, Any]],
+        notes: Counter[str],
     ) -> pd.DataFrame:
         parts_t, parts_v, counts = [], [], []
         for j, tag in enumerate(tags, start=1):
             values = _floats(columns[j])
+            odd = keep & _nonfinite(columns[j], values)
+            if odd.any():  # NULL is "not sampled"; NaN and infinity are values gone wrong
+                notes["nonfinite_values"] += int(odd.sum())
+                for first, reason in nonfinite_groups(odd, tag):
+                    bad.append((*self._place(columns, first), reason, repr(_row(columns, first))))
             ok = keep & np.isfinite(values)
             scale, offset = self._si[tag]
             parts_t.append(times.asi8[ok])
@@ -508,6 +535,32 @@ class SqlSource(ReadingsSource):
         }:
             text = text.replace(secret, "***")
         return text
+
+
+def _nonfinite(raw: tuple[Any, ...], values: npt.NDArray[np.float64]) -> npt.NDArray[np.bool_]:
+    """Cells that hold NaN or infinity (a stored float, or text that spells one), not NULL."""
+    gone = ~np.isfinite(values)
+    if not gone.any():
+        return gone
+    return gone & np.array(
+        [v is not None and _spells_nonfinite(v) for v in raw], dtype=bool
+    )
+
+
+def _spells_nonfinite(value: Any) -> bool:
+    if isinstance(value, float):
+        return not math.isfinite(value)
+    if isinstance(value, str):
+        return value.strip().lower().lstrip("+-") in ("nan", "inf", "infinity")
+    try:
+        return not math.isfinite(float(value))  # Decimal('NaN') and the like
+    except (TypeError, ValueError):
+        return False
+
+
+def _row(columns: list[tuple[Any, ...]], i: int) -> tuple[Any, ...]:
+    """Row *i* of column tuples, for a quarantine row's raw text."""
+    return tuple(col[i] for col in columns)
 
 
 def _floats(values: tuple[Any, ...]) -> npt.NDArray[np.float64]:
