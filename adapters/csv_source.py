@@ -31,10 +31,12 @@ newline); a file whose consumed part changed is read again from the start and co
 ``duplicate_file`` and not read. Files whose modification time is younger than
 ``settle_seconds`` are still being written and are skipped (``files_unsettled``).
 
-A file that cannot be read at all never stops a scan either: a binary file (NUL bytes, a
-header that is not UTF-8 text, UTF-16 text), a line longer than 1 MiB (`MAX_LINE_BYTES`)
-before its end, a file that cannot be opened (permission denied) or vanishes while read,
-or any other error of the parse is *quarantined as a file*: one quarantine row (line 0,
+A line longer than 1 MiB (`MAX_LINE_BYTES`) is no record of an export: it is quarantined
+(reason ``line longer than …``, note ``long_lines``) and reading goes on after it. A
+file that cannot be read at all never stops a scan either: a binary file (NUL bytes, a
+header that is not UTF-8 text, UTF-16 text), a header line over 1 MiB or an over-long
+line that never ends, a file that cannot be opened (permission denied) or vanishes while
+read, or any other error of the parse is *quarantined as a file*: one quarantine row (line 0,
 or the line where it happened) with the reason, a note ``files_quarantined``, and a
 ledger entry (``quarantined``: the reason, with the file's size and modification time)
 so that it is not tried again on every ingest. A file that changes (size or
@@ -122,6 +124,7 @@ _MAX_CHUNK_BYTES = 64 << 20
 _SNIFF_BYTES = 1 << 16
 #: More unknown tags than this in one chunk give one grouped quarantine row.
 GROUP_AT = 10
+_LONG_LINE = f"line longer than {MAX_LINE_BYTES:,} bytes: not a CSV record"
 _SYMLINK_REASON = "symbolic link: not followed (the inbox reads real files only)"
 
 _TIME_NAMES = ("timestamp", "time", "datetime", "date_time", "ts")
@@ -487,8 +490,22 @@ class CsvSource(ReadingsSource):
                 if block and len(data) <= MAX_LINE_BYTES:
                     rest = data  # one line longer than a chunk: read on
                     continue
-                if block:
-                    raise _Unreadable(_too_long(line + 1), line + 1, _preview(data))
+                if block:  # a line longer than any record: skip to its end and read on
+                    skipped = _skip_line(fh, data, digest)
+                    if skipped is None:  # and no line end before the end of the file
+                        raise _Unreadable(_too_long(line + 1), line + 1, _preview(data))
+                    digest, length, rest = skipped
+                    offset, line = offset + length, line + 1
+                    log.warning("%s: line %d: %s", key, line, _LONG_LINE)
+                    notes.update(quarantined=1, long_lines=1)
+                    quarantine = quarantine_frame([(key, line, _LONG_LINE, _preview(data))])
+                    if header_quarantine is not None:
+                        quarantine = pd.concat([header_quarantine, quarantine], ignore_index=True)
+                        header_quarantine = None
+                    cursor = self._cursor(offset, line, digest, st.st_size, st.st_mtime_ns, fold)
+                    yield self._batch(key, cursor, dict(notes), quarantine)
+                    yielded, notes = True, Counter()
+                    continue
                 if data:
                     notes["unterminated_last_line"] += 1
                     log.info("%s: last line has no newline yet; left for the next scan", key)
@@ -634,6 +651,9 @@ class CsvSource(ReadingsSource):
         for i, text_line in enumerate(raw):
             # One reader per line: an unclosed quote must not swallow the good lines after it.
             number = first_line + i
+            if len(text_line) > MAX_LINE_BYTES:
+                bad.append((number, _LONG_LINE, text_line[:RAW_MAX]))
+                continue
             try:
                 fields = next(csv.reader([text_line], delimiter=self.delimiter, strict=False), [])
             except csv.Error as exc:  # e.g. a field longer than the csv module's limit
@@ -656,6 +676,7 @@ class CsvSource(ReadingsSource):
         """Readings, quarantine and notes of one chunk of whole lines."""
         chunk = self._split(data, first_line, layout)
         notes: Counter[str] = Counter(blank_lines=chunk.blank)
+        notes["long_lines"] += sum(reason == _LONG_LINE for _, reason, _ in chunk.bad_rows)
         bad: list[tuple[int, str]] = [(ln, r) for ln, r, _ in chunk.bad_rows]
         known_raw = {ln: raw for ln, _, raw in chunk.bad_rows}
         tcol = chunk.cols[layout.time_col]
@@ -830,6 +851,23 @@ def _preview(data: bytes) -> str:
         return sample.decode("utf-8")
     except UnicodeDecodeError:
         return repr(sample)[2:-1]
+
+
+def _skip_line(fh: io.BufferedReader, data: bytes, digest: Any) -> tuple[Any, int, bytes] | None:
+    """Read past the end of the line *data* starts: (hash updated with the line, the
+    line's length with its newline, the bytes read after it); None if the file ends first
+    (the file's hash is then left as it was)."""
+    probe = digest.copy()
+    probe.update(data)
+    length = len(data)
+    for block in iter(lambda: fh.read(1 << 22), b""):
+        cut = block.find(b"\n")
+        if cut >= 0:
+            probe.update(block[: cut + 1])
+            return probe, length + cut + 1, block[cut + 1 :]
+        probe.update(block)
+        length += len(block)
+    return None
 
 
 def _too_long(line: int) -> str:

@@ -127,6 +127,24 @@ def test_too_long_line_after_good_lines_keeps_them(tmp_path: Path) -> None:
     assert again.batches == 0
 
 
+@pytest.mark.parametrize("chunk_rows", [2, 200_000])  # the line across chunks, or in one
+def test_too_long_line_with_an_end_is_one_bad_line(tmp_path: Path, chunk_rows: int) -> None:
+    huge = "2026-05-01T00:05:00Z," + "1" * (2 * MAX_LINE_BYTES) + "\n"
+    after = "".join(f"2026-05-01T00:{m:02d}:00Z,3,20\n" for m in range(6, 9))
+    write(tmp_path / "a.csv", good_export(range(5)) + huge + after)
+    source = CsvSource(TAGS, path=tmp_path, settle_seconds=0, chunk_rows=chunk_rows)
+    cursors: dict[str, dict[str, Any]] = {}
+    got = ingest_batches(source, cursors)
+    assert len(got.readings) == (5 + 3) * 2  # every good line, before and after it
+    assert got.quarantined[["line", "reason"]].values.tolist() == [
+        [7, f"line longer than {MAX_LINE_BYTES:,} bytes: not a CSV record"]
+    ]
+    assert len(got.quarantined["raw"].iloc[0]) <= 200  # raw text kept short
+    assert got.notes["long_lines"] == 1
+    assert "quarantined" not in cursors["a.csv"]  # the file itself is fine
+    assert ingest_batches(source, cursors).batches == 0
+
+
 def test_field_over_the_csv_module_limit_is_one_bad_line(tmp_path: Path) -> None:
     # Python's csv module refuses fields over csv.field_size_limit(), 131,072 by default
     # (Python documentation, csv module); a wrong field count sends the chunk to it.
