@@ -38,9 +38,10 @@ header that is not UTF-8 text, UTF-16 text), a header line over 1 MiB or an over
 line that never ends, a file that cannot be opened (permission denied) or vanishes while
 read, or any other error of the parse is *quarantined as a file*: one quarantine row (line 0,
 or the line where it happened) with the reason, a note ``files_quarantined``, and a
-ledger entry (``quarantined``: the reason, with the file's size and modification time)
-so that it is not tried again on every ingest. A file that changes (size or
-modification time) is looked at again, from where its readable part ended. Readings of
+ledger entry (``quarantined``: the reason, with the file's size, modification and
+status-change times) so that it is not tried again on every ingest. A file that changes
+(size, content, or mode: a ``chmod`` that makes it readable) is looked at again, from
+where its readable part ended. Readings of
 the file stored before the error stay stored; the other files are read as usual.
 
 Symbolic links are never followed, neither links to files nor links to folders: the
@@ -337,7 +338,7 @@ class CsvSource(ReadingsSource):
         done = dict(last, quarantined=problem.reason, complete_sha256=None)
         try:
             st = file.stat()
-            done.update(size=st.st_size, mtime_ns=st.st_mtime_ns)
+            done.update(size=st.st_size, mtime_ns=st.st_mtime_ns, ctime_ns=st.st_ctime_ns)
         except OSError:
             done.update(size=None, mtime_ns=None)  # gone: it is not listed again
         quarantine = quarantine_frame([(key, problem.line, problem.reason, problem.raw)])
@@ -358,7 +359,9 @@ class CsvSource(ReadingsSource):
             yield self._batch(key, dict(cursor), {"files_unsettled": 1})
             return
         size, mtime_ns = st.st_size, st.st_mtime_ns
-        if cursor.get("size") == size and cursor.get("mtime_ns") == mtime_ns:
+        # ctime too for a quarantined file: a chmod that makes it readable is a change
+        ctime_ok = cursor.get("ctime_ns", st.st_ctime_ns) == st.st_ctime_ns
+        if cursor.get("size") == size and cursor.get("mtime_ns") == mtime_ns and ctime_ok:
             return  # ledger quick check: unchanged since last read
         notes: Counter[str] = Counter()
         with open(file, "rb") as fh:

@@ -197,6 +197,9 @@ def test_permission_denied_and_vanished_files(
     }
     assert stored_minutes(store) == [6, 7, 8] and summary.quarantined == 2
     assert run(site, store).batches == 0  # the denied file is not retried until it changes
+    monkeypatch.undo()
+    (inbox / "a.csv").chmod(0o644)  # the mode is fixed: its status-change time moves
+    assert run(site, store).stored == 3 * 2 and stored_minutes(store) == [0, 1, 2, 6, 7, 8]
 
 
 # --------------------------------------------------------------------------- item 3
