@@ -19,9 +19,10 @@ non-comment line is the URL); a plain ``url`` is accepted only without a passwor
 password is masked in every message and log line.
 
 Values: NULL is "no value" — a blank value (long layout, quarantined) or a tag not sampled
-at that instant (wide layout, skipped). NaN and infinity are values that went wrong:
-quarantined once per tag and window with reason ``value is NaN/inf`` and the count, and
-counted (``nonfinite_values``).
+at that instant (wide layout, skipped). NaN and infinity are values that went wrong: each
+such row is quarantined with reason ``value is NaN/inf`` (wide: ``value is NaN/inf:
+<tag>``) and counted (``nonfinite_values``). One row each, not one per window: the
+overlap re-reads rows, and the store must recognise a quarantined row it already has.
 
 Time: columns with a time zone (PostgreSQL ``timestamptz``) are exact. Naive columns hold
 wall time in ``timezone``; a wall time that falls in the repeated hour of a fall-back
@@ -91,8 +92,8 @@ from adapters.base import (
 )
 from adapters.source_tools import (
     DEFAULT_QUALITY_MAP,
+    NONFINITE_REASON,
     TIME_REASONS,
-    nonfinite_groups,
     parse_times,
     quality_good,
     quarantine_frame,
@@ -472,8 +473,9 @@ class SqlSource(ReadingsSource):
         odd = keep & _nonfinite(columns[2], values)
         if odd.any():
             notes["nonfinite_values"] += int(odd.sum())
-            for first, reason in nonfinite_groups(odd, tags):
-                bad.append((*self._place(columns, first), reason, repr(_row(columns, first))))
+            for i in np.flatnonzero(odd):
+                row = _row(columns, int(i))
+                bad.append((*self._place(columns, int(i)), NONFINITE_REASON, repr(row)))
             keep = keep & ~odd
         blank = keep & ~np.isfinite(values)
         for i in np.flatnonzero(blank):
@@ -505,8 +507,10 @@ class SqlSource(ReadingsSource):
             odd = keep & _nonfinite(columns[j], values)
             if odd.any():  # NULL is "not sampled"; NaN and infinity are values gone wrong
                 notes["nonfinite_values"] += int(odd.sum())
-                for first, reason in nonfinite_groups(odd, tag):
-                    bad.append((*self._place(columns, first), reason, repr(_row(columns, first))))
+                reason = f"{NONFINITE_REASON}: {tag}"
+                for i in np.flatnonzero(odd):
+                    row = _row(columns, int(i))
+                    bad.append((*self._place(columns, int(i)), reason, repr(row)))
             ok = keep & np.isfinite(values)
             scale, offset = self._si[tag]
             parts_t.append(times.asi8[ok])

@@ -61,7 +61,7 @@ def database(request: pytest.FixtureRequest, tmp_path: Path, unique_name: str) -
     engine.dispose()
 
 
-def insert(url: str, table: str, aware: bool, rows: list[tuple[int, str, float]]) -> None:
+def insert(url: str, table: str, aware: bool, rows: list[tuple[int, str, float | None]]) -> None:
     """Rows as (minute after T0, tag, value in plant units)."""
     engine = sa.create_engine(url)
     tbl = sa.Table(table, sa.MetaData(), autoload_with=engine)
@@ -72,7 +72,7 @@ def insert(url: str, table: str, aware: bool, rows: list[tuple[int, str, float]]
     engine.dispose()
 
 
-def minutes(tag: str, span: range) -> list[tuple[int, str, float]]:
+def minutes(tag: str, span: range) -> list[tuple[int, str, float | None]]:
     return [(m, tag, 3.0 + m / 1000 if tag == "PT-100" else 100.0 + m % 7) for m in span]
 
 
@@ -118,10 +118,12 @@ def test_back_filled_rows_inside_the_overlap_are_all_stored_once(
     url, table, aware = database
     monkeypatch.setenv(ENV, url)
     site = make_site(tmp_path, table)  # overlap: the default, 2 h
-    # the link to the flow meter's node dropped at minute 120: its samples are buffered
-    insert(url, table, aware, minutes("PT-100", range(0, 180)) + minutes("FT-110", range(0, 120)))
+    # the link to the flow meter's node dropped at minute 120: its samples are buffered;
+    # one pressure row has no value (NULL: quarantined as a blank value)
+    pressure = [(m, g, None if m == 175 else v) for m, g, v in minutes("PT-100", range(180))]
+    insert(url, table, aware, pressure + minutes("FT-110", range(0, 120)))
     first = run(site, store)
-    assert first.stored == 300
+    assert (first.stored, first.quarantined) == (299, 1)
     mark = store.cursors(f"sql:{table}")[table]["time"]
     assert pd.Timestamp(mark) == instant(179, aware)  # the newest row's own time
 
@@ -133,8 +135,9 @@ def test_back_filled_rows_inside_the_overlap_are_all_stored_once(
     second = run(site, store)
     assert second.stored == 60 + 60  # every back-filled row, every new row: NEW readings
     assert second.duplicates == second.read - second.stored > 0  # the overlap re-read
+    assert second.quarantined == 0  # the blank row was re-read, but it is not new
     have = stored(store)
-    assert len(have) == 180 + 30 + 180 + 30  # all rows of the table, each once
+    assert len(have) == 180 + 30 + 180 + 30 - 1  # all rows of the table, each once
     assert not have.duplicated(["time", "tag"]).any()
     # the cursor still advances to the newest instant read
     mark = store.cursors(f"sql:{table}")[table]["time"]
@@ -201,7 +204,7 @@ def test_nan_and_inf_values_are_quarantined(
         got = ingest_batches(source, {})
     finally:
         source.close()
-    assert got.quarantined["reason"].tolist() == ["value is NaN/inf: 2 cells of PT-100"]
-    assert got.quarantined["line"].tolist() == [20260601000100]  # the first of them
+    assert got.quarantined["reason"].tolist() == ["value is NaN/inf"] * 2
+    assert got.quarantined["line"].tolist() == [20260601000100, 20260601000200]  # their times
     assert got.notes["nonfinite_values"] == 2
     assert sorted(got.readings["value"].tolist()) == pytest.approx([100.0 / 3600, 3e5])
