@@ -120,7 +120,7 @@ log = logging.getLogger(__name__)
 #: as Arrow's default block size, so a line up to this length is still parsed fast.
 MAX_LINE_BYTES = 1 << 20
 #: Upper bound of one read [bytes], whatever ``chunk_rows`` and the line length suggest.
-_MAX_CHUNK_BYTES = 64 << 20
+_MAX_CHUNK_BYTES = 16 << 20
 #: Bytes looked at to tell a text CSV from a binary file.
 _SNIFF_BYTES = 1 << 16
 #: More unknown tags than this in one chunk give one grouped quarantine row.
