@@ -31,12 +31,35 @@ newline); a file whose consumed part changed is read again from the start and co
 ``duplicate_file`` and not read. Files whose modification time is younger than
 ``settle_seconds`` are still being written and are skipped (``files_unsettled``).
 
+A line longer than 1 MiB (`MAX_LINE_BYTES`) is no record of an export: it is quarantined
+(reason ``line longer than …``, note ``long_lines``) and reading goes on after it. A
+file that cannot be read at all never stops a scan either: a binary file (NUL bytes, a
+header that is not UTF-8 text, UTF-16 text), a header line over 1 MiB or an over-long
+line that never ends, a file that cannot be opened (permission denied) or vanishes while
+read, or any other error of the parse is *quarantined as a file*: one quarantine row (line 0,
+or the line where it happened) with the reason, a note ``files_quarantined``, and a
+ledger entry (``quarantined``: the reason, with the file's size, modification and
+status-change times) so that it is not tried again on every ingest. A file that changes
+(size, content, or mode: a ``chmod`` that makes it readable) is looked at again, from
+where its readable part ended. Readings of
+the file stored before the error stay stored; the other files are read as usual.
+
+Symbolic links are never followed, neither links to files nor links to folders: the
+inbox takes the files dropped into it, not what a link points to. A link is noted once
+(``symlinks_skipped``) with a quarantine row naming the link, never its target's
+content. *pattern* must stay inside the folder (no ``..`` part, not absolute).
+
 Bad input never stops a scan: each bad row (or, in the wide layout, each bad cell) goes
 to the batch's quarantine frame with file, line, reason and raw text; blank lines are
 counted (``blank_lines``); duplicate (time, tag) pairs keep the last row
 (``duplicate_rows``); rows of unknown tags in the long layout are counted
 (``unknown_tag_rows``) and quarantined once per tag and chunk with the count in the
-reason. Large files stream in chunks of about ``chunk_rows`` readings, one `Batch` each.
+reason (more than `GROUP_AT` unknown tags in a chunk: one row for all, naming the first
+few). Columns of unknown tags in the wide layout give one quarantine row per file
+("9,999 columns are not configured tags: A1, A2, A3 … (9,996 more)"). Cells that spell
+NaN or infinity are not readings: they are quarantined once per tag and chunk with
+reason ``value is NaN/inf`` and the cell count, and counted (``nonfinite_values``).
+Large files stream in chunks of about ``chunk_rows`` readings, one `Batch` each.
 
 >>> CsvSource([TagSpec("FT-1", "m3/h", "flow")], path=".").name
 'csv'
@@ -51,7 +74,7 @@ import logging
 import time
 from collections import Counter
 from collections.abc import Iterable, Iterator, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
@@ -73,10 +96,15 @@ from adapters.base import (
 )
 from adapters.source_tools import (
     DEFAULT_QUALITY_MAP,
+    NULL_TOKENS,
+    RAW_MAX,
     TIME_REASONS,
     arrow_text,
     encode_text,
+    name_list,
+    nonfinite_groups,
     parse_times,
+    pattern_problem,
     quality_good,
     quarantine_frame,
     readings_frame,
@@ -84,9 +112,21 @@ from adapters.source_tools import (
     to_float,
 )
 
-__all__ = ["CsvSource"]
+__all__ = ["GROUP_AT", "MAX_LINE_BYTES", "CsvSource"]
 
 log = logging.getLogger(__name__)
+
+#: A line longer than this [bytes] is not a CSV record of a historian export; the same
+#: as Arrow's default block size, so a line up to this length is still parsed fast.
+MAX_LINE_BYTES = 1 << 20
+#: Upper bound of one read [bytes], whatever ``chunk_rows`` and the line length suggest.
+_MAX_CHUNK_BYTES = 16 << 20
+#: Bytes looked at to tell a text CSV from a binary file.
+_SNIFF_BYTES = 1 << 16
+#: More unknown tags than this in one chunk give one grouped quarantine row.
+GROUP_AT = 10
+_LONG_LINE = f"line longer than {MAX_LINE_BYTES:,} bytes: not a CSV record"
+_SYMLINK_REASON = "symbolic link: not followed (the inbox reads real files only)"
 
 _TIME_NAMES = ("timestamp", "time", "datetime", "date_time", "ts")
 _TAG_NAMES = ("tag", "tagname", "tag_name", "point", "name")
@@ -122,6 +162,16 @@ class _Chunk:
     cols: dict[int, npt.NDArray[Any]]  # column index → float or text array
     bad_rows: list[tuple[int, str, str]]  # (line, reason, raw) found while splitting
     blank: int
+    #: float columns: cells that held NaN or infinity (the float array has NaN there)
+    nonfinite: dict[int, npt.NDArray[np.bool_]] = field(default_factory=dict)
+
+
+class _Unreadable(Exception):
+    """A file that cannot be read as a CSV export: the reason, where, and a raw sample."""
+
+    def __init__(self, reason: str, line: int = 0, raw: str = "") -> None:
+        super().__init__(reason)
+        self.reason, self.line, self.raw = reason, line, raw
 
 
 class CsvSource(ReadingsSource):
@@ -164,6 +214,9 @@ class CsvSource(ReadingsSource):
             raise ValueError(f"chunk_rows must be at least 1, got {chunk_rows}")
         if settle_seconds < 0:
             raise ValueError(f"settle_seconds must be >= 0, got {settle_seconds}")
+        problem = pattern_problem(pattern)
+        if problem:
+            raise ValueError(f"pattern {problem}")
         try:
             self.zone = ZoneInfo(timezone)
         except (ZoneInfoNotFoundError, ValueError) as exc:
@@ -184,22 +237,31 @@ class CsvSource(ReadingsSource):
         """Problems with the folder and the configured tags (empty when all is well)."""
         if not self.path.is_dir():
             return [f"folder {str(self.path)!r} does not exist or is not a folder"]
-        files = sorted(self.path.glob(self.pattern))
+        listing = self._listing()
+        links = [key for _, key, link in listing if link]
+        files = [file for file, _, link in listing if not link]
+        problems = [f"{key}: {_SYMLINK_REASON}" for key in links]
         if not files:
-            return [f"no files matching {self.pattern!r} in {str(self.path)!r} yet"]
-        newest = max(files, key=lambda p: p.stat().st_mtime)
-        with open(newest, "rb") as fh:
-            head = fh.read(1 << 20)
+            return [*problems, f"no files matching {self.pattern!r} in {str(self.path)!r} yet"]
+        try:
+            newest = max(files, key=lambda p: p.stat().st_mtime)
+            with open(newest, "rb") as fh:
+                head = fh.read(MAX_LINE_BYTES)
+        except OSError as exc:
+            return [*problems, f"cannot read the newest export: {_plain(exc)}"]
+        text_problem = _text_problem(head)
+        if text_problem:
+            return [*problems, f"{newest.name}: {text_problem}"]
         header, _, body = head.partition(b"\n")
         layout = self._layout(header)
         if isinstance(layout, str):
-            return [f"{newest.name}: {layout}"]
+            return [*problems, f"{newest.name}: {layout}"]
         seen = {t for _, t in layout.tag_cols}
         if layout.kind == "long":
             text = body.decode("utf-8", errors="replace").splitlines()
             rows = csv.reader(text, delimiter=self.delimiter)
             seen = {r[layout.tag_col].strip() for r in rows if len(r) > layout.tag_col}
-        return [
+        return problems + [
             f"configured tag {t!r} does not appear in {newest.name}"
             for t in self.tags
             if t not in seen
@@ -211,9 +273,76 @@ class CsvSource(ReadingsSource):
             raise SourceUnavailable(
                 f"CSV folder {str(self.path)!r} does not exist: create it or fix [source] path"
             )
-        for file in sorted(p for p in self.path.glob(self.pattern) if p.is_file()):
-            key = file.relative_to(self.path).as_posix()
-            yield from self._scan(file, key, cursors.get(key) or {}, cursors)
+        for file, key, link in self._listing():
+            cursor = cursors.get(key) or {}
+            if link:
+                if not cursor.get("symlink"):
+                    log.warning("%s: %s", key, _SYMLINK_REASON)
+                    yield self._batch(
+                        key,
+                        {"symlink": True},
+                        {"symlinks_skipped": 1},
+                        quarantine_frame([(key, 0, _SYMLINK_REASON, "")]),
+                    )
+                continue
+            if cursor.get("symlink"):  # a link replaced by a real file: a new file
+                cursor = {}
+            yield from self._guarded(file, key, cursor, cursors)
+
+    def _listing(self) -> list[tuple[Path, str, bool]]:
+        """Files matching the pattern as (path, ledger key, is a link); links not followed.
+
+        A file reached through a linked folder is listed once, as that folder's link.
+        """
+        out: list[tuple[Path, str, bool]] = []
+        seen_links: set[str] = set()
+        for found in sorted(self.path.glob(self.pattern)):
+            parts = found.relative_to(self.path).parts
+            depths = range(1, len(parts) + 1)
+            link = next((i for i in depths if self.path.joinpath(*parts[:i]).is_symlink()), None)
+            if link is not None:
+                key = "/".join(parts[:link])
+                if key not in seen_links:
+                    seen_links.add(key)
+                    out.append((self.path.joinpath(*parts[:link]), key, True))
+            elif found.is_file():
+                out.append((found, "/".join(parts), False))
+        return out
+
+    def _guarded(
+        self,
+        file: Path,
+        key: str,
+        cursor: Mapping[str, Any],
+        cursors: Mapping[str, Mapping[str, Any]],
+    ) -> Iterator[Batch]:
+        """The batches of one file; a file that cannot be read ends as one quarantine row.
+
+        What was yielded before the error stays delivered; the closing batch keeps that
+        cursor and adds the reason and the file's size and time, so the file is not
+        tried again until it changes.
+        """
+        last: dict[str, Any] = dict(cursor)
+        try:
+            for batch in self._scan(file, key, cursor, cursors):
+                last = dict(batch.cursor)
+                yield batch
+            return
+        except _Unreadable as exc:
+            problem = exc
+        except Exception as exc:
+            problem = _Unreadable(_plain(exc))
+            if not isinstance(exc, (OSError, csv.Error, UnicodeError, pa.ArrowException)):
+                log.debug("%s: unexpected error while reading", key, exc_info=True)
+        log.warning("%s: file quarantined: %s", key, problem.reason)
+        done = dict(last, quarantined=problem.reason, complete_sha256=None)
+        try:
+            st = file.stat()
+            done.update(size=st.st_size, mtime_ns=st.st_mtime_ns, ctime_ns=st.st_ctime_ns)
+        except OSError:
+            done.update(size=None, mtime_ns=None)  # gone: it is not listed again
+        quarantine = quarantine_frame([(key, problem.line, problem.reason, problem.raw)])
+        yield self._batch(key, done, {"files_quarantined": 1, "quarantined": 1}, quarantine)
 
     # ----------------------------------------------------------------- one file
     def _scan(
@@ -230,7 +359,9 @@ class CsvSource(ReadingsSource):
             yield self._batch(key, dict(cursor), {"files_unsettled": 1})
             return
         size, mtime_ns = st.st_size, st.st_mtime_ns
-        if cursor.get("size") == size and cursor.get("mtime_ns") == mtime_ns:
+        # ctime too for a quarantined file: a chmod that makes it readable is a change
+        ctime_ok = cursor.get("ctime_ns", st.st_ctime_ns) == st.st_ctime_ns
+        if cursor.get("size") == size and cursor.get("mtime_ns") == mtime_ns and ctime_ok:
             return  # ledger quick check: unchanged since last read
         notes: Counter[str] = Counter()
         with open(file, "rb") as fh:
@@ -243,7 +374,22 @@ class CsvSource(ReadingsSource):
                     yield self._batch(key, done, {"duplicate_file": 1})
                     return
             fh.seek(0)
-            header = fh.readline()
+            if offset == 0:
+                head = fh.read(_SNIFF_BYTES)
+                problem = _text_problem(head)
+                if problem:
+                    raise _Unreadable(problem, 0, _preview(head))
+                fh.seek(0)
+            header = fh.readline(MAX_LINE_BYTES + 1)
+            if len(header) > MAX_LINE_BYTES:
+                raise _Unreadable(_too_long(1), 1, _preview(header))
+            if offset == 0 and _header_not_utf8(header):
+                raise _Unreadable(
+                    "not a text CSV file: its header line is not UTF-8 text "
+                    "(export the file as UTF-8)",
+                    1,
+                    _preview(header),
+                )
             if not header.endswith(b"\n"):
                 note = {"empty_file": 1} if size == 0 else {"unterminated_last_line": 1}
                 cur = self._cursor(0, 0, hashlib.sha256(), size, mtime_ns, {})
@@ -267,14 +413,10 @@ class CsvSource(ReadingsSource):
                 digest.update(header)
                 offset, line = len(header), 1
                 if layout.unknown:
-                    log.info("%s: columns of unknown tags skipped: %s", key, layout.unknown)
+                    reason = _unknown_columns(layout.unknown)
+                    log.info("%s: %s", key, reason)
                     notes["unknown_tag_columns"] += len(layout.unknown)
-                    first = quarantine_frame(
-                        [
-                            (key, 1, f"unknown tag {t!r}: column skipped", header)
-                            for t in layout.unknown
-                        ]
-                    )
+                    first = quarantine_frame([(key, 1, reason, header)])
             yield from self._stream(fh, key, layout, (offset, line), digest, fold, notes, st, first)
 
     def _resume(
@@ -339,7 +481,7 @@ class CsvSource(ReadingsSource):
         fh.seek(offset)
         sample = fh.read(1 << 16)
         line_len = max(8.0, len(sample) / max(1, sample.count(b"\n")))
-        chunk_bytes = max(64, int(self.chunk_rows / per_line * line_len))
+        chunk_bytes = min(_MAX_CHUNK_BYTES, max(64, int(self.chunk_rows / per_line * line_len)))
         fh.seek(offset)
         rest = b""
         yielded = False
@@ -348,8 +490,24 @@ class CsvSource(ReadingsSource):
             data = rest + block
             cut = data.rfind(b"\n")
             if cut < 0:
-                if block:
+                if block and len(data) <= MAX_LINE_BYTES:
                     rest = data  # one line longer than a chunk: read on
+                    continue
+                if block:  # a line longer than any record: skip to its end and read on
+                    skipped = _skip_line(fh, data, digest)
+                    if skipped is None:  # and no line end before the end of the file
+                        raise _Unreadable(_too_long(line + 1), line + 1, _preview(data))
+                    digest, length, rest = skipped
+                    offset, line = offset + length, line + 1
+                    log.warning("%s: line %d: %s", key, line, _LONG_LINE)
+                    notes.update(quarantined=1, long_lines=1)
+                    quarantine = quarantine_frame([(key, line, _LONG_LINE, _preview(data))])
+                    if header_quarantine is not None:
+                        quarantine = pd.concat([header_quarantine, quarantine], ignore_index=True)
+                        header_quarantine = None
+                    cursor = self._cursor(offset, line, digest, st.st_size, st.st_mtime_ns, fold)
+                    yield self._batch(key, cursor, dict(notes), quarantine)
+                    yielded, notes = True, Counter()
                     continue
                 if data:
                     notes["unterminated_last_line"] += 1
@@ -468,6 +626,7 @@ class CsvSource(ReadingsSource):
                         column_types=types if typed else {k: pa.string() for k in types},
                         include_columns=[f"c{i}" for i in wanted],
                         decimal_point=self.decimal,
+                        null_values=list(NULL_TOKENS),
                         strings_can_be_null=False,
                     ),
                 )
@@ -478,7 +637,8 @@ class CsvSource(ReadingsSource):
                 break
             lines = np.arange(first_line, first_line + table.num_rows, dtype=np.int64)
             cols = {i: _column(table.column(f"c{i}")) for i in wanted}
-            return _Chunk(lines, cols, [], 0)
+            odd = {i: _nonfinite(table.column(f"c{i}")) for i in wanted if _is_float(cols[i])}
+            return _Chunk(lines, cols, [], 0, {i: m for i, m in odd.items() if m.any()})
         return self._split_slowly(data, first_line, layout, wanted)
 
     def _split_slowly(
@@ -493,8 +653,15 @@ class CsvSource(ReadingsSource):
         blank = 0
         for i, text_line in enumerate(raw):
             # One reader per line: an unclosed quote must not swallow the good lines after it.
-            fields = next(csv.reader([text_line], delimiter=self.delimiter, strict=False), [])
             number = first_line + i
+            if len(text_line) > MAX_LINE_BYTES:
+                bad.append((number, _LONG_LINE, text_line[:RAW_MAX]))
+                continue
+            try:
+                fields = next(csv.reader([text_line], delimiter=self.delimiter, strict=False), [])
+            except csv.Error as exc:  # e.g. a field longer than the csv module's limit
+                bad.append((number, f"line cannot be split: {exc}", text_line[:RAW_MAX]))
+                continue
             if not fields or all(not f.strip() for f in fields):
                 blank += 1
             elif len(fields) != layout.n_fields:
@@ -512,6 +679,7 @@ class CsvSource(ReadingsSource):
         """Readings, quarantine and notes of one chunk of whole lines."""
         chunk = self._split(data, first_line, layout)
         notes: Counter[str] = Counter(blank_lines=chunk.blank)
+        notes["long_lines"] += sum(reason == _LONG_LINE for _, reason, _ in chunk.bad_rows)
         bad: list[tuple[int, str]] = [(ln, r) for ln, r, _ in chunk.bad_rows]
         known_raw = {ln: raw for ln, _, raw in chunk.bad_rows}
         tcol = chunk.cols[layout.time_col]
@@ -561,10 +729,15 @@ class CsvSource(ReadingsSource):
         columns = []
         for col, tag in layout.tag_cols:
             values = chunk.cols[col]
+            odd = chunk.nonfinite.get(col)
             if not _is_float(values):
-                values, wrong = to_float(values, self.decimal)
+                values, wrong, odd = to_float(values, self.decimal)
                 hit = wrong & keep
                 bad += [(int(ln), f"value of {tag} is not a number") for ln in chunk.lines[hit]]
+            if odd is not None and (odd & keep).any():
+                notes["nonfinite_values"] += int((odd & keep).sum())
+                bad += [(int(chunk.lines[i]), r) for i, r in nonfinite_groups(odd & keep, tag)]
+                values = np.where(odd, np.nan, values)
             columns.append(values)
         # One (tags x rows) matrix: scaling, masking and melting in a few array operations.
         matrix = np.vstack(columns)
@@ -589,10 +762,18 @@ class CsvSource(ReadingsSource):
         ids, uniques = tags
         values = chunk.cols[layout.value_col]
         wrong = np.zeros(len(values), dtype=bool)
+        odd = chunk.nonfinite.get(layout.value_col, wrong)
         if not _is_float(values):
-            values, wrong = to_float(values, self.decimal)
+            values, wrong, odd = to_float(values, self.decimal)
+        blank_tag = keep & (uniques[ids] == "")
+        bad += [(int(ln), "blank tag") for ln in chunk.lines[blank_tag]]
+        keep &= ~blank_tag
+        odd = keep & odd
+        if odd.any():
+            notes["nonfinite_values"] += int(odd.sum())
+            bad += [(int(chunk.lines[i]), r) for i, r in nonfinite_groups(odd, uniques[ids])]
+            keep &= ~odd
         for mask, reason in (
-            (keep & (uniques[ids] == ""), "blank tag"),
             (keep & wrong, "value is not a number"),
             (keep & ~wrong & ~np.isfinite(values), "blank value"),
         ):
@@ -600,6 +781,7 @@ class CsvSource(ReadingsSource):
             keep &= ~mask
         scale = np.full(len(uniques), np.nan)
         offset = np.zeros(len(uniques))
+        unknown: list[tuple[int, str, int]] = []  # (first line, tag, rows)
         for i, name in enumerate(uniques):
             if name in self._si:
                 scale[i], offset[i] = self._si[name]
@@ -607,10 +789,18 @@ class CsvSource(ReadingsSource):
                 rows = keep & (ids == i)
                 count = int(rows.sum())
                 if count:
-                    notes["unknown_tag_rows"] += count
-                    first = int(chunk.lines[np.argmax(rows)])
-                    bad.append((first, f"unknown tag {name!r} ({count} rows in this chunk)"))
+                    unknown.append((int(chunk.lines[np.argmax(rows)]), str(name), count))
                     keep &= ~rows
+        if unknown:
+            total = sum(n for _, _, n in unknown)
+            notes["unknown_tag_rows"] += total
+            if len(unknown) <= GROUP_AT:
+                bad += [(ln, f"unknown tag {t!r} ({n} rows in this chunk)") for ln, t, n in unknown]
+            else:
+                unknown.sort()
+                names = name_list([t for _, t, _ in unknown])
+                reason = f"{len(unknown):,} tags are not configured tags ({total:,} rows): {names}"
+                bad.append((unknown[0][0], reason))
         good = np.ones(len(values), dtype=bool)
         if layout.quality_col >= 0:
             good, unmapped = quality_good(chunk.cols[layout.quality_col], self.quality_map)
@@ -632,6 +822,86 @@ class CsvSource(ReadingsSource):
                 raw = lines[number - first_line].decode("utf-8", errors="replace").rstrip("\r")
             rows.append((key, number, reason, raw))
         return quarantine_frame(rows)
+
+
+def _nonfinite(arr: pa.ChunkedArray) -> npt.NDArray[np.bool_]:
+    """Cells of a float column that hold NaN or infinity (not the empty ones)."""
+    odd = pc.and_(pc.is_valid(arr), pc.invert(pc.is_finite(arr)))
+    return np.asarray(odd.to_numpy(zero_copy_only=False), dtype=bool)
+
+
+def _text_problem(head: bytes) -> str | None:
+    """Why the first bytes of a file are not a text CSV export, or None."""
+    if head.startswith((b"\xff\xfe", b"\xfe\xff")):
+        return "not a text CSV file: it is UTF-16 text (export the file as UTF-8)"
+    if b"\x00" in head:
+        return f"not a text CSV file: NUL byte at byte {head.index(0):,} (a binary file?)"
+    return None
+
+
+def _header_not_utf8(header: bytes) -> bool:
+    try:
+        header.decode("utf-8")
+    except UnicodeDecodeError:
+        return True
+    return False
+
+
+def _preview(data: bytes) -> str:
+    """The first bytes of *data* as printable text for the quarantine (escaped)."""
+    sample = data[:80]
+    try:
+        return sample.decode("utf-8")
+    except UnicodeDecodeError:
+        return repr(sample)[2:-1]
+
+
+def _skip_line(fh: io.BufferedReader, data: bytes, digest: Any) -> tuple[Any, int, bytes] | None:
+    """Read past the end of the line *data* starts: (hash updated with the line, the
+    line's length with its newline, the bytes read after it); None if the file ends first
+    (the file's hash is then left as it was)."""
+    probe = digest.copy()
+    probe.update(data)
+    length = len(data)
+    for block in iter(lambda: fh.read(1 << 22), b""):
+        cut = block.find(b"\n")
+        if cut >= 0:
+            probe.update(block[: cut + 1])
+            return probe, length + cut + 1, block[cut + 1 :]
+        probe.update(block)
+        length += len(block)
+    return None
+
+
+def _too_long(line: int) -> str:
+    return (
+        f"line {line:,} is longer than {MAX_LINE_BYTES:,} bytes: not a CSV export "
+        "with one record per line"
+    )
+
+
+def _unknown_columns(names: Sequence[str]) -> str:
+    """One quarantine reason for all the columns of unknown tags of a file."""
+    if len(names) == 1:
+        return f"1 column is not a configured tag: {name_list(names)}"
+    return f"{len(names):,} columns are not configured tags: {name_list(names)}"
+
+
+def _plain(exc: BaseException) -> str:
+    """A file error as a plain reason (the quarantine keeps 200 characters)."""
+    if isinstance(exc, FileNotFoundError):
+        return "file vanished while it was being read"
+    if isinstance(exc, PermissionError):
+        return "file cannot be opened: permission denied (check the export job's file mode)"
+    if isinstance(exc, IsADirectoryError):
+        return "not a file but a folder"
+    if isinstance(exc, OSError):
+        return f"file cannot be read: {exc.strerror or exc}"
+    if isinstance(exc, csv.Error):
+        return f"file cannot be split as CSV: {exc}"
+    if isinstance(exc, UnicodeError):
+        return "not a text CSV file: bytes that are not UTF-8 text (export the file as UTF-8)"
+    return f"file cannot be read: {type(exc).__name__}: {exc}"[:200]
 
 
 def _column(arr: pa.ChunkedArray) -> Any:

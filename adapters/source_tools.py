@@ -28,10 +28,15 @@ from adapters.units import UnitError, converter
 
 __all__ = [
     "DEFAULT_QUALITY_MAP",
+    "NONFINITE_REASON",
+    "NULL_TOKENS",
     "TIME_REASONS",
     "arrow_text",
     "encode_text",
+    "name_list",
+    "nonfinite_groups",
     "parse_times",
+    "pattern_problem",
     "quality_good",
     "quarantine_frame",
     "readings_frame",
@@ -43,7 +48,17 @@ __all__ = [
 #: Quality codes read as good when no map is configured (compared case-insensitively).
 DEFAULT_QUALITY_MAP: Mapping[str, bool] = {"": True, "good": True, "192": True, "g": True}
 RAW_MAX = 200  # characters of a bad line kept in quarantine
-_NA_TOKENS = frozenset({"", "nan", "na", "n/a", "null", "none", "#n/a", "-nan"})
+# Cells that mean "no value here" (not sampled). NaN and infinity are not among them: a
+# historian that writes them has a value it could not compute, which the engineer sees as
+# quarantine reason ``value is NaN/inf``.
+_NA_TOKENS = frozenset({"", "na", "n/a", "null", "none", "#n/a"})
+#: The same tokens in the spellings Arrow's CSV reader is given (it compares exactly; any
+#: other spelling falls back to the case-insensitive text path).
+NULL_TOKENS: tuple[str, ...] = (
+    "", "NA", "na", "N/A", "n/a", "NULL", "null", "Null", "None", "none", "#N/A", "#n/a",
+)
+_NONFINITE_RE = r"(?i)^[+-]?(?:nan|inf|infinity)$"
+NONFINITE_REASON = "value is NaN/inf"
 _OFFSET_RE = r"\d:\d{2}(?::\d{2}(?:[.,]\d+)?)?\s*(?:[Zz]|[+-]\d{2}(?::?\d{2})?)$"
 _FOLD_RESET = pd.Timedelta(hours=3)  # farther apart than this: a different repeated hour
 
@@ -88,16 +103,81 @@ def quality_good(
     return table[ids], int(np.count_nonzero(~mapped[ids]))
 
 
-def to_float(strings: Any, decimal: str) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.bool_]]:
-    """Parse text cells to floats: (values with NaN for missing, mask of bad cells)."""
+def to_float(
+    strings: Any, decimal: str
+) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.bool_], npt.NDArray[np.bool_]]:
+    """Parse text cells to floats.
+
+    Returns (values with NaN where there is no usable number, mask of cells that are not
+    numbers, mask of cells that spell NaN or infinity).
+
+    >>> v, bad, odd = to_float(["1,5", "", "x", "-inf", "NaN"], ",")
+    >>> v.tolist()[:1], bad.tolist(), odd.tolist()
+    ([1.5], [False, False, True, False, False], [False, False, False, True, True])
+    """
     s = pd.Series(text_cells(strings), dtype=object)
     missing = s.str.lower().isin(_NA_TOKENS).to_numpy()
+    nonfinite = s.str.match(_NONFINITE_RE).to_numpy(dtype=bool)
     if decimal != ".":
         s = s.str.replace(decimal, ".", regex=False)
     num = pd.to_numeric(s, errors="coerce").to_numpy(dtype=float, copy=True)
-    bad = ~missing & ~np.isfinite(num)
-    num[missing | bad] = np.nan
-    return num, bad
+    bad = ~missing & ~nonfinite & ~np.isfinite(num)
+    num[missing | bad | nonfinite] = np.nan
+    return num, bad, nonfinite
+
+
+def pattern_problem(pattern: str) -> str | None:
+    """Why a file name *pattern* could reach outside its folder, or None when it cannot.
+
+    >>> pattern_problem("exports/*.csv") is None, pattern_problem("../*.csv")
+    (True, "must stay inside the folder: remove the '..' part of '../*.csv'")
+    """
+    if not pattern.strip():
+        return "must not be empty: give a file name pattern such as '*.csv'"
+    if pattern.startswith(("/", "\\", "~")) or (len(pattern) > 1 and pattern[1] == ":"):
+        return f"must be relative to the folder, got the absolute pattern {pattern!r}"
+    if ".." in pattern.replace("\\", "/").split("/"):
+        return f"must stay inside the folder: remove the '..' part of {pattern!r}"
+    return None
+
+
+def nonfinite_groups(
+    mask: npt.NDArray[np.bool_], tags: npt.NDArray[Any] | str
+) -> list[tuple[int, str]]:
+    """NaN/inf cells grouped per tag: (index of the first cell, reason with the count).
+
+    One quarantine row per tag and chunk (a file of NaN would otherwise give one row per
+    cell). *tags* is one tag per cell, or one tag for all.
+
+    >>> nonfinite_groups(np.array([False, True, True]), "FT-1")
+    [(1, 'value is NaN/inf: 2 cells of FT-1')]
+    """
+    hits = np.flatnonzero(mask)
+    if not hits.size:
+        return []
+    if isinstance(tags, str):
+        groups = {tags: hits}
+    else:
+        names = np.asarray(tags, dtype=object)[hits]
+        groups = {str(t): hits[names == t] for t in dict.fromkeys(names.tolist())}
+    out = []
+    for tag, where in groups.items():
+        cells = "1 cell" if where.size == 1 else f"{where.size:,} cells"
+        out.append((int(where[0]), f"{NONFINITE_REASON}: {cells} of {tag}"))
+    return out
+
+
+def name_list(names: Sequence[str], *, shown: int = 3, width: int = 40) -> str:
+    """The first few *names* and how many more: 'A1, A2, A3 … (9,996 more)'.
+
+    Keeps a grouped quarantine reason short whatever the number of names.
+
+    >>> name_list([f"A{i}" for i in range(1, 10_000)])
+    'A1, A2, A3 … (9,996 more)'
+    """
+    head = ", ".join(n if len(n) <= width else n[: width - 1] + "…" for n in names[:shown])
+    rest = len(names) - shown
+    return f"{head} … ({rest:,} more)" if rest > 0 else head
 
 
 TIME_OK, TIME_BLANK, TIME_UNPARSED, TIME_NONEXISTENT = 0, 1, 2, 3
@@ -259,10 +339,12 @@ def quarantine_frame(rows: list[tuple[str, int, str, Any]]) -> pd.DataFrame:
     if not rows:
         return empty_quarantine()
     origin, line, reason, raw = zip(*rows, strict=True)
+    # NUL cannot be stored in a PostgreSQL text column: shown escaped, like other bytes
+    # of a binary file would be.
     texts = [
-        (r.decode("utf-8", errors="replace") if isinstance(r, bytes) else str(r)).rstrip("\r\n")[
-            :RAW_MAX
-        ]
+        (r.decode("utf-8", errors="replace") if isinstance(r, bytes) else str(r))
+        .rstrip("\r\n")[:RAW_MAX]
+        .replace("\x00", "\\x00")
         for r in raw
     ]
     return pd.DataFrame(

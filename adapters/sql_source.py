@@ -18,6 +18,12 @@ environment variable holding the URL) or ``secrets_file`` (a file whose first
 non-comment line is the URL); a plain ``url`` is accepted only without a password. The
 password is masked in every message and log line.
 
+Values: NULL is "no value" — a blank value (long layout, quarantined) or a tag not sampled
+at that instant (wide layout, skipped). NaN and infinity are values that went wrong: each
+such row is quarantined with reason ``value is NaN/inf`` (wide: ``value is NaN/inf:
+<tag>``) and counted (``nonfinite_values``). One row each, not one per window: the
+overlap re-reads rows, and the store must recognise a quarantined row it already has.
+
 Time: columns with a time zone (PostgreSQL ``timestamptz``) are exact. Naive columns hold
 wall time in ``timezone``; a wall time that falls in the repeated hour of a fall-back
 change cannot be placed from the database (row order is not a clock), so it is
@@ -35,6 +41,20 @@ re-reads that one instant (inclusive). Rows of that instant that arrived late ar
 picked up (no gap), and the ones already stored are dropped by the store's idempotent
 upsert on (tag, time) (no double in the store).
 
+Back-filled rows (``overlap``): a historian that buffers during a network outage
+(store-and-forward) inserts the buffered rows late, with their own, older times — behind
+the watermark. So each pass starts ``overlap`` (default 2 h) before the stored watermark
+and reads that span again; the store keeps each (tag, time) once and counts only new
+readings, and the watermark still advances to the newest instant read. The limit, stated
+plainly: **a row whose time is more than ``overlap`` behind the watermark when it is
+inserted is missed** — it lies before where the next pass starts, and the source cannot
+see that it arrived (it would have to compare the whole table with the store), so nothing
+is logged for it.
+Set ``overlap`` longer than the longest outage the historian buffers (its
+store-and-forward capacity), or re-read a period with ``analyze --from --to`` (the SQL
+source keeps its readings, analysis reads the table). The cost is re-reading the overlap
+on every pass (``overlap = "0 s"`` turns it off).
+
 When the database goes away, each query is retried with exponential backoff
 (``max_tries``, ``backoff_seconds``, doubling); after the last try `SourceUnavailable`
 names the host (never the password) and what to check. The watermark only moves with a
@@ -45,6 +65,7 @@ from __future__ import annotations
 
 import functools
 import logging
+import math
 import os
 import time
 import urllib.parse
@@ -71,6 +92,7 @@ from adapters.base import (
 )
 from adapters.source_tools import (
     DEFAULT_QUALITY_MAP,
+    NONFINITE_REASON,
     TIME_REASONS,
     parse_times,
     quality_good,
@@ -99,9 +121,10 @@ _AMBIGUOUS = "ambiguous local time"
 class SqlSource(ReadingsSource):
     """A long or wide historian table; see the module docstring for the rules.
 
-    *window* [s, as timedelta] is the span of one incremental batch; *start* the first
-    instant to read when no watermark is stored (default: the oldest row); *timezone* the
-    zone of naive time columns.
+    *window* [s, as timedelta] is the span of one incremental batch; *overlap* [s, as
+    timedelta] how far before the stored watermark each pass starts (back-filled rows);
+    *start* the first instant to read when no watermark is stored (default: the oldest
+    row); *timezone* the zone of naive time columns.
     """
 
     alias = "sql"
@@ -124,6 +147,7 @@ class SqlSource(ReadingsSource):
         timezone: str = "UTC",
         quality_map: Mapping[str, bool] | None = None,
         window: timedelta = timedelta(days=1),
+        overlap: timedelta = timedelta(hours=2),
         start: datetime | None = None,
         max_tries: int = 5,
         backoff_seconds: float = 1.0,
@@ -136,6 +160,8 @@ class SqlSource(ReadingsSource):
             raise ValueError("table must name the readings table")
         if window <= timedelta(0):
             raise ValueError(f"window must be positive, got {window}")
+        if overlap < timedelta(0):
+            raise ValueError(f"overlap must be zero or positive, got {overlap}")
         if max_tries < 1:
             raise ValueError(f"max_tries must be at least 1, got {max_tries}")
         if start is not None and start.tzinfo is None:
@@ -148,7 +174,7 @@ class SqlSource(ReadingsSource):
         self.time_column, self.tag_column = time_column, tag_column
         self.value_column, self.quality_column = value_column, quality_column
         self.quality_map: Mapping[str, bool] = dict(quality_map or DEFAULT_QUALITY_MAP)
-        self.window, self.start = window, start
+        self.window, self.overlap, self.start = window, overlap, start
         self.max_tries, self.backoff_seconds = int(max_tries), float(backoff_seconds)
         self._si = {tag: si_scale_offset(spec) for tag, spec in self.tags.items()}
         self._url = _resolve_url(url, url_env, secrets_file)
@@ -194,14 +220,19 @@ class SqlSource(ReadingsSource):
         return readings
 
     def batches(self, cursors: Mapping[str, Mapping[str, Any]]) -> Iterator[Batch]:
-        """Windows from the stored watermark up to the newest row (tie rule: module doc)."""
+        """Windows from ``overlap`` before the stored watermark up to the newest row
+        (tie rule and back-filled rows: module doc)."""
         tags = list(self.tags)
         stored = (cursors.get(self.cursor_key) or {}).get("time")
-        oldest, newest = self._run("find the time span", self._span)
-        if newest is None or oldest is None:
+        oldest, newest, last = self._run("find the time span", self._span)
+        if newest is None or oldest is None or last is None:
             return
         lo = pd.Timestamp(stored) if stored else pd.Timestamp(self.start or oldest)
         lo = lo.tz_convert("UTC") if lo.tzinfo else lo.tz_localize("UTC")
+        if stored and self.overlap:
+            lo -= self.overlap
+            if self.start is not None:
+                lo = max(lo, pd.Timestamp(self.start).tz_convert("UTC"))
         while lo <= newest:
             hi = lo + self.window
             readings, quarantine, notes = self._window(tags, lo.to_pydatetime(), hi.to_pydatetime())
@@ -209,7 +240,9 @@ class SqlSource(ReadingsSource):
                 after = self._run("find the next row", functools.partial(self._next, after=hi))
                 lo = max(after, hi) if after is not None else hi
                 continue
-            mark = newest if hi > newest else hi
+            # the newest row's own time, not the padded bound: a local wall-time column
+            # is searched 3 h beyond it, and rows arriving there later must not be skipped
+            mark = last if hi > last else hi
             yield Batch(readings, quarantine, self.cursor_key, {"time": mark.isoformat()}, notes)
             lo = hi
 
@@ -308,7 +341,11 @@ class SqlSource(ReadingsSource):
             return when.replace(tzinfo=None)
         return (when + pad).astimezone(self.zone).replace(tzinfo=None)
 
-    def _span(self, conn: sa.Connection) -> tuple[pd.Timestamp | None, pd.Timestamp | None]:
+    def _span(
+        self, conn: sa.Connection
+    ) -> tuple[pd.Timestamp | None, pd.Timestamp | None, pd.Timestamp | None]:
+        """(oldest, newest) padded for local wall time, and the newest row's own time (a
+        repeated wall time read as daylight time: the earlier instant)."""
         table = self._reflect(conn)
         t = table.c[self.time_column]
         query = sa.select(sa.func.min(t), sa.func.max(t))
@@ -316,9 +353,10 @@ class SqlSource(ReadingsSource):
             query = query.where(table.c[self.tag_column].in_(list(self.tags)))
         low, high = conn.execute(query).one()
         if low is None:
-            return None, None
+            return None, None, None
         pad = timedelta(0) if self._aware(table) or self.zone.key == "UTC" else _LOCAL_PAD
-        return self._utc_bound(low, -pad), self._utc_bound(high, pad)
+        last = self._utc_bound(high, timedelta(0))
+        return self._utc_bound(low, -pad), self._utc_bound(high, pad), last
 
     def _next(self, conn: sa.Connection, after: pd.Timestamp) -> pd.Timestamp | None:
         table = self._reflect(conn)
@@ -385,7 +423,7 @@ class SqlSource(ReadingsSource):
         if self.layout == "long":
             readings = self._long(columns, times, keep, bad, notes)
         else:
-            readings = self._wide(columns, tags, times, keep)
+            readings = self._wide(columns, tags, times, keep, bad, notes)
         notes["quarantined"] += len(bad)
         return readings, quarantine_frame(bad), {k: v for k, v in notes.items() if v}
 
@@ -432,6 +470,13 @@ class SqlSource(ReadingsSource):
     ) -> pd.DataFrame:
         tags = np.asarray(columns[1], dtype=object)
         values = _floats(columns[2])
+        odd = keep & _nonfinite(columns[2], values)
+        if odd.any():
+            notes["nonfinite_values"] += int(odd.sum())
+            for i in np.flatnonzero(odd):
+                row = _row(columns, int(i))
+                bad.append((*self._place(columns, int(i)), NONFINITE_REASON, repr(row)))
+            keep = keep & ~odd
         blank = keep & ~np.isfinite(values)
         for i in np.flatnonzero(blank):
             row = (columns[0][i], columns[1][i], columns[2][i])
@@ -453,10 +498,19 @@ class SqlSource(ReadingsSource):
         tags: list[str],
         times: pd.DatetimeIndex,
         keep: npt.NDArray[np.bool_],
+        bad: list[tuple[str, int, str, Any]],
+        notes: Counter[str],
     ) -> pd.DataFrame:
         parts_t, parts_v, counts = [], [], []
         for j, tag in enumerate(tags, start=1):
             values = _floats(columns[j])
+            odd = keep & _nonfinite(columns[j], values)
+            if odd.any():  # NULL is "not sampled"; NaN and infinity are values gone wrong
+                notes["nonfinite_values"] += int(odd.sum())
+                reason = f"{NONFINITE_REASON}: {tag}"
+                for i in np.flatnonzero(odd):
+                    row = _row(columns, int(i))
+                    bad.append((*self._place(columns, int(i)), reason, repr(row)))
             ok = keep & np.isfinite(values)
             scale, offset = self._si[tag]
             parts_t.append(times.asi8[ok])
@@ -485,6 +539,32 @@ class SqlSource(ReadingsSource):
         }:
             text = text.replace(secret, "***")
         return text
+
+
+def _nonfinite(raw: tuple[Any, ...], values: npt.NDArray[np.float64]) -> npt.NDArray[np.bool_]:
+    """Cells that hold NaN or infinity (a stored float, or text that spells one), not NULL."""
+    gone = ~np.isfinite(values)
+    if not gone.any():
+        return gone
+    return gone & np.array(
+        [v is not None and _spells_nonfinite(v) for v in raw], dtype=bool
+    )
+
+
+def _spells_nonfinite(value: Any) -> bool:
+    if isinstance(value, float):
+        return not math.isfinite(value)
+    if isinstance(value, str):
+        return value.strip().lower().lstrip("+-") in ("nan", "inf", "infinity")
+    try:
+        return not math.isfinite(float(value))  # Decimal('NaN') and the like
+    except (TypeError, ValueError):
+        return False
+
+
+def _row(columns: list[tuple[Any, ...]], i: int) -> tuple[Any, ...]:
+    """Row *i* of column tuples, for a quarantine row's raw text."""
+    return tuple(col[i] for col in columns)
 
 
 def _floats(values: tuple[Any, ...]) -> npt.NDArray[np.float64]:

@@ -36,6 +36,7 @@ from pydantic import (
 )
 
 from adapters.base import TagSpec
+from adapters.source_tools import pattern_problem
 from adapters.units import UnitError, converter, parse_quantity
 from model.branch import Branch, HeldHeader, OpenDischarge, ReturnHeader, Tank
 from model.elements import ControlValve, Elevation, Equipment, Fittings, Pipe
@@ -125,10 +126,28 @@ class SourceSection(_Strict):
     tag_column: str = "tag"
     value_column: str = "value"
     quality_column: str | None = None
+    #: each incremental read starts this long before the watermark, so rows a historian
+    #: back-fills late (store-and-forward) are picked up; the store drops the doubles
+    overlap: Duration = 7200.0
     # both
     good_quality: list[str] = Field(default_factory=lambda: ["", "good", "GOOD", "192", "G"])
 
     model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+    @field_validator("pattern")
+    @classmethod
+    def _inside_folder(cls, value: str) -> str:
+        problem = pattern_problem(value)
+        if problem:
+            raise ValueError(problem)
+        return value
+
+    @field_validator("overlap")
+    @classmethod
+    def _not_negative(cls, value: float) -> float:
+        if value < 0:
+            raise ValueError(f"must be zero or a positive duration such as \"2 h\", got {value} s")
+        return value
 
     @model_validator(mode="after")
     def _kind_needs(self) -> SourceSection:

@@ -113,7 +113,7 @@ def open_source(site: Site) -> ReadingsSource:
         time_column=sec.time_column,
         tag_column=sec.tag_column, value_column=sec.value_column,
         quality_column=sec.quality_column, timezone=site.timezone, quality_map=quality,
-        name=f"sql:{sec.table}",
+        overlap=timedelta(seconds=sec.overlap), name=f"sql:{sec.table}",
     )
 
 
@@ -123,7 +123,14 @@ def open_source(site: Site) -> ReadingsSource:
 
 @dataclass(frozen=True)
 class IngestSummary:
-    """What one ingest pass did."""
+    """What one ingest pass did.
+
+    ``stored`` counts readings new to the store and ``duplicates`` those it already had
+    (a SQL source re-reads its overlap on every pass); ``quarantined`` and
+    ``quarantine_reasons`` count quarantine rows new to the store in this pass, by the
+    reason without its detail, at most `SUMMARY_REASONS` of them (the rest summed under
+    "other reasons"), so that the summary stays one short line per reason.
+    """
 
     read: int
     stored: int
@@ -147,32 +154,39 @@ class IngestSummary:
         }
 
 
+#: Reasons listed one by one in an ingest summary; the rest are summed.
+SUMMARY_REASONS = 10
+
+
 def ingest(site: Site, store: ResultsStore, source: ReadingsSource) -> IngestSummary:
     """One pass: every batch the source has not delivered yet goes into the store.
 
     Each batch (readings, quarantine, cursor) is stored in one transaction, so a kill at
     any point loses nothing that was stored and the next pass resumes at the last stored
-    cursor. Readings already stored are not doubled (upsert on tag and time).
+    cursor. Readings already stored are not doubled (upsert on tag and time), nor are
+    quarantine rows; the summary counts what is new (see `IngestSummary`).
     """
-    read = stored = quarantined = n = 0
-    reasons: Counter[str] = Counter()
+    read = stored = n = 0
     notes: Counter[str] = Counter()
+    started = datetime.now(UTC)
     for batch in source.batches(store.cursors(source.name)):
         n += 1
         new = store.store_batch(batch, source=source.name)
         read += len(batch.readings)
         stored += new
-        quarantined += len(batch.quarantined)
-        if len(batch.quarantined):
-            reasons.update(batch.quarantined["reason"].astype(str).map(_reason_kind))
         notes.update(batch.notes)
         log.debug("batch %s: %d readings, %d new", batch.cursor_key, len(batch.readings), new)
+    reasons: Counter[str] = Counter()
+    if n:
+        for reason, count in store.quarantine_counts(source.name, since=started).items():
+            reasons[_reason_kind(reason)] += count
+    quarantined = sum(reasons.values())
     summary = IngestSummary(
         read=read,
         stored=stored,
         duplicates=read - stored,
         quarantined=quarantined,
-        quarantine_reasons=dict(reasons),
+        quarantine_reasons=_top_reasons(reasons),
         notes={k: v for k, v in notes.items() if k != "quarantined"},
         batches=n,
         cursors=store.cursors(source.name),
@@ -187,6 +201,20 @@ def ingest(site: Site, store: ResultsStore, source: ReadingsSource) -> IngestSum
 def _reason_kind(reason: str) -> str:
     """The reason without its detail: 'not a number: "abc"' → 'not a number'."""
     return reason.split(":", 1)[0].strip()
+
+
+def _top_reasons(reasons: Counter[str]) -> dict[str, int]:
+    """The `SUMMARY_REASONS` most frequent reasons, the rest summed as 'other reasons'.
+
+    >>> _top_reasons(Counter({f"r{i}": i for i in range(1, 13)}))["other reasons (2 kinds)"]
+    3
+    """
+    top = reasons.most_common(SUMMARY_REASONS)
+    out = dict(top)
+    rest = len(reasons) - len(top)
+    if rest:
+        out[f"other reasons ({rest} kinds)"] = sum(reasons.values()) - sum(out.values())
+    return out
 
 
 # ---------------------------------------------------------------------------------------

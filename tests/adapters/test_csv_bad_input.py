@@ -119,7 +119,7 @@ def test_unknown_tags(tmp_path: Path) -> None:
     assert len(got.readings) == 2
     by_file = dict(zip(got.quarantined["origin"], got.quarantined["reason"], strict=True))
     assert by_file == {
-        "w.csv": "unknown tag 'XX-1': column skipped",
+        "w.csv": "1 column is not a configured tag: XX-1",
         "l.csv": "unknown tag 'XX-1' (2 rows in this chunk)",
     }
     assert got.notes["unknown_tag_rows"] == 2 and got.notes["unknown_tag_columns"] == 1
