@@ -395,6 +395,11 @@ _NOTE_HELP = {
     "duplicate_file": "the same content as a file already read: skipped",
     "out_of_order_rows": "rows earlier than the row before them: stored by their time",
     "duplicate_rows": "the same time and tag twice in one export: the last row kept",
+    "files_quarantined": "files that could not be read at all (binary, unreadable, a line "
+                         "too long): quarantined with the reason, read again once they change",
+    "symlinks_skipped": "symbolic links in the inbox: never followed; copy the export in",
+    "nonfinite_values": "NaN or infinite values: quarantined, not stored",
+    "long_lines": "lines over the length limit: quarantined, the rest of the file read",
 }
 
 
