@@ -543,7 +543,7 @@ def _resolve_url(url: str | None, url_env: str | None, secrets_file: str | Path 
             f"give exactly one of url, url_env, secrets_file (got {', '.join(given) or 'none'})"
         )
     text = url if url else read_url(url_env=url_env, secrets_file=secrets_file)
-    parsed = parse_url(text, given[0])
+    parsed = parse_url(text, f"secrets_file: {secrets_file}" if secrets_file else given[0])
     if url and url_secrets(parsed):
         raise ValueError(
             "url: a password in the config is not allowed; put the URL in an environment "

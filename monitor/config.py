@@ -588,6 +588,7 @@ def _store_url(sec: StoreSection, base: Path, *, allow_outside: bool) -> str:
     """The store URL: from the file, or read from ``url_env`` / ``secrets_file``;
     checked for a known database kind, no password in the site file, and (SQLite) a
     file inside the site folder unless *allow_outside*."""
+    secrets: Path | None = None
     if sec.url_env or sec.secrets_file:
         key = "store.url_env" if sec.url_env else "store.secrets_file"
         secrets = base / sec.secrets_file if sec.secrets_file else None
@@ -597,7 +598,7 @@ def _store_url(sec: StoreSection, base: Path, *, allow_outside: bool) -> str:
             raise ValueError(f"store.{exc}") from None
     else:
         key, text = "store.url", sec.url
-    url = parse_url(text, key)
+    url = parse_url(text, f"{key}: {secrets}" if secrets else key)
     if key == "store.url" and url_secrets(url):
         raise ValueError(
             "store.url: a password in the site file is not allowed; put the URL in an "
