@@ -13,8 +13,10 @@ through it. It replaces
 * the value of a ``password``, ``passwd`` or ``pwd`` setting, case-blind, as a URL query
   parameter (``?password=…``), a libpq-style ``password=…`` or a JSON ``"password": "…"``,
 * and, anywhere in the text, every password this process has read from a URL (plain and
-  URL-quoted), when it is at least `MIN_BARE_SECRET` characters long (a shorter one would
-  mask ordinary letters of the message; the two patterns above still catch it in a URL).
+  URL-quoted) where it stands as a word of its own (not inside a longer run of letters
+  and digits: a password ``postgres`` leaves ``postgresql://`` readable), when it is at
+  least `MIN_BARE_SECRET` characters long (a shorter one would mask ordinary words of the
+  message; the two patterns above still catch it in a URL).
 
 `is_authentication_failure` tells a refused login from a lost server, so that callers
 stop at the first one: retrying a wrong password can lock the account.
@@ -80,7 +82,9 @@ def mask_secrets(text: str) -> str:
     with _known_lock:
         known = sorted(_known, key=len, reverse=True)  # longest first: quoted forms whole
     for secret in known:
-        text = text.replace(secret, _MASK)
+        if secret in text:
+            text = re.sub(r"(?<![A-Za-z0-9])" + re.escape(secret) + r"(?![A-Za-z0-9])",
+                          _MASK, text)
     return text
 
 

@@ -14,6 +14,7 @@ from __future__ import annotations
 import json
 import logging
 import os
+import signal
 import sqlite3
 import stat
 import time
@@ -28,6 +29,7 @@ import pytest
 import sqlalchemy as sa
 import tomli_w
 
+from adapters import credentials
 from adapters.base import StoreError, TagSpec, open_store
 from adapters.credentials import (
     is_authentication_failure,
@@ -41,6 +43,12 @@ from tests.monitor.test_user_errors import one_line_error, write_site
 
 TAGS = [TagSpec("PT-100", "bar", "pressure")]
 T0 = datetime(2026, 6, 1, tzinfo=UTC)
+
+
+@pytest.fixture(autouse=True)
+def _forget_secrets(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The passwords these tests make up are not masked in later tests' messages."""
+    monkeypatch.setattr(credentials, "_known", set(credentials._known))
 
 
 # ------------------------------------------------------------------------- masking
@@ -79,6 +87,12 @@ def test_remembered_password_is_masked_bare_and_quoted() -> None:
     masked = mask_secrets(text)
     assert "w0rd" not in masked
     assert masked.count("***") == 3
+
+
+def test_a_remembered_password_inside_a_longer_word_is_left() -> None:
+    remember_secret("postgres")
+    masked = mask_secrets("login postgres refused by postgresql://db/plant")
+    assert masked == "login *** refused by postgresql://db/plant"
 
 
 def test_a_short_password_does_not_mask_ordinary_letters() -> None:
@@ -174,8 +188,21 @@ def test_an_existing_world_readable_store_is_tightened(tmp_path: Path, open_umas
     assert stat.S_IMODE(db.stat().st_mode) == 0o640
 
 
+@pytest.fixture
+def keep_signal_handlers() -> Iterator[None]:
+    """`run` installs the daemon's SIGINT/SIGTERM handlers for good (a CLI process ends
+    after it); the test process gets its own back."""
+    saved = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        yield
+    finally:
+        for sig, handler in saved.items():
+            signal.signal(sig, handler)
+
+
 def test_cli_writes_files_for_user_and_group_only(
-    tmp_path: Path, capsys: pytest.CaptureFixture[str], open_umask: None
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], open_umask: None,
+    keep_signal_handlers: None,
 ) -> None:
     site = write_site(tmp_path)
     steps = [
