@@ -250,7 +250,7 @@ class SqlSource(ReadingsSource):
         try:
             present = self._run("list tags", lambda c: {r[0] for r in c.execute(query)})
         except SourceUnavailable as exc:
-            return [str(exc)]
+            return [self._mask(str(exc))]
         return [
             f"configured tag {t!r} has no rows in table {self.cursor_key!r}"
             for t in self.tags
