@@ -263,7 +263,8 @@ class SqlSource(ReadingsSource):
 
     # ----------------------------------------------------------------- database
     def _run(self, what: str, work: Callable[[sa.Connection], T]) -> T:
-        """*work* on a fresh connection, retried with exponential backoff."""
+        """*work* on a fresh connection, retried with exponential backoff (a refused
+        login is not retried: `CredentialsRefused`)."""
         delay = self.backoff_seconds
         last = ""
         for attempt in range(1, self.max_tries + 1):

@@ -188,6 +188,7 @@ class PumpSection(_Strict):
     speed: TagRef | None = None
     design_speed: Fraction = 1.0
     efficiency: Fraction = 0.70
+    running_pressure: Pressure = 50_000.0
 
     @field_validator("efficiency")
     @classmethod
@@ -198,7 +199,6 @@ class PumpSection(_Strict):
                 "(e.g. 0.72 or '72 %')"
             )
         return value
-    running_pressure: Pressure = 50_000.0
 
 
 class PipeSpec(_Strict):
