@@ -43,6 +43,7 @@ __all__ = [
     "parse_url",
     "read_url",
     "remember_secret",
+    "remember_url",
     "url_secrets",
 ]
 
@@ -98,6 +99,12 @@ class MaskingFormatter(logging.Formatter):
 
     def format(self, record: logging.LogRecord) -> str:
         return mask_secrets(super().format(record))
+
+
+def remember_url(url: sa.URL) -> None:
+    """Mask the passwords of *url* (a URL this process connects with) from now on."""
+    for secret in url_secrets(url):
+        remember_secret(secret)
 
 
 def url_secrets(url: sa.URL) -> list[str]:
@@ -161,8 +168,8 @@ def read_url(*, url_env: str | None = None, secrets_file: str | Path | None = No
 
 
 def parse_url(text: str, key: str) -> sa.URL:
-    """*text* as a SQLAlchemy URL of a known database kind; its passwords are remembered
-    for `mask_secrets`. *key* names the setting in the error (``store.url_env``)."""
+    """*text* as a SQLAlchemy URL of a known database kind. *key* names the setting in
+    the error (``store.url_env``). Whoever connects with the URL calls `remember_url`."""
     try:
         url = sa.make_url(text)
     except (sa.exc.ArgumentError, ValueError):
@@ -170,8 +177,6 @@ def parse_url(text: str, key: str) -> sa.URL:
             f"{key}: not a database URL (expected e.g. postgresql+psycopg://user@host/db "
             "or sqlite:///branchwatch.db)"
         ) from None
-    for secret in url_secrets(url):
-        remember_secret(secret)
     try:
         url.get_dialect()
     except sa.exc.NoSuchModuleError:

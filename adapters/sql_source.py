@@ -76,6 +76,7 @@ from adapters.credentials import (
     mask_secrets,
     parse_url,
     read_url,
+    remember_url,
     url_secrets,
 )
 from adapters.source_tools import (
@@ -550,6 +551,7 @@ def _resolve_url(url: str | None, url_env: str | None, secrets_file: str | Path 
             "url: a password in the config is not allowed; put the URL in an environment "
             "variable (url_env) or a secrets file (secrets_file)"
         )
+    remember_url(parsed)
     return parsed
 
 

@@ -54,7 +54,12 @@ from adapters.base import (
     StoreError,
     empty_readings,
 )
-from adapters.credentials import is_authentication_failure, mask_secrets, parse_url
+from adapters.credentials import (
+    is_authentication_failure,
+    mask_secrets,
+    parse_url,
+    remember_url,
+)
 from adapters.migrations.dialects import (
     CHUNK,
     copy_readings_pg,
@@ -199,6 +204,7 @@ class SqlStore(ResultsStore):
         busy_timeout_s: float = 30.0,
     ) -> None:
         parsed = parse_url(url, "url")
+        remember_url(parsed)
         if schema is not None and not _IDENT.match(schema):
             raise ValueError(
                 f"schema must be a plain identifier ([A-Za-z_][A-Za-z0-9_]*), got {schema!r}"
