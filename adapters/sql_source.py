@@ -15,8 +15,9 @@ characteristic READ ONLY; MariaDB/MySQL: session transaction READ ONLY; SQLite:
 
 Credentials never come from the config file: give ``url_env`` (the name of an
 environment variable holding the URL) or ``secrets_file`` (a file whose first
-non-comment line is the URL); a plain ``url`` is accepted only without a password. The
-password is masked in every message and log line.
+non-comment line is the URL; refused when other users can read it); a plain ``url`` is
+accepted only without a password (in its userinfo or its query). Passwords are masked in
+every message and log line by `adapters.credentials.mask_secrets`.
 
 Values: NULL is "no value" — a blank value (long layout, quarantined) or a tag not sampled
 at that instant (wide layout, skipped). NaN and infinity are values that went wrong: each
@@ -58,7 +59,9 @@ on every pass (``overlap = "0 s"`` turns it off).
 When the database goes away, each query is retried with exponential backoff
 (``max_tries``, ``backoff_seconds``, doubling); after the last try `SourceUnavailable`
 names the host (never the password) and what to check. The watermark only moves with a
-delivered batch, so the next run resumes exactly there.
+delivered batch, so the next run resumes exactly there. A refused login (wrong user or
+password: SQLSTATE class 28, MySQL/MariaDB error 1045) is not retried — repeated failed
+logins can lock the account — and raises `CredentialsRefused` at the first attempt.
 """
 
 from __future__ import annotations
@@ -66,9 +69,7 @@ from __future__ import annotations
 import functools
 import logging
 import math
-import os
 import time
-import urllib.parse
 from collections import Counter
 from collections.abc import Callable, Iterable, Iterator, Mapping
 from datetime import UTC, datetime, timedelta
@@ -83,12 +84,21 @@ import sqlalchemy as sa
 
 from adapters.base import (
     Batch,
+    BranchwatchAdapterError,
     ReadingsSource,
     SourceUnavailable,
     TagSpec,
     UnknownTagError,
     empty_quarantine,
     empty_readings,
+)
+from adapters.credentials import (
+    is_authentication_failure,
+    mask_secrets,
+    parse_url,
+    read_url,
+    remember_url,
+    url_secrets,
 )
 from adapters.source_tools import (
     DEFAULT_QUALITY_MAP,
@@ -101,7 +111,7 @@ from adapters.source_tools import (
     si_scale_offset,
 )
 
-__all__ = ["SqlSource"]
+__all__ = ["CredentialsRefused", "SourceSettingError", "SqlSource"]
 
 log = logging.getLogger(__name__)
 T = TypeVar("T")
@@ -116,6 +126,19 @@ _READ_ONLY = {
 # change (DST moves the clock by one hour, a few zones by two), then filtered exactly.
 _LOCAL_PAD = timedelta(hours=3)
 _AMBIGUOUS = "ambiguous local time"
+
+
+class CredentialsRefused(SourceUnavailable):
+    """The database refused the login: not retried (retries can lock the account)."""
+
+
+class SourceSettingError(BranchwatchAdapterError, ValueError):
+    """A [source] setting does not match the database (a table or column that does not
+    exist); *setting* is its key path in the site file, e.g. ``source.table``."""
+
+    def __init__(self, setting: str, message: str) -> None:
+        super().__init__(f"{setting}: {message}")
+        self.setting = setting
 
 
 class SqlSource(ReadingsSource):
@@ -178,9 +201,11 @@ class SqlSource(ReadingsSource):
         self.max_tries, self.backoff_seconds = int(max_tries), float(backoff_seconds)
         self._si = {tag: si_scale_offset(spec) for tag, spec in self.tags.items()}
         self._url = _resolve_url(url, url_env, secrets_file)
-        self._hint = f"the URL in ${url_env}" if url_env else "the URL in the secrets file"
-        self._password = self._url.password or ""
-        self.where = self._url.render_as_string(hide_password=True)
+        self._hint = (
+            f"the URL in ${url_env}" if url_env
+            else f"the URL in {secrets_file}" if secrets_file else "the URL"
+        )
+        self.where = mask_secrets(self._url.render_as_string(hide_password=True))
         try:
             self._engine = sa.create_engine(self._url, pool_pre_ping=True)
         except (ImportError, sa.exc.NoSuchModuleError) as exc:
@@ -259,7 +284,7 @@ class SqlSource(ReadingsSource):
         try:
             present = self._run("list tags", lambda c: {r[0] for r in c.execute(query)})
         except SourceUnavailable as exc:
-            return [str(exc)]
+            return [self._mask(str(exc))]
         return [
             f"configured tag {t!r} has no rows in table {self.cursor_key!r}"
             for t in self.tags
@@ -272,7 +297,8 @@ class SqlSource(ReadingsSource):
 
     # ----------------------------------------------------------------- database
     def _run(self, what: str, work: Callable[[sa.Connection], T]) -> T:
-        """*work* on a fresh connection, retried with exponential backoff."""
+        """*work* on a fresh connection, retried with exponential backoff (a refused
+        login is not retried: `CredentialsRefused`)."""
         delay = self.backoff_seconds
         last = ""
         for attempt in range(1, self.max_tries + 1):
@@ -282,6 +308,13 @@ class SqlSource(ReadingsSource):
             except (sa.exc.OperationalError, sa.exc.InterfaceError) as exc:
                 last = self._mask(str(getattr(exc, "orig", None) or exc)).strip()
                 self._engine.dispose()  # drop pooled connections to the lost server
+                if is_authentication_failure(exc):
+                    raise CredentialsRefused(
+                        f"database at {self._url.host or self._url.database or '?'} "
+                        f"({self.where}) refused the login while trying to {what}: "
+                        f"{_first_line(last)}; not retried (repeated failed logins can lock "
+                        f"the account): check the user and password in {self._hint}"
+                    ) from None
                 if attempt == self.max_tries:
                     break
                 log.warning(
@@ -298,7 +331,7 @@ class SqlSource(ReadingsSource):
         host = self._url.host or self._url.database or "?"
         raise SourceUnavailable(
             f"database at {host} ({self.where}) did not answer after {self.max_tries} tries "
-            f"while trying to {what}: {last.splitlines()[0] if last else 'no message'}; check "
+            f"while trying to {what}: {_first_line(last)}; check "
             f"that the server is running and reachable and that {self._hint} is right"
         )
 
@@ -308,8 +341,10 @@ class SqlSource(ReadingsSource):
         try:
             table = sa.Table(self.table_name, sa.MetaData(), schema=self.schema, autoload_with=conn)
         except sa.exc.NoSuchTableError:
-            raise ValueError(
-                f"table {self.cursor_key!r} does not exist at {self.where}: check [source] table"
+            raise SourceSettingError(
+                "source.table",
+                f"table {self.cursor_key!r} does not exist at {self.where}; check the spelling "
+                "(and [source] schema)",
             ) from None
         wanted = [("time_column", self.time_column)]
         if self.layout == "long":
@@ -318,9 +353,10 @@ class SqlSource(ReadingsSource):
                 wanted.append(("quality_column", self.quality_column))
         for arg, col in wanted:
             if col not in table.c:
-                raise ValueError(
-                    f"{arg}: table {self.cursor_key!r} has no column {col!r}; "
-                    f"it has {sorted(table.c.keys())}"
+                raise SourceSettingError(
+                    f"source.{arg}",
+                    f"table {self.cursor_key!r} has no column {col!r}; "
+                    f"it has {sorted(table.c.keys())}",
                 )
         if self.layout == "wide":
             for tag in self.tags:
@@ -529,16 +565,8 @@ class SqlSource(ReadingsSource):
         return origin, line
 
     def _mask(self, text: str) -> str:
-        """*text* with the password (plain and URL-quoted) replaced by ***."""
-        if not self._password:
-            return text
-        for secret in {
-            self._password,
-            urllib.parse.quote_plus(self._password),
-            urllib.parse.quote(self._password, safe=""),
-        }:
-            text = text.replace(secret, "***")
-        return text
+        """*text* with every password masked (`adapters.credentials.mask_secrets`)."""
+        return mask_secrets(text)
 
 
 def _nonfinite(raw: tuple[Any, ...], values: npt.NDArray[np.float64]) -> npt.NDArray[np.bool_]:
@@ -596,28 +624,16 @@ def _resolve_url(url: str | None, url_env: str | None, secrets_file: str | Path 
         raise ValueError(
             f"give exactly one of url, url_env, secrets_file (got {', '.join(given) or 'none'})"
         )
-    if url_env:
-        text = os.environ.get(url_env, "")
-        if not text:
-            raise ValueError(f"url_env: environment variable {url_env!r} is not set or empty")
-    elif secrets_file:
-        path = Path(secrets_file)
-        try:
-            lines = path.read_text().splitlines()
-        except OSError as exc:
-            raise ValueError(f"secrets_file: cannot read {str(path)!r} ({exc.strerror})") from None
-        text = next((ln.strip() for ln in lines if ln.strip() and not ln.startswith("#")), "")
-        if not text:
-            raise ValueError(f"secrets_file: {str(path)!r} holds no URL line")
-    else:
-        text = url or ""
-    try:
-        parsed = sa.make_url(text)
-    except sa.exc.ArgumentError:
-        raise ValueError(f"{given[0]}: not a database URL") from None
-    if url and parsed.password:
+    text = url if url else read_url(url_env=url_env, secrets_file=secrets_file)
+    parsed = parse_url(text, f"secrets_file: {secrets_file}" if secrets_file else given[0])
+    if url and url_secrets(parsed):
         raise ValueError(
             "url: a password in the config is not allowed; put the URL in an environment "
             "variable (url_env) or a secrets file (secrets_file)"
         )
+    remember_url(parsed)
     return parsed
+
+
+def _first_line(text: str) -> str:
+    return text.splitlines()[0] if text.strip() else "no message"

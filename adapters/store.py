@@ -34,8 +34,10 @@ in frames). Readings times are kept to the microsecond (finer parts are dropped)
 from __future__ import annotations
 
 import logging
+import os
 import re
 import signal
+import stat
 import threading
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
@@ -51,6 +53,12 @@ from adapters.base import (
     ResultsStore,
     StoreError,
     empty_readings,
+)
+from adapters.credentials import (
+    is_authentication_failure,
+    mask_secrets,
+    parse_url,
+    remember_url,
 )
 from adapters.migrations.dialects import (
     CHUNK,
@@ -195,10 +203,8 @@ class SqlStore(ResultsStore):
         migrate: bool = True,
         busy_timeout_s: float = 30.0,
     ) -> None:
-        try:
-            parsed = sa.engine.make_url(url)
-        except sa.exc.ArgumentError as exc:
-            raise ValueError(f"url is not a SQLAlchemy URL: {exc}") from None
+        parsed = parse_url(url, "url")
+        remember_url(parsed)
         if schema is not None and not _IDENT.match(schema):
             raise ValueError(
                 f"schema must be a plain identifier ([A-Za-z_][A-Za-z0-9_]*), got {schema!r}"
@@ -211,12 +217,18 @@ class SqlStore(ResultsStore):
             if schema is not None:
                 raise ValueError("schema is not supported on SQLite; use another database file")
             if parsed.database and parsed.database != ":memory:":
-                Path(parsed.database).parent.mkdir(parents=True, exist_ok=True)
+                _private_sqlite_file(Path(parsed.database))
         elif schema is not None:
             self._create_schema(parsed, schema)
-        self.engine = sa.create_engine(
-            parsed, json_serializer=dumps, pool_pre_ping=self.dialect != "sqlite"
-        )
+        try:
+            self.engine = sa.create_engine(
+                parsed, json_serializer=dumps, pool_pre_ping=self.dialect != "sqlite"
+            )
+        except ImportError as exc:
+            raise StoreError(
+                f"the results store needs a driver for {parsed.drivername}: pip install "
+                f"'branchwatch[{self.dialect}]' ({exc})"
+            ) from None
         self._install_hooks(busy_timeout_s)
         if migrate:
             self.migrate()
@@ -230,7 +242,7 @@ class SqlStore(ResultsStore):
             with boot.begin() as conn:
                 conn.exec_driver_sql(f"CREATE {word} IF NOT EXISTS {quoted}")
         except sa.exc.SQLAlchemyError as exc:
-            raise StoreError(f"cannot create schema {schema!r} at {url!r}: {exc}") from exc
+            raise self._error(f"cannot create schema {schema!r}", exc) from exc
         finally:
             boot.dispose()
 
@@ -296,7 +308,10 @@ class SqlStore(ResultsStore):
                     if self.dialect in ("mysql", "mariadb"):
                         conn.exec_driver_sql("SELECT RELEASE_LOCK('branchwatch_migrate')")
         except StoreError as exc:
-            raise StoreError(f"cannot migrate the results store schema: {exc.__cause__}") from exc
+            if isinstance(exc.__cause__, sa.exc.SQLAlchemyError):
+                raise self._error("cannot migrate the results store schema",
+                                  exc.__cause__) from exc
+            raise
 
     @contextmanager
     def _write(self) -> Iterator[sa.Connection]:
@@ -310,7 +325,7 @@ class SqlStore(ResultsStore):
                 with conn.begin():
                     yield conn
         except sa.exc.SQLAlchemyError as exc:
-            raise StoreError(f"results store write failed: {exc}") from exc
+            raise self._error("results store write failed", exc) from exc
 
     @contextmanager
     def _read(self) -> Iterator[sa.Connection]:
@@ -318,7 +333,20 @@ class SqlStore(ResultsStore):
             with self.engine.connect() as conn:
                 yield conn
         except sa.exc.SQLAlchemyError as exc:
-            raise StoreError(f"results store read failed: {exc}") from exc
+            raise self._error("results store read failed", exc) from exc
+
+    def _error(self, what: str, exc: sa.exc.SQLAlchemyError) -> StoreError:
+        """A masked `StoreError`; a refused login says so on one line (the store never
+        retries a connection, so a wrong password costs one failed login)."""
+        where = mask_secrets(self.url.render_as_string(hide_password=True))
+        if is_authentication_failure(exc):
+            first = mask_secrets(str(getattr(exc, "orig", None) or exc)).strip().splitlines()
+            return StoreError(
+                f"results store at {where} refused the login: "
+                f"{first[0] if first else 'no message'}; check the user and password of the "
+                "[store] URL (url_env or secrets_file)"
+            )
+        return StoreError(mask_secrets(f"{what} ({where}): {exc}"))
 
     def close(self) -> None:
         """Release the connection pool."""
@@ -331,7 +359,7 @@ class SqlStore(ResultsStore):
         self.close()
 
     def __repr__(self) -> str:
-        return f"SqlStore({self.url.render_as_string(hide_password=True)!r})"
+        return f"SqlStore({mask_secrets(self.url.render_as_string(hide_password=True))!r})"
 
     def __reduce__(self) -> tuple[Any, ...]:
         """Pickled as the way to open it again (a worker process opens its own
@@ -799,13 +827,17 @@ class SqlStore(ResultsStore):
         status: str,
         detail: Mapping[str, Any] | None = None,
     ) -> None:
-        """Record a job run; the same (job, started) again replaces it (e.g. when it ends)."""
+        """Record a job run; the same (job, started) again replaces it (e.g. when it ends).
+
+        Text in *detail* is masked (`mask_secrets`): an error message that quotes a URL
+        must not leave a password in the table.
+        """
         row = {
             "job": _name(job, "job", 100),
             "started": utc_datetime(started, "started"),
             "finished": None if finished is None else utc_datetime(finished, "finished"),
             "status": _name(status, "status", 20),
-            "detail": dict(detail or {}),
+            "detail": _masked(dict(detail or {})),
         }
         with self._write() as conn:
             upsert(conn, job_runs_t, [row], ("job", "started"), replace=True)
@@ -817,7 +849,10 @@ class SqlStore(ResultsStore):
         query = sa.select(job_runs_t).order_by(job_runs_t.c.started.desc()).limit(limit)
         if job is not None:
             query = query.where(job_runs_t.c.job == job)
-        return self._frame(query, job_runs_t)
+        frame = self._frame(query, job_runs_t)
+        if "detail" in frame.columns:  # rows written before masking existed
+            frame["detail"] = [_masked(d) for d in frame["detail"]]
+        return frame
 
     def add_data_health(self, frame: pd.DataFrame) -> int:
         """Store screening counts (columns tag, day, flag, count); a stored day is replaced.
@@ -931,6 +966,40 @@ def _refuse_future(when: datetime, now: datetime) -> None:
             f"maintenance time {when:%Y-%m-%d %H:%M}Z is in the future (now "
             f"{now:%Y-%m-%d %H:%M}Z); log work once it is done"
         )
+
+
+def _private_sqlite_file(path: Path) -> None:
+    """Create the SQLite file readable by its owner and group only (0o640); SQLite gives
+    its -wal and -shm files the database file's mode. An existing file of ours that
+    others can read is tightened the same way."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    try:
+        os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o640))
+        return
+    except FileExistsError:
+        pass
+    for part in (path, path.with_name(path.name + "-wal"), path.with_name(path.name + "-shm")):
+        try:
+            info = part.stat()
+            if info.st_mode & 0o007 and info.st_uid == os.geteuid():
+                os.chmod(part, stat.S_IMODE(info.st_mode) & 0o770)
+                log.info("%s: removed access for other users (was mode %04o)", part,
+                         stat.S_IMODE(info.st_mode))
+        except FileNotFoundError:
+            continue
+        except OSError as exc:
+            log.warning("%s: cannot restrict its mode (%s)", part, exc.strerror)
+
+
+def _masked(value: Any) -> Any:
+    """*value* (JSON-like) with every string passed through `mask_secrets`."""
+    if isinstance(value, str):
+        return mask_secrets(value)
+    if isinstance(value, Mapping):
+        return {k: _masked(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_masked(v) for v in value]
+    return value
 
 
 def _ceil_day(t: datetime) -> date:

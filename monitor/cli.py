@@ -9,6 +9,7 @@ with status 2; a bug still shows its traceback.
 from __future__ import annotations
 
 import argparse
+import io
 import json
 import logging
 import os
@@ -26,6 +27,7 @@ from adapters.base import (
     ResultsStore,
     open_store,
 )
+from adapters.credentials import MaskingFormatter, mask_secrets
 from adapters.units import UnitError, parse_quantity
 from monitor.config import ConfigError, Site, load_site
 
@@ -59,25 +61,74 @@ class UserError(Exception):
     """An error the user can fix; printed as one line, exit status 2."""
 
 
+#: Files the command creates (store, reports, heartbeat, findings and fits files) are
+#: readable by the service user and its group only: no access for other users.
+FILE_UMASK = 0o027
+
+
 def main(argv: Sequence[str] | None = None) -> int:
-    """Entry point of the ``branchwatch`` console script."""
+    """Entry point of the ``branchwatch`` console script.
+
+    Sets the umask to `FILE_UMASK` while the verb runs (restored on return). Every log
+    line and error message is masked (`adapters.credentials.mask_secrets`). A reader that
+    stops reading (``branchwatch status SITE | head -1``) ends the command quietly.
+    """
     parser = _parser()
     args = parser.parse_args(argv)
+    handler = logging.StreamHandler()
+    handler.setFormatter(MaskingFormatter("%(asctime)s %(levelname)-7s %(name)s: %(message)s"))
     logging.basicConfig(
         level=logging.DEBUG if args.verbose else logging.INFO if args.log else logging.WARNING,
-        format="%(asctime)s %(levelname)-7s %(name)s: %(message)s",
+        handlers=[handler],
     )
     if not getattr(args, "func", None):
         parser.print_help()
         return EXIT_USAGE
+    old_umask = os.umask(FILE_UMASK)
     try:
-        return int(args.func(args) or EXIT_OK)
+        code = int(args.func(args) or EXIT_OK)
+        sys.stdout.flush()  # a closed pipe shows here, not at interpreter exit
+        return code
+    except BrokenPipeError:
+        _discard_stdout()
+        return EXIT_OK
     except (UserError, ConfigError, UnitError, BranchwatchAdapterError) as exc:
-        print(f"branchwatch {args.verb}: error: {exc}", file=sys.stderr)
+        print(f"branchwatch {args.verb}: error: {_error_text(exc, args)}", file=sys.stderr)
         return EXIT_USAGE
     except KeyboardInterrupt:
         print(f"branchwatch {args.verb}: interrupted; what was stored is kept", file=sys.stderr)
         return 130
+    finally:
+        os.umask(old_umask)
+
+
+def _error_text(exc: Exception, args: argparse.Namespace) -> str:
+    """The message of a user-fixable error, masked; one line (a config file with several
+    mistakes gives one line for each). An adapter error that names a site-file setting
+    gets the file in front, as config errors have it."""
+    text = str(exc).strip()
+    if not isinstance(exc, ConfigError):
+        lines = text.splitlines() or [type(exc).__name__]
+        if len(lines) > 1:
+            log.debug("full error text: %s", text)
+        text = lines[0]
+        setting = getattr(exc, "setting", None)
+        config = getattr(args, "config", None)
+        if setting and config is not None and not text.startswith(str(config)):
+            text = f"{config}: {text}"
+    return mask_secrets(text)
+
+
+def _discard_stdout() -> None:
+    """Point stdout at /dev/null so that the interpreter's last flush cannot fail."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        try:
+            os.dup2(devnull, sys.stdout.fileno())
+        finally:
+            os.close(devnull)
+    except (OSError, ValueError, AttributeError):  # stdout is not a file (embedded use)
+        sys.stdout = io.StringIO()
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -157,6 +208,7 @@ EXAMPLES: dict[str, tuple[str, ...]] = {
 
 
 def _site(args: argparse.Namespace) -> Site:
+    """The validated site of the verb's CONFIG argument (`ConfigError` names file and key)."""
     return load_site(args.config)
 
 
@@ -218,11 +270,24 @@ def _cmd_curve(args: argparse.Namespace) -> int:
 
 
 def _open(site: Site) -> tuple[ResultsStore, ReadingsSource]:
+    """The site's store and readings source; bad [source] settings (an unset url_env, a
+    secrets file that is missing, unreadable, open to others or holds no URL, a missing
+    driver) become one `UserError` line naming the file and key."""
     from monitor.jobs import open_source
 
     store = open_store(site.store_url)
     try:
         source = open_source(site)
+    except (ValueError, ImportError) as exc:
+        store.close()
+        if isinstance(exc, BranchwatchAdapterError):
+            raise
+        text = str(exc)
+        if not text.startswith(str(site.path)):
+            key, sep, _ = text.partition(": ")
+            in_source = sep and key.replace("_", "").isalnum()
+            text = f"{site.path}: source{'.' if in_source else ': '}{text}"
+        raise UserError(text) from None
     except Exception:
         store.close()
         raise
@@ -295,7 +360,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
     except (BranchwatchAdapterError, ImportError, ValueError, KeyError) as exc:
         raise UserError(str(exc)) from None
     try:
-        print(f"results store ok: {site.store_url.split('@')[-1]}")
+        print(f"results store ok: {mask_secrets(site.store_url)}")
         problems = source.check()
         print(f"readings source {source.name}: " + ("ok" if not problems else "PROBLEMS"))
         for p in problems:

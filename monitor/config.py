@@ -36,6 +36,7 @@ from pydantic import (
 )
 
 from adapters.base import TagSpec
+from adapters.credentials import parse_url, read_url, url_secrets
 from adapters.source_tools import pattern_problem
 from adapters.units import UnitError, converter, parse_quantity
 from model.branch import Branch, HeldHeader, OpenDischarge, ReturnHeader, Tank
@@ -55,12 +56,17 @@ class ConfigError(ValueError):
     """The site configuration is missing, malformed or inconsistent."""
 
 
-def _quantity(si_unit: str) -> Any:
+def _quantity(si_unit: str, *, lowest: Literal["any", "zero", "positive"] = "any") -> Any:
     def parse(value: Any) -> float:
         try:
-            return parse_quantity(value, si_unit)
+            si = parse_quantity(value, si_unit)
         except UnitError as exc:
             raise ValueError(str(exc)) from None
+        if lowest == "positive" and not si > 0:
+            raise ValueError(f"{value!r} must be more than zero")
+        if lowest == "zero" and not si >= 0:
+            raise ValueError(f"{value!r} must not be negative")
+        return si
 
     return BeforeValidator(parse)
 
@@ -70,6 +76,11 @@ Pressure = Annotated[float, _quantity("Pa")]
 Flow = Annotated[float, _quantity("m3/s")]
 Duration = Annotated[float, _quantity("s")]
 Fraction = Annotated[float, _quantity("dimensionless")]
+#: a period that must be longer than zero (a window, a sampling period)
+Period = Annotated[float, _quantity("s", lowest="positive")]
+#: a delay that may be zero but not negative
+Delay = Annotated[float, _quantity("s", lowest="zero")]
+FlowFloor = Annotated[float, _quantity("m3/s", lowest="zero")]
 
 
 class _Strict(BaseModel):
@@ -90,6 +101,9 @@ class TagRef(_Strict):
 class SiteSection(_Strict):
     name: str
     timezone: str = "UTC"
+    #: let ``[report] folder`` and the SQLite store file lie outside the site file's
+    #: folder (e.g. site file in /etc/branchwatch, data in /var/lib/branchwatch)
+    allow_paths_outside: bool = False
 
     @field_validator("timezone")
     @classmethod
@@ -104,7 +118,19 @@ class SiteSection(_Strict):
 
 
 class StoreSection(_Strict):
+    """Where results go: ``url`` (no password), or ``url_env`` / ``secrets_file`` for a
+    URL with credentials, read at load (see `adapters.credentials`)."""
+
     url: str = "sqlite:///branchwatch.db"
+    url_env: str | None = Field(default=None, min_length=1)
+    secrets_file: str | None = Field(default=None, min_length=1)
+
+    @model_validator(mode="after")
+    def _one_place(self) -> StoreSection:
+        given = [k for k in ("url", "url_env", "secrets_file") if k in self.model_fields_set]
+        if len(given) > 1:
+            raise ValueError(f"give one of url, url_env, secrets_file (got {', '.join(given)})")
+        return self
 
 
 class SourceSection(_Strict):
@@ -186,6 +212,16 @@ class PumpSection(_Strict):
     #: the older place of [header] running_pressure, still read
     running_pressure: Pressure | None = None
 
+    @field_validator("efficiency")
+    @classmethod
+    def _efficiency_range(cls, value: float) -> float:
+        if not 0 < value <= 1:
+            raise ValueError(
+                f"{value:g} is not an efficiency: give a fraction above 0 and at most 1 "
+                "(e.g. 0.72 or '72 %')"
+            )
+        return value
+
 
 class PipeSpec(_Strict):
     length: Length
@@ -266,7 +302,7 @@ class BranchSection(_Strict):
     name: str = Field(min_length=1)
     description: str = ""
     flow: TagRef | None = None
-    min_flow: Flow = 0.0
+    min_flow: FlowFloor = 0.0
     cleaning_limit: float = Field(default=1.5, gt=1.0)
     termination: TerminationSpec
     elements: list[ElementSpec] = Field(min_length=1)
@@ -274,17 +310,17 @@ class BranchSection(_Strict):
 
 
 class AnalysisSection(_Strict):
-    window: Duration = 86_400.0
+    window: Period = 86_400.0
     #: samples are averaged onto a grid of this period before fitting
-    sample_period: Duration = 60.0
+    sample_period: Period = 60.0
     #: relative expanded (95 %) uncertainty of the flow meters, for the header balance
     meter_uncertainty: float = Field(default=0.02, gt=0, lt=0.5)
     cleaning_limit: float = Field(default=1.5, gt=1.0)
     min_samples: int = Field(default=30, ge=3)
-    low_flow_on_delay: Duration = 600.0
-    low_flow_off_delay: Duration = 300.0
+    low_flow_on_delay: Delay = 600.0
+    low_flow_off_delay: Delay = 300.0
     #: a flow or pressure reading that does not move at all for this long is frozen
-    frozen_hold: Duration = 3600.0
+    frozen_hold: Period = 3600.0
     #: the steady-state test: over this window (default: a quarter of the analysis
     #: window, at most 15 min, at least 6 grid steps) the header pressure and a branch's
     #: flow may vary (std / mean) by at most these shares
@@ -352,6 +388,18 @@ class SiteFile(_Strict):
         dupes = sorted({n for n in names if names.count(n) > 1})
         if dupes:
             raise ValueError(f"branch names must be unique; repeated: {', '.join(dupes)}")
+        owner: dict[str, int] = {}
+        for i, b in enumerate(self.branch):
+            if b.flow is None:
+                continue
+            if b.flow.tag in owner:
+                j = owner[b.flow.tag]
+                raise ValueError(
+                    f"branch[{i}].flow.tag: {b.flow.tag!r} is already the flow meter of "
+                    f"branch[{j}] ({self.branch[j].name}); each branch needs its own meter "
+                    "(leave 'flow' out of a branch that has none)"
+                )
+            owner[b.flow.tag] = i
         return self
 
 
@@ -542,13 +590,20 @@ def _build(doc: SiteFile, path: Path) -> Site:
         except (ValueError, KeyError) as exc:
             raise ValueError(f"{where}: {exc}") from None
 
-    store_url = _resolve_sqlite(doc.store.url, path.parent)
+    base = path.parent
+    store_url = _store_url(doc.store, base, allow_outside=doc.site.allow_paths_outside)
+    report_folder = (base / doc.report.folder).resolve()
+    if not doc.site.allow_paths_outside:
+        _inside(base, report_folder, "report.folder", doc.report.folder)
+    source = doc.source
+    if source is not None and source.secrets_file:
+        source = source.model_copy(update={"secrets_file": str(base / source.secrets_file)})
     return Site(
         path=path,
         name=doc.site.name,
         timezone=doc.site.timezone,
         store_url=store_url,
-        source=doc.source,
+        source=source,
         header_pressure_tag=header_p,
         header_temperature_tag=header_t,
         total_flow_tag=total_q,
@@ -561,7 +616,7 @@ def _build(doc: SiteFile, path: Path) -> Site:
         running_pressure_pa=_running_pressure(doc, path),
         analysis=doc.analysis,
         schedule=doc.schedule,
-        report_folder=(path.parent / doc.report.folder).resolve(),
+        report_folder=report_folder,
         branches=tuple(branches),
         tags=tags,
     )
@@ -578,6 +633,44 @@ def _running_pressure(doc: SiteFile, path: Path) -> float:
         )
     found = header if header is not None else pump
     return 50_000.0 if found is None else found
+
+
+def _store_url(sec: StoreSection, base: Path, *, allow_outside: bool) -> str:
+    """The store URL: from the file, or read from ``url_env`` / ``secrets_file``;
+    checked for a known database kind, no password in the site file, and (SQLite) a
+    file inside the site folder unless *allow_outside*."""
+    secrets: Path | None = None
+    if sec.url_env or sec.secrets_file:
+        key = "store.url_env" if sec.url_env else "store.secrets_file"
+        secrets = base / sec.secrets_file if sec.secrets_file else None
+        try:
+            text = read_url(url_env=sec.url_env, secrets_file=secrets)
+        except ValueError as exc:
+            raise ValueError(f"store.{exc}") from None
+    else:
+        key, text = "store.url", sec.url
+    url = parse_url(text, f"{key}: {secrets}" if secrets else key)
+    if key == "store.url" and url_secrets(url):
+        raise ValueError(
+            "store.url: a password in the site file is not allowed; put the URL in an "
+            "environment variable ([store] url_env) or a secrets file ([store] secrets_file)"
+        )
+    resolved = _resolve_sqlite(text, base)
+    database = url.database or ""
+    if url.get_backend_name() == "sqlite" and database not in ("", ":memory:") \
+            and not allow_outside:
+        _inside(base, base / database, key, database)  # base / an absolute path: that path
+    return resolved
+
+
+def _inside(base: Path, target: Path, key: str, given: str) -> None:
+    folder = base.resolve()
+    if not target.resolve().is_relative_to(folder):
+        raise ValueError(
+            f"{key}: {given!r} leads outside the site folder {folder}; keep it inside, or "
+            "set allow_paths_outside = true in [site] where the plant keeps its data "
+            "elsewhere on purpose"
+        )
 
 
 def _resolve_sqlite(url: str, base: Path) -> str:

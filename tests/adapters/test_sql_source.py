@@ -94,6 +94,7 @@ def test_url_from_env_and_secrets_file(
     a = long_source_from(url_env="BW_TEST_URL")
     secrets = tmp_path / "db.secret"
     secrets.write_text(f"# historian read-only account\n{sqlite_url}\n")
+    secrets.chmod(0o600)  # a file others can read is refused (adapters.credentials)
     b = long_source_from(secrets_file=secrets)
     for source in (a, b):
         assert len(source.read(["PT-100"], T0, T0 + timedelta(hours=2))) == 120
@@ -274,5 +275,5 @@ def test_missing_table_and_column_are_named(sqlite_url: str, minute_rows: list[A
     assert "does not exist" in missing.check()[0]
     missing.close()
     bad = SqlSource(TAGS, url=sqlite_url, table="r", time_column="Time Stamp")
-    assert bad.check()[0].startswith("tag_column: table 'r' has no column 'tag'")
+    assert bad.check()[0].startswith("source.tag_column: table 'r' has no column 'tag'")
     bad.close()
