@@ -467,23 +467,36 @@ def _noise_estimate(values: np.ndarray, codes: np.ndarray) -> np.ndarray:
 
 
 def _resolution(values: np.ndarray, codes: np.ndarray) -> np.ndarray:
-    """Per sample, its tag's resolution estimated from the data [SI].
+    """Per sample, its tag's resolution estimated from the data [SI] (0 when it has none).
 
-    The median gap between successive distinct values of the tag: for a signal that
-    falls on a few levels (a coarse gauge, a low-resolution analog input) that is the
-    level spacing; for a signal that resolves its noise it is far below the noise and
-    changes nothing. NaN samples are skipped.
+    A tag is quantised when at least 90 % of its samples sit on values that occur 3 times
+    or more (its levels) and it has two levels or more; its resolution is then the median
+    gap between neighbouring levels. A coarse gauge or a low-resolution analog input
+    gives its level spacing; a signal that resolves its noise has few repeated values
+    and gets 0, as does a steady value with a lone outlier (one level). NaN samples are
+    skipped. (Thresholds of this project, not a published rule.)
     """
-    out = np.zeros(int(codes.max()) + 1 if len(codes) else 0)
+    n_tags = int(codes.max()) + 1 if len(codes) else 0
+    out = np.zeros(n_tags)
     idx = np.flatnonzero(np.isfinite(values))
-    if len(idx) >= 2:
-        order = idx[np.lexsort((values[idx], codes[idx]))]
-        v, c = values[order], codes[order]
-        step = np.diff(v)
-        distinct = (c[1:] == c[:-1]) & (step > 0)
-        if distinct.any():
-            med = pd.Series(step[distinct]).groupby(c[1:][distinct]).median()
-            out[med.index.to_numpy()] = med.to_numpy()
+    if len(idx) < 2:
+        return out[codes]
+    order = idx[np.lexsort((values[idx], codes[idx]))]
+    v, c = values[order], codes[order]
+    start = np.r_[True, (c[1:] != c[:-1]) | (v[1:] != v[:-1])]
+    first = np.flatnonzero(start)
+    count = np.diff(np.r_[first, len(v)])
+    level = count >= 3
+    run_code, run_value = c[first], v[first]
+    total = np.bincount(c, minlength=n_tags)
+    on_levels = np.bincount(run_code[level], weights=count[level], minlength=n_tags)
+    lv_code, lv_value = run_code[level], run_value[level]
+    same = lv_code[1:] == lv_code[:-1]
+    if same.any():
+        gaps = pd.Series(np.diff(lv_value)[same]).groupby(lv_code[1:][same]).median()
+        tags = gaps.index.to_numpy()
+        quantised = on_levels[tags] >= 0.9 * total[tags]
+        out[tags[quantised]] = gaps.to_numpy()[quantised]
     return out[codes]
 
 

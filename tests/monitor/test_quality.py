@@ -85,9 +85,12 @@ def _hampel_by_definition(
 ) -> np.ndarray:
     # the noise of the whole series, from successive differences (white noise: σ√2)
     sigma = 1.4826 * np.median(np.abs(np.diff(x))) / np.sqrt(2.0)
-    # and its resolution: the median spacing of its distinct values
-    levels = np.unique(x)
-    step = float(np.median(np.diff(levels))) if len(levels) > 1 else 0.0
+    # and its resolution: the median spacing of the values held 3 times or more, when
+    # at least 90 % of the samples sit on such levels
+    values, counts = np.unique(x, return_counts=True)
+    levels = values[counts >= 3]
+    quantised = len(levels) > 1 and counts[counts >= 3].sum() >= 0.9 * len(x)
+    step = float(np.median(np.diff(levels))) if quantised else 0.0
     out = np.zeros(len(x), dtype=bool)
     for i in range(len(x)):
         w = x[max(0, i - 3) : i + 4]
