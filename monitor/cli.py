@@ -1058,7 +1058,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     from monitor.jobs import catch_up, ingest, ingest_and_watch, open_source, write_report
 
     site = _site(args)
-    where = f"results store {mask_secret_url(site.store_url)}"
+    where = f"results store {mask_secrets(site.store_url)}"
     # A store that is down at start is waited for, not given up on: the daemon is often
     # started by the system before its database server is ready.
     store = wait_for(lambda: open_store(site.store_url), what=where,
@@ -1103,13 +1103,6 @@ def _cmd_run(args: argparse.Namespace) -> int:
         store.close()
     print(f"stopped: runs {stats.runs}, failures {stats.failures}")
     return EXIT_OK
-
-
-def mask_secret_url(url: str) -> str:
-    """*url* with its password shown as ***."""
-    from monitor.daemon import mask_secret
-
-    return mask_secret(url, url)
 
 
 _VERBS: list[Callable[[Any], None]] = [

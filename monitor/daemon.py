@@ -23,7 +23,8 @@ then, after the analysis it needs. The regular schedule goes on from there.
 
 `wait_for` opens what the daemon cannot start without (the results store) with retries
 and a growing wait, so a daemon started before its database server waits for it instead
-of exiting; each try is one log line, with the password masked (`mask_secret`).
+of exiting; each try is one log line, with the password masked
+(`adapters.credentials.mask_secrets`).
 
 A job that raises is logged, recorded as a failed run in the store and counted; it does
 not stop the loop. SIGTERM and SIGINT stop the scheduler after the running job ends; each
@@ -52,11 +53,12 @@ from apscheduler.triggers.cron import CronTrigger
 from apscheduler.triggers.date import DateTrigger
 from apscheduler.triggers.interval import IntervalTrigger
 
+from adapters.credentials import mask_secrets, remember_secret
 from monitor.config import Site
 
 log = logging.getLogger(__name__)
 
-__all__ = ["Daemon", "DaemonStats", "mask_secret", "wait_for"]
+__all__ = ["Daemon", "DaemonStats", "wait_for"]
 
 T = TypeVar("T")
 
@@ -254,25 +256,6 @@ def last_fire_time(trigger: Any, now: datetime, *, horizon: timedelta = timedelt
     return None if last is None else last.astimezone(UTC)
 
 
-def mask_secret(text: str, url: str) -> str:
-    """*text* with the password of *url* (plain and URL-quoted) replaced by ***.
-
-    The same rule as the SQL source's masking of its own messages, for the store URL,
-    which the daemon names in its log before any store or source exists.
-    """
-    try:
-        raw = urllib.parse.urlsplit(url).password  # as written in the URL (%-encoded)
-    except ValueError:
-        raw = None
-    if not raw:
-        return text
-    plain = urllib.parse.unquote(raw)
-    for secret in sorted({raw, plain, urllib.parse.quote_plus(plain),
-                          urllib.parse.quote(plain, safe="")}, key=len, reverse=True):
-        text = text.replace(secret, "***")
-    return text
-
-
 def wait_for(
     opener: Callable[[], T],
     *,
@@ -288,6 +271,9 @@ def wait_for(
     *first_delay_s* up to *max_delay_s*); one log line per failed try, the password of
     *secret_url* masked. Returns None when *stop* is set or *give_up_after_s* has passed.
     """
+    if secret_url:  # written %-encoded in the URL; masked in every form
+        raw = urllib.parse.urlsplit(secret_url).password
+        remember_secret(urllib.parse.unquote(raw) if raw else None)
     delay = first_delay_s
     started = time.monotonic()
     attempt = 0
@@ -297,8 +283,8 @@ def wait_for(
         try:
             return opener()
         except retry_on as exc:
-            reason = mask_secret(str(exc).splitlines()[0] if str(exc) else type(exc).__name__,
-                                 secret_url)
+            reason = mask_secrets(str(exc).splitlines()[0] if str(exc) else
+                                  type(exc).__name__)
             left = None if give_up_after_s is None else \
                 give_up_after_s - (time.monotonic() - started)
             if left is not None and left <= 0:
