@@ -405,6 +405,24 @@ class ResultsStore(abc.ABC):
     def watermarks(self) -> ResultsStore.Watermarks:
         """How far readings, cursors, fits and jobs have got."""
 
+    # the notification outbox -----------------------------------------------------------
+    @abc.abstractmethod
+    def queue_messages(self, rows: Iterable[Mapping[str, Any]]) -> int:
+        """Queue messages (keys ``key``, ``channel``, ``kind``, ``priority``, ``subject``,
+        ``body`` (text), ``created``); a (key, channel) already queued is left as it is.
+        Returns how many were new."""
+
+    @abc.abstractmethod
+    def outbox(
+        self, *, status: str | None = None, due_before: datetime | None = None,
+        limit: int | None = None,
+    ) -> pd.DataFrame:
+        """Outbox rows, oldest first; *due_before*: pending ones whose next try is due."""
+
+    @abc.abstractmethod
+    def update_message(self, key: str, channel: str, **fields: Any) -> None:
+        """Set *fields* (status, attempts, next_try, sent_at, last_error) of one message."""
+
     @abc.abstractmethod
     def close(self) -> None:
         """Release the connection pool."""

@@ -41,6 +41,7 @@ __all__ = [
     "is_authentication_failure",
     "mask_secrets",
     "parse_url",
+    "read_secret",
     "read_url",
     "remember_secret",
     "remember_url",
@@ -122,14 +123,29 @@ def read_url(*, url_env: str | None = None, secrets_file: str | Path | None = No
     Raises `ValueError` naming the key (``url_env: …`` / ``secrets_file: …``), what is
     wrong and what to do; the message never quotes the file's content.
     """
-    if (url_env is None) == (secrets_file is None):
-        raise ValueError("give exactly one of url_env, secrets_file")
-    if url_env is not None:
-        text = os.environ.get(url_env, "").strip()
+    return read_secret(env=url_env, secrets_file=secrets_file, env_key="url_env",
+                       what="database URL")
+
+
+def read_secret(
+    *, env: str | None = None, secrets_file: str | Path | None = None,
+    env_key: str = "password_env", what: str = "password",
+) -> str:
+    """The secret (*what*: a URL, a password) held in the environment variable *env* or
+    on the first line of *secrets_file* that is not blank and not a ``#`` comment.
+
+    Raises `ValueError` naming the key (*env_key* / ``secrets_file``), what is wrong and
+    what to do; the message never quotes the file's content. A file other users can
+    read is refused.
+    """
+    if (env is None) == (secrets_file is None):
+        raise ValueError(f"give exactly one of {env_key}, secrets_file")
+    if env is not None:
+        text = os.environ.get(env, "").strip()
         if not text:
             raise ValueError(
-                f"url_env: environment variable {url_env!r} is not set or empty; set it to "
-                "the database URL in the service's environment"
+                f"{env_key}: environment variable {env!r} is not set or empty; set it to "
+                f"the {what} in the service's environment"
             )
         return text
     assert secrets_file is not None
@@ -138,13 +154,13 @@ def read_url(*, url_env: str | None = None, secrets_file: str | Path | None = No
         mode = path.stat().st_mode
     except FileNotFoundError:
         raise ValueError(
-            f"secrets_file: {path} does not exist; write the database URL on its first line "
+            f"secrets_file: {path} does not exist; write the {what} on its first line "
             f"and run chmod 600 {path}"
         ) from None
     except OSError as exc:
         raise ValueError(f"secrets_file: cannot read {path} ({exc.strerror})") from None
     if not stat.S_ISREG(mode):
-        raise ValueError(f"secrets_file: {path} is not a file; name the file holding the URL")
+        raise ValueError(f"secrets_file: {path} is not a file; name the file holding the {what}")
     if mode & stat.S_IROTH:
         raise ValueError(
             f"secrets_file: {path} is readable by other users (mode "
@@ -154,7 +170,7 @@ def read_url(*, url_env: str | None = None, secrets_file: str | Path | None = No
         lines = path.read_text(encoding="utf-8").splitlines()
     except UnicodeDecodeError:
         raise ValueError(
-            f"secrets_file: {path} is not UTF-8 text; it should hold one database URL line"
+            f"secrets_file: {path} is not UTF-8 text; it should hold the {what} on one line"
         ) from None
     except OSError as exc:
         raise ValueError(f"secrets_file: cannot read {path} ({exc.strerror})") from None
@@ -162,7 +178,7 @@ def read_url(*, url_env: str | None = None, secrets_file: str | Path | None = No
                 "")
     if not text:
         raise ValueError(
-            f"secrets_file: {path} holds no URL line (only blank lines and # comments)"
+            f"secrets_file: {path} holds no {what} (only blank lines and # comments)"
         )
     return text
 

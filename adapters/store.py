@@ -91,6 +91,7 @@ from adapters.migrations.tables import (
     header_balance_t,
     job_runs_t,
     maintenance_t,
+    outbox_t,
     quarantine_t,
     readings_raw,
     readings_t,
@@ -724,6 +725,64 @@ class SqlStore(ResultsStore):
         if since is not None:
             query = query.where(alarm_events_t.c.time >= utc_datetime(since, "since"))
         return self._frame(query, alarm_events_t)
+
+    # the notification outbox ---------------------------------------------------------
+    #: the states of a queued message
+    MESSAGE_STATES: ClassVar[tuple[str, ...]] = ("pending", "sent", "failed")
+
+    def queue_messages(self, rows: Iterable[Mapping[str, Any]]) -> int:
+        recs = []
+        for row in rows:
+            rec = {k: row[k] for k in ("key", "channel", "kind", "priority", "subject", "body")}
+            for k in ("key", "channel"):
+                if not isinstance(rec[k], str) or not rec[k]:
+                    raise ValueError(f"message {k} must be a non-empty string, got {rec[k]!r}")
+            rec["key"] = _name(rec["key"], "message key", 200)
+            rec["created"] = utc_datetime(row.get("created") or datetime.now(UTC), "created")
+            rec.update(status="pending", attempts=0, next_try=rec["created"], sent_at=None,
+                       last_error=None)
+            recs.append(rec)
+        if not recs:
+            return 0
+        t = outbox_t
+        with self._write() as conn:
+            have = {(k, c) for k, c in conn.execute(
+                sa.select(t.c.key, t.c.channel).where(t.c.key.in_({r["key"] for r in recs}))
+            ).all()}
+            new = [r for r in recs if (r["key"], r["channel"]) not in have]
+            upsert(conn, t, new, ("key", "channel"), replace=False)
+        return len(new)
+
+    def outbox(
+        self, *, status: str | None = None, due_before: datetime | None = None,
+        limit: int | None = None,
+    ) -> pd.DataFrame:
+        t = outbox_t
+        query = sa.select(t).order_by(t.c.created, t.c.key, t.c.channel)
+        if status is not None:
+            query = query.where(t.c.status == status)
+        if due_before is not None:
+            query = query.where(t.c.status == "pending",
+                                t.c.next_try <= utc_datetime(due_before, "due_before"))
+        if limit is not None:
+            query = query.limit(int(limit))
+        return self._frame(query, t)
+
+    def update_message(self, key: str, channel: str, **fields: Any) -> None:
+        allowed = {"status", "attempts", "next_try", "sent_at", "last_error"}
+        unknown = set(fields) - allowed
+        if unknown:
+            raise ValueError(f"cannot update message fields {sorted(unknown)}; "
+                             f"allowed: {sorted(allowed)}")
+        if "status" in fields and fields["status"] not in self.MESSAGE_STATES:
+            raise ValueError(f"message status must be one of {self.MESSAGE_STATES}, "
+                             f"got {fields['status']!r}")
+        if fields.get("last_error") is not None:
+            fields["last_error"] = mask_secrets(str(fields["last_error"]))[:2000]
+        t = outbox_t
+        with self._write() as conn:
+            conn.execute(t.update().where(t.c.key == key, t.c.channel == channel)
+                         .values(**fields))
 
     # maintenance, job runs, data health ----------------------------------------------
     def add_maintenance(

@@ -187,6 +187,10 @@ EXAMPLES: dict[str, tuple[str, ...]] = {
         'branchwatch log site.toml --correct 12 --time "2026-08-14 15:30"',
         'branchwatch log site.toml --withdraw 13 --note "logged on the wrong branch"',
     ),
+    "notify": (
+        "branchwatch notify site.toml --test",
+        "branchwatch notify site.toml",
+    ),
     "status": (
         "branchwatch status site.toml",
         "branchwatch status site.toml --json",
@@ -368,6 +372,17 @@ def _cmd_check(args: argparse.Namespace) -> int:
     finally:
         source.close()
         store.close()
+    from monitor.notifications import build_notifiers
+
+    try:
+        channels = build_notifiers(site)
+    except ValueError as exc:
+        raise UserError(str(exc)) from None
+    for n in channels:  # reaching them sends a message: 'notify --test' does that
+        print(f"notify channel {n.name}: {n.describe()} ('branchwatch notify CONFIG --test' "
+              "sends a test message)")
+    if site.notify is None:
+        print("notify: no [notify] section; alarms are only stored and shown")
     return EXIT_USAGE if problems else EXIT_OK
 
 
@@ -724,10 +739,12 @@ def _cmd_status(args: argparse.Namespace) -> int:
         runs = store.job_runs(limit=10)
         findings = store.read_findings()
         quarantine = store.quarantine_counts()
+        outbox = store.outbox()
     finally:
         store.close()
     open_findings = findings[findings["end"].isna()] if not findings.empty else findings
     now = datetime.now(UTC)
+    undelivered = outbox[outbox["status"] != "sent"] if not outbox.empty else outbox
     limit_s = stale_after(site)
     newest = {str(t): pd.Timestamp(v) for t, v in
               zip(marks.readings["tag"], marks.readings["last"], strict=True)}
@@ -745,6 +762,11 @@ def _cmd_status(args: argparse.Namespace) -> int:
             "jobs": _jsonable(runs.to_dict(orient="records")),
             "open_findings": len(open_findings),
             "quarantine": quarantine,
+            "messages": {st: int((outbox["status"] == st).sum()) if not outbox.empty else 0
+                         for st in ("pending", "sent", "failed")},
+            "messages_not_sent": _jsonable(undelivered[
+                ["key", "channel", "subject", "status", "attempts", "last_error"]
+            ].to_dict(orient="records")) if not undelivered.empty else [],
         }, indent=2, default=str))
         return EXIT_OK
     print(site.name)
@@ -782,6 +804,13 @@ def _cmd_status(args: argparse.Namespace) -> int:
     if quarantine:
         print("\nquarantined rows by reason: "
               + ", ".join(f"{k} {v}" for k, v in sorted(quarantine.items())))
+    if site.notify is not None:
+        sent = int((outbox["status"] == "sent").sum()) if not outbox.empty else 0
+        print(f"\nmessages: {sent} sent, {len(undelivered)} not sent")
+        for r in undelivered.itertuples():
+            what = "GIVEN UP" if r.status == "failed" else f"pending, {r.attempts} tries"
+            print(f"  {r.channel!s:<8} {what}: {r.subject!s}"
+                  + (f" ({r.last_error!s})" if r.last_error else ""))
     return EXIT_OK
 
 
@@ -1056,8 +1085,13 @@ half-stored.""",
 def _cmd_run(args: argparse.Namespace) -> int:
     from monitor.daemon import Daemon, wait_for
     from monitor.jobs import catch_up, ingest, ingest_and_watch, open_source, write_report
+    from monitor.notifications import build_notifiers, deliver, queue_alarms, queue_digest
 
     site = _site(args)
+    try:
+        build_notifiers(site)  # a bad [notify] setting stops the start, before waiting
+    except ValueError as exc:
+        raise UserError(str(exc)) from None
     where = f"results store {mask_secrets(site.store_url)}"
     # A store that is down at start is waited for, not given up on: the daemon is often
     # started by the system before its database server is ready.
@@ -1072,9 +1106,13 @@ def _cmd_run(args: argparse.Namespace) -> int:
         store.close()
         raise
 
+    notifiers = build_notifiers(site)
+
     def ingest_job() -> None:
         watch = ingest_and_watch(site, store, source, run_ingest=lambda: _run_recorded(
             store, "ingest", lambda: ingest(site, store, source)))
+        if notifiers:
+            queue_alarms(site, store, now=datetime.now(UTC))
         if watch.error is not None:
             raise watch.error  # counted as a failed run; the alarms were judged
 
@@ -1084,8 +1122,14 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
     def report_job() -> None:
         now = datetime.now(UTC)
-        _run_recorded(store, "report", lambda: write_report(
-            site, store, day=now - timedelta(days=1), now=now))
+        day = now - timedelta(days=1)
+        path = _run_recorded(store, "report", lambda: write_report(
+            site, store, day=day, now=now))
+        if notifiers:
+            queue_digest(site, store, path, day=day, now=now)
+
+    def notify_job() -> None:
+        deliver(site, store, notifiers, now=datetime.now(UTC))
 
     def last_ok(job: str) -> datetime | None:
         runs = store.job_runs(limit=50, job=job)
@@ -1093,8 +1137,10 @@ def _cmd_run(args: argparse.Namespace) -> int:
         return None if ok.empty else pd.Timestamp(ok["started"].max()).to_pydatetime()
 
     health = args.health_file or site.report_folder / "branchwatch-health.json"
-    daemon = Daemon(site, {"ingest": ingest_job, "analyze": analyze_job, "report": report_job},
-                    health_file=health, last_ok=last_ok)
+    jobs = {"ingest": ingest_job, "analyze": analyze_job, "report": report_job}
+    if notifiers:
+        jobs["notify"] = notify_job
+    daemon = Daemon(site, jobs, health_file=health, last_ok=last_ok)
     print(f"branchwatch running for {site.name}; heartbeat in {health}; Ctrl-C stops")
     try:
         stats = daemon.run(duration_s=args.duration)
@@ -1103,6 +1149,50 @@ def _cmd_run(args: argparse.Namespace) -> int:
         store.close()
     print(f"stopped: runs {stats.runs}, failures {stats.failures}")
     return EXIT_OK
+
+
+def _register_notify(verbs: Any) -> None:
+    p = _add_verb(
+        verbs, "notify", _cmd_notify, "send what waits in the outbox; --test sends one",
+        """Send the messages that wait in the outbox ([notify.email], [notify.webhook]) and list
+those not sent. The daemon does this every minute by itself; this verb is for trying the
+settings: --test queues one test message on every channel and sends it now. A message
+that fails for now is tried again later (1, 2, 4 ... minutes apart, up to [notify]
+retry_for); one the server refuses for good (a wrong password, an unknown recipient) is
+given up at once and shown here, in 'status' and in the next morning report.""",
+    )
+    p.add_argument("--test", action="store_true", help="queue and send one test message")
+
+
+def _cmd_notify(args: argparse.Namespace) -> int:
+    from monitor.notifications import build_notifiers, deliver, queue_test
+
+    site = _site(args)
+    try:
+        notifiers = build_notifiers(site)
+    except ValueError as exc:
+        raise UserError(str(exc)) from None
+    if not notifiers:
+        raise UserError(f"{site.path.name}: no [notify.email] or [notify.webhook] section; "
+                        "nobody to tell (see config/example-site.toml)")
+    store = open_store(site.store_url)
+    try:
+        now = datetime.now(UTC)
+        if args.test:
+            queue_test(site, store, now=now)
+        done = deliver(site, store, notifiers, now=now)
+        waiting = store.outbox(status="pending")
+        failed = store.outbox(status="failed")
+    finally:
+        store.close()
+    print(f"sent {done.sent}; {done.retrying} to be tried again, {done.failed} given up now")
+    for n in notifiers:
+        print(f"  channel {n.name}: {n.describe()}")
+    for frame, what in ((waiting, "waiting"), (failed, "given up")):
+        for r in frame.itertuples():
+            print(f"  {what}: {r.channel!s} {r.subject!s}"
+                  + (f" ({r.last_error!s})" if r.last_error else ""))
+    return EXIT_OK if done.failed == 0 and not (args.test and done.sent == 0) else EXIT_USAGE
 
 
 _VERBS: list[Callable[[Any], None]] = [
@@ -1114,6 +1204,7 @@ _VERBS: list[Callable[[Any], None]] = [
     _register_log,
     _register_status,
     _register_alarms,
+    _register_notify,
     _register_report,
     _register_run,
 ]

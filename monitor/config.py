@@ -371,6 +371,70 @@ class ReportSection(_Strict):
     folder: str = "reports"
 
 
+class EmailSection(_Strict):
+    """[notify.email]: alarms and the morning digest by e-mail (SMTP)."""
+
+    host: str = Field(min_length=1)
+    port: int | None = Field(default=None, ge=1, le=65535)
+    security: Literal["starttls", "tls", "none"] = "starttls"
+    sender: str
+    to: list[str] = Field(min_length=1)
+    username: str | None = None
+    #: where the login's password is: an environment variable or a secrets file (never
+    #: this file)
+    password_env: str | None = None
+    secrets_file: str | None = None
+    timeout: Duration = 10.0
+    digest: bool = True
+
+    @model_validator(mode="after")
+    def _login(self) -> EmailSection:
+        from adapters.notify import check_address
+
+        check_address(self.sender, what="sender")
+        for addr in self.to:
+            check_address(addr, what="recipient")
+        given = [k for k in ("password_env", "secrets_file") if getattr(self, k)]
+        if self.username and len(given) != 1:
+            raise ValueError(
+                "a login ('username') needs exactly one of 'password_env' (an environment "
+                "variable) or 'secrets_file' holding the password; never the password itself")
+        if given and not self.username:
+            raise ValueError(f"'{given[0]}' is given but no 'username' to log in with")
+        return self
+
+
+class WebhookSection(_Strict):
+    """[notify.webhook]: alarms and the digest as JSON posted to a URL."""
+
+    #: the URL, when it carries no token; else ``url_env`` or ``secrets_file``
+    url: str | None = None
+    url_env: str | None = None
+    secrets_file: str | None = None
+    timeout: Duration = 10.0
+    digest: bool = True
+
+    @model_validator(mode="after")
+    def _one_url(self) -> WebhookSection:
+        given = [k for k in ("url", "url_env", "secrets_file") if getattr(self, k)]
+        if len(given) != 1:
+            raise ValueError("give exactly one of 'url', 'url_env' or 'secrets_file'")
+        return self
+
+
+class NotifySection(_Strict):
+    """[notify]: who is told what, and how hard branchwatch tries."""
+
+    #: alarms of this priority or higher are sent as soon as they activate
+    send_at_once: Literal["high", "medium", "low"] = "medium"
+    #: an alarm older than this when first seen (a backfill's replay) is not sent
+    fresh_for: Duration = 6 * 3600.0
+    #: a message that could not go for this long is given up (shown in status and report)
+    retry_for: Duration = 24 * 3600.0
+    email: EmailSection | None = None
+    webhook: WebhookSection | None = None
+
+
 class SiteFile(_Strict):
     site: SiteSection
     store: StoreSection = StoreSection()
@@ -380,6 +444,7 @@ class SiteFile(_Strict):
     analysis: AnalysisSection = AnalysisSection()
     schedule: ScheduleSection = ScheduleSection()
     report: ReportSection = ReportSection()
+    notify: NotifySection | None = None
     branch: list[BranchSection] = Field(min_length=1)
 
     @model_validator(mode="after")
@@ -459,6 +524,8 @@ class Site:
     report_folder: Path
     branches: tuple[BranchConfig, ...]
     tags: Mapping[str, TagSpec] = field(default_factory=dict)
+    #: [notify], with secrets-file paths made absolute (None: nobody is told)
+    notify: NotifySection | None = None
 
     @property
     def header(self) -> ParallelHeader:
@@ -619,7 +686,21 @@ def _build(doc: SiteFile, path: Path) -> Site:
         report_folder=report_folder,
         branches=tuple(branches),
         tags=tags,
+        notify=_notify(doc.notify, base),
     )
+
+
+def _notify(sec: NotifySection | None, base: Path) -> NotifySection | None:
+    """[notify] with its secrets files relative to the site file's folder."""
+    if sec is None:
+        return None
+    update: dict[str, Any] = {}
+    for name in ("email", "webhook"):
+        part = getattr(sec, name)
+        if part is not None and part.secrets_file:
+            update[name] = part.model_copy(
+                update={"secrets_file": str(base / part.secrets_file)})
+    return sec.model_copy(update=update) if update else sec
 
 
 def _running_pressure(doc: SiteFile, path: Path) -> float:

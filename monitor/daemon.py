@@ -62,6 +62,8 @@ __all__ = ["Daemon", "DaemonStats", "wait_for"]
 
 T = TypeVar("T")
 
+#: how often the outbox is looked at [s] (never less often than ingest)
+NOTIFY_EVERY_S = 60
 MISFIRE_GRACE_S = 3600  # a daily job up to an hour late still runs (e.g. after a reboot)
 #: The shortest ingest interval the scheduler accepts [s].
 MIN_INTERVAL_S = 10
@@ -119,6 +121,8 @@ class Daemon:
             "ingest": IntervalTrigger(seconds=every),
             "analyze": _daily(sched.analyze_at, self.site.timezone),
             "report": _daily(sched.report_at, self.site.timezone),
+            # the outbox: a message waits at most this long after it is queued
+            "notify": IntervalTrigger(seconds=min(NOTIFY_EVERY_S, every)),
         }
         now = datetime.now(UTC)
         for job_id, func in self.jobs.items():

@@ -179,6 +179,27 @@ maintenance_t = sa.Table(
     sa.Column("withdrawn_note", sa.Text()),
     sa.Column("replaces", sa.BigInteger()),
 )
+#: A message of any size (the morning report's HTML rides along in a digest).
+LongText = sa.Text().with_variant(mysql.LONGTEXT(), "mysql", "mariadb")
+#: 0007_outbox: messages waiting to be sent, sent, or given up on, one row per
+#: (idempotency key, channel)
+outbox_t = sa.Table(
+    "outbox",
+    metadata,
+    sa.Column("key", sa.String(200), primary_key=True),
+    sa.Column("channel", sa.String(60), primary_key=True),
+    sa.Column("kind", sa.String(20), nullable=False),
+    sa.Column("priority", sa.String(20), nullable=False),
+    sa.Column("subject", sa.Text(), nullable=False),
+    sa.Column("body", LongText, nullable=False),
+    sa.Column("created", T(), nullable=False),
+    sa.Column("status", sa.String(20), nullable=False),
+    sa.Column("attempts", sa.Integer(), nullable=False),
+    sa.Column("next_try", T()),
+    sa.Column("sent_at", T()),
+    sa.Column("last_error", sa.Text()),
+    sa.Index("ix_outbox_status_next_try", "status", "next_try"),
+)
 job_runs_t = sa.Table(
     "job_runs",
     metadata,

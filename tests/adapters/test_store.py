@@ -127,7 +127,7 @@ def test_migrations_create_schema_and_reopen_is_a_noop(opener: Any) -> None:
             MigrationContext.configure(
                 conn, opts={"version_table": "branchwatch_schema_version"}
             ).get_current_revision()
-            == "0006_maintenance_entries"
+            == "0007_outbox"
         )
         # The tables the store queries through agree with what the migration built.
         diff = compare_metadata(MigrationContext.configure(conn), tables.metadata)
@@ -138,7 +138,7 @@ def test_migrations_create_schema_and_reopen_is_a_noop(opener: Any) -> None:
     assert len(_all(second, ["FT-203"])) == 3
     with second.engine.connect() as conn:
         versions = conn.execute(sa.text("SELECT version_num FROM branchwatch_schema_version"))
-        assert [v for (v,) in versions] == ["0006_maintenance_entries"]
+        assert [v for (v,) in versions] == ["0007_outbox"]
 
 
 def test_store_batch_is_idempotent(store: SqlStore) -> None:

@@ -26,7 +26,7 @@ def _verbs() -> list[str]:
 
 
 def test_every_design_verb_is_there() -> None:
-    assert DESIGN_VERBS | {"ingest", "log"} == set(_verbs())
+    assert DESIGN_VERBS | {"ingest", "log", "notify"} == set(_verbs())
 
 
 @pytest.mark.parametrize("verb", _verbs())

@@ -195,7 +195,7 @@ def test_unreadable_secrets_file(
 @pytest.mark.parametrize(
     ("content", "says"),
     [
-        ("# only a comment\n\n", "holds no URL line"),
+        ("# only a comment\n\n", "holds no database URL"),
         ("password = hunter2-x\n", "db.secret: not a database URL"),
         (b"\xff\xfe\x00u\x00r\x00l", "not UTF-8"),
     ],
