@@ -303,7 +303,8 @@ class BranchSection(_Strict):
     description: str = ""
     flow: TagRef | None = None
     min_flow: FlowFloor = 0.0
-    cleaning_limit: float = Field(default=1.5, gt=1.0)
+    #: None: the site's [analysis] cleaning_limit
+    cleaning_limit: float | None = Field(default=None, gt=1.0)
     termination: TerminationSpec
     elements: list[ElementSpec] = Field(min_length=1)
     check_valve: bool | None = None
@@ -653,7 +654,7 @@ def _build(doc: SiteFile, path: Path) -> Site:
     for i, sec in enumerate(doc.branch):
         where = f"branch[{i}] ({sec.name})"
         try:
-            branches.append(_build_branch(sec, tags))
+            branches.append(_build_branch(sec, tags, doc.analysis.cleaning_limit))
         except (ValueError, KeyError) as exc:
             raise ValueError(f"{where}: {exc}") from None
 
@@ -764,7 +765,9 @@ def _resolve_sqlite(url: str, base: Path) -> str:
     return url
 
 
-def _build_branch(sec: BranchSection, tags: dict[str, TagSpec]) -> BranchConfig:
+def _build_branch(
+    sec: BranchSection, tags: dict[str, TagSpec], site_cleaning_limit: float
+) -> BranchConfig:
     elements: list[Any] = []
     pipe_d: float | None = None
     valve_tag = None
@@ -821,7 +824,8 @@ def _build_branch(sec: BranchSection, tags: dict[str, TagSpec]) -> BranchConfig:
         end_pressure_tag=end_tag,
         valve_position_tag=valve_tag,
         min_flow_m3s=sec.min_flow,
-        cleaning_limit=sec.cleaning_limit,
+        cleaning_limit=(sec.cleaning_limit if sec.cleaning_limit is not None
+                        else site_cleaning_limit),
         nominal=nominal,
     )
 

@@ -28,3 +28,13 @@ def test_exit_listed_on_an_open_discharge_gives_a_hint_that_works() -> None:
     assert "exit_loss_k" not in text  # a key the site file does not have
     branch["elements"].pop()  # the hint followed
     parse_site(doc, path="site.toml")
+
+
+def test_the_sites_cleaning_limit_is_every_branchs_default() -> None:
+    # issue 11: [analysis] cleaning_limit was documented but never read (1.5 always won)
+    doc = tomllib.loads(EXAMPLE.read_text())
+    doc["analysis"]["cleaning_limit"] = 1.8
+    doc["branch"][0]["cleaning_limit"] = 1.3
+    site = parse_site(doc, path="site.toml")
+    assert site.branches[0].cleaning_limit == 1.3  # the branch's own wins
+    assert {b.cleaning_limit for b in site.branches[1:]} == {1.8}
