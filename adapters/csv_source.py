@@ -28,7 +28,11 @@ lines consumed, the SHA-256 of those bytes, and, once the file has been read to 
 read from where it stopped (whole lines only: an unterminated last line waits for its
 newline); a file whose consumed part changed is read again from the start and counted as
 ``file_changed``; a new file whose bytes equal a completely read one is counted as
-``duplicate_file`` and not read. Files whose modification time is younger than
+``duplicate_file`` and not read. A file refused for its header (``bad_header``: it
+does not split into columns with the configured delimiter) or quarantined as a file is
+recorded with the parse settings it was refused under (delimiter, decimal mark, layout,
+tags) and read again from the start once those settings change — after the user sets
+the right delimiter, say. Files whose modification time is younger than
 ``settle_seconds`` are still being written and are skipped (``files_unsettled``).
 
 A line longer than 1 MiB (`MAX_LINE_BYTES`) is no record of an export: it is quarantined
@@ -225,6 +229,10 @@ class CsvSource(ReadingsSource):
         self.layout = layout
         self.delimiter = delimiter
         self.decimal = decimal
+        # what the parse of a file depends on: a file refused under other settings (a
+        # header that did not split) is looked at again when these change
+        self.settings_id = hashlib.sha256(repr(
+            (layout, delimiter, decimal, sorted(self.tags))).encode()).hexdigest()[:16]
         self.pattern = pattern
         self.settle_seconds = float(settle_seconds)
         self.chunk_rows = int(chunk_rows)
@@ -335,7 +343,8 @@ class CsvSource(ReadingsSource):
             if not isinstance(exc, (OSError, csv.Error, UnicodeError, pa.ArrowException)):
                 log.debug("%s: unexpected error while reading", key, exc_info=True)
         log.warning("%s: file quarantined: %s", key, problem.reason)
-        done = dict(last, quarantined=problem.reason, complete_sha256=None)
+        done = dict(last, quarantined=problem.reason, complete_sha256=None,
+                    settings=self.settings_id)
         try:
             st = file.stat()
             done.update(size=st.st_size, mtime_ns=st.st_mtime_ns, ctime_ns=st.st_ctime_ns)
@@ -361,7 +370,11 @@ class CsvSource(ReadingsSource):
         size, mtime_ns = st.st_size, st.st_mtime_ns
         # ctime too for a quarantined file: a chmod that makes it readable is a change
         ctime_ok = cursor.get("ctime_ns", st.st_ctime_ns) == st.st_ctime_ns
-        if cursor.get("size") == size and cursor.get("mtime_ns") == mtime_ns and ctime_ok:
+        refused = "bad_header" in cursor or "quarantined" in cursor
+        if refused and cursor.get("settings") != self.settings_id:
+            log.info("%s: refused under other [source] settings; read again", key)
+            cursor = {}  # from the start, as a new file
+        elif cursor.get("size") == size and cursor.get("mtime_ns") == mtime_ns and ctime_ok:
             return  # ledger quick check: unchanged since last read
         notes: Counter[str] = Counter()
         with open(file, "rb") as fh:
@@ -397,16 +410,14 @@ class CsvSource(ReadingsSource):
                 return
             layout = self._layout(header)
             if isinstance(layout, str):
-                log.warning("%s: %s; file skipped", key, layout)
-                fh.seek(0)
-                whole = hashlib.sha256(fh.read())
+                log.warning("%s: %s; file skipped until it or the settings change", key,
+                            layout)
                 quarantine = quarantine_frame([(key, 1, layout, header)])
-                yield self._batch(
-                    key,
-                    self._cursor(size, 0, whole, size, mtime_ns, {}),
-                    {"bad_header": 1},
-                    quarantine,
-                )
+                # not "read": kept apart until the file or the parse settings change
+                refused_cursor = {"bad_header": layout, "settings": self.settings_id,
+                                  "size": size, "mtime_ns": mtime_ns,
+                                  "ctime_ns": st.st_ctime_ns}
+                yield self._batch(key, refused_cursor, {"bad_header": 1}, quarantine)
                 return
             first: pd.DataFrame | None = None
             if offset == 0:

@@ -278,3 +278,20 @@ def test_header_with_another_delimiter_names_the_setting(tmp_path: Path) -> None
     got = ingest(CsvSource(TAGS, path=tmp_path, settle_seconds=0), {})
     reason = reasons(got.quarantined)[1]
     assert reason.startswith("no usable header line") and "delimiter = ';'" in reason, reason
+
+
+def test_a_file_refused_for_its_header_is_read_once_the_setting_is_fixed(
+    tmp_path: Path,
+) -> None:
+    # issue 12: after setting the delimiter the hint named, 'ingest' read 0 readings: the
+    # refused file had been marked as read
+    write(tmp_path / "a.csv", "timestamp;PT-100;FT-203\n2026-05-01T00:00:00Z;1;2\n")
+    cursors: dict[str, dict[str, Any]] = {}
+    first = ingest(CsvSource(TAGS, path=tmp_path, settle_seconds=0), cursors)
+    assert first.notes["bad_header"] == 1 and first.readings.empty
+    same = ingest(CsvSource(TAGS, path=tmp_path, settle_seconds=0), cursors)
+    assert same.batches == 0  # unchanged file, unchanged settings: not tried again
+    fixed = CsvSource(TAGS, path=tmp_path, settle_seconds=0, delimiter=";")
+    got = ingest(fixed, cursors)
+    assert sorted(got.readings["tag"]) == ["FT-203", "PT-100"]
+    assert ingest(fixed, cursors).batches == 0  # and then it is read, once
