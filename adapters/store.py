@@ -699,7 +699,9 @@ class SqlStore(ResultsStore):
                     "message": r["message"],
                 }
                 for k, r in zip(keys, recs, strict=True)
-                if before.get(k) != r["state"]
+                # a change of state; an alarm first seen in normal changed nothing
+                if before.get(k) != r["state"] and not (k not in before
+                                                        and r["state"] == "normal")
             ]
             upsert(conn, alarms_t, recs, ("branch", "condition"), replace=True)
             if events:
