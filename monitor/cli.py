@@ -823,8 +823,10 @@ def _analyze_with_progress(
 
     from monitor.jobs import analyze
 
+    # on a terminal the bar redraws itself; into a log file it writes a line each 30 s
+    tty = sys.stderr.isatty()
     with tqdm(total=None, unit="window", disable=quiet, file=sys.stderr,
-              desc="analysing") as bar:
+              desc="analysing", mininterval=0.1 if tty else 30.0) as bar:
         def progress(done: int, total: int) -> None:
             bar.total = total
             bar.update(done - bar.n)
