@@ -18,6 +18,7 @@ from datetime import UTC, datetime, timedelta
 from html.parser import HTMLParser
 from pathlib import Path
 from typing import Any
+from zoneinfo import ZoneInfo
 
 import numpy as np
 import pandas as pd
@@ -421,3 +422,12 @@ def test_monthly_job_fires_on_the_first_in_site_time_and_is_made_up_at_start(
     assert daemon.missed("monthly", trigger, now)  # August's run, not September's
     ran["monthly"] = datetime(2026, 9, 1, 4, 16, tzinfo=UTC)
     assert not daemon.missed("monthly", trigger, now)
+    # the daemon schedules it by its id, next on the 1st of a month at 06:15 site time
+    daemon.scheduler.start(paused=True)
+    try:
+        daemon.schedule()
+        job = daemon.scheduler.get_job("monthly")
+        local = job.next_run_time.astimezone(ZoneInfo(site.timezone))
+        assert (local.day, local.hour, local.minute) == (1, 6, 15)
+    finally:
+        daemon.scheduler.shutdown(wait=False)
