@@ -1,6 +1,6 @@
 """The daemon: APScheduler 3.x wiring around the jobs in `monitor.jobs`.
 
-Three jobs, each an idempotent function of (site, store, source, time):
+Four jobs, each an idempotent function of (site, store, source, time):
 
 * ``ingest``  every ``schedule.ingest_every`` (default 15 min): new readings in, alarms
   evaluated on what arrived (also when the ingest failed: stale data is then the news);
