@@ -14,6 +14,7 @@ import json
 import logging
 import os
 import sys
+import threading
 from collections.abc import Callable, Sequence
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
@@ -203,6 +204,7 @@ EXAMPLES: dict[str, tuple[str, ...]] = {
     "report": (
         "branchwatch report site.toml",
         "branchwatch report site.toml --date 2026-08-14",
+        "branchwatch report site.toml --month 2026-08",
     ),
     "run": (
         "branchwatch run site.toml",
@@ -1032,14 +1034,21 @@ def _print_alarms(frame: pd.DataFrame, store: ResultsStore, site: Site, *,
 
 def _register_report(verbs: Any) -> None:
     p = _add_verb(
-        verbs, "report", _cmd_report, "write the morning report (HTML)",
+        verbs, "report", _cmd_report, "write the morning or the monthly report (HTML)",
         """\
 Write the morning report for a day (default: yesterday, site time) into the site's
 report folder ([report] folder, default ./reports beside the site file): what needs
 attention, standing alarms, every branch's resistance ratio against its cleaning limit,
-the trends, data health. One self-contained HTML file; open it in any browser.""",
+the trends, data health. With --month, the monthly report instead: each branch's
+resistance ratio over the last 12-24 months with findings, maintenance and the fouling
+forecast marked, and the extra pumping, lost flow and their cost ([cost] energy_price)
+month by month; the month's daily fits go beside it as CSV. One self-contained HTML
+file each; open it in any browser.""",
     )
-    p.add_argument("--date", metavar="DAY", help="the day to report (site time)")
+    when = p.add_mutually_exclusive_group()
+    when.add_argument("--date", metavar="DAY", help="the day to report (site time)")
+    when.add_argument("--month", metavar="YYYY-MM",
+                      help="write the monthly report of this calendar month (site time)")
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
@@ -1047,6 +1056,8 @@ def _cmd_report(args: argparse.Namespace) -> int:
 
     site = _site(args)
     now = datetime.now(UTC)
+    if args.month:
+        return _monthly_report(site, args.month, now)
     day = (_parse_time(args.date, site, "--date") if args.date
            else now - timedelta(days=1))
     store = open_store(site.store_url)
@@ -1056,6 +1067,31 @@ def _cmd_report(args: argparse.Namespace) -> int:
     finally:
         store.close()
     print(f"morning report written to {path}")
+    return EXIT_OK
+
+
+def _monthly_report(site: Site, text: str, now: datetime) -> int:
+    from monitor.monthly import month_bounds, parse_month, write_monthly
+
+    try:
+        month = parse_month(text)
+    except ValueError as exc:
+        raise UserError(f"--month: {exc}") from None
+    start, end = month_bounds(site, month)
+    store = open_store(site.store_url)
+    try:
+        if store.read_fits(start=start, end=end).empty:
+            marks = store.watermarks().fits
+            held = ("no fits are stored yet" if marks.empty else
+                    f"fits are stored up to {_local(site, marks['last_window_end'].max())}")
+            raise UserError(f"--month {month}: no fits stored for that month ({held}); run "
+                            "'branchwatch analyze' for it first, or pick a month with fits")
+        path = _run_recorded(store, "monthly",
+                             lambda: write_monthly(site, store, month=month, generated=now))
+    finally:
+        store.close()
+    print(f"monthly report written to {path}")
+    print(f"its daily fits: {path.with_name(path.stem + '-fits.csv')}")
     return EXIT_OK
 
 
@@ -1071,8 +1107,9 @@ Run until stopped (Ctrl-C or SIGTERM): ingest new readings every
 [schedule] ingest_every and evaluate the alarms on them (low flow, frozen meter, stale
 data: also when the ingest failed); analyse the windows that closed since the last run
 every day at [schedule] analyze_at (site time), catching up after downtime; write the
-morning report at [schedule] report_at. On start it ingests at once, then runs an
-analysis or morning report whose scheduled time passed while it was not running. A
+morning report at [schedule] report_at, and on the 1st of each month, at the same time,
+the monthly report of the month before. On start it ingests at once, then runs an
+analysis, morning or monthly report whose scheduled time passed while it was not running. A
 results store that cannot be opened at start is tried again, waiting longer each time
 (up to 5 min), until it can. A failed job is logged and retried at its next run;
 stopping waits for the running job, and every job writes in transactions, so nothing is
@@ -1087,6 +1124,7 @@ half-stored.""",
 def _cmd_run(args: argparse.Namespace) -> int:
     from monitor.daemon import Daemon, wait_for
     from monitor.jobs import catch_up, ingest, ingest_and_watch, open_source, write_report
+    from monitor.monthly import previous_month, write_monthly
     from monitor.notifications import build_notifiers, deliver, queue_alarms, queue_digest
 
     site = _site(args)
@@ -1122,16 +1160,28 @@ def _cmd_run(args: argparse.Namespace) -> int:
         _run_recorded(store, "analyze",
                       lambda: catch_up(site, store, source, now=datetime.now(UTC)))
 
+    reports_lock = threading.Lock()
+
     def report_job() -> None:
         now = datetime.now(UTC)
         day = now - timedelta(days=1)
-        path = _run_recorded(store, "report", lambda: write_report(
-            site, store, day=day, now=now))
+        with reports_lock:
+            path = _run_recorded(store, "report", lambda: write_report(
+                site, store, day=day, now=now))
         if notifiers:
             queue_digest(site, store, path, day=day, now=now)
 
     def notify_job() -> None:
         deliver(site, store, notifiers, now=datetime.now(UTC))
+
+    def monthly_job() -> None:
+        # the month before this one; then the morning report of yesterday again, so that
+        # whichever of the two ran first on the 1st, it links to the new monthly report
+        now = datetime.now(UTC)
+        with reports_lock:
+            _run_recorded(store, "monthly", lambda: write_monthly(
+                site, store, month=previous_month(site, now), generated=now))
+            write_report(site, store, day=now - timedelta(days=1), now=now)
 
     def last_ok(job: str) -> datetime | None:
         runs = store.job_runs(limit=50, job=job)
@@ -1139,7 +1189,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
         return None if ok.empty else pd.Timestamp(ok["started"].max()).to_pydatetime()
 
     health = args.health_file or site.report_folder / "branchwatch-health.json"
-    jobs = {"ingest": ingest_job, "analyze": analyze_job, "report": report_job}
+    jobs = {"ingest": ingest_job, "analyze": analyze_job, "report": report_job,
+            "monthly": monthly_job}
     if notifiers:
         jobs["notify"] = notify_job
     daemon = Daemon(site, jobs, health_file=health, last_ok=last_ok)

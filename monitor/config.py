@@ -17,6 +17,7 @@ Exceptions::
 
 from __future__ import annotations
 
+import re
 import tomllib
 import zoneinfo
 from collections.abc import Mapping, Sequence
@@ -46,6 +47,7 @@ from model.network import ParallelHeader, PumpCurve
 __all__ = [
     "BranchConfig",
     "ConfigError",
+    "EnergyPrice",
     "Site",
     "load_site",
     "parse_site",
@@ -434,6 +436,39 @@ class NotifySection(_Strict):
     retry_for: Duration = 24 * 3600.0
     email: EmailSection | None = None
     webhook: WebhookSection | None = None
+@dataclass(frozen=True)
+class EnergyPrice:
+    """What a kWh of pump energy costs the site, in the site's currency."""
+
+    per_kwh: float  # [currency/kWh]
+    currency: str
+
+    def __str__(self) -> str:
+        return f"{self.per_kwh:g} {self.currency}/kWh"
+
+
+_PRICE = re.compile(r"\s*(\d+(?:\.\d*)?|\.\d+)\s*([A-Za-z]{1,5}|[€$£¥])\s*/\s*(kWh|MWh)\s*")
+
+
+def parse_energy_price(value: Any) -> EnergyPrice:
+    """``"0.14 EUR/kWh"`` or ``"140 USD/MWh"`` → price per kWh and currency.
+
+    >>> parse_energy_price("140 USD/MWh")
+    EnergyPrice(per_kwh=0.14, currency='USD')
+    """
+    match = _PRICE.fullmatch(value) if isinstance(value, str) else None
+    if match is None:
+        raise ValueError(f"{value!r} is not an energy price like '0.14 EUR/kWh' or "
+                         "'140 USD/MWh' (a number, a currency, per kWh or MWh)")
+    number, currency, unit = match.groups()
+    per_kwh = float(number) / (1000.0 if unit == "MWh" else 1.0)
+    return EnergyPrice(per_kwh=round(per_kwh, 12), currency=currency)
+
+
+class CostSection(_Strict):
+    """What the extra pump energy costs: ``energy_price = "0.14 EUR/kWh"``."""
+
+    energy_price: Annotated[EnergyPrice, BeforeValidator(parse_energy_price)]
 
 
 class SiteFile(_Strict):
@@ -446,6 +481,7 @@ class SiteFile(_Strict):
     schedule: ScheduleSection = ScheduleSection()
     report: ReportSection = ReportSection()
     notify: NotifySection | None = None
+    cost: CostSection | None = None
     branch: list[BranchSection] = Field(min_length=1)
 
     @model_validator(mode="after")
@@ -527,6 +563,8 @@ class Site:
     tags: Mapping[str, TagSpec] = field(default_factory=dict)
     #: [notify], with secrets-file paths made absolute (None: nobody is told)
     notify: NotifySection | None = None
+    #: the ``[cost]`` section's price (None: not configured; costs are shown in kWh only)
+    energy_price: EnergyPrice | None = None
 
     @property
     def header(self) -> ParallelHeader:
@@ -688,6 +726,7 @@ def _build(doc: SiteFile, path: Path) -> Site:
         branches=tuple(branches),
         tags=tags,
         notify=_notify(doc.notify, base),
+        energy_price=doc.cost.energy_price if doc.cost is not None else None,
     )
 
 

@@ -1,12 +1,14 @@
 """The daemon: APScheduler 3.x wiring around the jobs in `monitor.jobs`.
 
-Three jobs, each an idempotent function of (site, store, source, time):
+Four jobs, each an idempotent function of (site, store, source, time):
 
 * ``ingest``  every ``schedule.ingest_every`` (default 15 min): new readings in, alarms
   evaluated on what arrived (also when the ingest failed: stale data is then the news);
 * ``analyze`` daily at ``schedule.analyze_at`` site time: fit the windows that closed
   since the last run (catching up after downtime), diagnose, store findings;
-* ``report``  daily at ``schedule.report_at`` site time: the morning report.
+* ``report``  daily at ``schedule.report_at`` site time: the morning report;
+* ``monthly`` on the 1st of each month at ``schedule.report_at`` site time: the monthly
+  report of the month before (idempotent on its month: the file is named by it).
 
 APScheduler pitfalls handled here (its user guide and issue tracker): every job has an
 explicit id and ``replace_existing=True``, so a restart does not add copies;
@@ -69,8 +71,10 @@ MISFIRE_GRACE_S = 3600  # a daily job up to an hour late still runs (e.g. after 
 MIN_INTERVAL_S = 10
 #: The id of the one-off job that runs at start (ingest, then missed daily jobs).
 STARTUP_JOB = "start-up"
-#: Daily jobs that are made up for at start when missed, in this order.
-DAILY_JOBS = ("analyze", "report")
+#: Daily (and monthly) jobs that are made up for at start when missed, in this order.
+DAILY_JOBS = ("analyze", "report", "monthly")
+#: How far back the last scheduled time of each job is looked for at start.
+_HORIZON = {"monthly": timedelta(days=32)}
 
 
 @dataclass
@@ -123,6 +127,7 @@ class Daemon:
             "report": _daily(sched.report_at, self.site.timezone),
             # the outbox: a message waits at most this long after it is queued
             "notify": IntervalTrigger(seconds=min(NOTIFY_EVERY_S, every)),
+            "monthly": _monthly(sched.report_at, self.site.timezone),
         }
         now = datetime.now(UTC)
         for job_id, func in self.jobs.items():
@@ -150,7 +155,7 @@ class Daemon:
         """True when *job_id* last succeeded before its last scheduled time (or never)."""
         if self.last_ok is None:
             return False
-        due = last_fire_time(trigger, now)
+        due = last_fire_time(trigger, now, horizon=_HORIZON.get(job_id, timedelta(days=8)))
         if due is None:
             return False
         ok = self.last_ok(job_id)
@@ -246,6 +251,12 @@ class Daemon:
 def _daily(clock: str, timezone: str) -> CronTrigger:
     hour, minute = (int(x) for x in clock.split(":"))
     return CronTrigger(hour=hour, minute=minute, timezone=timezone)
+
+
+def _monthly(clock: str, timezone: str) -> CronTrigger:
+    """On the 1st of each month at *clock* (validated outside 01:00–04:00)."""
+    hour, minute = (int(x) for x in clock.split(":"))
+    return CronTrigger(day=1, hour=hour, minute=minute, timezone=timezone)
 
 
 def last_fire_time(trigger: Any, now: datetime, *, horizon: timedelta = timedelta(days=8)

@@ -927,6 +927,7 @@ def write_report(site: Site, store: ResultsStore, *, day: datetime, now: datetim
 
     Named by the day, so a second run the same day replaces the file (idempotent).
     """
+    from monitor.monthly import latest_monthly
     from monitor.report import ReportInputs, build_report, history_start, report_day_bounds
 
     day_start, day_end = report_day_bounds(site, day)
@@ -939,6 +940,7 @@ def write_report(site: Site, store: ResultsStore, *, day: datetime, now: datetim
         quarantine=store.quarantine_counts(), health=store.data_health(day_start, day_end),
         generated=now, newest_reading=max(newest_readings(store).values(), default=None),
         stale_after_s=stale_after(site), maintenance=store.maintenance(include_withdrawn=True),
+        monthly=latest_monthly(site.report_folder, before=day_end, site=site),
     )
     local = pd.Timestamp(day_start).tz_convert(site.timezone)
     path = site.report_folder / f"morning-{local:%Y-%m-%d}.html"

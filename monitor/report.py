@@ -17,9 +17,7 @@ from the finding's evidence), then the most certain.
 
 from __future__ import annotations
 
-import base64
 import html
-import io
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -33,6 +31,7 @@ import matplotlib.pyplot as plt
 import pandas as pd
 
 from monitor.config import Site
+from monitor.plots import png_data_uri
 
 __all__ = ["ReportInputs", "attention_order", "build_report"]
 
@@ -73,6 +72,8 @@ class ReportInputs:
     stale_after_s: float | None = None
     #: maintenance entries (the store's ``maintenance(include_withdrawn=True)``)
     maintenance: pd.DataFrame = field(default_factory=pd.DataFrame)
+    #: the latest monthly report: (file name beside this report, its month "YYYY-MM")
+    monthly: tuple[str, str] | None = None
 
 
 def build_report(inputs: ReportInputs) -> str:
@@ -85,6 +86,7 @@ def build_report(inputs: ReportInputs) -> str:
         f"<p class=sub>Morning report for {local_day:%A %d %B %Y} (site time "
         f"{_e(site.timezone)}). Generated {_local(site, inputs.generated)}.</p>",
         _data_age(inputs),
+        _monthly_link(inputs),
         f"<p class=caution>{_e(CAUTION)}</p>",
         _attention(inputs),
         _alarms(inputs),
@@ -117,6 +119,15 @@ def _data_age(inputs: ReportInputs) -> str:
     return f"<p class=sub>{_e(text)}</p>"
 
 
+def _monthly_link(inputs: ReportInputs) -> str:
+    if inputs.monthly is None:
+        return ""
+    name, month = inputs.monthly
+    label = f"{pd.Timestamp(month + '-01'):%B %Y}"
+    return (f"<p class=sub>The long view: <a href='{_e(name)}'>monthly report for "
+            f"{_e(label)}</a> (resistance over two years, energy and its cost by month).</p>")
+
+
 def _e(text: Any) -> str:
     return html.escape(str(text))
 
@@ -127,7 +138,7 @@ def _local(site: Site, when: Any) -> str:
     return f"{pd.Timestamp(when).tz_convert(site.timezone):%Y-%m-%d %H:%M}"
 
 
-def _head(title: str) -> str:
+def _head(title: str, extra_css: str = "") -> str:
     return f"""<!doctype html><html lang=en><head><meta charset=utf-8>
 <title>{_e(title)}</title>
 <style>
@@ -152,7 +163,7 @@ td.num, th.num {{ text-align: right; font-variant-numeric: tabular-nums; }}
 .ev {{ color: #444c5e; font-size: .9em; }}
 .over {{ color: #b3261e; font-weight: 600; }}
 img {{ max-width: 100%; }}
-</style></head><body>"""
+{extra_css}</style></head><body>"""
 
 
 def _num(ev: Mapping[str, Any], key: str) -> float | None:
@@ -377,12 +388,8 @@ def _trends(inputs: ReportInputs) -> str:
                  fontsize=9)
     fig.autofmt_xdate()
     fig.tight_layout()
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png")
-    plt.close(fig)
-    data = base64.b64encode(buf.getvalue()).decode("ascii")
     return ("<h2>Resistance trends</h2>"
-            f"<img alt='resistance ratio per branch and day' src='data:image/png;base64,{data}'>")
+            f"<img alt='resistance ratio per branch and day' src='{png_data_uri(fig)}'>")
 
 
 def _health(inputs: ReportInputs) -> str:
