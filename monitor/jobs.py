@@ -922,6 +922,23 @@ def catch_up(
 # the morning report
 
 
+def _report_time(site: Site, day_end: datetime) -> datetime:
+    """When the daemon writes the morning report of the day ending at *day_end*:
+    ``[schedule] report_at`` site time on the next day."""
+    hour, minute = (int(x) for x in site.schedule.report_at.split(":"))
+    local = pd.Timestamp(day_end).tz_convert(site.timezone).normalize()
+    at = local.replace(hour=hour, minute=minute)
+    return at.tz_convert("UTC").to_pydatetime()
+
+
+def _given_up(store: ResultsStore, *, since: datetime) -> pd.DataFrame:
+    """Messages the outbox gave up on that were queued at or after *since*."""
+    failed = store.outbox(status="failed")
+    if failed.empty:
+        return failed
+    return failed[pd.to_datetime(failed["created"], utc=True) >= pd.Timestamp(since)]
+
+
 def write_report(site: Site, store: ResultsStore, *, day: datetime, now: datetime) -> Path:
     """Write the morning report for the site-local day containing *day*; returns its path.
 
@@ -941,6 +958,8 @@ def write_report(site: Site, store: ResultsStore, *, day: datetime, now: datetim
         generated=now, newest_reading=max(newest_readings(store).values(), default=None),
         stale_after_s=stale_after(site), maintenance=store.maintenance(include_withdrawn=True),
         monthly=latest_monthly(site.report_folder, before=day_end, site=site),
+        as_of=min(now, _report_time(site, day_end)),
+        failed_messages=_given_up(store, since=day_start - timedelta(days=6)),
     )
     local = pd.Timestamp(day_start).tz_convert(site.timezone)
     path = site.report_folder / f"morning-{local:%Y-%m-%d}.html"

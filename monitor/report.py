@@ -74,6 +74,11 @@ class ReportInputs:
     maintenance: pd.DataFrame = field(default_factory=pd.DataFrame)
     #: the latest monthly report: (file name beside this report, its month "YYYY-MM")
     monthly: tuple[str, str] | None = None
+    #: the time the data's age is told at: the report's scheduled time after its day, or
+    #: when it was generated if that is earlier (None: *generated*)
+    as_of: datetime | None = None
+    #: messages the outbox gave up on lately (the store's ``outbox(status="failed")``)
+    failed_messages: pd.DataFrame = field(default_factory=pd.DataFrame)
 
 
 def build_report(inputs: ReportInputs) -> str:
@@ -108,9 +113,11 @@ def _data_age(inputs: ReportInputs) -> str:
     if newest is None:
         return ("<p class=stale>No readings stored yet: nothing below comes from the plant's "
                 "data. Check the historian export or database link.</p>")
-    age = (pd.Timestamp(inputs.generated) - pd.Timestamp(newest)).total_seconds()
-    text = (f"Data up to {_local(inputs.site, newest)}, {format_age(age)} old "
-            "when this report was generated.")
+    as_of = pd.Timestamp(inputs.as_of or inputs.generated)
+    newest = min(pd.Timestamp(newest), as_of)  # a past day's report: the data then
+    age = (as_of - newest).total_seconds()
+    text = (f"Data up to {_local(inputs.site, newest)}, {format_age(age)} old at "
+            f"{_local(inputs.site, as_of)}, the time of this report.")
     if inputs.stale_after_s is not None and age > inputs.stale_after_s:
         return (f"<p class=stale>STALE DATA: {_e(text)} No new readings for more than "
                 f"{_e(format_age(inputs.stale_after_s))}: the resistance ratios and findings "
@@ -287,11 +294,25 @@ def _evidence_text(site: Site, kind: str, ev: dict[str, Any]) -> str:
     return (" · " + " · ".join(_e(b) for b in bits)) if bits else ""
 
 
+def _undelivered(inputs: ReportInputs) -> str:
+    """The messages that could not be sent (the outbox gave up on them)."""
+    failed = inputs.failed_messages
+    if failed.empty:
+        return ""
+    items = "".join(
+        f"<li>{_e(r['channel'])}: {_e(r['subject'])} — {_e(r.get('last_error') or '')}</li>"
+        for r in failed.to_dict(orient="records"))
+    return (f"<p class=stale>{len(failed)} message(s) could not be sent and were given up "
+            "(check the [notify] settings; 'branchwatch notify CONFIG --test' tries them):"
+            f"</p><ul>{items}</ul>")
+
+
 def _alarms(inputs: ReportInputs) -> str:
     a = inputs.alarms
     standing = a[a["state"] != "normal"] if not a.empty else a
     if standing.empty:
-        return "<h2>Alarms</h2><p>No alarm standing (low flow, frozen meter).</p>"
+        return ("<h2>Alarms</h2><p>No alarm standing (low flow, frozen meter, stale data"
+                ").</p>" + _undelivered(inputs))
     rows = "".join(
         f"<tr><td>{_e(r['branch'])}</td><td>{_e(r['state'])}</td>"
         f"<td>{_local(inputs.site, r.get('activated'))}</td><td>{_e(r.get('message') or '')}"
@@ -299,7 +320,7 @@ def _alarms(inputs: ReportInputs) -> str:
         for r in standing.to_dict(orient="records")
     )
     return ("<h2>Alarms</h2><table><tr><th>branch</th><th>state (ISA-18.2)</th>"
-            f"<th>since</th><th>message</th></tr>{rows}</table>")
+            f"<th>since</th><th>message</th></tr>{rows}</table>" + _undelivered(inputs))
 
 
 def _branches(inputs: ReportInputs) -> str:
