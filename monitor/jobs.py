@@ -498,16 +498,23 @@ def _worker_window(span: tuple[datetime, datetime]) -> WindowAnalysis:
 
 
 def diagnosis_settings(site: Site) -> DiagnosisSettings:
-    """Diagnosis thresholds with the site's per-branch limits."""
+    """Diagnosis thresholds with the site's per-branch limits; messages state flows in
+    each flow tag's own unit."""
+    def unit(tag: str | None) -> str:
+        return site.tags[tag].unit if tag is not None and tag in site.tags else "m3/h"
+
     return DiagnosisSettings(
         branches={
             b.name: BranchSettings(
                 cleaning_limit_r=b.cleaning_limit,
                 min_flow_m3s=b.min_flow_m3s if b.min_flow_m3s > 0 else None,
+                flow_unit=unit(b.flow_tag),
             )
             for b in site.branches
         },
         timezone=site.timezone,
+        clear_after_s=float(site.analysis.clear_after),
+        balance_flow_unit=unit(site.total_flow_tag),
     )
 
 
