@@ -458,6 +458,15 @@ def summarize(results: list[SiteResult], site: Site, step_s: float) -> None:
     print(f"median |r - r_true| / r_true: {100 * med_err:.2f} % over {len(errors)} fits "
           f"(95th percentile {100 * p95:.2f} %); goal <= {100 * GOAL_R_ERROR:.0f} %: "
           f"{'met' if med_err <= GOAL_R_ERROR else 'NOT met'}")
+    per_key = Counter((r.seed, f.branch, f.kind) for r in results for f in r.findings)
+    worst = max(per_key.items(), key=lambda kv: kv[1], default=None)
+    open_keys = Counter((r.seed, f.branch, f.kind) for r in results for f in r.findings
+                        if f.end is None)
+    print(f"findings per site-year: {sum(per_key.values()) / len(results):.1f} "
+          f"({dict(Counter(k[2] for k in per_key.elements()))}); most of one (branch, kind): "
+          + (f"{worst[1]} ({worst[0][2]} on {worst[0][1]}, seed {worst[0][0]})" if worst
+             else "none")
+          + f"; most open at once for one (branch, kind): {max(open_keys.values(), default=0)}")
     alarm_load(results)
     misses = [(r.seed, inj, judge(inj, r, site)) for r in results for inj in r.injected]
     misses = [m for m in misses if not m[2].found_in_time]

@@ -17,19 +17,23 @@ import pandas as pd
 import pytest
 
 from adapters.base import open_store
+from monitor.cli import main
+from monitor.config import load_site
 from monitor.diagnose import BranchSettings, DiagnosisSettings, Finding, diagnose
 from monitor.findings import flow_pair
-from monitor.jobs import _finding_row
+from monitor.jobs import _finding_row, diagnose_site, write_report
 from tests.monitor.test_diagnose import T0, Fault, days_after_t0, make_history, run
 
+EXAMPLE_SITE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"
 MIN_FLOW = 0.030  # [m^3/s]; make_history's mean flow is about 0.032 [m^3/s]
 
 
-def _low_days(hist: pd.DataFrame, days: list[range], flow: float = 0.025) -> pd.DataFrame:
+def _low_days(hist: pd.DataFrame, days: list[range], flow: float = 0.025,
+              worst: float = 0.020) -> pd.DataFrame:
     hist = hist.copy()
     for span in days:
         hist.loc[hist.index.isin(list(span)), "mean_flow_m3s"] = flow
-    hist.loc[hist.index == days[0].start + 1, "mean_flow_m3s"] = 0.020  # the worst day
+    hist.loc[hist.index == days[0].start + 1, "mean_flow_m3s"] = worst  # the worst day
     return hist
 
 
@@ -179,3 +183,35 @@ def test_unlogged_cleaning_ends_the_fouling_finding_at_the_fall() -> None:
     assert "passing its cleaning limit 1.50 on" in f.message
     assert f.evidence["r_peak"] > 1.5 and f.evidence["r_after_fall"] < 1.1
     assert f.confidence > 0.9  # it was fouled; the fall does not unsay it
+
+
+def test_report_and_status_show_one_row_with_its_episodes(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # The example site's B1-reactor (minimum 70 m3/h) low on days 40-44, 47-49 and 52-55,
+    # the worst day 54.0 m3/h (0.015 m^3/s); the store diagnosed on day 58 (3 days after
+    # the last episode: still open). One row, with 3 episodes, 12 of the 18 days since
+    # day 40 in the condition (67 %), the last one from day 52 (2025-02-22).
+    site_file = tmp_path / "site.toml"
+    site_file.write_text(EXAMPLE_SITE.read_text())
+    (tmp_path / "inbox").mkdir()
+    site = load_site(site_file)
+    hist = _low_days(make_history(58, seed=28, branch="B1-reactor"),
+                     [range(40, 45), range(47, 50), range(52, 56)], flow=0.018, worst=0.015)
+    now = hist["window_end"].max().to_pydatetime()
+    store = open_store(site.store_url)
+    try:
+        store.upsert_fits(hist.assign(status="ok").to_dict(orient="records"))
+        found = diagnose_site(site, store, now=now)
+        path = write_report(site, store, day=now - timedelta(hours=12), now=now)
+    finally:
+        store.close()
+    low = _only(found, "low_flow")
+    assert len(low) == 1 and low[0].end is None and low[0].evidence["episodes"] == 3
+    page = path.read_text()
+    assert page.count("low flow</span>B1-reactor") == 1
+    assert "3 episodes, 67 % of the time, lowest 54.0 m3/h, last 2025-02-22" in page
+    assert main(["status", str(site_file)]) == 0
+    out = capsys.readouterr().out
+    rows = [line for line in out.splitlines() if "low_flow" in line]
+    assert len(rows) == 1 and "(3 episodes, 67 % of the time, lowest 54.0 m3/h" in rows[0], out
