@@ -215,3 +215,36 @@ def test_report_and_status_show_one_row_with_its_episodes(
     out = capsys.readouterr().out
     rows = [line for line in out.splitlines() if "low_flow" in line]
     assert len(rows) == 1 and "(3 episodes, 67 % of the time, lowest 54.0 m3/h" in rows[0], out
+
+
+def test_rows_of_a_store_written_one_per_day_are_closed(tmp_path: Path) -> None:
+    # A store written before one condition became one finding holds a low-flow row for
+    # each spell, the later ones open. The diagnosis of the whole history makes one
+    # finding of them: it updates the row with the same start and closes the others.
+    site_file = tmp_path / "site.toml"
+    site_file.write_text(EXAMPLE_SITE.read_text())
+    (tmp_path / "inbox").mkdir()
+    site = load_site(site_file)
+    hist = _low_days(make_history(58, seed=28, branch="B1-reactor"),
+                     [range(40, 45), range(47, 50), range(52, 56)], flow=0.018, worst=0.015)
+    now = hist["window_end"].max().to_pydatetime()
+    old = [{"branch": "B1-reactor", "kind": "low_flow", "start": T0 + timedelta(d),
+            "detected": T0 + timedelta(d + 1), "end": None, "confidence": 0.9,
+            "evidence": {"mean_flow_m3s": 0.018}, "message": "one day of it"}
+           for d in (40, 47, 52)]
+    later = {**old[0], "start": T0 + timedelta(70), "detected": T0 + timedelta(71)}
+    store = open_store(site.store_url)
+    try:
+        store.upsert_fits(hist.assign(status="ok").to_dict(orient="records"))
+        store.upsert_findings([*old, later])
+        diagnose_site(site, store, now=now)
+        rows = store.read_findings(kind="low_flow")
+    finally:
+        store.close()
+    by_day = {days_after_t0(pd.Timestamp(r.start)): r for r in rows.itertuples()}
+    assert set(by_day) == {40, 47, 52, 70}
+    assert pd.isna(by_day[40].end) and by_day[40].evidence["episodes"] == 3
+    for d in (47, 52):
+        assert pd.Timestamp(by_day[d].end) == pd.Timestamp(now)
+        assert by_day[d].evidence["superseded"] == 1.0 and "closed" in by_day[d].message
+    assert pd.isna(by_day[70].end)  # first reported after the diagnosis time: left alone
