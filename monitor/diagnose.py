@@ -12,7 +12,10 @@ branch and adds the findings that need no replay: **instrument** (windows whose 
 flagged a tag of the branch: frozen, 3 or more readings out of range, or spiky in
 ``spike_windows`` windows in a row; those windows never enter the ``r`` analyses, so a
 frozen meter is never called fouling) and **imbalance** (|Σ branch − total| beyond its
-combined uncertainty for ``imbalance_windows`` windows in a row). It also costs a
+combined uncertainty for ``imbalance_windows`` windows in a row). Both are one finding
+per condition: runs that come back within ``clear_after_s`` are episodes of one finding
+(count, share of the time, worst value, first and last episode in its evidence), which
+ends when its last episode did, once ``clear_after_s`` has passed. It also costs a
 resistance finding (`finding_cost`). The data types are in `monitor.findings` and
 importable from here.
 """

@@ -39,9 +39,16 @@ Causes and how they are told apart (DESIGN §3)
   a fitted rise of ``min_rise_r`` (relative) and ``min_rise_sigma`` σ, on
   ``trend_persistence`` windows in a row; the onset is the knot of the best "flat, then
   line" fit; the date ``r`` reaches the cleaning limit is forecast with an interval
-  (Theil–Sen slope interval widened by the Hamed–Rao factor).
+  (Theil–Sen slope interval widened by the Hamed–Rao factor). Once the recent level
+  passes the cleaning limit the finding says on which day, and its evidence ``priority``
+  turns high. A fall of ``r`` back into the lower half of the rise, below the limit, for
+  ``verify_windows`` usable windows with no maintenance logged is an unlogged cleaning
+  (or a removed restriction): the finding ends at the fall, its message says how to
+  log it, and a new baseline starts (`_unlogged_fall`).
 * **low_flow** — window mean flow below the branch minimum (the near-real-time alarm
-  is `monitor.alarms`; this is its daily record).
+  is `monitor.alarms`; this is its daily record). One finding per condition: spells
+  that come back within ``clear_after_s`` are episodes of it (`monitor.findings.Episodes`);
+  it ends when its last one did, once ``clear_after_s`` has passed without another.
 * **imbalance** — not a per-branch matter: `monitor.diagnose`.
 
 Baselines come from the commissioning period of the branch settings, else from the first
