@@ -20,14 +20,27 @@ the branch within the fault's horizon, before the right one), median detection d
 faulted branches before their fault); median |r − r_true| / r_true over usable fits of
 windows where r_true is constant and no meter is faulted. Then the goals, met or not.
 
+Then the alarm load (EEMUA 191) of the near-real-time checks the daemon runs at each ingest
+(`monitor.jobs.alarm_checks`: low flow per branch, frozen meter per flow and pressure tag;
+`monitor.alarms.evaluate_low_flow` / `evaluate_frozen` with the site's settings, as
+`monitor.jobs.evaluate_alarms` calls them) over each simulated year, summed by
+`monitor.alarms.alarm_rate_summary`: alarms per operator-hour (one operator for the site),
+the peak count in any 10 minutes, standing alarms (in alarm over 24 h) and chattering
+ones (3 activations within a minute). The stale-data alarm never fires on simulated
+data (no gaps) and is not counted.
+
+``--cache DIR`` keeps each site-year's analysis (fits, screening, balance, alarm journal)
+in DIR and reuses it, so a change of the diagnosis alone is measured in seconds.
+
     .venv/bin/python benchmarks/diagnosis.py [--sites 20] [--seed 1] [--step-s 300]
-        [--workers 2]
+        [--workers 2] [--cache DIR]
 """
 
 from __future__ import annotations
 
 import argparse
 import math
+import pickle
 import time
 import tomllib
 from collections import Counter
@@ -49,12 +62,19 @@ from model.simulate import (
     Simulation,
     StepRestriction,
 )
-from monitor.alarms import AlarmState, FrozenSettings, evaluate_frozen
+from monitor.alarms import (
+    AlarmEvent,
+    AlarmState,
+    FrozenSettings,
+    alarm_rate_summary,
+    evaluate_frozen,
+    evaluate_low_flow,
+)
 from monitor.analysis import analyze_window
 from monitor.config import Site, parse_site
 from monitor.demo import simulate_site
 from monitor.diagnose import Finding, diagnose
-from monitor.jobs import alarm_checks, diagnosis_settings, windows
+from monitor.jobs import alarm_checks, diagnosis_settings, low_flow_settings, windows
 
 EXAMPLE = Path(__file__).resolve().parent.parent / "config" / "example-site.toml"
 YEAR_START = datetime(2026, 1, 1, tzinfo=UTC)
@@ -178,11 +198,32 @@ class SiteResult:
     history: pd.DataFrame | None = None
     #: frozen-meter alarms of the ingest-time check: (tag, time the ingest raised it)
     frozen_alarms: list[tuple[str, datetime]] = field(default_factory=list)
+    #: the journal of the near-real-time alarms over the year (see `alarm_journal`)
+    alarm_events: list[AlarmEvent] = field(default_factory=list)
+    end: datetime = YEAR_START
 
 
-def run_site(seed: int, step_s: float) -> SiteResult:
-    """Simulate, analyse and diagnose one site-year."""
-    w0, c0 = time.perf_counter(), time.process_time()
+@dataclass
+class Analysed:
+    """What the analysis of one site-year leaves for the diagnosis (cached by --cache)."""
+
+    seed: int
+    injected: list[Injected]
+    history: pd.DataFrame
+    screening: pd.DataFrame
+    balance: pd.DataFrame | None
+    r_errors: list[float]
+    windows: int
+    end: datetime
+    frozen_alarms: list[tuple[str, datetime]]
+    alarm_events: list[AlarmEvent]
+    cpu_s: float
+
+
+def analyse_site(seed: int, step_s: float) -> Analysed:
+    """Simulate and analyse one site-year: the fit rows, screening and balance the store
+    would keep, and the year's alarm journal."""
+    c0 = time.process_time()
     site = site_for(step_s)
     rng = np.random.default_rng(seed)
     faults, injected = draw_faults(site, rng)
@@ -206,39 +247,75 @@ def run_site(seed: int, step_s: float) -> SiteResult:
             balance.append({k: result.balance[k] for k in BALANCE_KEEP if k in result.balance})
         for f in result.fits:
             r_errors += _r_error(site, sim, f, int(i0), int(i1), faulted_tags)
-    history = pd.DataFrame(fits)
+    journal = alarm_journal(site, sim)
+    frozen = [(e.condition.removeprefix("frozen "),
+               pd.Timestamp(e.time).ceil(pd.Timedelta(seconds=site.schedule.ingest_every))
+               .to_pydatetime())
+              for e in journal if e.condition.startswith("frozen") and e.action == "activated"]
+    return Analysed(seed, injected, pd.DataFrame(fits), pd.concat(screening, ignore_index=True),
+                    pd.DataFrame(balance) if balance else None, r_errors, len(spans),
+                    spans[-1][1], frozen, journal, time.process_time() - c0)  # fmt: skip
+
+
+def analysed_site(seed: int, step_s: float, cache: Path | None) -> Analysed:
+    """`analyse_site`, read from / kept in the cache folder when one is given."""
+    path = None if cache is None else cache / f"site-{seed}-{step_s:g}s.pickle"
+    if path is not None and path.exists():
+        with path.open("rb") as fh:
+            got: Analysed = pickle.load(fh)
+        return got
+    out = analyse_site(seed, step_s)
+    if path is not None:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        with path.open("wb") as fh:
+            pickle.dump(out, fh)
+    return out
+
+
+def run_site(seed: int, step_s: float, cache: Path | None = None) -> SiteResult:
+    """Simulate, analyse and diagnose one site-year."""
+    w0, c0 = time.perf_counter(), time.process_time()
+    site = site_for(step_s)
+    a = analysed_site(seed, step_s, cache)
     findings = diagnose(
-        history,
+        a.history,
         settings=diagnosis_settings(site),
-        now=spans[-1][1],
-        screening=pd.concat(screening, ignore_index=True),
-        balance=pd.DataFrame(balance) if balance else None,
+        now=a.end,
+        screening=a.screening,
+        balance=a.balance,
     )
-    res = SiteResult(seed, injected, findings, r_errors, 0.0, windows=len(spans),
-                     history=history, frozen_alarms=frozen_alarms(site, sim))
-    _false_findings(site, res, end)
-    res.wall_s, res.cpu_s = time.perf_counter() - w0, time.process_time() - c0
+    res = SiteResult(seed, a.injected, findings, a.r_errors, 0.0, windows=a.windows,
+                     history=a.history, frozen_alarms=a.frozen_alarms,
+                     alarm_events=a.alarm_events, end=a.end)  # fmt: skip
+    _false_findings(site, res, a.end)
+    res.wall_s = time.perf_counter() - w0
+    res.cpu_s = time.process_time() - c0 + (a.cpu_s if cache is None else 0.0)
     return res
 
 
-def frozen_alarms(site: Site, sim: Simulation) -> list[tuple[str, datetime]]:
-    """The near-real-time frozen-meter check (`monitor.alarms.evaluate_frozen`, as
-    `monitor.jobs.evaluate_alarms` runs it) over the year of every checked tag. The daemon
-    runs it at each ingest, every ``[schedule] ingest_every``: an alarm raised by a sample
-    counts from the first ingest at or after that sample."""
+def alarm_journal(site: Site, sim: Simulation) -> list[AlarmEvent]:
+    """The near-real-time checks (`monitor.jobs.alarm_checks`) over the year: low flow
+    (`evaluate_low_flow` with `monitor.jobs.low_flow_settings`) and frozen meter
+    (`evaluate_frozen`, ``[analysis] frozen_hold``), as `monitor.jobs.evaluate_alarms`
+    runs them at each ingest. The checks are incremental over samples (their state
+    carries the delays from one ingest to the next), so one call over the year gives the
+    journal the ingests would have written, up to the time each ingest happens."""
     hold = FrozenSettings(hold=timedelta(seconds=site.analysis.frozen_hold))
-    every = pd.Timedelta(seconds=site.schedule.ingest_every)
     times = pd.DatetimeIndex(sim.times).tz_localize("UTC")
-    out: list[tuple[str, datetime]] = []
+    now = times[-1].to_pydatetime()
+    out: list[AlarmEvent] = []
     for branch, condition, tag, _ in alarm_checks(site):
-        if not condition.startswith("frozen") or tag not in sim.values:
+        if tag not in sim.values:
             continue
         series = pd.Series(sim.values[tag], index=times)
-        _, events = evaluate_frozen(series, AlarmState(branch=branch, condition=condition),
-                                    hold, times[-1].to_pydatetime(), tag=tag)
-        out += [(tag, pd.Timestamp(e.time).ceil(every).to_pydatetime())
-                for e in events if e.action == "activated"]
-    return out
+        state = AlarmState(branch=branch, condition=condition)
+        if condition == "low_flow":
+            _, events = evaluate_low_flow(series, state,
+                                          low_flow_settings(site, site.branch(branch)), now)
+        else:
+            _, events = evaluate_frozen(series, state, hold, now, tag=tag)
+        out += events
+    return sorted(out, key=lambda e: e.time)
 
 
 def _r_error(site: Site, sim: Simulation, fit: dict[str, Any], i0: int, i1: int,
@@ -381,6 +458,16 @@ def summarize(results: list[SiteResult], site: Site, step_s: float) -> None:
     print(f"median |r - r_true| / r_true: {100 * med_err:.2f} % over {len(errors)} fits "
           f"(95th percentile {100 * p95:.2f} %); goal <= {100 * GOAL_R_ERROR:.0f} %: "
           f"{'met' if med_err <= GOAL_R_ERROR else 'NOT met'}")
+    per_key = Counter((r.seed, f.branch, f.kind) for r in results for f in r.findings)
+    worst = max(per_key.items(), key=lambda kv: kv[1], default=None)
+    open_keys = Counter((r.seed, f.branch, f.kind) for r in results for f in r.findings
+                        if f.end is None)
+    print(f"findings per site-year: {sum(per_key.values()) / len(results):.1f} "
+          f"({dict(Counter(k[2] for k in per_key.elements()))}); most of one (branch, kind): "
+          + (f"{worst[1]} ({worst[0][2]} on {worst[0][1]}, seed {worst[0][0]})" if worst
+             else "none")
+          + f"; most open at once for one (branch, kind): {max(open_keys.values(), default=0)}")
+    alarm_load(results)
     misses = [(r.seed, inj, judge(inj, r, site)) for r in results for inj in r.injected]
     misses = [m for m in misses if not m[2].found_in_time]
     if misses:
@@ -396,6 +483,48 @@ def summarize(results: list[SiteResult], site: Site, step_s: float) -> None:
             for f in r.false_findings:
                 print(f"  seed {r.seed} {f.branch:<14} {f.kind:<13} detected "
                       f"{pd.Timestamp(f.detected):%Y-%m-%d}  {f.message[:90]}")
+
+
+#: EEMUA 191 (REFERENCES.md): about one alarm per 10 min per operator is the most that can
+#: be handled in steady operation (6 per operator-hour); "a few per week" is what a
+#: healthy site should see (DESIGN §3).
+EEMUA_MAX_PER_HOUR = 6.0
+
+
+def alarm_load(results: list[SiteResult]) -> None:
+    """The alarm-rate figures (EEMUA 191) of the near-real-time alarms of each site-year,
+    one operator per site."""
+    print("\nalarm load of the near-real-time checks (EEMUA 191; one operator per site):")
+    total = hours = 0.0
+    peak = 0
+    standing: list[tuple[int, str, str, datetime]] = []
+    chatter: list[tuple[int, str, str]] = []
+    floods = 0
+    by_condition: Counter[str] = Counter()
+    for r in results:
+        if not r.alarm_events:
+            hours += (r.end - YEAR_START) / timedelta(hours=1)
+            continue
+        s = alarm_rate_summary(r.alarm_events, now=r.end)
+        total += s.activations
+        hours += (r.end - YEAR_START) / timedelta(hours=1)
+        peak = max(peak, s.max_in_10_min)
+        floods += len(s.floods)
+        standing += [(r.seed, b, c, t) for b, c, t in s.stale]
+        chatter += [(r.seed, b, c) for b, c in s.chattering]
+        by_condition.update("low flow" if e.condition == "low_flow" else "frozen meter"
+                            for e in r.alarm_events if e.action == "activated")
+    per_hour = total / hours if hours else math.nan
+    print(f"  activations: {total:.0f} over {hours / 8760:.1f} site-years "
+          f"({dict(by_condition)}) = {per_hour:.4f} per operator-hour, "
+          f"{per_hour * 24 * 7:.2f} per week (ceiling {EEMUA_MAX_PER_HOUR:g} per hour: "
+          f"{'met' if per_hour <= EEMUA_MAX_PER_HOUR else 'NOT met'})")
+    print(f"  peak in any 10 min: {peak}; floods (> 10 in 10 min): {floods}")
+    print(f"  standing alarms (in alarm > 24 h): {len(standing)}"
+          + "".join(f"\n    seed {sd} {b} {c} since {t:%Y-%m-%d %H:%M}"
+                    for sd, b, c, t in standing))
+    print(f"  chattering alarms (3 activations within 1 min): {len(chatter)}"
+          + "".join(f"\n    seed {sd} {b} {c}" for sd, b, c in chatter))
 
 
 def _unrelated(res: SiteResult) -> list[Finding]:
@@ -438,6 +567,8 @@ def main() -> None:
     parser.add_argument("--seed", type=int, default=1, help="first seed [-]")
     parser.add_argument("--step-s", type=float, default=300.0, help="sample step [s]")
     parser.add_argument("--workers", type=int, default=2, help="processes [-]")
+    parser.add_argument("--cache", type=Path, default=None,
+                        help="folder keeping each site-year's analysis for the next run")
     parser.add_argument("--detail", action="store_true",
                         help="print each site's fit history around its faults")
     args = parser.parse_args()
@@ -445,9 +576,10 @@ def main() -> None:
     w0, c0 = time.perf_counter(), time.process_time()
     if args.workers > 1:
         with ProcessPoolExecutor(max_workers=args.workers) as pool:
-            results = list(pool.map(run_site, seeds, [args.step_s] * len(seeds)))
+            results = list(pool.map(run_site, seeds, [args.step_s] * len(seeds),
+                                    [args.cache] * len(seeds)))
     else:
-        results = [run_site(s, args.step_s) for s in seeds]
+        results = [run_site(s, args.step_s, args.cache) for s in seeds]
     wall = time.perf_counter() - w0
     if args.detail:
         for res in results:

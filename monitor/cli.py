@@ -336,7 +336,22 @@ def _print_findings(site: Site, findings: Sequence[Any]) -> None:
     for f in findings:
         state = "open" if f.end is None else f"ended {_local(site, f.end)}"
         print(f"  {f.branch:<16} {f.kind:<14} since {_local(site, f.start)} ({state}, "
-              f"confidence {f.confidence:.2f}): {f.message}")
+              f"confidence {f.confidence:.2f}{_episodes(site, f.branch, f.kind, f.evidence)})"
+              f": {f.message}")
+
+
+def _episodes(site: Site, branch: str, kind: str, evidence: Any) -> str:
+    """", 3 episodes, 12 % of the time, lowest 55.2 m3/h" for a finding that has them; a
+    fouled branch past its cleaning limit adds ", priority high"."""
+    from monitor.findings import episode_text
+
+    tag = site.total_flow_tag if kind == "imbalance" else next(
+        (b.flow_tag for b in site.branches if b.name == branch), None)
+    unit = site.tags[tag].unit if tag is not None and tag in site.tags else "m3/h"
+    ev = dict(evidence or {})
+    text = episode_text(ev, timezone=site.timezone, flow_unit=unit)
+    high = ", priority high" if ev.get("priority") == 3.0 else ""
+    return (f", {text}" if text else "") + high
 
 
 def _jsonable(value: Any) -> Any:
@@ -802,7 +817,9 @@ def _cmd_status(args: argparse.Namespace) -> int:
         print(f"  {r.started:%Y-%m-%d %H:%M:%S}Z  {r.job:<8} {status}")
     print(f"\nopen findings: {len(open_findings)} (times in site time, {site.timezone})")
     for r in open_findings.itertuples():
-        print(f"  {r.branch:<16} {r.kind:<14} since {_local(site, r.start)}: {r.message}")
+        more = _episodes(site, str(r.branch), str(r.kind), r.evidence).removeprefix(", ")
+        print(f"  {r.branch:<16} {r.kind:<14} since {_local(site, r.start)}"
+              f"{f' ({more})' if more else ''}: {r.message}")
     if quarantine:
         print("\nquarantined rows by reason: "
               + ", ".join(f"{k} {v}" for k, v in sorted(quarantine.items())))

@@ -333,12 +333,22 @@ class AnalysisSection(_Strict):
     #: a tag whose newest reading is older than this raises a stale-data alarm; default
     #: (none given) max(1 h, 4 x [schedule] ingest_every, 3 x sample_period)
     stale_after: Duration | None = None
+    #: a condition that comes and goes (low flow, a sick meter, a header imbalance) is
+    #: one finding until it has stayed away this long (a week: the plant's load cycle)
+    clear_after: Duration = 7 * 86_400.0
 
     @field_validator("stale_after", "steady_window")
     @classmethod
     def _positive_age(cls, value: float | None) -> float | None:
         if value is not None and not value > 0:
             raise ValueError(f"must be a positive duration like '2 h', got {value} s")
+        return value
+
+    @field_validator("clear_after")
+    @classmethod
+    def _not_negative(cls, value: float) -> float:
+        if not value >= 0:
+            raise ValueError(f"must be a duration of 0 or more like '7 days', got {value} s")
         return value
 
 

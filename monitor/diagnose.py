@@ -12,7 +12,10 @@ branch and adds the findings that need no replay: **instrument** (windows whose 
 flagged a tag of the branch: frozen, 3 or more readings out of range, or spiky in
 ``spike_windows`` windows in a row; those windows never enter the ``r`` analyses, so a
 frozen meter is never called fouling) and **imbalance** (|Σ branch − total| beyond its
-combined uncertainty for ``imbalance_windows`` windows in a row). It also costs a
+combined uncertainty for ``imbalance_windows`` windows in a row). Both are one finding
+per condition: runs that come back within ``clear_after_s`` are episodes of one finding
+(count, share of the time, worst value, first and last episode in its evidence), which
+ends when its last episode did, once ``clear_after_s`` has passed. It also costs a
 resistance finding (`finding_cost`). The data types are in `monitor.findings` and
 importable from here.
 """
@@ -38,7 +41,9 @@ from monitor.findings import (
     TAIL_COLUMNS,
     BranchSettings,
     DiagnosisSettings,
+    Episodes,
     Finding,
+    flow_pair,
 )
 from monitor.replay import BranchReplay, numeric, read_tails
 
@@ -336,10 +341,39 @@ def _runs(starts: Sequence[pd.Timestamp], ends: Sequence[pd.Timestamp], bad: Seq
     return out
 
 
+def _episode_groups(runs: list[tuple[pd.Timestamp, pd.Timestamp, Any]],
+                    clear_after_s: float) -> list[list[tuple[pd.Timestamp, pd.Timestamp, Any]]]:
+    """Runs (start, end, payload) in time order, grouped into one condition each: a run
+    that begins less than *clear_after_s* after the previous one ended is an episode of
+    the same condition."""
+    groups: list[list[tuple[pd.Timestamp, pd.Timestamp, Any]]] = []
+    for run in runs:
+        if groups and (run[0] - groups[-1][-1][1]).total_seconds() < clear_after_s:
+            groups[-1].append(run)
+        else:
+            groups.append([run])
+    return groups
+
+
+def _episodes(group: Sequence[tuple[pd.Timestamp, pd.Timestamp, Any]]) -> Episodes:
+    eps = Episodes(lower_is_worse=False)
+    for a, b, _ in group:
+        eps.hold(a, b)
+        eps.clear()
+    return eps
+
+
+def _when(t: pd.Timestamp, cfg: DiagnosisSettings) -> str:
+    return f"{pd.Timestamp(t).tz_convert(cfg.timezone):%Y-%m-%d}"
+
+
 def _instrument_findings(name: str, flagged: pd.DataFrame, last_end: pd.Timestamp,
                          cfg: DiagnosisSettings) -> list[Finding]:  # fmt: skip
+    """One finding per sick meter: runs of flagged windows that come back within
+    ``clear_after_s`` are episodes of one finding, which ends when the last one did once
+    the meter has been well for ``clear_after_s``."""
     starts, ends = list(flagged["window_start"]), list(flagged["window_end"])
-    out = []
+    runs: list[tuple[pd.Timestamp, pd.Timestamp, Any]] = []
     for a, b, _ in _runs(starts, ends, [True] * len(starts), 1):
         last = (b if b is not None else len(starts)) - 1
         run = flagged.iloc[a : last + 1]
@@ -351,44 +385,75 @@ def _instrument_findings(name: str, flagged: pd.DataFrame, last_end: pd.Timestam
             if len(run) < cfg.spike_windows:
                 continue
             detected = ends[a + cfg.spike_windows - 1]
+        runs.append((starts[a], ends[last], (run, detected)))
+    out = []
+    for group in _episode_groups(runs, cfg.clear_after_s):
+        rows = pd.concat([g[2][0] for g in group])
+        counts = {c: float(rows[c].sum()) for c in ("frozen", "out_of_range", "spikes")}
+        flags = rows[["frozen", "out_of_range", "spikes"]].sum(axis=1)
         what = [c.replace("_", " ") for c, v in counts.items() if v > 0]
-        end = ends[last] if ends[last] < last_end else None
+        eps = _episodes(group)
+        gone = eps.gone(last_end, cfg.clear_after_s)
+        until = eps.last_end if gone else max(last_end, eps.last_end)
+        more = eps.describe(until, cfg.timezone)
+        since = f"; well again since {_when(eps.last_end, cfg)}" if gone else ""
+        tags = ", ".join(sorted(set(",".join(rows["tags"]).split(","))))
         out.append(Finding(
             branch=name, kind="instrument",
-            start=pd.Timestamp(run["first_flagged"].iloc[0]).to_pydatetime(),
-            detected=detected.to_pydatetime(),
-            end=None if end is None else end.to_pydatetime(),
+            start=pd.Timestamp(group[0][2][0]["first_flagged"].iloc[0]).to_pydatetime(),
+            detected=pd.Timestamp(group[0][2][1]).to_pydatetime(),
+            end=eps.last_end.to_pydatetime() if gone else None,
             confidence=0.9 if counts["frozen"] or counts["out_of_range"] else 0.7,
-            evidence={**counts, "windows": float(len(run))},
-            message=f"{name}: instrument {', '.join(sorted(set(run['tags'])))} looks faulty "
-            f"({', '.join(what)}); its windows are left out of the resistance analysis.",
+            evidence={**counts, "windows": float(len(rows)),
+                      "worst_window_flags": float(flags.max()), **eps.evidence(until)},
+            message=f"{name}: instrument {tags} "
+            f"{'looked' if gone else 'looks'} faulty ({', '.join(what)})"
+            f"{f' in {more}' if more else ''}{since}; its windows are left out of the "
+            "resistance analysis.",
         ))  # fmt: skip
     return out
 
 
 def _imbalance_findings(bal: pd.DataFrame, cfg: DiagnosisSettings) -> list[Finding]:
+    """One finding per imbalance condition (runs of ``imbalance_windows`` windows or more
+    beyond the uncertainty, coming back within ``clear_after_s``: episodes of it)."""
     out = []
     groups = bal.groupby("header") if "header" in bal.columns else [(cfg.header_name, bal)]
+    unit = cfg.balance_flow_unit
     for name, rows in groups:
         rows = rows.reset_index(drop=True)
         res = rows["residual_m3s"].astype(float).to_numpy()
         u = rows["uncertainty_m3s"].astype(float).to_numpy()
         bad = list(np.abs(res) > u)
         starts, ends = list(rows["window_start"]), list(rows["window_end"])
+        last_end = ends[-1] if ends else None
+        runs: list[tuple[pd.Timestamp, pd.Timestamp, Any]] = []
         for a, b, det in _runs(starts, ends, bad, cfg.imbalance_windows):
             last = (b if b is not None else len(bad)) - 1
-            ratio = float(np.mean(np.abs(res[a : last + 1]) / u[a : last + 1]))
-            mean = float(np.mean(res[a : last + 1]))
+            runs.append((starts[a], ends[last], (a, last, det)))
+        for group in _episode_groups(runs, cfg.clear_after_s):
+            idx = np.concatenate([np.arange(a, last + 1) for _, _, (a, last, _) in group])
+            ratio = float(np.mean(np.abs(res[idx]) / u[idx]))
+            mean = float(np.mean(res[idx]))
+            worst = float(res[idx][np.argmax(np.abs(res[idx]))])
             sign = "more" if mean > 0 else "less"
+            eps = _episodes(group)
+            assert last_end is not None
+            gone = eps.gone(last_end, cfg.clear_after_s)
+            until = eps.last_end if gone else last_end
+            more = eps.describe(until, cfg.timezone)
+            a0, _, det = group[0][2]
+            (size,), _lim = flow_pair([abs(mean)], 0.0, unit)
             out.append(Finding(
-                branch=str(name), kind="imbalance", start=starts[a].to_pydatetime(),
+                branch=str(name), kind="imbalance", start=starts[a0].to_pydatetime(),
                 detected=ends[det].to_pydatetime(),
-                end=None if b is None else starts[b].to_pydatetime(),
-                confidence=float(min(0.99, 1.0 - math.exp(-(ratio - 1.0) * (last - a + 1)))),
-                evidence={"mean_residual_m3s": mean, "uncertainty_m3s": float(np.mean(u)),
-                          "ratio_to_uncertainty": ratio, "windows": float(last - a + 1)},
-                message=f"{name}: the branch meters add up to {abs(mean) * 3600:.1f} m3/h "
+                end=eps.last_end.to_pydatetime() if gone else None,
+                confidence=float(min(0.99, 1.0 - math.exp(-(ratio - 1.0) * len(idx)))),
+                evidence={"mean_residual_m3s": mean, "uncertainty_m3s": float(np.mean(u[idx])),
+                          "ratio_to_uncertainty": ratio, "windows": float(len(idx)),
+                          "worst_residual_m3s": worst, **eps.evidence(until)},
+                message=f"{name}: the branch meters add up to {size} {unit} "
                 f"{sign} than the total meter, {ratio:.1f}× their combined uncertainty "
-                "(leak, unmetered draw or meter drift).",
+                f"(leak, unmetered draw or meter drift){f'; {more}' if more else ''}.",
             ))  # fmt: skip
     return out

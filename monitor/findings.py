@@ -1,21 +1,27 @@
 """What the diagnosis reports and what it reads: findings, thresholds, input columns.
 
-`Finding` is one diagnosed change of one branch; `DiagnosisSettings` and `BranchSettings`
-hold the thresholds; the ``*_COLUMNS`` describe the frames `monitor.diagnose.diagnose`
-takes. Everything here is plain data, shared by `monitor.diagnose` (the whole site) and
-`monitor.replay` (one branch's history).
+`Finding` is one diagnosed condition of one branch; `DiagnosisSettings` and
+`BranchSettings` hold the thresholds; the ``*_COLUMNS`` describe the frames
+`monitor.diagnose.diagnose` takes. `Episodes` keeps the episodes of a condition that comes
+and goes (low flow, a sick meter, a header imbalance): one finding per condition, not one
+per day, ended once the condition has stayed away for ``clear_after_s``. `flow_pair`
+writes a flow and its limit in the tag's own unit with the digits that show how they
+compare. Everything here is plain data and formatting, shared by `monitor.diagnose` (the
+whole site) and `monitor.replay` (one branch's history).
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import pandas as pd
+
+from adapters.units import from_si
 
 __all__ = [
     "BALANCE_COLUMNS",
@@ -24,11 +30,16 @@ __all__ = [
     "EVENT_WORDS",
     "HISTORY_COLUMNS",
     "KINDS",
+    "PRIORITIES",
     "SCREENING_COLUMNS",
     "TAIL_COLUMNS",
     "BranchSettings",
     "DiagnosisSettings",
+    "Episodes",
     "Finding",
+    "episode_text",
+    "flow_pair",
+    "percent",
 ]
 
 KINDS: tuple[str, ...] = (
@@ -43,6 +54,10 @@ END_BY_EVENT: dict[str, frozenset[str]] = {
 }
 #: Findings of a raised resistance ratio: an event ends them only when r fell after it.
 CHECKED_BY_FITS: frozenset[str] = frozenset({"fouling", "restriction"})
+#: A finding's priority, kept in its evidence as ``priority`` (evidence holds numbers
+#: only): the number → the word the report and the alarms show. Without one, a finding
+#: is "medium"; a fouled branch past its cleaning limit is "high".
+PRIORITIES: dict[float, str] = {1.0: "low", 2.0: "medium", 3.0: "high"}
 #: How the messages name the work of an event kind.
 EVENT_WORDS: dict[str, str] = {"cleaned": "cleaning", "valve_set": "valve setting"}
 
@@ -64,6 +79,11 @@ class Finding:
     confidence: float
     evidence: Mapping[str, float]
     message: str
+
+    @property
+    def priority(self) -> str:
+        """"low", "medium" or "high" (evidence ``priority``, see `PRIORITIES`)."""
+        return PRIORITIES.get(float(self.evidence.get("priority", 2.0)), "medium")
 
     def __post_init__(self) -> None:
         if self.kind not in KINDS:
@@ -87,6 +107,7 @@ class Finding:
             "detected": iso(self.detected),
             "end": iso(self.end),
             "confidence": round(float(self.confidence), 3),
+            "priority": self.priority,
             "evidence": {k: num(v) for k, v in self.evidence.items()},
             "message": self.message,
         }
@@ -101,11 +122,13 @@ class BranchSettings:
     min_flow_m3s : branch minimum flow [m^3/s]; None = no low-flow check
     commissioning : (start, end) UTC of the baseline period; None = the first
         ``baseline_windows`` good windows of the history
+    flow_unit : the unit of the branch's flow tag, in which messages state flows
     """
 
     cleaning_limit_r: float = 1.5
     min_flow_m3s: float | None = None
     commissioning: tuple[datetime, datetime] | None = None
+    flow_unit: str = "m3/h"
 
     def __post_init__(self) -> None:
         if not self.cleaning_limit_r > 1.0:
@@ -161,6 +184,13 @@ class DiagnosisSettings:
     #: usable windows after a cleaning or valve setting that judge whether it worked
     verify_windows: int = 3
     timezone: str = "UTC"  # the site's zone: dates in finding messages are site time
+    #: A condition that comes and goes (low flow, instrument, imbalance) is one finding
+    #: until it has stayed away this long [s]. A week by default: the longest regular
+    #: cycle of a plant's load is the week (weekend turndown), so a condition that comes
+    #: back within one is the same condition returning with the load; a week without it
+    #: is a condition gone.
+    clear_after_s: float = 7 * 86_400.0
+    balance_flow_unit: str = "m3/h"  # the total flow tag's unit, for imbalance messages
 
     def __post_init__(self) -> None:
         for name in ("baseline_windows", "level_windows", "min_trend_windows"):
@@ -169,6 +199,8 @@ class DiagnosisSettings:
         for name in ("step_z", "cusum_h", "min_rise_r", "min_sigma_r", "bp_step_z"):
             if not getattr(self, name) > 0:
                 raise ValueError(f"{name} must be positive, got {getattr(self, name)}")
+        if not self.clear_after_s >= 0:
+            raise ValueError(f"clear_after_s must be >= 0, got {self.clear_after_s}")
         if self.verify_windows < 1:
             raise ValueError(f"verify_windows must be at least 1, got {self.verify_windows}")
         if not 0 < self.trend_alpha < 1:
@@ -219,3 +251,122 @@ BALANCE_COLUMNS: tuple[str, ...] = (
     "window_start", "window_end", "residual_m3s", "uncertainty_m3s",
 )  # fmt: skip
 
+
+
+@dataclass
+class Episodes:
+    """The episodes of one condition that comes and goes, window by window.
+
+    Each episode runs from the start of its first window in the condition to the end of
+    its last; ``worst`` is the worst value seen in them (the lowest when
+    ``lower_is_worse``). Times are UTC.
+    """
+
+    spans: list[list[pd.Timestamp]] = field(default_factory=list)
+    worst: float = math.nan
+    lower_is_worse: bool = True
+    active: bool = False
+
+    def hold(self, start: pd.Timestamp, end: pd.Timestamp, value: float = math.nan) -> None:
+        """The window [start, end) is in the condition, with *value*."""
+        if self.active and self.spans:
+            self.spans[-1][1] = end
+        else:
+            self.spans.append([start, end])
+            self.active = True
+        if math.isfinite(value):
+            worse = (value < self.worst) if self.lower_is_worse else (value > self.worst)
+            if not math.isfinite(self.worst) or worse:
+                self.worst = value
+
+    def clear(self) -> None:
+        """The condition cleared: the current episode is over."""
+        self.active = False
+
+    @property
+    def last_end(self) -> pd.Timestamp:
+        return self.spans[-1][1]
+
+    def gone(self, t: pd.Timestamp, clear_after_s: float) -> bool:
+        """Cleared and away for at least *clear_after_s* at time *t*."""
+        return bool(self.spans) and not self.active and (
+            (t - self.last_end).total_seconds() >= clear_after_s
+        )
+
+    def evidence(self, until: pd.Timestamp) -> dict[str, float]:
+        """Count, share of the time from the first episode to *until*, hours in the
+        condition, first and last episode (UTC seconds since 1970)."""
+        inside = sum((b - a).total_seconds() for a, b in self.spans)
+        span = (max(until, self.last_end) - self.spans[0][0]).total_seconds()
+        return {
+            "episodes": float(len(self.spans)),
+            "share_of_time": inside / span if span > 0 else 1.0,
+            "hours_in_condition": inside / 3600.0,
+            "first_episode_start_s": self.spans[0][0].timestamp(),
+            "last_episode_start_s": self.spans[-1][0].timestamp(),
+            "last_episode_end_s": self.last_end.timestamp(),
+        }
+
+    def describe(self, until: pd.Timestamp, timezone: str) -> str:
+        """"3 episodes since 2026-03-02, 12 % of the time" (empty for a single one)."""
+        if len(self.spans) < 2:
+            return ""
+        share = self.evidence(until)["share_of_time"]
+        first = pd.Timestamp(self.spans[0][0]).tz_convert(timezone)
+        return f"{len(self.spans)} episodes since {first:%Y-%m-%d}, {percent(share)} of the time"
+
+
+def percent(share: float) -> str:
+    """A share as a percentage with the digits that keep a small one from reading 0."""
+    p = 100.0 * share
+    if p >= 10.0 or p == 0.0:
+        return f"{p:.0f} %"
+    if p >= 1.0:
+        return f"{p:.1f} %"
+    return f"{p:.2f} %"
+
+
+def flow_pair(values: Sequence[float], limit_m3s: float, unit: str) -> tuple[list[str], str]:
+    """Flows [m^3/s] and their limit [m^3/s] as text in *unit* ("31.5", "30.0"), all with
+    the same number of decimals: the fewest (at least one) at which every value that is
+    below (above) the limit still reads below (above) it — 31.5 L/min against 30 L/min
+    is not "1.9 below 1.8" in m3/h."""
+    conv = [float(v) for v in from_si([*values, limit_m3s], unit, "flow")]
+    *vals, lim = conv
+    for digits in range(1, 7):
+        ok = True
+        for v, raw in zip(vals, values, strict=True):
+            if not (math.isfinite(v) and float(raw) != limit_m3s):
+                continue
+            a, b = round(v, digits), round(lim, digits)
+            if (float(raw) < limit_m3s) != (a < b) or a == b:
+                ok = False
+                break
+        if ok:
+            break
+    return [f"{v:.{digits}f}" for v in vals], f"{lim:.{digits}f}"
+
+
+def episode_text(evidence: Mapping[str, Any], *, timezone: str, flow_unit: str = "m3/h") -> str:
+    """One line on a finding's episodes for the report and ``status``: "3 episodes, 12 %
+    of the time, lowest 55.2 m3/h, last 2026-05-01" ("" when it has no episode figures)."""
+    def num(key: str) -> float | None:
+        v = evidence.get(key)
+        return float(v) if isinstance(v, int | float) and math.isfinite(float(v)) else None
+
+    n, share = num("episodes"), num("share_of_time")
+    if n is None or share is None:
+        return ""
+    bits = [f"{n:.0f} episode{'s' if n != 1 else ''}", f"{percent(share)} of the time"]
+    low, qmin = num("lowest_flow_m3s"), num("min_flow_m3s")
+    if low is not None and qmin is not None:
+        (low_t,), _ = flow_pair([low], qmin, flow_unit)
+        bits.append(f"lowest {low_t} {flow_unit}")
+    worst = num("worst_residual_m3s")
+    if worst is not None:
+        (w_t,), _ = flow_pair([abs(worst)], 0.0, flow_unit)
+        bits.append(f"worst {'+' if worst > 0 else '-'}{w_t} {flow_unit}")
+    last = num("last_episode_start_s")
+    if last is not None and n > 1:
+        bits.append(f"last {pd.Timestamp(last, unit='s', tz='UTC').tz_convert(timezone):%Y-%m-%d}")
+    return ", ".join(bits)

@@ -498,16 +498,23 @@ def _worker_window(span: tuple[datetime, datetime]) -> WindowAnalysis:
 
 
 def diagnosis_settings(site: Site) -> DiagnosisSettings:
-    """Diagnosis thresholds with the site's per-branch limits."""
+    """Diagnosis thresholds with the site's per-branch limits; messages state flows in
+    each flow tag's own unit."""
+    def unit(tag: str | None) -> str:
+        return site.tags[tag].unit if tag is not None and tag in site.tags else "m3/h"
+
     return DiagnosisSettings(
         branches={
             b.name: BranchSettings(
                 cleaning_limit_r=b.cleaning_limit,
                 min_flow_m3s=b.min_flow_m3s if b.min_flow_m3s > 0 else None,
+                flow_unit=unit(b.flow_tag),
             )
             for b in site.branches
         },
         timezone=site.timezone,
+        clear_after_s=float(site.analysis.clear_after),
+        balance_flow_unit=unit(site.total_flow_tag),
     )
 
 
@@ -525,8 +532,38 @@ def diagnose_site(site: Site, store: ResultsStore, *, now: datetime) -> list[Fin
         balance=store.read_balance(end=now),
     )
     findings = [_with_cost(site, history, f) for f in findings]
-    store.upsert_findings([_finding_row(f) for f in findings])
+    rows = [_finding_row(f) for f in findings]
+    store.upsert_findings(rows + _superseded(store, findings, now))
     return findings
+
+
+def _superseded(store: ResultsStore, findings: Sequence[Finding], now: datetime
+                ) -> list[dict[str, Any]]:  # fmt: skip
+    """Stored open findings the diagnosis of the whole history no longer makes (a store
+    written before one condition became one finding holds a row per day of it): closed
+    at *now*, marked ``superseded`` in their evidence, so no condition keeps two open
+    rows. The diagnosis replays the whole history each run, so a finding it still makes
+    has the same (branch, kind, start) and is updated in place instead; one first
+    reported after *now* is left alone."""
+    def key(branch: Any, kind: Any, start: Any) -> tuple[str, str, pd.Timestamp]:
+        t = pd.Timestamp(start)
+        return str(branch), str(kind), t.tz_localize("UTC") if t.tzinfo is None else t
+
+    made = {key(f.branch, f.kind, f.start) for f in findings}
+    out = []
+    day = f"{pd.Timestamp(now):%Y-%m-%d}"
+    for r in store.read_findings(open_only=True).to_dict(orient="records"):
+        if key(r["branch"], r["kind"], r["start"]) in made or key(
+            "", "", r["detected"])[2] > pd.Timestamp(now):
+            continue  # still made, or first reported after *now* (a diagnosis of the past)
+        out.append({
+            **{k: r[k] for k in ("branch", "kind", "start", "detected", "confidence")},
+            "end": now, "evidence": {**dict(r.get("evidence") or {}), "superseded": 1.0},
+            "message": f"{r['message']} (Not found again by the diagnosis of {day} over the "
+                       "whole stored history: closed.)",
+        })
+        log.info("finding %s %s from %s superseded", r["branch"], r["kind"], r["start"])
+    return out
 
 
 def _finding_row(f: Finding) -> dict[str, Any]:

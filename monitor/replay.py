@@ -39,9 +39,16 @@ Causes and how they are told apart (DESIGN §3)
   a fitted rise of ``min_rise_r`` (relative) and ``min_rise_sigma`` σ, on
   ``trend_persistence`` windows in a row; the onset is the knot of the best "flat, then
   line" fit; the date ``r`` reaches the cleaning limit is forecast with an interval
-  (Theil–Sen slope interval widened by the Hamed–Rao factor).
+  (Theil–Sen slope interval widened by the Hamed–Rao factor). Once the recent level
+  passes the cleaning limit the finding says on which day, and its evidence ``priority``
+  turns high. A fall of ``r`` back into the lower half of the rise, below the limit, for
+  ``verify_windows`` usable windows with no maintenance logged is an unlogged cleaning
+  (or a removed restriction): the finding ends at the fall, its message says how to
+  log it, and a new baseline starts (`_unlogged_fall`).
 * **low_flow** — window mean flow below the branch minimum (the near-real-time alarm
-  is `monitor.alarms`; this is its daily record).
+  is `monitor.alarms`; this is its daily record). One finding per condition: spells
+  that come back within ``clear_after_s`` are episodes of it (`monitor.findings.Episodes`);
+  it ends when its last one did, once ``clear_after_s`` has passed without another.
 * **imbalance** — not a per-branch matter: `monitor.diagnose`.
 
 Baselines come from the commissioning period of the branch settings, else from the first
@@ -77,7 +84,9 @@ from monitor.findings import (
     TAIL_COLUMNS,
     BranchSettings,
     DiagnosisSettings,
+    Episodes,
     Finding,
+    flow_pair,
 )
 from monitor.trend import (
     TheilSen,
@@ -112,6 +121,9 @@ class _Open:
     note: str = ""  # what the last maintenance event on it did (added to the message)
     # the numbers of that event's check (kept apart: `_fouling` rewrites the evidence)
     event: dict[str, float] = field(default_factory=dict)
+    episodes: Episodes | None = None  # of a condition that comes and goes (low flow)
+    limit_passed: pd.Timestamp | None = None  # when a fouled r passed the cleaning limit
+    peak: float = math.nan  # highest recent level of r while open (fouling) [-]
 
     def close(self, branch: str, end: pd.Timestamp | None) -> Finding:
         return Finding(
@@ -345,6 +357,8 @@ class BranchReplay:
                 self._window(i)
         if self.verify is not None:
             self._settle(at_end=True)
+        if self.we:
+            self._expire(self.we[-1])
         return self.done + [f.close(self.name, None) for f in self.open.values()]
 
     def _window(self, i: int, *, low_flow: bool = True) -> None:
@@ -356,6 +370,7 @@ class BranchReplay:
                 self._pressures(i)
                 self._steps(i)
                 self._fouling(i)
+                self._unlogged_fall(i)
         elif self.ws[i] not in self.flagged and self.base is not None:
             # no usable r (too few steady samples), but a logged termination
             # pressure still shows a back-pressure step
@@ -945,6 +960,12 @@ class BranchReplay:
         settled = (1.0 - math.exp(-above / self.cfg.min_rise_r)
                    if above >= self.cfg.min_rise_sigma * self.base.sigma_r else 0.0)
         fouling.evidence["r_recent"] = level
+        if level >= limit and fouling.limit_passed is None:
+            # the date it passed: the first of the recent windows at or above the limit
+            fouling.limit_passed = min(self.ws[j] for j in self.trend[-7:] if self.r[j] >= limit)
+        passed = fouling.limit_passed
+        fouling.evidence["limit_passed_s"] = nan if passed is None else passed.timestamp()
+        fouling.evidence["priority"] = 2.0 if passed is None else 3.0  # `PRIORITIES`
         fouling.confidence = max(
             (1.0 - mk.p) * (1.0 - math.exp(-rise / self.cfg.min_rise_r)), settled
         )
@@ -957,8 +978,10 @@ class BranchReplay:
             fouling.evidence[key] = (
                 nan if eta is None else (t_last + eta * _DAY).timestamp()
             )
-        if cross.reached:
-            when = f"it is at or past the cleaning limit {limit:.2f}"
+        if passed is not None:
+            when = f"it passed its cleaning limit {limit:.2f} on {self._when(passed)}"
+        elif cross.reached:
+            when = f"it is at the cleaning limit {limit:.2f}"
         elif cross.eta is None:
             when = "the rate is too uncertain to forecast the cleaning date"
         else:
@@ -973,13 +996,64 @@ class BranchReplay:
             )
         else:
             span = float((self.we[pts[-1]] - self.ws[pts[0]]) / _DAY)
-            where = (f"at or past the cleaning limit {limit:.2f}" if level >= limit
-                     else f"below the cleaning limit {limit:.2f}")
+            where = (f"it passed its cleaning limit {limit:.2f} on {self._when(passed)}"
+                     if passed is not None else f"below the cleaning limit {limit:.2f}")
             fouling.message = (
                 f"{self.name} has fouled: resistance ratio {fouling.ref:.2f} → {level:.2f} "
                 f"since {self._when(fouling.start)}, not rising over the last "
                 f"{span:.0f} days ({fit.slope * 30:+.3f} per month); {where}."
             )
+
+    def _unlogged_fall(self, i: int) -> None:
+        """A fouled r back near its baseline with no maintenance logged: an unlogged
+        cleaning (or a removed restriction). Once ``verify_windows`` usable windows in a
+        row stand in the lower half of the rise (and below the cleaning limit) and the
+        fall from the peak is beyond the day-to-day scatter, the finding ends at the fall
+        and a new baseline is taken, as after a logged cleaning."""
+        f = self.open.get("fouling")
+        if f is None or self.base is None or not self.usable:
+            return
+        level = float(median(self.r[self.usable[-5:]]))
+        if not math.isfinite(f.peak) or level > f.peak:
+            f.peak = level
+        rise = f.peak - f.ref
+        if rise < self.cfg.min_rise_r * f.ref:
+            return
+        mid = f.ref + 0.5 * rise
+        run: list[int] = []
+        for j in reversed(self.usable):
+            if self.r[j] > mid:
+                break
+            run.append(j)
+        if len(run) < self.cfg.verify_windows:
+            return
+        after = float(median(self.r[run]))
+        scatter = 3.0 * self.base.sigma_r * f.peak / self.base.r0
+        if after >= self.bs.cleaning_limit_r or f.peak - after < scatter:
+            return
+        fall = run[-1]
+        at = self.at[fall]
+        day = self._when(at, fall)
+        date = f"{pd.Timestamp(at).tz_convert(self.cfg.timezone):%Y-%m-%d}"
+        passed = (f", passing its cleaning limit {self.bs.cleaning_limit_r:.2f} on "
+                  f"{self._when(f.limit_passed)}" if f.limit_passed is not None else "")
+        f.evidence.update({"r_peak": f.peak, "r_after_fall": after,
+                           "fall_s": pd.Timestamp(at).timestamp(), "unlogged": 1.0})  # fmt: skip
+        f.message = (
+            f"{self.name} fouled: resistance ratio {f.ref:.2f} → {f.peak:.2f} from "
+            f"{self._when(f.start)}{passed}; on {day} it fell back to {after:.2f} with no "
+            "maintenance logged: an unlogged cleaning (or a removed restriction). Record "
+            f"it with `branchwatch log SITE {self.name} --cleaned {date}`."
+        )
+        f.note = ""
+        logger.info("%s: r fell from %.3f to %.3f on %s, no maintenance logged",
+                    self.name, f.peak, after, day)  # fmt: skip
+        self._end("fouling", at)
+        rst = self.open.get("restriction")
+        if rst is not None and after < rst.ref + rst.step / 2:
+            self._end("restriction", at)
+        self.first_segment = False
+        self._new_segment()
 
     def _trend_ref(self, pts: Sequence[int]) -> float:
         """Reference level of a rise: the baseline, or the level after the last step."""
@@ -1038,25 +1112,70 @@ class BranchReplay:
         return None
 
     # -- low flow (daily record) -------------------------------------------------------
+    def _expire(self, t: pd.Timestamp) -> None:
+        """End a low-flow finding whose condition has stayed away ``clear_after_s`` by
+        *t*: it ended when its last episode did."""
+        lf = self.open.get("low_flow")
+        eps = None if lf is None else lf.episodes
+        if lf is not None and eps is not None and eps.gone(t, self.cfg.clear_after_s):
+            # its share of the time counts up to its end, not to the week after it
+            lf.evidence.update(eps.evidence(eps.last_end))
+            lf.message = self._low_flow_message(lf, eps, eps.last_end)
+            self._end("low_flow", eps.last_end)
+
     def _low_flow(self, i: int) -> None:
+        """One finding per low-flow condition: each run of windows whose mean flow is below
+        the minimum (cleared ``low_flow_deadband`` above it) is an episode of it."""
         qmin = self.bs.min_flow_m3s
+        if qmin is None:
+            return
+        self._expire(self.ws[i])
         q = self.col["mean_flow_m3s"][i]
-        if qmin is None or not math.isfinite(q) or self.ws[i] in self.flagged:
+        if not math.isfinite(q) or self.ws[i] in self.flagged:
             return
         lf = self.open.get("low_flow")
-        if lf is None and q < qmin:
-            self._open(_Open("low_flow", self.ws[i], self.we[i], 0.9, {}, ""))
-            lf = self.open["low_flow"]
-        if lf is not None and q < qmin * (1.0 + self.cfg.low_flow_deadband):
-            # the likely cause is whatever else is open on the branch, as it stands now
-            causes = [k.replace("_", "-") for k in self.open if k != "low_flow"]
-            cause = f"; likely cause: {', '.join(causes)}" if causes else ""
-            lf.evidence = {"mean_flow_m3s": q, "min_flow_m3s": qmin}
-            lf.message = (
-                f"{self.name}: mean flow {q * 3600:.1f} m3/h below its minimum "
-                f"{qmin * 3600:.1f} m3/h{cause}."
-            )
-        elif lf is not None and q >= qmin * (1.0 + self.cfg.low_flow_deadband):
-            self._end("low_flow", self.ws[i])
+        if lf is None:
+            if q >= qmin:
+                return
+            lf = _Open("low_flow", self.ws[i], self.we[i], 0.9, {}, "", episodes=Episodes())
+            self._open(lf)
+        eps = lf.episodes
+        assert eps is not None
+        clear = qmin * (1.0 + self.cfg.low_flow_deadband)
+        if q < qmin or (eps.active and q < clear):
+            eps.hold(self.ws[i], self.we[i], float(q))
+            lf.evidence["mean_flow_m3s"] = float(q)
+        else:
+            eps.clear()
+        lf.evidence.update({"min_flow_m3s": qmin, "clear_flow_m3s": clear,
+                            "lowest_flow_m3s": eps.worst, "in_condition": float(eps.active),
+                            **eps.evidence(self.we[i])})  # fmt: skip
+        lf.message = self._low_flow_message(lf, eps, self.we[i], i)
 
+    def _low_flow_message(self, lf: _Open, eps: Episodes, until: pd.Timestamp,
+                          i: int | None = None) -> str:
+        """The low-flow sentence, in the flow tag's unit, with the digits that show the
+        comparison it states."""
+        qmin, unit = float(lf.evidence["min_flow_m3s"]), self.bs.flow_unit
+        q = float(lf.evidence["mean_flow_m3s"])
+        (q_t, low_t), qmin_t = flow_pair([q, eps.worst], qmin, unit)
+        more = eps.describe(until, self.cfg.timezone)
+        lowest = f"lowest {low_t} {unit}" if len(eps.spans) > 1 or eps.worst != q else ""
+        extra = "; ".join(x for x in (more, lowest) if x)
+        extra = f" ({extra})" if extra else ""
+        if not eps.active:
+            a = self._when(eps.spans[-1][0])
+            b = self._when(eps.last_end)
+            return (f"{self.name}: mean flow was below its minimum {qmin_t} {unit} from {a} "
+                    f"to {b}{extra}; above it since.")  # fmt: skip
+        # the likely cause is whatever else is open on the branch, as it stands now
+        causes = [k.replace("_", "-") for k in self.open if k != "low_flow"]
+        cause = f"; likely cause: {', '.join(causes)}" if causes else ""
+        day = self._when(self.ws[i] if i is not None else eps.spans[-1][0])
+        if q < qmin:
+            state = f"below its minimum {qmin_t} {unit}"
+        else:
+            state = (f"back above its minimum {qmin_t} {unit} but within "
+                     f"{100 * self.cfg.low_flow_deadband:.0f} % of it")  # fmt: skip
+        return f"{self.name}: mean flow {q_t} {unit} on {day}, {state}{extra}{cause}."
 

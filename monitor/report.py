@@ -31,6 +31,7 @@ import matplotlib.pyplot as plt
 import pandas as pd
 
 from monitor.config import Site
+from monitor.findings import episode_text
 from monitor.plots import png_data_uri
 
 __all__ = ["ReportInputs", "attention_order", "build_report"]
@@ -249,7 +250,7 @@ def _attention(inputs: ReportInputs) -> str:
             f"</span>{_e(r['branch'])}</h3><p>{_e(r['message'])}</p>{forecast}"
             f"<p class=ev>since {_local(site, r['start'])} · first reported "
             f"{_local(site, r['detected'])} · confidence {float(r['confidence']):.0%}"
-            f"{_evidence_text(site, kind, ev)}</p></div>"
+            f"{_evidence_text(site, kind, ev, branch=str(r['branch']))}</p></div>"
         )
     return "\n".join(out)
 
@@ -281,7 +282,15 @@ def _forecast(site: Site, row: Mapping[Any, Any]) -> str:
             f"about <b>{_day(site, when)}</b>{_e(span)}.</p>")
 
 
-def _evidence_text(site: Site, kind: str, ev: dict[str, Any]) -> str:
+def _flow_unit(site: Site, kind: str, branch: str) -> str:
+    """The unit a finding's flows are stated in: its branch's flow tag's, or for a
+    header imbalance the total flow tag's (m3/h when neither is known)."""
+    tag = site.total_flow_tag if kind == "imbalance" else next(
+        (b.flow_tag for b in site.branches if b.name == branch), None)
+    return site.tags[tag].unit if tag is not None and tag in site.tags else "m3/h"
+
+
+def _evidence_text(site: Site, kind: str, ev: dict[str, Any], *, branch: str = "") -> str:
     bits = []
     if (q := _num(ev, "lost_flow_m3h")) is not None:
         bits.append(f"flow lost {q:.1f} m³/h")
@@ -291,6 +300,11 @@ def _evidence_text(site: Site, kind: str, ev: dict[str, Any]) -> str:
         bits.append(f"r rising {s * 30:.3f} per month")
     if kind == "back_pressure" and (s := _num(ev, "step_pa")) is not None:
         bits.append(f"step {s / 1e5:+.2f} bar")
+    if ev.get("priority") == 3.0:  # `monitor.findings.PRIORITIES`
+        bits.append("priority high")
+    unit = _flow_unit(site, kind, branch)
+    if episodes := episode_text(ev, timezone=site.timezone, flow_unit=unit):
+        bits.append(episodes)
     return (" · " + " · ".join(_e(b) for b in bits)) if bits else ""
 
 
