@@ -888,6 +888,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
     from monitor.demo import DEMO_START, prepare_demo
     from monitor.jobs import ingest, open_source, write_report
+    from monitor.monthly import previous_month, write_monthly
     from monitor.plots import plot_system_curve
     from monitor.whatif import CurveRequest, solve_curve
 
@@ -911,6 +912,9 @@ def _cmd_demo(args: argparse.Namespace) -> int:
                                         jobs=default_jobs())
         fits = store.read_fits()
         _write_fits_csv(fits, folder / "fits.csv")
+        # the last whole month of the period, then the morning report that links to it
+        monthly = write_monthly(site, store, month=previous_month(site, end),
+                                generated=datetime.now(UTC))
         report = write_report(site, store, day=end - timedelta(hours=12),
                               now=datetime.now(UTC))
     finally:
@@ -925,6 +929,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     for name in ("site.toml", "findings.json", "fits.csv", "system-curve.png"):
         print(f"  {name}")
     print(f"  {report.relative_to(folder)}   <- the morning report: open it in a browser")
+    print(f"  {monthly.relative_to(folder)}   <- the long view of the last whole month")
     print(f"\ntry: branchwatch status {paths.site_file}")
     return EXIT_OK
 
