@@ -17,6 +17,7 @@ only the knowledge that the branch cannot flow keeps it from being called frozen
 
 from __future__ import annotations
 
+import html
 import math
 import os
 import time
@@ -41,7 +42,9 @@ from monitor.jobs import (
     ingest_and_watch,
     open_source,
     replay_alarms,
+    write_report,
 )
+from monitor.report import CAUTION
 
 TZ = "Europe/Berlin"
 #: the first site-local midnight of the data (winter: UTC+1)
@@ -224,6 +227,13 @@ def test_backflow_finding_one_per_condition(open_rig: Rig) -> None:
     assert ev["load_at_worst_m3h"] < 1.0  # no flow at night
     assert f.start == START  # in set-back from the first sample
     assert "T1-tank" in f.message and "check valve" in f.message and "bar" in f.message
+    # the report's safety caution names the hazard, branch and margin, before the
+    # standing caution (issue 8 part 4; DESIGN §6)
+    text = write_report(rig.site, rig.store, day=START + timedelta(days=DAYS - 1),
+                        now=START + timedelta(days=DAYS)).read_text(encoding="utf-8")
+    named = text.index("Back-flow hazard:</strong> T1-tank (header below its static "
+                       f"back-pressure by up to {abs(ev['worst_margin_bar']):.2f} bar")
+    assert named < text.index(html.escape(CAUTION))
 
 
 def test_check_valve_means_no_backflow_alarm_or_finding(guarded_rig: Rig) -> None:
@@ -237,6 +247,10 @@ def test_check_valve_means_no_backflow_alarm_or_finding(guarded_rig: Rig) -> Non
     result = analyze(rig.site, rig.store, rig.source, START, START + timedelta(days=DAYS))
     assert not [f for f in result.findings if f.kind == "backflow_hazard"]
     assert "backflow" not in set(rig.store.read_alarms()["condition"])
+    text = write_report(rig.site, rig.store, day=START + timedelta(days=DAYS - 1),
+                        now=START + timedelta(days=DAYS)).read_text(encoding="utf-8")
+    # the standing caution only
+    assert html.escape(CAUTION) in text and "Back-flow hazard" not in text
 
 
 def test_healthy_meter_on_a_branch_that_stops_at_night(guarded_rig: Rig) -> None:
