@@ -339,7 +339,7 @@ def analyze(
         n_ok += sum(1 for f in result.fits if f.get("status") in ("ok", "not_identifiable"))
         if progress is not None:
             progress(i + 1, len(spans))
-    findings = diagnose_site(site, store, now=end, source=source)
+    findings = diagnose_site(site, store, now=end, source=source, since=start)
     log.info(
         "analysis %s .. %s: %d windows, %d fits (%d usable), %d findings",
         start, end, len(spans), n_fits, n_ok, len(findings),
@@ -525,12 +525,17 @@ def diagnosis_settings(site: Site) -> DiagnosisSettings:
 
 
 def diagnose_site(
-    site: Site, store: ResultsStore, *, now: datetime, source: ReadingsSource | None = None
+    site: Site, store: ResultsStore, *, now: datetime, source: ReadingsSource | None = None,
+    since: datetime | None = None,
 ) -> list[Finding]:
     """Diagnose the stored history up to *now*, cost the findings, store them.
 
     The back-flow hazard findings read the readings themselves (from *source* when it
-    keeps them, else from the store)."""
+    keeps them, else from the store): over the whole history, or — with *since*, the
+    start of the period just analysed — from the earliest of *since*, the start of an
+    open back-flow finding and one finding-clear time (`BackflowFindingSettings`) before
+    *now*: a daily run then reads days, not the years behind it, and an open finding
+    keeps its start."""
     history = store.read_fits(end=now)
     if history.empty:
         return []
@@ -541,7 +546,7 @@ def diagnose_site(
         now=now,
         screening=store.read_screening(end=now),
         balance=store.read_balance(end=now),
-        backflow=_backflow_inputs(site, store, source, history, now),
+        backflow=_backflow_inputs(site, store, source, history, now, since),
     )
     findings = [_with_cost(site, history, f) for f in findings]
     store.upsert_findings([_finding_row(f) for f in findings])
@@ -550,7 +555,7 @@ def diagnose_site(
 
 def _backflow_inputs(
     site: Site, store: ResultsStore, source: ReadingsSource | None, history: pd.DataFrame,
-    now: datetime,
+    now: datetime, since: datetime | None,
 ) -> tuple[pd.DataFrame, Any] | None:
     """The hazard samples over the analysed history, for the ``backflow_hazard`` findings
     (None when no branch can run back: every branch has a check valve or ends open)."""
@@ -558,6 +563,13 @@ def _backflow_inputs(
     if not branches:
         return None
     start = pd.Timestamp(history["window_start"].min()).to_pydatetime()
+    settings = settings_for(site, branches)
+    if since is not None:
+        stored = store.read_findings()
+        opened = [pd.Timestamp(t).to_pydatetime() for t in stored["start"][
+            (stored["kind"] == "backflow_hazard") & stored["end"].isna()]] if not stored.empty \
+            else []
+        start = max(start, min([since, now - settings.clear_after - site.window, *opened]))
     tags = {site.header_pressure_tag, site.header_temperature_tag, site.total_flow_tag,
             site.pump_speed_tag}
     for b in branches:
@@ -565,7 +577,7 @@ def _backflow_inputs(
     wanted = sorted(t for t in tags if t is not None)
     readings = (read_tags(site, store, source, wanted, start, now) if source is not None
                 else store.read_readings(wanted, start, now))
-    return hazard_samples(site, readings), settings_for(site, branches)
+    return hazard_samples(site, readings), settings
 
 
 def _finding_row(f: Finding) -> dict[str, Any]:

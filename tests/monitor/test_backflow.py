@@ -321,3 +321,22 @@ def test_analyze_alarms_option(open_rig: Rig, capsys: pytest.CaptureFixture[str]
     assert (journal["condition"] == "backflow").sum() == 5  # in, out, in, out, in
     assert not math.isnan(float(rig.store.read_alarms().set_index("condition")
                                 .loc["backflow", "value"]))
+
+
+def test_daily_runs_keep_one_finding(open_rig: Rig) -> None:
+    # the daemon analyses one day at a time and reads only the days it needs: ten daily
+    # runs leave the same one finding, with its first start, as one backfill would
+    rig = open_rig
+    days = 10
+    rig.drop(START, START + timedelta(days=days), "all")
+    ingest(rig.site, rig.store, rig.source)
+    for d in range(days):
+        analyze(rig.site, rig.store, rig.source, START + timedelta(days=d),
+                START + timedelta(days=d + 1))
+    stored = rig.store.read_findings()
+    stored = stored[stored["kind"] == "backflow_hazard"]
+    assert len(stored) == 1, stored
+    row = stored.iloc[0]
+    assert pd.Timestamp(row["start"]) == pd.Timestamp(START) and pd.isna(row["end"])
+    assert row["evidence"]["episodes"] == days + 1
+    assert row["evidence"]["share_of_time"] == pytest.approx(7 / 24, abs=0.02)
