@@ -1,7 +1,9 @@
 """Near-real-time alarms with the ISA-18.2 / IEC 62682 alarm life cycle.
 
-Three conditions, each its own alarm: **low flow** per branch, **frozen** transmitter per
-flow and pressure tag, and **stale data** (communication loss) per tag and per source.
+Four conditions, each its own alarm: **low flow** per branch, **frozen** transmitter per
+flow and pressure tag, **stale data** (communication loss) per tag and per source, and the
+high-priority **back-flow hazard** per branch without a check valve (the header below the
+branch's static back-pressure, `evaluate_backflow`).
 The checks run on every ingest — independent of the daily fit, and the stale-data check
 also when the ingest failed, which is when it matters. Everything here is a pure
 function of its inputs: the caller keeps the `AlarmState` (in the results store) and
@@ -49,12 +51,14 @@ from enum import StrEnum
 
 import pandas as pd
 
+from adapters.units import from_si
 from monitor.diagnose import Finding
 
 __all__ = [
     "AlarmEvent",
     "AlarmRateSummary",
     "AlarmState",
+    "BackflowAlarmSettings",
     "FrozenSettings",
     "LowFlowSettings",
     "StaleSettings",
@@ -62,10 +66,13 @@ __all__ = [
     "acknowledge",
     "alarm_rate_summary",
     "describe_condition",
+    "evaluate_backflow",
     "evaluate_frozen",
     "evaluate_low_flow",
     "evaluate_stale",
     "format_age",
+    "format_pair",
+    "priority_of",
     "remove_from_service",
     "reset",
     "return_to_service",
@@ -177,6 +184,43 @@ def _event(s: AlarmState, t: datetime, action: str, by: str = "") -> AlarmEvent:
     return AlarmEvent(t, s.branch, s.condition, action, s.state, s.last_value, s.message, by)
 
 
+def format_pair(value: float, limit: float, *, digits: int = 1, most: int = 6) -> tuple[str, str]:
+    """*value* and *limit* with the fewest decimals (at least *digits*) that keep the
+    comparison between them as it is: a value below the limit never reads equal to or
+    above it after rounding.
+
+    >>> format_pair(31.5, 30.0), format_pair(29.96, 30.0)
+    (('31.5', '30.0'), ('29.96', '30.00'))
+    """
+    for d in range(digits, most + 1):
+        a, b = f"{value:.{d}f}", f"{limit:.{d}f}"
+        if (float(a) < float(b)) == (value < limit) and (float(a) > float(b)) == (value > limit):
+            return a, b
+    return f"{value:.{most}f}", f"{limit:.{most}f}"
+
+
+def _in_unit(value_si: float, unit: str, kind: str) -> float:
+    """An SI value in the tag's own unit (the identity when the unit is SI already)."""
+    return float(from_si(value_si, unit, kind))
+
+
+def _site_time(t: datetime, timezone: str) -> str:
+    """A time as the site reads it: '2026-03-04 02:40 site time' in the site's zone."""
+    return f"{pd.Timestamp(t).tz_convert(timezone):%Y-%m-%d %H:%M} site time"
+
+
+#: Alarm priority per condition (ISA-18.2 priorities: what an operator answers first).
+#: Back-flow can contaminate the supply: high. Low flow overheats equipment: high too
+#: when it lasts, but the tool advises and its limit is an engineering minimum: medium.
+#: Instrument and communication alarms: low (our choice).
+PRIORITIES: dict[str, str] = {"backflow": "high", "low_flow": "medium"}
+
+
+def priority_of(condition: str) -> str:
+    """'high', 'medium' or 'low' for an alarm condition (see `PRIORITIES`)."""
+    return PRIORITIES.get(condition, "low")
+
+
 def _cause(branch: str, diagnosis: Sequence[Finding] | None) -> str:
     """The likely cause named from the latest open finding of the branch."""
     if not diagnosis:
@@ -201,9 +245,11 @@ def _annunciate_on(s: AlarmState, t: datetime, message: str) -> tuple[AlarmState
 
 
 def _annunciate_off(
-    s: AlarmState, t: datetime, latching: bool
+    s: AlarmState, t: datetime, latching: bool, message: str = ""
 ) -> tuple[AlarmState, list[AlarmEvent]]:
-    s = dataclasses.replace(s, active=False, clear_since=None)
+    """The condition cleared: *message* says so (it replaces the activation text, which
+    it should quote where that helps; the journal's "returned" entry carries it)."""
+    s = dataclasses.replace(s, active=False, clear_since=None, message=message or s.message)
     if latching or s.state == State.SHELVED:
         return s, []
     if s.state == State.UNACK:
@@ -242,6 +288,16 @@ def _new_samples(
     return data[(data.index <= t_now) & data.notna()], t_now
 
 
+def _at_times(mask: pd.Series | None, index: pd.DatetimeIndex) -> list[bool]:
+    """*mask* (bool, on UTC times) looked up at *index*: the newest mask value at or
+    before each time; False where there is none (or no mask)."""
+    if mask is None or mask.empty or len(index) == 0:
+        return [False] * len(index)
+    m = pd.Series(mask.to_numpy(dtype=bool), index=pd.DatetimeIndex(mask.index).tz_convert("UTC"))
+    m = m[~m.index.duplicated(keep="last")].sort_index()
+    return [bool(x) for x in m.reindex(index, method="ffill").fillna(False).to_numpy(dtype=bool)]
+
+
 def _aware(when: datetime, name: str) -> pd.Timestamp:
     t = pd.Timestamp(when)
     if t.tzinfo is None:
@@ -256,6 +312,8 @@ def evaluate_low_flow(
     now: datetime,
     *,
     diagnosis: Sequence[Finding] | None = None,
+    unit: str = "m3/h",
+    timezone: str = "UTC",
 ) -> tuple[AlarmState, list[AlarmEvent]]:
     """Run the low-flow check over new flow samples.
 
@@ -267,6 +325,8 @@ def evaluate_low_flow(
     settings : limit, deadband, delays
     now : evaluation time (UTC); also expires a shelf
     diagnosis : latest findings, to name the likely cause in the message
+    unit, timezone : the flow tag's own unit and the site's zone, for the messages (the
+        numbers get the decimals that keep the stated comparison true: `format_pair`)
 
     Returns
     -------
@@ -290,10 +350,11 @@ def evaluate_low_flow(
                 since = s.pending_since or t
                 s = dataclasses.replace(s, pending_since=since)
                 if t - since >= settings.on_delay:
+                    v, lim = format_pair(_in_unit(q, unit, "flow"),
+                                         _in_unit(settings.min_flow_m3s, unit, "flow"))
                     msg = (
-                        f"Low flow on {s.branch}: {q * 3600:.1f} m3/h, below its minimum "
-                        f"{settings.min_flow_m3s * 3600:.1f} m3/h since {since:%Y-%m-%d %H:%M} "
-                        f"UTC{_cause(s.branch, diagnosis)}."
+                        f"Low flow on {s.branch}: {v} {unit}, below its minimum {lim} {unit} "
+                        f"since {_site_time(since, timezone)}{_cause(s.branch, diagnosis)}."
                     )
                     s, ev = _annunciate_on(s, t, msg)
                     events += ev
@@ -303,7 +364,12 @@ def evaluate_low_flow(
             since = s.clear_since or t
             s = dataclasses.replace(s, clear_since=since)
             if t - since >= settings.off_delay:
-                s, ev = _annunciate_off(s, t, settings.latching)
+                v, lim = format_pair(_in_unit(q, unit, "flow"),
+                                     _in_unit(settings.clear_level_m3s, unit, "flow"))
+                msg = (f"Low flow on {s.branch} cleared at {_site_time(t, timezone)}: "
+                       f"{v} {unit}, back at or above {lim} {unit} (its minimum plus the "
+                       "deadband)")
+                s, ev = _annunciate_off(s, t, settings.latching, msg)
                 events += ev
         else:
             s = dataclasses.replace(s, clear_since=None)
@@ -343,6 +409,10 @@ def evaluate_frozen(
     tag: str,
     unit_label: str = "",
     scale: float = 1.0,
+    kind: str | None = None,
+    timezone: str = "UTC",
+    no_flow: pd.Series | None = None,
+    near_zero: float = 0.0,
 ) -> tuple[AlarmState, list[AlarmEvent]]:
     """Run the frozen-meter check over new samples of one tag (near real time).
 
@@ -351,17 +421,32 @@ def evaluate_frozen(
     keeps the held value (``last_value``) and since when it has been held
     (``pending_since``), so the check carries over from one ingest to the next. Same
     life cycle as `evaluate_low_flow`; *scale* and *unit_label* only shape the message
-    (e.g. 3600 and "m3/h" for a flow in m³/s).
+    (e.g. 3600 and "m3/h" for a flow in m³/s); with *kind* (``flow``, ``pressure``…) the
+    value is converted from SI to *unit_label* by the unit library instead. *timezone*:
+    the site's zone, for the time in the message.
+
+    *no_flow* (flow meters): True at the times the branch cannot flow (the header at or
+    below its threshold pressure). A reading there within *near_zero* [SI] of zero is what
+    a healthy meter shows, so those samples are not judged: they end a held run instead of
+    lengthening it, as a moving reading would.
     """
     data, t_now = _new_samples(series, state, now)
+    resting = _at_times(no_flow, pd.DatetimeIndex(data.index))
+
+    def shown(v: float) -> str:
+        shown_v = _in_unit(v, unit_label, kind) if kind is not None else v * scale
+        return f"{shown_v:.4g}"
+
     s, events = state, []
-    for ts, v in zip(data.index, data.to_numpy(), strict=True):
+    for ts, v, rest in zip(data.index, data.to_numpy(), resting, strict=True):
         t = ts.to_pydatetime()
         v = float(v)
+        rest = rest and abs(v) <= near_zero
         s, ev = _expire_shelf(s, t)
         events += ev
         held = (
-            s.last_sample is not None
+            not rest
+            and s.last_sample is not None
             and math.isfinite(s.last_value)
             and abs(v - s.last_value) <= settings.tolerance
             and not (settings.ignore_zero and v == 0.0)
@@ -372,19 +457,144 @@ def evaluate_frozen(
         if not held:
             s = dataclasses.replace(s, last_sample=t, last_value=v, pending_since=None)
             if s.active:
-                s, ev = _annunciate_off(s, t, latching=False)
+                why = ("the branch cannot flow now and the meter rests near zero" if rest
+                       else f"it reads {shown(v)} {unit_label}".replace("  ", " "))
+                s, ev = _annunciate_off(
+                    s, t, False, f"{tag} on {s.branch} is no longer held at "
+                    f"{_site_time(t, timezone)}: {why}")
                 events += ev
             continue
         since = s.pending_since or s.last_sample
         s = dataclasses.replace(s, last_sample=t, pending_since=since)
         if not s.active and since is not None and t - since >= settings.hold:
             msg = (
-                f"{tag} on {s.branch} has read exactly {v * scale:.4g} {unit_label} since "
-                f"{since:%Y-%m-%d %H:%M} UTC: the transmitter looks frozen; check it before "
-                "trusting this reading"
+                f"{tag} on {s.branch} has read exactly {shown(v)} {unit_label} since "
+                f"{_site_time(since, timezone)}: the transmitter looks frozen; check it "
+                "before trusting this reading"
             ).replace("  ", " ")
             s, ev = _annunciate_on(s, t, msg)
             events += ev
+    s, ev = _expire_shelf(s, t_now.to_pydatetime())
+    events += ev
+    return s, events
+
+
+@dataclass(frozen=True)
+class BackflowAlarmSettings:
+    """Back-flow hazard alarm settings of one branch (no check valve).
+
+    deadband_pa : the condition clears only once the header is this far above the static
+        back-pressure [Pa] (5 kPa = 0.05 bar, our choice: about the scatter of a header
+        transmitter's reading under a running pump; ISA-18.2 leaves the value to the site)
+    on_delay : the header must stay below the static back-pressure this long [s]; 0 by
+        default, so the samples of one ingest raise it (two samples in a row: the first
+        starts the delay, see `evaluate_low_flow`); with historian data every minute the
+        alarm comes at the first ingest that holds the condition, within one ingest
+        interval. A lone sample below is not enough.
+    off_delay : and above static + deadband this long before it returns [s] (5 min, our
+        choice: a header that hovers at the threshold on a slow set-back raises it once)
+    max_gap : a longer gap between samples restarts the delays
+    unit, timezone : the header pressure tag's unit and the site's zone, for messages
+    termination : what the water would run back from, in words ("the tank")
+    """
+
+    deadband_pa: float = 5_000.0
+    on_delay: timedelta = timedelta(0)
+    off_delay: timedelta = timedelta(minutes=5)
+    max_gap: timedelta = timedelta(minutes=15)
+    unit: str = "bar"
+    timezone: str = "UTC"
+    termination: str = "the branch's termination"
+
+    def __post_init__(self) -> None:
+        if not (math.isfinite(self.deadband_pa) and self.deadband_pa >= 0):
+            raise ValueError(f"deadband_pa must be >= 0, got {self.deadband_pa}")
+        for name in ("on_delay", "off_delay", "max_gap"):
+            if getattr(self, name) < timedelta(0):
+                raise ValueError(f"{name} must not be negative, got {getattr(self, name)}")
+
+
+def evaluate_backflow(
+    samples: pd.DataFrame,
+    state: AlarmState,
+    settings: BackflowAlarmSettings,
+    now: datetime,
+) -> tuple[AlarmState, list[AlarmEvent]]:
+    """Run the back-flow hazard check over new samples of one branch without a check valve.
+
+    Parameters
+    ----------
+    samples : indexed by UTC time, columns ``header_pa`` (logged header pressure [Pa
+        gauge]) and ``static_pa`` (the branch's static back-pressure at that time, from
+        `model.branch.Branch.static_pressure` [Pa gauge]); samples at or before
+        ``state.last_sample`` or after ``now`` are ignored, rows with NaN are gaps
+    state, now : as for `evaluate_low_flow`
+
+    The condition is ``header_pa < static_pa``: the branch cannot flow, and with no check
+    valve water can run back from its termination into the supply (DESIGN §2). It comes
+    on after ``on_delay`` (at least two samples in a row) and clears once the header is
+    ``deadband_pa`` above the static back-pressure for ``off_delay``. ``last_value`` is
+    the margin header − static [Pa] (negative while in hazard).
+    """
+    for col in ("header_pa", "static_pa"):
+        if col not in samples.columns:
+            raise ValueError(f"samples lacks column {col!r}; needs header_pa and static_pa")
+    margin = samples["header_pa"].astype(float) - samples["static_pa"].astype(float)
+    data, t_now = _new_samples(margin, state, now)
+    header = samples["header_pa"].astype(float)
+    header.index = pd.DatetimeIndex(header.index).tz_convert("UTC")
+    header = header[~header.index.duplicated(keep="last")]
+    unit, tz = settings.unit, settings.timezone
+
+    def bar(v: float) -> float:
+        return _in_unit(v, unit, "pressure")
+
+    s, events = state, []
+    for ts, m in zip(data.index, data.to_numpy(), strict=True):
+        t = ts.to_pydatetime()
+        m = float(m)
+        s, ev = _expire_shelf(s, t)
+        events += ev
+        if s.state == State.OUT_OF_SERVICE:
+            s = dataclasses.replace(s, last_sample=t, last_value=m)
+            continue
+        if s.last_sample is not None and t - s.last_sample > settings.max_gap:
+            s = dataclasses.replace(s, pending_since=None, clear_since=None)
+        first = s.pending_since is None
+        s = dataclasses.replace(s, last_sample=t, last_value=m)
+        p_s = float(header.get(ts, math.nan))
+        static = p_s - m
+        if not s.active:
+            if m < 0:
+                since = s.pending_since or t
+                s = dataclasses.replace(s, pending_since=since)
+                if not first and t - since >= settings.on_delay:
+                    hp, st = format_pair(bar(p_s), bar(static), digits=2)
+                    msg = (
+                        f"Back-flow hazard on {s.branch}: header {hp} {unit}, below the "
+                        f"branch's static back-pressure {st} {unit} (by "
+                        f"{abs(bar(p_s) - bar(static)):.2f} {unit}) since "
+                        f"{_site_time(since, tz)}, and no check valve: water can run back "
+                        f"from {settings.termination} into the supply. Raise the header "
+                        "pressure or isolate the branch as site procedures say"
+                    )
+                    s, ev = _annunciate_on(s, t, msg)
+                    events += ev
+            else:
+                s = dataclasses.replace(s, pending_since=None)
+        elif m >= settings.deadband_pa:
+            since = s.clear_since or t
+            s = dataclasses.replace(s, clear_since=since)
+            if t - since >= settings.off_delay:
+                hp, st = format_pair(bar(p_s), bar(static), digits=2)
+                msg = (f"Back-flow hazard on {s.branch} cleared at {_site_time(t, tz)}: "
+                       f"header {hp} {unit}, back above the static back-pressure {st} "
+                       f"{unit} by more than the deadband "
+                       f"{bar(settings.deadband_pa) - bar(0.0):.2f} {unit}")
+                s, ev = _annunciate_off(s, t, False, msg)
+                events += ev
+        else:
+            s = dataclasses.replace(s, clear_since=None)
     s, ev = _expire_shelf(s, t_now.to_pydatetime())
     events += ev
     return s, events
@@ -459,7 +669,11 @@ def evaluate_stale(
         since = s.clear_since or t_now
         s = dataclasses.replace(s, clear_since=since)
         if t_now - since >= settings.off_delay:
-            s, ev = _annunciate_off(s, t_now, latching=False)
+            assert known is not None and age is not None  # not stale: data is known
+            msg = (f"Data from {subject} fresh again at {_site_time(t_now, timezone)}: the "
+                   f"newest reading is {format_age(age.total_seconds())} old, within the "
+                   f"{format_age(settings.stale_after.total_seconds())} allowed")
+            s, ev = _annunciate_off(s, t_now, False, msg)
             events += ev
     return s, events
 
@@ -503,6 +717,8 @@ def describe_condition(branch: str, condition: str) -> str:
     'stale source (no tag has fresh data)'."""
     if condition == "low_flow":
         return f"low flow on {branch}"
+    if condition == "backflow":
+        return f"back-flow hazard on {branch}"
     if condition == "stale source":
         return "stale source (no tag has fresh data)"
     return condition.replace("_", " ")

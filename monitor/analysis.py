@@ -28,6 +28,7 @@ from model.fit import (
     fit_resistance,
     fit_with_change,
 )
+from monitor.backflow import resting_samples
 from monitor.config import BranchConfig, Site
 from monitor.quality import (
     ScreenSettings,
@@ -127,6 +128,7 @@ def analyze_window(
     result = screen(
         readings, specs, settings, start=t0, end=t1,
         header_pressure_tag=site.header_pressure_tag, total_flow_tag=site.total_flow_tag,
+        resting=resting_samples(site, readings),
     )
     health = result.health_counts()
     screening = _screening_counts(site, result.flags, t0, t1)

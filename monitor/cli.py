@@ -522,6 +522,13 @@ low flow, instrument faults, header imbalance. Dates without a zone are site tim
                    "through the window")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument(
+        "--alarms", action="store_true",
+        help="also judge the low-flow, frozen-meter and back-flow alarms over the period, "
+        "as the ingest checks would have (the live checks look back only 24 h): for "
+        "files of a past period read late. Each alarm change is journalled at its own "
+        "historic time; stale-data alarms are not replayed",
+    )
+    p.add_argument(
         "--jobs", type=_positive_int, default=default_jobs(), metavar="N",
         help=f"""analyse N windows at a time, each in a worker process with its own
         database connection (default {default_jobs()}: this machine's cores, at most
@@ -570,12 +577,21 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
         if args.fits:
             fits = store.read_fits(start=start, end=end)
             _write_fits_csv(fits, args.fits)
+        replayed = None
+        if args.alarms:
+            from monitor.jobs import replay_alarms
+
+            replayed = replay_alarms(site, store, source, start, end)
     finally:
         source.close()
         store.close()
     print(f"{summary.windows} windows, {summary.fits} branch fits ({summary.fits_ok} usable), "
           f"{len(summary.findings)} findings")
     _print_findings(site, summary.findings)
+    if replayed is not None:
+        if not replayed:
+            print("alarm replay: no alarm changed over the period")
+        _print_alarm_events(site, replayed)
     if args.findings:
         args.findings.parent.mkdir(parents=True, exist_ok=True)
         args.findings.write_text(

@@ -32,6 +32,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from monitor.backflow import BackflowFindingSettings, backflow_findings
 from monitor.findings import (
     BALANCE_COLUMNS,
     END_BY_EVENT,
@@ -100,6 +101,7 @@ def diagnose(
     now: datetime,
     screening: pd.DataFrame | None = None,
     balance: pd.DataFrame | None = None,
+    backflow: tuple[pd.DataFrame, BackflowFindingSettings] | None = None,
 ) -> list[Finding]:
     """All findings on the history of fits up to ``now``.
 
@@ -114,6 +116,8 @@ def diagnose(
     now : the analysis time; windows ending after it and later events are ignored
     screening : instrument screening counts, columns `SCREENING_COLUMNS`
     balance : header mass balance, columns `BALANCE_COLUMNS`
+    backflow : hazard samples (`monitor.backflow.HAZARD_COLUMNS`) and their settings: the
+        ``backflow_hazard`` findings (`monitor.backflow.backflow_findings`)
 
     Returns
     -------
@@ -159,6 +163,8 @@ def diagnose(
         findings.extend(_instrument_findings(name, fl, last_screened[name], cfg))
     if bal is not None:
         findings.extend(_imbalance_findings(bal, cfg))
+    if backflow is not None:
+        findings.extend(backflow_findings(backflow[0], backflow[1], now=t_now))
     findings.sort(key=lambda f: (f.start, f.branch, f.kind))
     logger.debug("diagnosis up to %s: %d findings", t_now, len(findings))
     return findings

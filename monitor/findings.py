@@ -44,6 +44,7 @@ __all__ = [
 
 KINDS: tuple[str, ...] = (
     "fouling", "restriction", "back_pressure", "low_flow", "instrument", "imbalance",
+    "backflow_hazard",
 )  # fmt: skip
 #: Which open findings a maintenance event ends. Those in `CHECKED_BY_FITS` end only when
 #: the fits after the event show the resistance ratio back down (`monitor.replay`).

@@ -44,15 +44,27 @@ from adapters.base import (
 from monitor.alarms import (
     AlarmEvent,
     AlarmState,
+    BackflowAlarmSettings,
     FrozenSettings,
     LowFlowSettings,
     StaleSettings,
     State,
+    evaluate_backflow,
     evaluate_frozen,
     evaluate_low_flow,
     evaluate_stale,
+    priority_of,
 )
 from monitor.analysis import WindowAnalysis, analyze_window
+from monitor.backflow import (
+    cannot_flow,
+    hazard_branches,
+    hazard_samples,
+    near_zero,
+    settings_for,
+    static_margin,
+    termination_words,
+)
 from monitor.config import BranchConfig, Site
 from monitor.diagnose import (
     BranchSettings,
@@ -80,6 +92,7 @@ __all__ = [
     "ingest_and_watch",
     "newest_readings",
     "open_source",
+    "replay_alarms",
     "stale_after",
     "tag_owners",
     "windows",
@@ -326,7 +339,7 @@ def analyze(
         n_ok += sum(1 for f in result.fits if f.get("status") in ("ok", "not_identifiable"))
         if progress is not None:
             progress(i + 1, len(spans))
-    findings = diagnose_site(site, store, now=end)
+    findings = diagnose_site(site, store, now=end, source=source, since=start)
     log.info(
         "analysis %s .. %s: %d windows, %d fits (%d usable), %d findings",
         start, end, len(spans), n_fits, n_ok, len(findings),
@@ -518,8 +531,18 @@ def diagnosis_settings(site: Site) -> DiagnosisSettings:
     )
 
 
-def diagnose_site(site: Site, store: ResultsStore, *, now: datetime) -> list[Finding]:
-    """Diagnose the stored history up to *now*, cost the findings, store them."""
+def diagnose_site(
+    site: Site, store: ResultsStore, *, now: datetime, source: ReadingsSource | None = None,
+    since: datetime | None = None,
+) -> list[Finding]:
+    """Diagnose the stored history up to *now*, cost the findings, store them.
+
+    The back-flow hazard findings read the readings themselves (from *source* when it
+    keeps them, else from the store): over the whole history, or — with *since*, the
+    start of the period just analysed — from the earliest of *since*, the start of an
+    open back-flow finding and one finding-clear time (`BackflowFindingSettings`) before
+    *now*: a daily run then reads days, not the years behind it, and an open finding
+    keeps its start."""
     history = store.read_fits(end=now)
     if history.empty:
         return []
@@ -530,6 +553,7 @@ def diagnose_site(site: Site, store: ResultsStore, *, now: datetime) -> list[Fin
         now=now,
         screening=store.read_screening(end=now),
         balance=store.read_balance(end=now),
+        backflow=_backflow_inputs(site, store, source, history, now, since),
     )
     findings = [_with_cost(site, history, f) for f in findings]
     rows = [_finding_row(f) for f in findings]
@@ -564,6 +588,33 @@ def _superseded(store: ResultsStore, findings: Sequence[Finding], now: datetime
         })
         log.info("finding %s %s from %s superseded", r["branch"], r["kind"], r["start"])
     return out
+
+
+def _backflow_inputs(
+    site: Site, store: ResultsStore, source: ReadingsSource | None, history: pd.DataFrame,
+    now: datetime, since: datetime | None,
+) -> tuple[pd.DataFrame, Any] | None:
+    """The hazard samples over the analysed history, for the ``backflow_hazard`` findings
+    (None when no branch can run back: every branch has a check valve or ends open)."""
+    branches = hazard_branches(site)
+    if not branches:
+        return None
+    start = pd.Timestamp(history["window_start"].min()).to_pydatetime()
+    settings = settings_for(site, branches)
+    if since is not None:
+        stored = store.read_findings()
+        opened = [pd.Timestamp(t).to_pydatetime() for t in stored["start"][
+            (stored["kind"] == "backflow_hazard") & stored["end"].isna()]] if not stored.empty \
+            else []
+        start = max(start, min([since, now - settings.clear_after - site.window, *opened]))
+    tags = {site.header_pressure_tag, site.header_temperature_tag, site.total_flow_tag,
+            site.pump_speed_tag}
+    for b in branches:
+        tags |= {b.level_tag, b.end_pressure_tag}
+    wanted = sorted(t for t in tags if t is not None)
+    readings = (read_tags(site, store, source, wanted, start, now) if source is not None
+                else store.read_readings(wanted, start, now))
+    return hazard_samples(site, readings), settings
 
 
 def _finding_row(f: Finding) -> dict[str, Any]:
@@ -663,6 +714,7 @@ def alarm_row(state: AlarmState, *, limit_m3s: float | None, now: datetime) -> d
         "active": state.active, "pending_since": state.pending_since,
         "clear_since": state.clear_since, "last_sample": state.last_sample,
         "acknowledged_by": state.acknowledged_by or None,
+        "priority": priority_of(state.condition),
     }
 
 
@@ -715,10 +767,74 @@ def evaluate_alarms(
                     "read (%s); the stale-data alarms are judged all the same",
                     source.name, exc)
     _stale_alarms(site, store, source, states, now, rows, events)
-    if rows:
-        store.upsert_alarms(rows)
+    _store_alarms(store, rows, events)
     for e in events:
         log.warning("alarm %s %s %s: %s", e.branch, e.condition, e.action, e.message)
+    return events
+
+
+def _store_alarms(
+    store: ResultsStore, rows: list[dict[str, Any]], events: Sequence[AlarmEvent]
+) -> None:
+    """Store the alarms' new states so that the journal gets every event at its own time.
+
+    The store journals a change of state with the row's ``updated`` time; an alarm that
+    came on and returned within one evaluation would otherwise leave only its last state,
+    stamped with the evaluation time. So each earlier event of an alarm is written first,
+    in time order, and the final row carries the time of its last event.
+    """
+    final = {(r["branch"], r["condition"]): r for r in rows}
+    by_key: dict[tuple[str, str], list[AlarmEvent]] = {}
+    for e in events:
+        by_key.setdefault((e.branch, e.condition), []).append(e)
+    steps: list[tuple[datetime, dict[str, Any]]] = []
+    for key, evs in by_key.items():
+        row = final.get(key)
+        if row is None:
+            continue
+        steps += [(e.time, {**row, "state": e.state.value, "message": e.message,
+                            "value": e.value, "updated": e.time}) for e in evs[:-1]]
+        row["updated"] = evs[-1].time
+    for _, step in sorted(steps, key=lambda item: item[0]):
+        store.upsert_alarms([step])
+    if rows:
+        store.upsert_alarms(rows)
+
+
+def replay_alarms(
+    site: Site, store: ResultsStore, source: ReadingsSource, start: datetime, end: datetime
+) -> list[AlarmEvent]:
+    """Judge the sample-driven alarms (low flow, frozen meter, back-flow) over a past
+    period [start, end): what `evaluate_alarms` does at each ingest, for readings that
+    arrived late (a backfill of older files), which the live checks never see — they
+    look back only `ALARM_FIRST_LOOKBACK_S` before the wall clock.
+
+    Each event is journalled at its own historic time (the sample that caused it), not
+    at the time of the replay, and messages name their historic times: nothing reads as
+    new today. A check continues from the last sample it judged; one that has already
+    judged samples at or after *end* has nothing to replay (logged). The stale-data
+    alarms are not replayed: they judge when data arrived, which a backfill cannot know.
+    """
+    if end <= start:
+        raise ValueError(f"end must be after start, got {start.isoformat()} .. {end.isoformat()}")
+    stored = store.read_alarms()
+    states = {
+        (str(r["branch"]), str(r["condition"])): alarm_state_from_row(r)
+        for r in stored.to_dict(orient="records")
+    }
+    ahead = sorted(f"{b} {c}" for (b, c), st in states.items()
+                   if st.last_sample is not None and st.last_sample >= end
+                   and not c.startswith("stale"))  # fmt: skip
+    if ahead:
+        log.info("alarm replay %s .. %s: already judged past its end, left as they are: %s",
+                 start, end, ", ".join(ahead))
+    rows: list[dict[str, Any]] = []
+    events: list[AlarmEvent] = []
+    _sample_alarms(site, store, source, states, end, rows, events, first_lookback=start)
+    _store_alarms(store, rows, events)
+    for e in events:
+        log.info("alarm replayed %s %s %s at %s: %s", e.branch, e.condition, e.action,
+                 e.time, e.message)
     return events
 
 
@@ -726,20 +842,26 @@ def _sample_alarms(
     site: Site, store: ResultsStore, source: ReadingsSource,
     states: Mapping[tuple[str, str], AlarmState], now: datetime,
     rows: list[dict[str, Any]], events: list[AlarmEvent],
+    *, first_lookback: datetime | None = None,
 ) -> None:
-    """The low-flow and frozen checks over the new samples (appends to rows, events)."""
+    """The low-flow, frozen and back-flow checks over the new samples (appends to rows,
+    events). *first_lookback*: where a check never judged before starts (default
+    `ALARM_FIRST_LOOKBACK_S` before *now*)."""
     findings = _open_findings(store)
     checks = alarm_checks(site)
-    tags = sorted({tag for _, _, tag, _ in checks})
+    first = first_lookback or now - timedelta(seconds=ALARM_FIRST_LOOKBACK_S)
+    tags = sorted({tag for _, _, tag, _ in checks} | set(_condition_tags(site)))
     since_all = min(
-        (states[(b, c)].last_sample or now - timedelta(seconds=ALARM_FIRST_LOOKBACK_S)
-         if (b, c) in states else now - timedelta(seconds=ALARM_FIRST_LOOKBACK_S))
+        ((states[(b, c)].last_sample or first) if (b, c) in states else first)
         for b, c, _, _ in checks
     ) if checks else now
-    readings = read_tags(site, store, source, tags, since_all, now)
+    # the condition tags' newest reading before the first new header sample counts too
+    readings = read_tags(site, store, source, tags,
+                         since_all - timedelta(seconds=_condition_lag(site)), now)
     good = readings[readings["good"].to_numpy(bool)]
     by_tag = {str(t): part for t, part in good.groupby("tag")}
     frozen = FrozenSettings(hold=timedelta(seconds=site.analysis.frozen_hold))
+    resting = cannot_flow(site, good)
     for branch, condition, tag, limit in checks:
         key = (branch, condition)
         state = states.get(key, AlarmState(branch=branch, condition=condition))
@@ -747,21 +869,56 @@ def _sample_alarms(
         series = (pd.Series(part["value"].to_numpy(float), index=pd.DatetimeIndex(part["time"]))
                   if part is not None else pd.Series([], dtype=float,
                                                     index=pd.DatetimeIndex([], tz="UTC")))
+        if state.last_sample is None and not series.empty:
+            series = series[series.index >= pd.Timestamp(first)]
+        spec = site.tags[tag]
         if condition == "low_flow":
             new, happened = evaluate_low_flow(
                 series, state, low_flow_settings(site, site.branch(branch)), now,
                 diagnosis=[f for f in findings if f.branch == branch],
+                unit=spec.unit, timezone=site.timezone,
             )
+        elif condition == "backflow":
+            b = site.branch(branch)
+            samples = static_margin(site, b, good)
+            if state.last_sample is None:
+                samples = samples[samples.index >= pd.Timestamp(first)]
+            new, happened = evaluate_backflow(samples, state, backflow_settings(site, b), now)
         else:
-            kind = site.tags[tag].kind
             new, happened = evaluate_frozen(
-                series, state, frozen, now, tag=tag,
-                unit_label="m3/h" if kind == "flow" else "bar",
-                scale=3600.0 if kind == "flow" else 1e-5,
+                series, state, frozen, now, tag=tag, unit_label=spec.unit, kind=spec.kind,
+                timezone=site.timezone, no_flow=resting.get(tag),
+                near_zero=near_zero(site, tag),
             )
         events.extend(happened)
         if new != state or key not in states:
             rows.append(alarm_row(new, limit_m3s=limit, now=now))
+
+
+def _condition_tags(site: Site) -> list[str]:
+    """Tags the back-flow check and the frozen exemption need besides the checked ones."""
+    tags = {site.header_pressure_tag, site.header_temperature_tag, site.total_flow_tag,
+            site.pump_speed_tag}
+    for b in site.branches:
+        tags |= {b.level_tag, b.end_pressure_tag}
+    return sorted(t for t in tags if t is not None)
+
+
+def _condition_lag(site: Site) -> float:
+    """How far before the first new sample the condition tags are read [s]."""
+    return max(900.0, 3.0 * site.analysis.sample_period)
+
+
+def backflow_settings(site: Site, branch: BranchConfig) -> BackflowAlarmSettings:
+    """Back-flow alarm settings of *branch*: the header tag's unit and the site's zone; the
+    on-delay none beyond two samples in a row, so the alarm comes within one ingest
+    interval of the condition; the off-delay the site's low-flow off-delay."""
+    return BackflowAlarmSettings(
+        off_delay=timedelta(seconds=site.analysis.low_flow_off_delay),
+        max_gap=timedelta(seconds=_condition_lag(site)),
+        unit=site.tags[site.header_pressure_tag].unit, timezone=site.timezone,
+        termination=termination_words(branch),
+    )
 
 
 #: The branch name under which the source-wide stale-data alarm is kept.
@@ -884,6 +1041,10 @@ def ingest_and_watch(
 def alarm_checks(site: Site) -> list[tuple[str, str, str, float | None]]:
     """(branch, condition, tag, limit) of every near-real-time check of the site.
 
+    ``backflow`` (a high-priority alarm) on every branch that can run back
+    (`monitor.backflow.hazard_branches`: no check valve, a termination that holds water or
+    pressure), judged on the header pressure against the branch's static back-pressure.
+
     A tag shared by several branches (a common return header) is judged once, under
     the first branch that names it.
     """
@@ -899,6 +1060,8 @@ def alarm_checks(site: Site) -> list[tuple[str, str, str, float | None]]:
         if tag is not None:
             owner.setdefault(tag, "header")
     checks += [(branch, f"frozen {tag}", tag, None) for tag, branch in owner.items()]
+    checks += [(b.name, "backflow", site.header_pressure_tag, None)
+               for b in hazard_branches(site)]
     return checks
 
 

@@ -313,6 +313,7 @@ def screen(
     end: pd.Timestamp | None = None,
     header_pressure_tag: str | None = None,
     total_flow_tag: str | None = None,
+    resting: np.ndarray | None = None,
 ) -> ScreenResult:
     """Flag every sample of *readings* (see the module docstring for the flags).
 
@@ -331,6 +332,11 @@ def screen(
     header_pressure_tag, total_flow_tag
         When given, samples of every tag taken while the pump is off or still settling
         are flagged ``pump_off`` / ``startup`` (see `running_mask`).
+    resting
+        Per row of *readings*, True for a flow meter's sample taken while its branch
+        cannot flow and reading about zero (`monitor.backflow.resting_samples`): such a
+        sample is never flagged frozen or a spike — a flow that stops and starts with the
+        header pressure is the process, not the meter.
     """
     settings = settings or ScreenSettings()
     missing = set(READING_COLUMNS) - set(readings.columns)
@@ -345,6 +351,9 @@ def screen(
     t_ns = frame["time"].dt.tz_convert("UTC").to_numpy("datetime64[ns]").view("int64")
     order = np.lexsort((t_ns, codes))
     codes, t_ns = codes[order], t_ns[order]
+    if resting is not None and len(resting) != len(frame):
+        raise ValueError(f"resting has {len(resting)} entries for {len(frame)} readings")
+    rest = np.asarray(resting, dtype=bool)[order] if resting is not None else None
     frame = frame.take(order).reset_index(drop=True)
     frame["time"] = frame["time"].dt.tz_convert("UTC")
     value = frame["value"].to_numpy("float64")
@@ -369,6 +378,9 @@ def screen(
     flags["spike"] = valid & _hampel(
         np.where(valid, value, np.nan), codes, noise, noise_rel, settings.hampel_k
     )
+    if rest is not None:
+        flags["frozen"] &= ~rest
+        flags["spike"] &= ~rest
     accepted = valid & ~flags["spike"]
     flags["rate"] = accepted & _too_fast(value, t_s, codes, accepted, rate)
     new_run = np.r_[True, codes[1:] != codes[:-1]] if n else np.zeros(0, bool)

@@ -30,6 +30,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt
 import pandas as pd
 
+from adapters.units import from_si
 from monitor.config import Site
 from monitor.findings import episode_text
 from monitor.plots import png_data_uri
@@ -45,6 +46,9 @@ MAINTENANCE_DAYS = 90
 _KIND_TEXT = {"low_flow": "low flow", "restriction": "restriction",
               "back_pressure": "back-pressure change", "instrument": "instrument fault",
               "imbalance": "header imbalance", "fouling": "fouling"}
+#: A back-flow hazard is about the supply's safety: before everything else.
+_URGENCY["backflow_hazard"] = -1
+_KIND_TEXT["backflow_hazard"] = "back-flow hazard"
 
 CAUTION = (
     "branchwatch advises; it does not control. Its findings are estimates from logged data "
@@ -53,6 +57,48 @@ CAUTION = (
     "changes follow site procedures, local codes and the judgement of qualified, licensed "
     "people."
 )
+
+
+def _caution(inputs: ReportInputs) -> str:
+    """The standing caution, after a named back-flow hazard when there is one: each branch
+    with an open ``backflow_hazard`` finding or an active back-flow alarm, with its worst
+    margin (DESIGN §6: back-flow from a tank or pressurised header can contaminate the
+    supply)."""
+    site = inputs.site
+    unit = site.tags[site.header_pressure_tag].unit if site.header_pressure_tag in site.tags \
+        else "bar"
+    named: dict[str, str] = {}
+    f = inputs.findings
+    if not f.empty and "kind" in f.columns:
+        open_ = f[(f["kind"] == "backflow_hazard") & f["end"].isna()]
+        for r in open_.to_dict(orient="records"):
+            ev = r.get("evidence") or {}
+            worst = ev.get("worst_margin_bar")
+            share = ev.get("share_of_time")
+            text = f"{r['branch']}"
+            if worst is not None and math.isfinite(float(worst)):
+                below = abs(float(from_si(float(worst) * 1e5, unit, "pressure"))
+                            - float(from_si(0.0, unit, "pressure")))
+                text += f" (header below its static back-pressure by up to {below:.2f} {unit}"
+                if share is not None and math.isfinite(float(share)):
+                    text += f", {float(share):.0%} of the time"
+                text += ")"
+            named[str(r["branch"])] = text
+    a = inputs.alarms
+    if not a.empty and "condition" in a.columns:
+        live = a[(a["condition"] == "backflow") & a["active"].fillna(False).astype(bool)]
+        for r in live.to_dict(orient="records"):
+            named.setdefault(str(r["branch"]), f"{r['branch']} (back-flow alarm active now)")
+    standing = f"<p class=caution>{_e(CAUTION)}</p>"
+    if not named:
+        return standing
+    return (
+        f"<p class=caution><strong>Back-flow hazard:</strong> "
+        f"{_e('; '.join(named[k] for k in sorted(named)))}. With no check valve on these "
+        "branches, water can run back from their tank or header into the supply and "
+        "contaminate it. Have a qualified person check the branch and the header pressure "
+        "set point against site procedures.</p>\n" + standing
+    )
 
 
 @dataclass(frozen=True)
@@ -93,7 +139,7 @@ def build_report(inputs: ReportInputs) -> str:
         f"{_e(site.timezone)}). Generated {_local(site, inputs.generated)}.</p>",
         _data_age(inputs),
         _monthly_link(inputs),
-        f"<p class=caution>{_e(CAUTION)}</p>",
+        _caution(inputs),
         _attention(inputs),
         _alarms(inputs),
         _branches(inputs),

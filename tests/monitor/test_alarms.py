@@ -291,3 +291,95 @@ def test_shelving_into_the_past_is_refused_with_one_line(
     assert main(["alarms", str(site_file), "--shelve", "source", "--until",
                  f"{future:%Y-%m-%d %H:%M}"]) == 0
     assert _state(site, "source", "stale source") == "shelved"
+
+
+# ---------------------------------------------------------------------------------------
+# issue 12 item 7: messages in the tag's own unit, site time, a return that says so
+
+LPM = 1 / 60_000  # L/min in m³/s
+
+
+def test_low_flow_message_in_the_tags_unit_keeps_the_comparison() -> None:
+    # the rig's meter reads L/min; limit 30 L/min. 29.96 L/min rounded to one decimal
+    # would read "30.0 ... below its minimum 30.0": the digits must show the comparison
+    lpm = LowFlowSettings(min_flow_m3s=30 * LPM, range_m3s=100 * LPM, on_delay=TWO_MIN,
+                          off_delay=TWO_MIN)
+    idx = pd.DatetimeIndex([T0 + timedelta(minutes=k) for k in range(4)])
+    low = pd.Series(np.array([40.0, 29.96, 29.96, 29.96]) * LPM, index=idx)
+    _, ev = evaluate_low_flow(low, AlarmState("R1"), lpm, end_of(low), unit="L/min",
+                              timezone="Europe/Berlin")
+    assert "29.96 L/min, below its minimum 30.00 L/min" in ev[0].message
+    # site time (UTC+1 in March before the change): the condition began at 07:01
+    assert "since 2026-03-02 07:01 site time" in ev[0].message and "UTC" not in ev[0].message
+
+
+def test_format_pair_never_reverses_or_hides_the_comparison() -> None:
+    from monitor.alarms import format_pair
+
+    rng = np.random.default_rng(3)
+    for _ in range(2000):  # random pairs near each other: the shown order is the true one
+        limit = float(rng.uniform(0.1, 500))
+        value = limit * (1 + float(rng.normal(0, 0.003)))
+        a, b = format_pair(value, limit)
+        assert (float(a) < float(b)) == (value < limit), (value, limit, a, b)
+        assert (float(a) > float(b)) == (value > limit), (value, limit, a, b)
+    assert format_pair(31.5, 30.0) == ("31.5", "30.0")  # no needless digits
+
+
+def test_returned_entry_says_the_condition_cleared() -> None:
+    low = flow([100, 50, 50, 50])
+    s, ev = evaluate_low_flow(low, AlarmState("CW-3"), SETTINGS, end_of(low))
+    activation = ev[0].message
+    ok = flow([80, 80, 80, 80], start=end_of(low) + timedelta(minutes=1))
+    s, ev = evaluate_low_flow(ok, s, SETTINGS, end_of(ok))
+    assert [e.action for e in ev] == ["returned"]
+    assert ev[0].message != activation and "cleared" in ev[0].message
+    assert "80.0 m3/h, back at or above 70.0 m3/h" in ev[0].message  # 60 + 5 % of 200
+
+
+def test_stale_return_says_fresh_again() -> None:
+    from monitor.alarms import StaleSettings, evaluate_stale
+
+    st = StaleSettings(stale_after=timedelta(minutes=15))
+    s, ev = evaluate_stale(T0, AlarmState("header", "stale PT-100"), st,
+                           T0 + timedelta(minutes=20), subject="PT-100 (header)")
+    assert [e.action for e in ev] == ["activated"] and "No new data" in ev[0].message
+    s, ev = evaluate_stale(T0 + timedelta(minutes=24), s, st, T0 + timedelta(minutes=25),
+                           subject="PT-100 (header)", timezone="Europe/Berlin")
+    assert [e.action for e in ev] == ["returned"]
+    assert "fresh again at 2026-03-02 07:25 site time" in ev[0].message
+    assert "No new data" not in ev[0].message
+
+
+def test_frozen_message_in_the_tags_unit_and_site_time() -> None:
+    from monitor.alarms import FrozenSettings, evaluate_frozen
+
+    idx = pd.DatetimeIndex([T0 + timedelta(minutes=k) for k in range(70)])
+    held = pd.Series(np.full(70, 31.5 * LPM), index=idx)
+    _, ev = evaluate_frozen(held, AlarmState("R1", "frozen FT-1"), FrozenSettings(),
+                            end_of(held), tag="FT-1", unit_label="L/min", kind="flow",
+                            timezone="Europe/Berlin")
+    assert "read exactly 31.5 L/min since 2026-03-02 07:00 site time" in ev[0].message
+
+
+def test_backflow_alarm_needs_two_samples_and_clears_past_the_deadband() -> None:
+    # the back-flow alarm's own rules (monitor.alarms.evaluate_backflow): header below
+    # the static back-pressure on two samples in a row raises it; it returns only once
+    # the header is 0.05 bar (deadband, our choice) above for the off-delay
+    from monitor.alarms import BackflowAlarmSettings, evaluate_backflow
+
+    cfg = BackflowAlarmSettings(off_delay=TWO_MIN, timezone="Europe/Berlin")
+    idx = pd.DatetimeIndex([T0 + timedelta(minutes=k) for k in range(12)])
+    header = np.array([1.2, 0.9, 1.2, 0.9, 0.9, 1.02, 1.02, 1.02, 1.02, 1.1, 1.1, 1.1]) * 1e5
+    samples = pd.DataFrame({"header_pa": header, "static_pa": 1.0e5}, index=idx)
+    s, ev = evaluate_backflow(samples, AlarmState("T1", "backflow"), cfg, end_of(samples))
+    # a lone sample below (minute 1) is no condition; minutes 3–4 are; 1.02 bar is above
+    # the static head but inside the deadband: still in; 1.1 bar for 2 min clears it
+    assert [(e.action, e.time) for e in ev] == [
+        ("activated", T0 + timedelta(minutes=4)), ("returned", T0 + timedelta(minutes=11))]
+    assert "header 0.90 bar, below the branch's static back-pressure 1.00 bar" in ev[0].message
+    assert "since 2026-03-02 07:03 site time" in ev[0].message
+    assert "cleared" in ev[1].message and s.state == State.RTN_UNACK
+    from monitor.alarms import priority_of
+
+    assert priority_of("backflow") == "high"

@@ -242,7 +242,8 @@ def test_sigkill_between_queueing_and_sending_then_restart_sends_once(
     _with_notify(site_file, mail.port, hook.url)
     text = site_file.read_text()
     assert "[schedule]" not in text
-    site_file.write_text(text.replace("[notify]", '[schedule]\ningest_every = "10 s"\n\n[notify]'))
+    site_file.write_text(text.replace("\n[notify]\n",
+                                      '\n[schedule]\ningest_every = "10 s"\n\n[notify]\n', 1))
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     killed = subprocess.run([sys.executable, "-c", KILLED_AFTER_QUEUEING, str(site_file)],
                             env=env, cwd=ROOT, capture_output=True, timeout=120)
