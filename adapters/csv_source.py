@@ -615,6 +615,10 @@ class CsvSource(ReadingsSource):
             types.update({f"c{layout.tag_col}": pa.string(), f"c{layout.value_col}": pa.float64()})
             if layout.quality_col >= 0:
                 types[f"c{layout.quality_col}"] = pa.string()
+        try:
+            data.decode("utf-8")
+        except UnicodeDecodeError:  # Arrow refuses such a chunk, and its row handler
+            return self._split_slowly(data, first_line, layout, wanted)  # cannot be called
         invalid: list[int] = []
 
         def on_invalid(_row: Any) -> str:
