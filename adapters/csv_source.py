@@ -648,7 +648,9 @@ class CsvSource(ReadingsSource):
             except pa.ArrowInvalid:
                 invalid.clear()
                 continue  # a cell that is not a number: read the columns as text
-            if invalid:
+            # a quote left open joins lines into one row (Arrow lets a quoted field span
+            # a newline): then rows are not lines, and each line is split on its own
+            if invalid or table.num_rows != data.count(b"\n"):
                 break
             lines = np.arange(first_line, first_line + table.num_rows, dtype=np.int64)
             cols = {i: _column(table.column(f"c{i}")) for i in wanted}
