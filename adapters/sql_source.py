@@ -126,6 +126,8 @@ _READ_ONLY = {
 # change (DST moves the clock by one hour, a few zones by two), then filtered exactly.
 _LOCAL_PAD = timedelta(hours=3)
 _AMBIGUOUS = "ambiguous local time"
+_PROBE = 100  # distinct text times looked at from each end for one that reads as a time
+_OVERFLOW = "value too large: it overflows when converted to SI units"
 
 
 class CredentialsRefused(SourceUnavailable):
@@ -525,7 +527,11 @@ class SqlSource(ReadingsSource):
         ids, uniques = pd.factorize(tags)
         scale = np.array([self._si[str(u)][0] for u in uniques])
         offset = np.array([self._si[str(u)][1] for u in uniques])
-        si = values * scale[ids] + offset[ids]
+        with np.errstate(over="ignore", invalid="ignore"):
+            si = values * scale[ids] + offset[ids]
+        for i in np.flatnonzero(keep & ~np.isfinite(si)):
+            bad.append((*self._place(columns, int(i)), _OVERFLOW, repr(_row(columns, int(i)))))
+            keep = keep & (np.arange(len(keep)) != i)
         return readings_frame(times.asi8[keep], tags[keep], si[keep], good[keep])
 
     def _wide(
@@ -549,8 +555,14 @@ class SqlSource(ReadingsSource):
                     bad.append((*self._place(columns, int(i)), reason, repr(row)))
             ok = keep & np.isfinite(values)
             scale, offset = self._si[tag]
+            with np.errstate(over="ignore", invalid="ignore"):
+                si = values * scale + offset
+            for i in np.flatnonzero(ok & ~np.isfinite(si)):
+                row = _row(columns, int(i))
+                bad.append((*self._place(columns, int(i)), f"{_OVERFLOW}: {tag}", repr(row)))
+            ok &= np.isfinite(si)
             parts_t.append(times.asi8[ok])
-            parts_v.append(values[ok] * scale + offset)
+            parts_v.append(si[ok])
             counts.append(int(ok.sum()))
         names = np.repeat(np.array(tags, dtype=object), counts)
         return readings_frame(np.concatenate(parts_t), names, np.concatenate(parts_v), None)
