@@ -392,6 +392,11 @@ class SqlSource(ReadingsSource):
         low, high = conn.execute(query).one()
         if low is None:
             return None, None, None
+        if isinstance(low, str) or isinstance(high, str):  # a text column may hold garbage
+            low, high = self._readable_end(conn, query, t, t.asc()), \
+                self._readable_end(conn, query, t, t.desc())
+            if low is None or high is None:
+                return None, None, None
         pad = timedelta(0) if self._aware(table) or self.zone.key == "UTC" else _LOCAL_PAD
         last = self._utc_bound(high, timedelta(0))
         return self._utc_bound(low, -pad), self._utc_bound(high, pad), last
@@ -404,7 +409,26 @@ class SqlSource(ReadingsSource):
         if self.layout == "long":
             query = query.where(table.c[self.tag_column].in_(list(self.tags)))
         low = conn.execute(query).scalar()
+        if isinstance(low, str):
+            low = self._readable_end(conn, query, t, t.asc())
         return None if low is None else self._utc_bound(low, -_LOCAL_PAD)
+
+    def _readable_end(
+        self, conn: sa.Connection, query: sa.Select[Any], t: Any, order: Any
+    ) -> Any:
+        """The first value of a text time column, in *order*, that reads as a time (a
+        text that is no time sorts anywhere and must not set the span); None if the
+        first `_PROBE` distinct values all fail."""
+        probe = sa.select(t).distinct()
+        if query.whereclause is not None:
+            probe = probe.where(query.whereclause)
+        for (value,) in conn.execute(probe.where(t.is_not(None)).order_by(order).limit(_PROBE)):
+            try:
+                pd.Timestamp(value)
+            except (ValueError, TypeError, OverflowError):
+                continue
+            return value
+        return None
 
     def _utc_bound(self, value: Any, pad: timedelta) -> pd.Timestamp:
         """A DB time as UTC, moved by *pad* when it is local wall time (may be ambiguous)."""
