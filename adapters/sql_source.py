@@ -542,7 +542,8 @@ class SqlSource(ReadingsSource):
         blank = keep & ~np.isfinite(values)
         for i in np.flatnonzero(blank):
             row = (columns[0][i], columns[1][i], columns[2][i])
-            bad.append((*self._place(columns, int(i)), "blank value", repr(row)))
+            reason = "blank value" if columns[2][i] is None else "value is not a number"
+            bad.append((*self._place(columns, int(i)), reason, repr(row)))
         keep = keep & ~blank
         good = np.ones(len(tags), dtype=bool)
         if self.quality_column:
