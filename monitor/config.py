@@ -17,6 +17,7 @@ Exceptions::
 
 from __future__ import annotations
 
+import math
 import tomllib
 import zoneinfo
 from collections.abc import Mapping, Sequence
@@ -25,6 +26,7 @@ from datetime import timedelta
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
+import numpy as np
 from pydantic import (
     BaseModel,
     BeforeValidator,
@@ -606,8 +608,8 @@ def _tag(ref: TagRef, kind: str, tags: dict[str, TagSpec]) -> str:
             f"tag {ref.tag!r}: unit {ref.unit!r} is not a unit of {kind} "
             f"(e.g. {_EXAMPLE_UNITS[kind]})"
         ) from None
-    low = float(convert(ref.low)) if ref.low is not None else None
-    high = float(convert(ref.high)) if ref.high is not None else None
+    low = _finite(convert, ref.low, ref, "low")
+    high = _finite(convert, ref.high, ref, "high")
     spec = TagSpec(tag=ref.tag, unit=ref.unit, kind=kind, low=low, high=high)
     old = tags.get(ref.tag)
     if old is not None and old != spec:
@@ -629,7 +631,18 @@ _EXAMPLE_UNITS = {
 def _nominal(ref: TagRef | None, kind: str) -> float | None:
     if ref is None or ref.nominal is None:
         return None
-    return float(converter(ref.unit, kind)(ref.nominal))
+    return _finite(converter(ref.unit, kind), ref.nominal, ref, "nominal")
+
+
+def _finite(convert: Any, value: float | None, ref: TagRef, key: str) -> float | None:
+    """*value* of *ref* converted to SI, refused when it does not fit in a float."""
+    if value is None:
+        return None
+    with np.errstate(over="ignore", invalid="ignore"):
+        si = float(convert(value))
+    if not math.isfinite(si):
+        raise ValueError(f"tag {ref.tag!r}: {key} = {value!r} {ref.unit} is too large")
+    return si
 
 
 def _build(doc: SiteFile, path: Path) -> Site:
@@ -641,12 +654,15 @@ def _build(doc: SiteFile, path: Path) -> Site:
     pump = None
     speed_tag = None
     if doc.pump is not None:
-        pump = PumpCurve(
-            [pt.flow for pt in doc.pump.curve],
-            [pt.head for pt in doc.pump.curve],
-            speed_ratio=doc.pump.design_speed,
-            count=doc.pump.count,
-        )
+        try:
+            pump = PumpCurve(
+                [pt.flow for pt in doc.pump.curve],
+                [pt.head for pt in doc.pump.curve],
+                speed_ratio=doc.pump.design_speed,
+                count=doc.pump.count,
+            )
+        except (ValueError, ArithmeticError) as exc:
+            raise ValueError(f"pump (curve, design_speed, count): {exc}") from None
         if doc.pump.speed is not None:
             speed_tag = _tag(doc.pump.speed, "speed", tags)
 
@@ -657,6 +673,10 @@ def _build(doc: SiteFile, path: Path) -> Site:
             branches.append(_build_branch(sec, tags, doc.analysis.cleaning_limit))
         except (ValueError, KeyError) as exc:
             raise ValueError(f"{where}: {exc}") from None
+        except ArithmeticError:  # e.g. 1e308 m3/h raised to the equipment's exponent
+            raise ValueError(
+                f"{where}: a quantity is too large to compute with; check the values and "
+                "units of its elements") from None
 
     base = path.parent
     store_url = _store_url(doc.store, base, allow_outside=doc.site.allow_paths_outside)
