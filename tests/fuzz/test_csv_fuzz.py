@@ -35,7 +35,7 @@ from hypothesis import strategies as st
 
 from adapters.base import TagSpec
 from adapters.csv_source import CsvSource
-from tests.adapters.ingest_helpers import canonical, ingest, write
+from tests.adapters.ingest_helpers import ingest, write
 
 TAGS = [TagSpec("PT-100", "bar", "pressure"), TagSpec("FT-203", "m3/h", "flow")]
 SCALE = {"PT-100": 1e5, "FT-203": 1 / 3600}
