@@ -679,6 +679,11 @@ def _build(doc: SiteFile, path: Path) -> Site:
                 "units of its elements") from None
 
     base = path.parent
+    # a secrets file is read as root or as the service user: it must not name another
+    # file of the machine (/etc/shadow) unless the site says it keeps files elsewhere
+    for key, given in _secrets_files(doc):
+        if not doc.site.allow_paths_outside:
+            _inside(base, base / given, key, given)
     store_url = _store_url(doc.store, base, allow_outside=doc.site.allow_paths_outside)
     report_folder = (base / doc.report.folder).resolve()
     if not doc.site.allow_paths_outside:
@@ -709,6 +714,19 @@ def _build(doc: SiteFile, path: Path) -> Site:
         tags=tags,
         notify=_notify(doc.notify, base),
     )
+
+
+def _secrets_files(doc: SiteFile) -> list[tuple[str, str]]:
+    """(key path, value) of every secrets_file the site file names."""
+    found = [("store.secrets_file", doc.store.secrets_file)]
+    if doc.source is not None:
+        found.append(("source.secrets_file", doc.source.secrets_file))
+    if doc.notify is not None:
+        for name in ("email", "webhook"):
+            part = getattr(doc.notify, name)
+            if part is not None:
+                found.append((f"notify.{name}.secrets_file", part.secrets_file))
+    return [(key, str(value)) for key, value in found if value]
 
 
 def _notify(sec: NotifySection | None, base: Path) -> NotifySection | None:
