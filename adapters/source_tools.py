@@ -248,7 +248,8 @@ def _to_utc_naive(text: pd.Series, *, utc: bool) -> npt.NDArray[np.datetime64]:
     if parsed.tz is not None:  # offsets, or a zone name inside the text: exact
         parsed = parsed.tz_convert("UTC").tz_localize(None)
     # outside 1677-09-21 … 2262-04-11 no nanosecond time exists: unparseable, not a crash
-    parsed = parsed.where((parsed >= pd.Timestamp.min) & (parsed <= pd.Timestamp.max))
+    inside = (parsed >= pd.Timestamp.min) & (parsed <= pd.Timestamp.max)
+    parsed = pd.DatetimeIndex(parsed.where(inside))
     return parsed.as_unit("ns").to_numpy()
 
 
