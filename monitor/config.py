@@ -655,12 +655,13 @@ def _build(doc: SiteFile, path: Path) -> Site:
     speed_tag = None
     if doc.pump is not None:
         try:
-            pump = PumpCurve(
-                [pt.flow for pt in doc.pump.curve],
-                [pt.head for pt in doc.pump.curve],
-                speed_ratio=doc.pump.design_speed,
-                count=doc.pump.count,
-            )
+            with np.errstate(over="raise", invalid="raise"):  # 1e308 m heads: an error
+                pump = PumpCurve(
+                    [pt.flow for pt in doc.pump.curve],
+                    [pt.head for pt in doc.pump.curve],
+                    speed_ratio=doc.pump.design_speed,
+                    count=doc.pump.count,
+                )
         except (ValueError, ArithmeticError) as exc:
             raise ValueError(f"pump (curve, design_speed, count): {exc}") from None
         if doc.pump.speed is not None:
