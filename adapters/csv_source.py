@@ -615,6 +615,10 @@ class CsvSource(ReadingsSource):
             types.update({f"c{layout.tag_col}": pa.string(), f"c{layout.value_col}": pa.float64()})
             if layout.quality_col >= 0:
                 types[f"c{layout.quality_col}"] = pa.string()
+        try:
+            data.decode("utf-8")
+        except UnicodeDecodeError:  # Arrow refuses such a chunk, and its row handler
+            return self._split_slowly(data, first_line, layout, wanted)  # cannot be called
         invalid: list[int] = []
 
         def on_invalid(_row: Any) -> str:
@@ -644,7 +648,9 @@ class CsvSource(ReadingsSource):
             except pa.ArrowInvalid:
                 invalid.clear()
                 continue  # a cell that is not a number: read the columns as text
-            if invalid:
+            # a quote left open joins lines into one row (Arrow lets a quoted field span
+            # a newline): then rows are not lines, and each line is split on its own
+            if invalid or table.num_rows != data.count(b"\n"):
                 break
             lines = np.arange(first_line, first_line + table.num_rows, dtype=np.int64)
             cols = {i: _column(table.column(f"c{i}")) for i in wanted}
@@ -753,7 +759,12 @@ class CsvSource(ReadingsSource):
         # One (tags x rows) matrix: scaling, masking and melting in a few array operations.
         matrix = np.vstack(columns)
         si = np.array([self._si[tag] for _, tag in layout.tag_cols])
-        matrix = matrix * si[:, :1] + si[:, 1:]
+        finite = np.isfinite(matrix)
+        with np.errstate(over="ignore", invalid="ignore"):
+            matrix = matrix * si[:, :1] + si[:, 1:]
+        overflow = finite & ~np.isfinite(matrix) & keep[None, :]
+        for row, (_, tag) in enumerate(layout.tag_cols):
+            bad += [(int(ln), _overflow_reason(tag)) for ln in chunk.lines[overflow[row]]]
         ok = np.isfinite(matrix) & keep[None, :]
         names = np.array([tag for _, tag in layout.tag_cols], dtype=object)
         tag_col = np.repeat(names, ok.sum(axis=1))
@@ -816,7 +827,12 @@ class CsvSource(ReadingsSource):
         if layout.quality_col >= 0:
             good, unmapped = quality_good(chunk.cols[layout.quality_col], self.quality_map)
             notes["unmapped_quality"] += unmapped
-        si = values * scale[ids] + offset[ids]
+        with np.errstate(over="ignore", invalid="ignore"):
+            si = values * scale[ids] + offset[ids]
+        overflow = keep & ~np.isfinite(si)
+        bad += [(int(chunk.lines[i]), _overflow_reason(str(uniques[ids[i]])))
+                for i in np.flatnonzero(overflow)]
+        keep &= ~overflow
         return readings_frame(times.asi8[keep], uniques[ids[keep]], si[keep], good[keep])
 
     @staticmethod
@@ -833,6 +849,10 @@ class CsvSource(ReadingsSource):
                 raw = lines[number - first_line].decode("utf-8", errors="replace").rstrip("\r")
             rows.append((key, number, reason, raw))
         return quarantine_frame(rows)
+
+
+def _overflow_reason(tag: str) -> str:
+    return f"value of {tag} is too large: it overflows when converted to SI units"
 
 
 def _nonfinite(arr: pa.ChunkedArray) -> npt.NDArray[np.bool_]:

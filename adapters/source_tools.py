@@ -118,10 +118,14 @@ def to_float(
     s = pd.Series(text_cells(strings), dtype=object)
     missing = s.str.lower().isin(_NA_TOKENS).to_numpy()
     nonfinite = s.str.match(_NONFINITE_RE).to_numpy(dtype=bool)
+    # a point in a decimal-comma export is no decimal mark there (and may be a thousands
+    # separator: "1.500" is 1500): not a number, rather than a value off by 1000
+    wrong_mark = s.str.contains(".", regex=False).to_numpy(dtype=bool) if decimal != "." \
+        else np.zeros(len(s), dtype=bool)
     if decimal != ".":
         s = s.str.replace(decimal, ".", regex=False)
     num = pd.to_numeric(s, errors="coerce").to_numpy(dtype=float, copy=True)
-    bad = ~missing & ~nonfinite & ~np.isfinite(num)
+    bad = ~missing & ~nonfinite & (~np.isfinite(num) | wrong_mark)
     num[missing | bad | nonfinite] = np.nan
     return num, bad, nonfinite
 
@@ -243,6 +247,9 @@ def _to_utc_naive(text: pd.Series, *, utc: bool) -> npt.NDArray[np.datetime64]:
     parsed = pd.DatetimeIndex(pd.to_datetime(text, format="ISO8601", utc=utc, errors="coerce"))
     if parsed.tz is not None:  # offsets, or a zone name inside the text: exact
         parsed = parsed.tz_convert("UTC").tz_localize(None)
+    # outside 1677-09-21 … 2262-04-11 no nanosecond time exists: unparseable, not a crash
+    inside = (parsed >= pd.Timestamp.min) & (parsed <= pd.Timestamp.max)
+    parsed = pd.DatetimeIndex(parsed.where(inside))
     return parsed.as_unit("ns").to_numpy()
 
 

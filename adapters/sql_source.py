@@ -126,6 +126,8 @@ _READ_ONLY = {
 # change (DST moves the clock by one hour, a few zones by two), then filtered exactly.
 _LOCAL_PAD = timedelta(hours=3)
 _AMBIGUOUS = "ambiguous local time"
+_PROBE = 100  # distinct text times looked at from each end for one that reads as a time
+_OVERFLOW = "value too large: it overflows when converted to SI units"
 
 
 class CredentialsRefused(SourceUnavailable):
@@ -390,6 +392,11 @@ class SqlSource(ReadingsSource):
         low, high = conn.execute(query).one()
         if low is None:
             return None, None, None
+        if isinstance(low, str) or isinstance(high, str):  # a text column may hold garbage
+            low, high = self._readable_end(conn, query, t, t.asc()), \
+                self._readable_end(conn, query, t, t.desc())
+            if low is None or high is None:
+                return None, None, None
         pad = timedelta(0) if self._aware(table) or self.zone.key == "UTC" else _LOCAL_PAD
         last = self._utc_bound(high, timedelta(0))
         return self._utc_bound(low, -pad), self._utc_bound(high, pad), last
@@ -402,7 +409,26 @@ class SqlSource(ReadingsSource):
         if self.layout == "long":
             query = query.where(table.c[self.tag_column].in_(list(self.tags)))
         low = conn.execute(query).scalar()
+        if isinstance(low, str):
+            low = self._readable_end(conn, query, t, t.asc())
         return None if low is None else self._utc_bound(low, -_LOCAL_PAD)
+
+    def _readable_end(
+        self, conn: sa.Connection, query: sa.Select[Any], t: Any, order: Any
+    ) -> Any:
+        """The first value of a text time column, in *order*, that reads as a time (a
+        text that is no time sorts anywhere and must not set the span); None if the
+        first `_PROBE` distinct values all fail."""
+        probe = sa.select(t).distinct()
+        if query.whereclause is not None:
+            probe = probe.where(query.whereclause)
+        for (value,) in conn.execute(probe.where(t.is_not(None)).order_by(order).limit(_PROBE)):
+            try:
+                pd.Timestamp(value)
+            except (ValueError, TypeError, OverflowError):
+                continue
+            return value
+        return None
 
     def _utc_bound(self, value: Any, pad: timedelta) -> pd.Timestamp:
         """A DB time as UTC, moved by *pad* when it is local wall time (may be ambiguous)."""
@@ -516,7 +542,8 @@ class SqlSource(ReadingsSource):
         blank = keep & ~np.isfinite(values)
         for i in np.flatnonzero(blank):
             row = (columns[0][i], columns[1][i], columns[2][i])
-            bad.append((*self._place(columns, int(i)), "blank value", repr(row)))
+            reason = "blank value" if columns[2][i] is None else "value is not a number"
+            bad.append((*self._place(columns, int(i)), reason, repr(row)))
         keep = keep & ~blank
         good = np.ones(len(tags), dtype=bool)
         if self.quality_column:
@@ -525,7 +552,11 @@ class SqlSource(ReadingsSource):
         ids, uniques = pd.factorize(tags)
         scale = np.array([self._si[str(u)][0] for u in uniques])
         offset = np.array([self._si[str(u)][1] for u in uniques])
-        si = values * scale[ids] + offset[ids]
+        with np.errstate(over="ignore", invalid="ignore"):
+            si = values * scale[ids] + offset[ids]
+        for i in np.flatnonzero(keep & ~np.isfinite(si)):
+            bad.append((*self._place(columns, int(i)), _OVERFLOW, repr(_row(columns, int(i)))))
+            keep = keep & (np.arange(len(keep)) != i)
         return readings_frame(times.asi8[keep], tags[keep], si[keep], good[keep])
 
     def _wide(
@@ -549,8 +580,14 @@ class SqlSource(ReadingsSource):
                     bad.append((*self._place(columns, int(i)), reason, repr(row)))
             ok = keep & np.isfinite(values)
             scale, offset = self._si[tag]
+            with np.errstate(over="ignore", invalid="ignore"):
+                si = values * scale + offset
+            for i in np.flatnonzero(ok & ~np.isfinite(si)):
+                row = _row(columns, int(i))
+                bad.append((*self._place(columns, int(i)), f"{_OVERFLOW}: {tag}", repr(row)))
+            ok &= np.isfinite(si)
             parts_t.append(times.asi8[ok])
-            parts_v.append(values[ok] * scale + offset)
+            parts_v.append(si[ok])
             counts.append(int(ok.sum()))
         names = np.repeat(np.array(tags, dtype=object), counts)
         return readings_frame(np.concatenate(parts_t), names, np.concatenate(parts_v), None)

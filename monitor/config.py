@@ -17,6 +17,7 @@ Exceptions::
 
 from __future__ import annotations
 
+import math
 import re
 import tomllib
 import zoneinfo
@@ -26,6 +27,7 @@ from datetime import timedelta
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
+import numpy as np
 from pydantic import (
     BaseModel,
     BeforeValidator,
@@ -654,8 +656,8 @@ def _tag(ref: TagRef, kind: str, tags: dict[str, TagSpec]) -> str:
             f"tag {ref.tag!r}: unit {ref.unit!r} is not a unit of {kind} "
             f"(e.g. {_EXAMPLE_UNITS[kind]})"
         ) from None
-    low = float(convert(ref.low)) if ref.low is not None else None
-    high = float(convert(ref.high)) if ref.high is not None else None
+    low = _finite(convert, ref.low, ref, "low")
+    high = _finite(convert, ref.high, ref, "high")
     spec = TagSpec(tag=ref.tag, unit=ref.unit, kind=kind, low=low, high=high)
     old = tags.get(ref.tag)
     if old is not None and old != spec:
@@ -677,7 +679,18 @@ _EXAMPLE_UNITS = {
 def _nominal(ref: TagRef | None, kind: str) -> float | None:
     if ref is None or ref.nominal is None:
         return None
-    return float(converter(ref.unit, kind)(ref.nominal))
+    return _finite(converter(ref.unit, kind), ref.nominal, ref, "nominal")
+
+
+def _finite(convert: Any, value: float | None, ref: TagRef, key: str) -> float | None:
+    """*value* of *ref* converted to SI, refused when it does not fit in a float."""
+    if value is None:
+        return None
+    with np.errstate(over="ignore", invalid="ignore"):
+        si = float(convert(value))
+    if not math.isfinite(si):
+        raise ValueError(f"tag {ref.tag!r}: {key} = {value!r} {ref.unit} is too large")
+    return si
 
 
 def _build(doc: SiteFile, path: Path) -> Site:
@@ -689,12 +702,16 @@ def _build(doc: SiteFile, path: Path) -> Site:
     pump = None
     speed_tag = None
     if doc.pump is not None:
-        pump = PumpCurve(
-            [pt.flow for pt in doc.pump.curve],
-            [pt.head for pt in doc.pump.curve],
-            speed_ratio=doc.pump.design_speed,
-            count=doc.pump.count,
-        )
+        try:
+            with np.errstate(over="raise", invalid="raise"):  # 1e308 m heads: an error
+                pump = PumpCurve(
+                    [pt.flow for pt in doc.pump.curve],
+                    [pt.head for pt in doc.pump.curve],
+                    speed_ratio=doc.pump.design_speed,
+                    count=doc.pump.count,
+                )
+        except (ValueError, ArithmeticError) as exc:
+            raise ValueError(f"pump (curve, design_speed, count): {exc}") from None
         if doc.pump.speed is not None:
             speed_tag = _tag(doc.pump.speed, "speed", tags)
 
@@ -705,8 +722,17 @@ def _build(doc: SiteFile, path: Path) -> Site:
             branches.append(_build_branch(sec, tags, doc.analysis.cleaning_limit))
         except (ValueError, KeyError) as exc:
             raise ValueError(f"{where}: {exc}") from None
+        except ArithmeticError:  # e.g. 1e308 m3/h raised to the equipment's exponent
+            raise ValueError(
+                f"{where}: a quantity is too large to compute with; check the values and "
+                "units of its elements") from None
 
     base = path.parent
+    # a secrets file is read as root or as the service user: it must not name another
+    # file of the machine (/etc/shadow) unless the site says it keeps files elsewhere
+    for key, given in _secrets_files(doc):
+        if not doc.site.allow_paths_outside:
+            _inside(base, base / given, key, given)
     store_url = _store_url(doc.store, base, allow_outside=doc.site.allow_paths_outside)
     report_folder = (base / doc.report.folder).resolve()
     if not doc.site.allow_paths_outside:
@@ -738,6 +764,19 @@ def _build(doc: SiteFile, path: Path) -> Site:
         notify=_notify(doc.notify, base),
         energy_price=doc.cost.energy_price if doc.cost is not None else None,
     )
+
+
+def _secrets_files(doc: SiteFile) -> list[tuple[str, str]]:
+    """(key path, value) of every secrets_file the site file names."""
+    found = [("store.secrets_file", doc.store.secrets_file)]
+    if doc.source is not None:
+        found.append(("source.secrets_file", doc.source.secrets_file))
+    if doc.notify is not None:
+        for name in ("email", "webhook"):
+            part = getattr(doc.notify, name)
+            if part is not None:
+                found.append((f"notify.{name}.secrets_file", part.secrets_file))
+    return [(key, str(value)) for key, value in found if value]
 
 
 def _notify(sec: NotifySection | None, base: Path) -> NotifySection | None:

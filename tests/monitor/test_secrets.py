@@ -353,7 +353,14 @@ def test_passwords_appear_in_no_output_log_or_record(
     with sqlite3.connect(store_db) as conn:
         table = str(conn.execute("SELECT * FROM job_runs").fetchall())
     assert "no_such_table" in table and "refused the login" in table
-    seen = out + err + table + caplog.text + "".join(r.getMessage() for r in caplog.records)
+    # the morning report and the health file written after those failures
+    assert main(["report", str(site)]) == 0
+    out2, err2 = capsys.readouterr()
+    written = [p for p in (tmp_path / "reports").rglob("*") if p.is_file()]
+    assert any(p.suffix == ".html" for p in written), written
+    files = "".join(p.read_text(encoding="utf-8", errors="replace") for p in written)
+    seen = out + err + out2 + err2 + files + table + caplog.text \
+        + "".join(r.getMessage() for r in caplog.records)
     for secret in secrets.values():
         for form in _forms(secret):
             assert form not in seen, form
