@@ -912,10 +912,16 @@ def catch_up(
         start = pd.Timestamp(marks.fits["last_window_end"].min()).to_pydatetime()
     elif not marks.readings.empty:
         start = pd.Timestamp(marks.readings["last"].min()).to_pydatetime()
-        start = max(start - site.window, now - timedelta(days=CATCH_UP_MAX_DAYS))
+        # the last whole window before the newest reading (the end is capped there)
+        start = max(start - 2 * site.window, now - timedelta(days=CATCH_UP_MAX_DAYS))
     else:
         start = now - site.window * 2
-    return analyze(site, store, source, start, now)
+    end = now
+    if not source.keeps_readings and not marks.readings.empty:
+        # a window is whole once a reading at or after its end is stored: a clock stepped
+        # forward (or an export running late) must not fit a window before its data is in
+        end = min(now, pd.Timestamp(marks.readings["last"].max()).to_pydatetime())
+    return analyze(site, store, source, start, max(start, end))
 
 
 # ---------------------------------------------------------------------------------------
