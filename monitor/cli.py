@@ -1041,7 +1041,7 @@ the trends, data health. One self-contained HTML file; open it in any browser.""
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
-    from monitor.jobs import write_report
+    from monitor.jobs import ReportWriteError, write_report
 
     site = _site(args)
     now = datetime.now(UTC)
@@ -1051,6 +1051,8 @@ def _cmd_report(args: argparse.Namespace) -> int:
     try:
         path = _run_recorded(store, "report",
                              lambda: write_report(site, store, day=day, now=now))
+    except ReportWriteError as exc:
+        raise UserError(str(exc)) from None
     finally:
         store.close()
     print(f"morning report written to {path}")

@@ -23,7 +23,7 @@ import time
 from collections import Counter, deque
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, timedelta
 from itertools import islice
@@ -68,6 +68,7 @@ __all__ = [
     "PARALLEL_AFTER_S",
     "AnalyzeSummary",
     "IngestSummary",
+    "ReportWriteError",
     "WatchPass",
     "alarm_checks",
     "analyze",
@@ -948,9 +949,27 @@ def write_report(site: Site, store: ResultsStore, *, day: datetime, now: datetim
     )
     local = pd.Timestamp(day_start).tz_convert(site.timezone)
     path = site.report_folder / f"morning-{local:%Y-%m-%d}.html"
-    path.parent.mkdir(parents=True, exist_ok=True)
+    text = build_report(inputs)
     tmp = path.with_suffix(".tmp")
-    tmp.write_text(build_report(inputs), encoding="utf-8")
-    tmp.replace(path)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp.write_text(text, encoding="utf-8")
+        tmp.replace(path)
+    except OSError as exc:  # disk full, read-only: the previous file stays as it was
+        with suppress(OSError):
+            tmp.unlink(missing_ok=True)  # a cut temp file would hold the space it took
+        raise ReportWriteError(
+            f"the morning report {path.name} could not be written in {path.parent} "
+            f"({exc.strerror or type(exc).__name__}); any earlier report there is kept: free "
+            "space on that disk or make the folder writable ([report] folder in the site "
+            "file), then run 'report' again", errno=exc.errno) from exc
     log.info("morning report written to %s", path)
     return path
+
+
+class ReportWriteError(OSError):
+    """The report folder refused the report (full, read-only, gone); one line."""
+
+    def __init__(self, message: str, *, errno: int | None = None) -> None:
+        super().__init__(message)
+        self.errno = errno
