@@ -16,6 +16,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import itertools
 import os
 import random
@@ -25,6 +26,7 @@ import signal
 import socket
 import subprocess
 import sys
+import tempfile
 import time
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -306,21 +308,22 @@ def _as_user(user: str, argv: list[str]) -> list[str]:
 
 
 class PrivatePostgres:
-    """A PostgreSQL cluster of its own (initdb + pg_ctl) in *folder*, trust auth on
-    127.0.0.1:*port*; `stop` and `start` take it away and bring it back."""
+    """A PostgreSQL cluster of its own (initdb + pg_ctl) in a fresh temp folder (directly
+    in the temp dir, so that the postgres user can reach it), trust auth on
+    127.0.0.1:*port*; `stop` and `start` take it away and bring it back, `remove` deletes
+    it."""
 
-    def __init__(self, folder: Path) -> None:
+    def __init__(self) -> None:
         bins = sorted(Path("/usr/lib/postgresql").glob("*/bin/pg_ctl"))
         if not bins:
             raise RuntimeError("no pg_ctl under /usr/lib/postgresql/*/bin")
         self.bin = bins[-1].parent
-        self.folder = folder
-        self.data = folder / "pgdata"
+        self.folder = Path(tempfile.mkdtemp(prefix="bw-faults-pg-"))
+        self.data = self.folder / "pgdata"
         self.port = free_port()
         self.url = f"postgresql+psycopg://postgres@127.0.0.1:{self.port}/postgres"
-        folder.mkdir(parents=True, exist_ok=True)
         if os.geteuid() == 0:
-            shutil.chown(folder, "postgres", "postgres")
+            shutil.chown(self.folder, "postgres", "postgres")
         self._run([str(self.bin / "initdb"), "-D", str(self.data), "-U", "postgres",
                    "--auth=trust", "-E", "UTF8", "--no-sync"])
 
@@ -341,12 +344,18 @@ class PrivatePostgres:
         self._run([str(self.bin / "pg_ctl"), "-D", str(self.data), "-m", "fast", "-w", "stop"])
         _wait_port(self.port, False)
 
+    def remove(self) -> None:
+        with contextlib.suppress(RuntimeError):
+            self.stop()
+        shutil.rmtree(self.folder, ignore_errors=True)
+
 
 class PrivateMariaDB:
     """A MariaDB server of its own (mariadb-install-db + mariadbd) in *folder* on
     127.0.0.1:*port*, without grant tables (loopback only, this test's data alone)."""
 
-    def __init__(self, folder: Path) -> None:
+    def __init__(self) -> None:
+        folder = Path(tempfile.mkdtemp(prefix="bw-faults-mariadb-"))
         install = shutil.which("mariadb-install-db")
         self.server = shutil.which("mariadbd") or "/usr/sbin/mariadbd"
         if install is None or not Path(self.server).exists():
@@ -358,8 +367,9 @@ class PrivateMariaDB:
         self.proc: subprocess.Popen[bytes] | None = None
         folder.mkdir(parents=True, exist_ok=True)
         done = subprocess.run(
-            [install, f"--datadir={self.data}", "--user=root", "--auth-root-authentication-"
-             "method=normal", "--skip-test-db"], capture_output=True, text=True, timeout=180)
+            [install, "--no-defaults", f"--datadir={self.data}", "--user=root",
+             "--auth-root-authentication-method=normal", "--skip-test-db"],
+            capture_output=True, text=True, timeout=180)
         if done.returncode != 0:
             raise RuntimeError(f"mariadb-install-db failed: {done.stderr.strip()[-400:]}")
         self._created = False
@@ -391,6 +401,10 @@ class PrivateMariaDB:
             self.proc.wait(timeout=120)
         self.proc = None
         _wait_port(self.port, False)
+
+    def remove(self) -> None:
+        self.stop()
+        shutil.rmtree(self.folder, ignore_errors=True)
 
 
 # ---------------------------------------------------------------------------------------
