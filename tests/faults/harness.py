@@ -365,6 +365,7 @@ class PrivateMariaDB:
         self.port = free_port()
         self.url = f"mysql+pymysql://root@127.0.0.1:{self.port}/bwtest"
         self.proc: subprocess.Popen[bytes] | None = None
+        self._log: Any = None
         folder.mkdir(parents=True, exist_ok=True)
         done = subprocess.run(
             [install, "--no-defaults", f"--datadir={self.data}", "--user=root",
@@ -375,7 +376,7 @@ class PrivateMariaDB:
         self._created = False
 
     def start(self) -> None:
-        log = (self.folder / "server.log").open("ab")
+        self._log = log = (self.folder / "server.log").open("ab")
         self.proc = subprocess.Popen(
             [self.server, "--no-defaults", f"--datadir={self.data}", f"--port={self.port}",
              "--bind-address=127.0.0.1", f"--socket={self.folder / 'sock'}",
@@ -400,6 +401,9 @@ class PrivateMariaDB:
             self.proc.send_signal(signal.SIGTERM)
             self.proc.wait(timeout=120)
         self.proc = None
+        if self._log is not None:
+            self._log.close()
+            self._log = None
         _wait_port(self.port, False)
 
     def remove(self) -> None:

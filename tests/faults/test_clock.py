@@ -71,7 +71,10 @@ def test_clock_steps_neither_repeat_nor_skip_a_window(tmp_path: Path) -> None:
             part = frame[(frame.index >= real - TICK) & (frame.index < real)]
             export(site, part, folder / "inbox" / f"loopB_{i:03d}.csv")
             wall = real + _offset(i)
-            ingest_and_watch(site, store, source, clock=lambda w=wall: w)
+            def clock(w: datetime = wall) -> datetime:
+                return w
+
+            ingest_and_watch(site, store, source, clock=clock)
             catch_up(site, store, source, now=wall)
         fits = store.read_fits(branch=site.branches[0].name)
     finally:
