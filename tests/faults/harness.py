@@ -154,11 +154,14 @@ def cli(args: Sequence[str], *, log_file: Any = subprocess.DEVNULL) -> subproces
 def run_killed(args: Sequence[str], *, kills: int, rng: random.Random, span_s: float,
                out: Path, timeout_s: float = 600.0, min_s: float = 1.0) -> KillLog:
     """Run the CLI with *args*; SIGKILL it *kills* times, each after a delay drawn from
-    *rng* in [*min_s*, *span_s*] (a run that ends first is simply counted as done and run
-    again for the next kill); then run it once more to its end. *out* gets all output."""
+    *rng* in [*min_s*, *span_s*] (a run that ends first is counted as done and run again
+    with a new draw, up to 3 x *kills* starts); then run it once more to its end. *out*
+    gets all output."""
     log = KillLog()
     with out.open("ab") as fh:
-        for _ in range(kills):
+        for _ in range(3 * kills):
+            if log.kills >= kills:
+                break
             delay = rng.uniform(min_s, span_s)
             proc = cli(args, log_file=fh)
             try:
