@@ -1090,7 +1090,7 @@ file each; open it in any browser.""",
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
-    from monitor.jobs import write_report
+    from monitor.jobs import ReportWriteError, write_report
 
     site = _site(args)
     now = datetime.now(UTC)
@@ -1102,6 +1102,8 @@ def _cmd_report(args: argparse.Namespace) -> int:
     try:
         path = _run_recorded(store, "report",
                              lambda: write_report(site, store, day=day, now=now))
+    except ReportWriteError as exc:
+        raise UserError(str(exc)) from None
     finally:
         store.close()
     print(f"morning report written to {path}")

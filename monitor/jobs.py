@@ -23,7 +23,7 @@ import time
 from collections import Counter, deque
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, timedelta
 from itertools import islice
@@ -80,6 +80,7 @@ __all__ = [
     "PARALLEL_AFTER_S",
     "AnalyzeSummary",
     "IngestSummary",
+    "ReportWriteError",
     "WatchPass",
     "alarm_checks",
     "analyze",
@@ -1112,10 +1113,16 @@ def catch_up(
         start = pd.Timestamp(marks.fits["last_window_end"].min()).to_pydatetime()
     elif not marks.readings.empty:
         start = pd.Timestamp(marks.readings["last"].min()).to_pydatetime()
-        start = max(start - site.window, now - timedelta(days=CATCH_UP_MAX_DAYS))
+        # the last whole window before the newest reading (the end is capped there)
+        start = max(start - 2 * site.window, now - timedelta(days=CATCH_UP_MAX_DAYS))
     else:
         start = now - site.window * 2
-    return analyze(site, store, source, start, now)
+    end = now
+    if not source.keeps_readings and not marks.readings.empty:
+        # a window is whole once a reading at or after its end is stored: a clock stepped
+        # forward (or an export running late) must not fit a window before its data is in
+        end = min(now, pd.Timestamp(marks.readings["last"].max()).to_pydatetime())
+    return analyze(site, store, source, start, max(start, end))
 
 
 # ---------------------------------------------------------------------------------------
@@ -1163,9 +1170,27 @@ def write_report(site: Site, store: ResultsStore, *, day: datetime, now: datetim
     )
     local = pd.Timestamp(day_start).tz_convert(site.timezone)
     path = site.report_folder / f"morning-{local:%Y-%m-%d}.html"
-    path.parent.mkdir(parents=True, exist_ok=True)
+    text = build_report(inputs)
     tmp = path.with_suffix(".tmp")
-    tmp.write_text(build_report(inputs), encoding="utf-8")
-    tmp.replace(path)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp.write_text(text, encoding="utf-8")
+        tmp.replace(path)
+    except OSError as exc:  # disk full, read-only: the previous file stays as it was
+        with suppress(OSError):
+            tmp.unlink(missing_ok=True)  # a cut temp file would hold the space it took
+        raise ReportWriteError(
+            f"the morning report {path.name} could not be written in {path.parent} "
+            f"({exc.strerror or type(exc).__name__}); any earlier report there is kept: free "
+            "space on that disk or make the folder writable ([report] folder in the site "
+            "file), then run 'report' again", errno=exc.errno) from exc
     log.info("morning report written to %s", path)
     return path
+
+
+class ReportWriteError(OSError):
+    """The report folder refused the report (full, read-only, gone); one line."""
+
+    def __init__(self, message: str, *, errno: int | None = None) -> None:
+        super().__init__(message)
+        self.errno = errno
