@@ -64,6 +64,10 @@ __all__ = ["Daemon", "DaemonStats", "wait_for"]
 
 T = TypeVar("T")
 
+#: a change of the wall clock against the monotonic clock larger than this is a step [s]
+CLOCK_STEP_S = 30.0
+#: the jobs run on an interval (re-run at once after the clock was set back)
+INTERVAL_JOBS = ("ingest", "notify")
 #: how often the outbox is looked at [s] (never less often than ingest)
 NOTIFY_EVERY_S = 60
 MISFIRE_GRACE_S = 3600  # a daily job up to an hour late still runs (e.g. after a reboot)
@@ -184,9 +188,11 @@ class Daemon:
         for job in self.scheduler.get_jobs():
             log.info("job %s: next run %s", job.id, job.next_run_time)
         deadline = None if duration_s is None else time.monotonic() + duration_s
+        offset = time.time() - time.monotonic()
         try:
             while not self._stop.is_set():
                 self._write_health()
+                offset = self._watch_clock(offset)
                 left = None if deadline is None else deadline - time.monotonic()
                 if left is not None and left <= 0:
                     break
@@ -196,6 +202,25 @@ class Daemon:
             self.scheduler.shutdown(wait=True)
             self._write_health()
         return self.stats
+
+    def _watch_clock(self, offset: float) -> float:
+        """Notice a step of the system clock (wall time against the monotonic clock).
+
+        APScheduler waits until a job's next run time by the wall clock, so a clock set
+        back an hour would hold ingest (and with it the stale-data alarm) back an hour:
+        the interval jobs are run now instead. A step forward needs nothing (the missed
+        runs are folded into one, at once); the daily jobs are idempotent on their date.
+        Returns the new offset [s].
+        """
+        now_offset = time.time() - time.monotonic()
+        step = now_offset - offset
+        if abs(step) > CLOCK_STEP_S:
+            log.warning("the system clock stepped by %+.0f s; interval jobs run now", step)
+            if step < 0 and self.scheduler.running:
+                for job_id in INTERVAL_JOBS:
+                    if self.scheduler.get_job(job_id) is not None:
+                        self.scheduler.modify_job(job_id, next_run_time=datetime.now(UTC))
+        return now_offset
 
     def stop(self) -> None:
         self._stop.set()

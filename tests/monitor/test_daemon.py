@@ -299,3 +299,27 @@ def test_run_judges_the_alarms_when_its_ingest_fails(
     row = alarms[alarms["condition"] == "stale source"].iloc[0]
     assert row["state"] == "unack" and "No data from any tag" in row["message"]
     assert set(runs["status"]) == {"failed"}
+
+
+def test_a_clock_set_back_runs_the_interval_jobs_now(
+    site: Site, caplog: pytest.LogCaptureFixture,
+) -> None:
+    # APScheduler waits for a job's next run by the wall clock: with the clock set back an
+    # hour, ingest (and so the stale-data alarm) would wait an hour more (issue 9 part 2)
+    hourly = dataclasses.replace(site, schedule=site.schedule.model_copy(
+        update={"ingest_every": 3600.0}))
+    daemon = Daemon(hourly, {"ingest": lambda: None}, last_ok=lambda job: None)
+    daemon.scheduler.start(paused=True)
+    try:
+        daemon.schedule()
+        job = daemon.scheduler.get_job("ingest")
+        assert job.next_run_time > datetime.now(UTC) + timedelta(minutes=30)
+        offset = time.time() - time.monotonic()
+        with caplog.at_level(logging.WARNING, logger="monitor.daemon"):
+            daemon._watch_clock(offset + 3600.0)  # the wall clock is now an hour behind
+        assert daemon.scheduler.get_job("ingest").next_run_time <= \
+            datetime.now(UTC) + timedelta(seconds=1)
+        assert any("stepped by -3600 s" in r.getMessage() for r in caplog.records)
+        daemon._watch_clock(time.time() - time.monotonic())  # no step: nothing moves
+    finally:
+        daemon.scheduler.shutdown(wait=False)
