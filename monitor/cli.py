@@ -575,8 +575,10 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
         summary = _analyze_with_progress(site, store, source, start, end, quiet=args.quiet,
                                          jobs=args.jobs)
         if args.fits:
-            fits = store.read_fits(start=start, end=end)
-            _write_fits_csv(fits, args.fits)
+            from monitor.jobs import current_fits
+
+            _write_fits_csv(current_fits(site, store.read_fits(start=start, end=end)),
+                            args.fits)
         replayed = None
         if args.alarms:
             from monitor.jobs import replay_alarms

@@ -273,6 +273,28 @@ def windows(
             t0 += size
 
 
+def current_fits(site: Site, fits: pd.DataFrame) -> pd.DataFrame:
+    """The rows of *fits* whose window has the site's present ``[analysis] window``.
+
+    The store keeps the fits of every window size it was ever run with (a changed
+    setting does not throw the old ones away), but a diagnosis, a report or an export
+    reads one size only: mixing daily and hourly fits would make one trend of two
+    sampling rates. Windows of whole days are local days, so 23 or 25 hours long on a
+    daylight-saving day; they count as the same size.
+    """
+    if fits.empty:
+        return fits
+    size = site.window.total_seconds()
+    length = (pd.to_datetime(fits["window_end"], utc=True)
+              - pd.to_datetime(fits["window_start"], utc=True)).dt.total_seconds()
+    slack = 3600.0 * (size // 86_400) if size % 86_400 == 0 else 1.0
+    keep = (length - size).abs() <= slack
+    if not keep.all():
+        log.info("%d fits of windows of another size than [analysis] window (%s) set aside",
+                 int((~keep).sum()), site.window)
+    return fits[keep.to_numpy()].reset_index(drop=True)
+
+
 # ---------------------------------------------------------------------------------------
 # analyze
 
@@ -544,7 +566,7 @@ def diagnose_site(
     open back-flow finding and one finding-clear time (`BackflowFindingSettings`) before
     *now*: a daily run then reads days, not the years behind it, and an open finding
     keeps its start."""
-    history = store.read_fits(end=now)
+    history = current_fits(site, store.read_fits(end=now))
     if history.empty:
         return []
     findings = diagnose(
@@ -1155,7 +1177,7 @@ def write_report(site: Site, store: ResultsStore, *, day: datetime, now: datetim
     from monitor.report import ReportInputs, build_report, history_start, report_day_bounds
 
     day_start, day_end = report_day_bounds(site, day)
-    fits = store.read_fits(start=history_start(day_end), end=day_end)
+    fits = current_fits(site, store.read_fits(start=history_start(day_end), end=day_end))
     findings = store.read_findings()
     if not findings.empty:
         findings = findings[findings["start"] < pd.Timestamp(day_end)]

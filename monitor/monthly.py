@@ -710,7 +710,9 @@ def write_monthly(site: Site, store: ResultsStore, *, month: str, generated: dat
     """
     month = parse_month(month)
     _, end = month_bounds(site, month)
-    fits = store.read_fits(start=history_start(site, month), end=end)
+    from monitor.jobs import current_fits  # jobs imports this module
+
+    fits = current_fits(site, store.read_fits(start=history_start(site, month), end=end))
     findings = store.read_findings()
     maintenance = store.maintenance()
     folder = site.report_folder
