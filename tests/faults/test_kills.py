@@ -43,7 +43,9 @@ def test_killed_commands_lose_and_double_nothing(tmp_path: Path) -> None:
         kills += done.kills
         # the restart ran to its end: a killed run left nothing that stops the next one
         assert done.last_rc == 0, (args, done.output[-2000:])
-    assert kills >= 4  # common practice: most draws land inside the work, not after it
+    # most draws land inside the work; a command that finishes within its first seconds
+    # (a second ingest with nothing new) may outrun all three of its draws
+    assert kills >= 2, kills
 
     c = store_counts(site, path.parent / "inbox", start - timedelta(days=1),
                      end + timedelta(days=1))
