@@ -9,6 +9,7 @@ loopback). Where a server cannot be reached the test skips with the reason — u
 from __future__ import annotations
 
 import os
+import signal
 import uuid
 from collections.abc import Iterator
 
@@ -55,3 +56,16 @@ def mariadb_url() -> str:
 def unique_name() -> Iterator[str]:
     """A table-name-safe unique suffix, so parallel or repeated runs do not collide."""
     yield "bw_" + uuid.uuid4().hex[:10]
+
+
+@pytest.fixture(autouse=True)
+def _signal_handlers_restored() -> Iterator[None]:
+    """The daemon installs its SIGINT/SIGTERM handlers for good (a CLI process ends after
+    it); every test gets the handlers it started with back, so a daemon test cannot change
+    how a later test sees Ctrl-C."""
+    saved = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        yield
+    finally:
+        for sig, handler in saved.items():
+            signal.signal(sig, handler)

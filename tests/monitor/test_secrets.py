@@ -14,7 +14,6 @@ from __future__ import annotations
 import json
 import logging
 import os
-import signal
 import sqlite3
 import stat
 import time
@@ -188,21 +187,8 @@ def test_an_existing_world_readable_store_is_tightened(tmp_path: Path, open_umas
     assert stat.S_IMODE(db.stat().st_mode) == 0o640
 
 
-@pytest.fixture
-def keep_signal_handlers() -> Iterator[None]:
-    """`run` installs the daemon's SIGINT/SIGTERM handlers for good (a CLI process ends
-    after it); the test process gets its own back."""
-    saved = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
-    try:
-        yield
-    finally:
-        for sig, handler in saved.items():
-            signal.signal(sig, handler)
-
-
 def test_cli_writes_files_for_user_and_group_only(
     tmp_path: Path, capsys: pytest.CaptureFixture[str], open_umask: None,
-    keep_signal_handlers: None,
 ) -> None:
     site = write_site(tmp_path)
     steps = [
