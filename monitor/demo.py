@@ -35,6 +35,7 @@ from model.simulate import (
     Fault,
     FoulingRamp,
     FrozenMeter,
+    NoiseSpec,
     OperatingSpec,
     Simulation,
     SiteTags,
@@ -94,16 +95,19 @@ DEMO_OPERATION = OperatingSpec(speed_day=1.0, speed_night=0.9, weekend_factor=0.
 def simulate_site(
     site: Site, start: datetime, end: datetime, *, faults: Sequence[Fault] = (),
     step_s: float = 60.0, seed: int = 7, operation: OperatingSpec = DEMO_OPERATION,
+    noise: NoiseSpec | None = None,
 ) -> Simulation:
     """Simulated historian data of *site* from *start* to *end*.
 
     Logged termination pressures and levels move around the nominal values of their tags.
+    *noise* is the instrument noise (default `NoiseSpec()`, the demo's).
     """
     if site.pump is None:
         raise ValueError("the simulator needs the site's [pump] section")
     return simulate(
         ParallelHeader([_at_nominal(b) for b in site.branches]), site.pump, site_tags(site),
         start=start, end=end, step_s=step_s, faults=faults, seed=seed, operation=operation,
+        noise=noise,
     )
 
 

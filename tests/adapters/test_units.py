@@ -53,3 +53,66 @@ def test_quantities_in_the_site_file() -> None:
         parse_quantity("30 kg/s", "m3/s")
     with pytest.raises(UnitError, match="a flow unit"):
         to_si([1.0], "kg/s", "flow")
+
+
+# -- temperature, position, length, other pressure units; what passes through ---------
+
+
+def test_temperature_scales() -> None:
+    # °F: water freezes at 32 °F and boils at 212 °F (1 atm) — t/°C = (t/°F − 32)/1.8
+    # (NIST SP 811, B.9); K: 0 °C = 273.15 K exactly (SI Brochure, 9th ed., 2.3.1)
+    assert to_si([32.0, 212.0], "degF", "temperature").tolist() == pytest.approx([0.0, 100.0])
+    assert to_si([273.15, 298.15], "K", "temperature").tolist() == pytest.approx([0.0, 25.0])
+    assert to_si([21.5], "degC", "temperature")[0] == pytest.approx(21.5, rel=1e-15)
+
+
+def test_percent_position_and_speed_are_fractions() -> None:
+    # % = 0.01 (SI Brochure, 9th ed., 5.4.7)
+    for unit in ("%", "percent"):
+        assert to_si([0.0, 60.0, 100.0], unit, "position").tolist() == pytest.approx(
+            [0.0, 0.6, 1.0])
+    assert to_si([87.5], "percent", "speed")[0] == pytest.approx(0.875)
+
+
+def test_feet_and_inches_of_level() -> None:
+    # international foot 0.3048 m, inch 0.0254 m exactly (NIST SP 811, B.9)
+    assert to_si([10.0], "ft", "level")[0] == pytest.approx(3.048, rel=1e-12)
+    assert to_si([12.0], "inch", "length")[0] == pytest.approx(0.3048, rel=1e-12)
+
+
+def test_kilopascal_millibar_and_absolute_kilopascal() -> None:
+    assert to_si([250.0], "kPa", "pressure")[0] == pytest.approx(2.5e5)
+    assert to_si([250.0], "kPag", "pressure")[0] == pytest.approx(2.5e5)
+    assert to_si([1013.25], "mbar", "pressure")[0] == pytest.approx(101_325.0)
+    # 101.325 kPa absolute is one standard atmosphere: gauge zero (CGPM 1954)
+    assert to_si([101.325], "kPaa", "pressure")[0] == pytest.approx(0.0, abs=1e-9)
+    assert to_si([1.0], "psig", "pressure")[0] == pytest.approx(6894.757, rel=1e-6)
+
+
+def test_missing_values_stay_missing_and_shapes_are_kept() -> None:
+    # a NaN (a reading the historian did not have) is never turned into a number
+    out = to_si([[1.0, float("nan")], [2.0, 3.0]], "m3/h", "flow")
+    assert out.shape == (2, 2)
+    assert out[0, 1] != out[0, 1]  # NaN
+    assert out[1, 1] == pytest.approx(3.0 / 3600.0)
+    back = from_si(out, "m3/h", "flow")
+    assert back[0, 1] != back[0, 1] and back[1, 0] == pytest.approx(2.0)
+
+
+@pytest.mark.parametrize(("unit", "kind"), [("degC", "pressure"), ("bar", "flow"),
+                                            ("furlongs/fortnight", "flow"), ("m3/h", "level")])
+def test_a_unit_of_the_wrong_kind_is_refused_with_both_units_named(unit: str, kind: str) -> None:
+    with pytest.raises(UnitError) as info:
+        to_si([1.0], unit, kind)
+    text = str(info.value)
+    assert repr(unit) in text and f"a {kind} unit" in text
+
+
+@pytest.mark.parametrize(("unit", "kind"), [("bar", "pressure"), ("psia", "pressure"),
+                                            ("kPaa", "pressure"), ("gpm", "flow"),
+                                            ("L/m", "flow"), ("K", "temperature"),
+                                            ("percent", "position"), ("ft", "level")])
+def test_from_si_is_the_inverse_of_to_si(unit: str, kind: str) -> None:
+    values = [0.0, 0.5, 3.25, 120.0]
+    assert from_si(to_si(values, unit, kind), unit, kind).tolist() == pytest.approx(
+        values, rel=1e-12, abs=1e-9)

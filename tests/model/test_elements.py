@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import math
-from typing import Any
 
 import fluids
 import numpy as np
@@ -103,12 +102,9 @@ def test_pipe_laminar_is_hagen_poiseuille() -> None:
     assert float(pipe.dp(q)) == pytest.approx(128 * mu * 10.0 * q / (math.pi * 0.05**4), rel=1e-12)
 
 
-def test_pipe_from_nominal_uses_fluids_tables() -> None:
+def test_pipe_from_nominal_against_asme_b36_10() -> None:
     p = Pipe.from_nominal(30.0, 4, "40")
     assert p.inner_diameter_m == pytest.approx(0.1023, abs=1e-4)  # ASME B36.10: 4.026 in
-    assert p.roughness_m == pytest.approx(
-        fluids.roughness_Farshad(ID="Carbon steel, bare", D=p.inner_diameter_m)
-    )
     assert 2e-5 < p.roughness_m < 6e-5  # commercial steel ~0.045 mm (Moody 1944)
     assert Pipe.from_nominal(1.0, 1.5, "80").inner_diameter_m == pytest.approx(
         0.0381, abs=2e-4  # ASME B36.10: 1.5 in sch 80, 1.500 in ID
@@ -146,30 +142,29 @@ CRANE_MULTIPLIERS = {
     "tee_branch": 60,
 }
 CRANE_FT_TABLE = {  # Crane TP-410 printed f_T by nominal size (REFERENCES.md)
+    1: 0.023,
     2: 0.019,
     3: 0.018,
     4: 0.017,
     6: 0.015,
     8: 0.014,
+    10: 0.014,
+    12: 0.013,
+    16: 0.013,
 }
-
-
-@pytest.mark.parametrize("kind", sorted(CRANE_MULTIPLIERS))
-def test_crane_multipliers_with_fluids_ft(kind: str) -> None:
-    # K / f_T with fluids' ft_Crane must give Crane's multiplier n exactly
-    for nps in CRANE_FT_TABLE:
-        d = Pipe.from_nominal(1.0, nps).inner_diameter_m
-        k = Fittings.k_of(kind, d)
-        assert k / fluids.ft_Crane(d) == pytest.approx(CRANE_MULTIPLIERS[kind], rel=1e-9)
+#: sizes the printed multiplier holds for (REFERENCES.md: butterfly n = 45 for 2–8")
+CRANE_SIZES = {"butterfly_valve": (2, 3, 4, 6, 8)}
 
 
 @pytest.mark.parametrize("kind", sorted(CRANE_MULTIPLIERS))
 def test_crane_k_against_printed_ft_table(kind: str) -> None:
-    # Against the printed f_T table: fluids' ft_Crane recomputes f_T from Colebrook and
-    # differs from the printed, rounded values by up to ~6 % (REFERENCES.md), so 7 %.
-    for nps, ft in CRANE_FT_TABLE.items():
+    # K = n·f_T with the printed, rounded f_T (Crane TP-410). The model's f_T is
+    # recomputed from Colebrook (fluids' ft_Crane) and lies within 4.7 % of the printed
+    # values at these sizes (REFERENCES.md: up to ~6 %), so 5 %.
+    for nps in CRANE_SIZES.get(kind, tuple(CRANE_FT_TABLE)):
         d = Pipe.from_nominal(1.0, nps).inner_diameter_m
-        assert Fittings.k_of(kind, d) == pytest.approx(CRANE_MULTIPLIERS[kind] * ft, rel=0.07)
+        expected = CRANE_MULTIPLIERS[kind] * CRANE_FT_TABLE[nps]
+        assert Fittings.k_of(kind, d) == pytest.approx(expected, rel=0.05), nps
 
 
 def test_entrance_exit_and_sum() -> None:
@@ -177,8 +172,11 @@ def test_entrance_exit_and_sum() -> None:
     assert Fittings.k_of("entrance", d) == 0.5  # sharp entrance, Crane TP-410
     assert Fittings.k_of("exit", d) == 1.0  # exit loss, Crane TP-410
     f = Fittings(d, {"elbow_90": 3, "gate_valve": 2, "exit": 1}, extra_k=0.7)
-    ft = fluids.ft_Crane(d)
-    assert f.k_total == pytest.approx(3 * 30 * ft + 2 * 8 * ft + 1.0 + 0.7, rel=1e-12)
+    # K of the set: each kind times its count, plus the extra K; 4" f_T .017 printed
+    # (Crane TP-410), within 5 % as above
+    parts = 3 * Fittings.k_of("elbow_90", d) + 2 * Fittings.k_of("gate_valve", d)
+    assert f.k_total == pytest.approx(parts + 1.0 + 0.7, rel=1e-12)
+    assert parts == pytest.approx((3 * 30 + 2 * 8) * 0.017, rel=0.05)
     q = np.array([0.0, 0.02])
     v = q / (math.pi * d**2 / 4)
     rho = float(water.density(20.0))
@@ -197,39 +195,27 @@ def test_fittings_check_valve_and_bad_keys() -> None:
 
 # ------------------------------------------------------------------ control valve
 
-# IEC 60534-2-1 worked example 1 (REFERENCES.md, carried in fluids' docs)
-IEC_EX1: dict[str, Any] = {
-    "rho": 965.4,
-    "Psat": 70.1e3,
-    "Pc": 22120e3,
-    "mu": 3.1472e-4,
-    "P1": 680e3,
-    "P2": 220e3,
-    "Q": 0.1,
-    "D1": 0.15,
-    "D2": 0.15,
-    "d": 0.15,
-    "FL": 0.9,
-    "Fd": 0.46,
-}
-
-
-def test_iec_60534_example_1_through_fluids() -> None:
-    kv: float = fluids.size_control_valve_l(**IEC_EX1)  # type: ignore[assignment]
-    assert kv == pytest.approx(164.995, abs=1e-3)  # IEC 60534-2-1 example 1: Kv 164.995 m³/h
+# IEC 60534-2-1 worked example 1 (REFERENCES.md, carried in fluids' docs): water at
+# ρ 965.4 kg/m³, P1 680 kPa, P2 220 kPa, Q 0.1 m³/s, not choked → Kv 164.995 m³/h
+IEC_EX1 = {"rho": 965.4, "P1": 680e3, "P2": 220e3, "Q": 0.1, "Kv": 164.995}
+RHO0_60F = 999.10329075702  # water at 60 °F [kg/m³], the ρ0 of the example's Kv
 
 
 def test_control_valve_reproduces_iec_example_dp() -> None:
-    # fluids uses ρ0 = 999.10329 kg/m³ (water at 60 °F) in Kv = Q·√(ρ/ρ0/ΔP); with that
-    # reference density our valve gives back the example's ΔP = 460 kPa.
-    kv: float = fluids.size_control_valve_l(**IEC_EX1)  # type: ignore[assignment]
-    rho_t = 965.4
+    # The example's printed Kv was computed with ρ0 = water at 60 °F in
+    # Kv = Q·√(ρ/ρ0/ΔP); with that reference density our valve gives back the example's
+    # ΔP = P1 − P2 = 460 kPa, to the rounding of the printed Kv (6 digits).
+    dp = IEC_EX1["P1"] - IEC_EX1["P2"]
+    rho_t = IEC_EX1["rho"]
     t = brentq(lambda x: float(water.density(x)) - rho_t, 60.0, 100.0)  # T where ρ = 965.4
-    valve = ControlValve(kv, position=1.0, reference_density=999.10329075702)
-    assert float(valve.dp(0.1, temperature_c=t)) == pytest.approx(460e3, rel=1e-6)
-    # with the Kv definition's ρ0 = 1000 kg/m³ (REFERENCES.md) the drop is 0.09 % lower
-    plain = ControlValve(kv)
-    assert float(plain.dp(0.1, temperature_c=t)) == pytest.approx(460e3, rel=1.5e-3)
+    valve = ControlValve(IEC_EX1["Kv"], position=1.0, reference_density=RHO0_60F)
+    assert float(valve.dp(IEC_EX1["Q"], temperature_c=t)) == pytest.approx(dp, rel=2e-5)
+    # with the Kv definition's ρ0 = 1000 kg/m³ (REFERENCES.md) the drop is ρ0(60 °F)/1000
+    # of that: 0.09 % lower
+    plain = ControlValve(IEC_EX1["Kv"])
+    assert float(plain.dp(IEC_EX1["Q"], temperature_c=t)) == pytest.approx(
+        dp * RHO0_60F / 1000.0, rel=2e-5
+    )
 
 
 def test_control_valve_characteristics() -> None:

@@ -9,6 +9,7 @@ right and dated near its truth, and that the clean branches stay quiet.
 from __future__ import annotations
 
 import json
+import shutil
 from collections.abc import Iterator
 from datetime import timedelta
 from pathlib import Path
@@ -41,6 +42,20 @@ def demo(tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict[str, Any]]:
     result = analyze(site, store, source, DEMO_START, DEMO_START + timedelta(days=DAYS))
     yield {"site": site, "store": store, "source": source, "first": first,
            "second": second, "result": result, "paths": paths}
+    source.close()
+    store.close()
+
+
+@pytest.fixture
+def own(demo: dict[str, Any], tmp_path: Path) -> Iterator[dict[str, Any]]:
+    """A private copy of the ingested and analysed site (site file, exports, store): a
+    test that changes the alarm state sees no other test's, in any order."""
+    copied = tmp_path / "site"
+    shutil.copytree(demo["paths"].folder, copied)
+    site = load_site(copied / demo["paths"].site_file.name)
+    store = open_store(site.store_url)
+    source = open_source(site)
+    yield {"site": site, "store": store, "source": source}
     source.close()
     store.close()
 
@@ -112,12 +127,13 @@ def test_resistance_findings_carry_their_cost(demo: dict[str, Any]) -> None:
     assert f.evidence["extra_energy_kwh_per_day"] > 0
 
 
-def test_frozen_meter_alarm_within_six_hours(demo: dict[str, Any]) -> None:
+def test_frozen_meter_alarm_within_six_hours(own: dict[str, Any]) -> None:
     """FT-310 freezes on day 120 at 03:00 UTC (demo_faults); ingest runs hourly.
 
-    Runs before the other alarm test: alarms only look forward from their last sample.
+    On its own copy of the store: alarms only look forward from their last sample, so a
+    store another test judged up to the end would hide the freeze.
     """
-    store, site, source = demo["store"], demo["site"], demo["source"]
+    store, site, source = own["store"], own["site"], own["source"]
     frozen_at = DEMO_START + timedelta(days=120, hours=3)
     activated = None
     for hour in range(-24, 12):
@@ -136,8 +152,8 @@ def test_frozen_meter_alarm_within_six_hours(demo: dict[str, Any]) -> None:
     assert quiet == []  # no live transmitter was called frozen
 
 
-def test_alarm_state_is_kept(demo: dict[str, Any]) -> None:
-    store, site, source = demo["store"], demo["site"], demo["source"]
+def test_alarm_state_is_kept(own: dict[str, Any]) -> None:
+    store, site, source = own["store"], own["site"], own["source"]
     now = DEMO_START + timedelta(days=DAYS)
     evaluate_alarms(site, store, source, now=now)
     first = store.read_alarms()
@@ -169,23 +185,69 @@ def test_cli_analyze_writes_findings_and_fits_files(
     assert "open findings" in capsys.readouterr().out
 
 
-def test_morning_report_names_each_open_finding(demo: dict[str, Any]) -> None:
+def _report_day(demo: dict[str, Any]) -> tuple[str, Any]:
     from datetime import UTC, datetime
 
     from monitor.jobs import write_report
+    from tests.monitor.test_report import _Page
 
     site, store = demo["site"], demo["store"]
     day = DEMO_START + timedelta(days=DAYS - 1)
     path = write_report(site, store, day=day, now=datetime.now(UTC))
-    text = path.read_text()
     assert path.name == f"morning-{pd.Timestamp(day).tz_convert(site.timezone):%Y-%m-%d}.html"
-    assert "advises; it does not control" in text  # the safety caution (DESIGN §6)
-    for f in demo["result"].findings:
-        if f.end is None:
-            assert f.branch in text
-    assert "data:image/png;base64," in text  # the trends are embedded
     again = write_report(site, store, day=day, now=datetime.now(UTC))
     assert again == path  # one file per day: a rerun replaces it
+    page = _Page()
+    text = path.read_text()
+    page.feed(text)
+    return text, page
+
+
+def test_morning_report_states_each_fault_with_its_numbers(demo: dict[str, Any]) -> None:
+    """The report of the last day names the four open faults of the scenario, with the
+    numbers of the simulated truth (demo_faults), and nothing on the clean branches."""
+    import re
+
+    text, page = _report_day(demo)
+    assert "advises; it does not control" in text  # the safety caution (DESIGN §6)
+    assert "data:image/png;base64," in text  # the trends are embedded
+    heads = [re.match(r"(fouling|restriction|back-pressure change|instrument fault)"
+                      r"(B\d-[a-z]+)", box) for box in page.findings]  # fmt: skip
+    assert [(m.group(2), m.group(1)) if m else None for m in heads] == [
+        ("B1-reactor", "fouling"),  # past its cleaning limit: first
+        ("B2-compressor", "restriction"),
+        ("B4-process", "back-pressure change"),
+        ("B3-quench", "instrument fault"),
+    ], page.findings
+    fouling, restriction, back_pressure, instrument = page.findings
+    # B1: r = 1 + 0.65·(t − 15 d)/140 d (linear ramp): 0.139 per month, limit 1.5 reached
+    # on day 122.7 = 2026-08-01 17:00 UTC
+    slope = re.search(r"rising (\d\.\d{3}) per month", fouling)
+    assert slope and float(slope.group(1)) == pytest.approx(0.65 / 140 * 30, rel=0.05)
+    passed = re.search(r"passed its cleaning limit 1\.50 on (\d{4}-\d\d-\d\d)", fouling)
+    assert passed, fouling
+    truth = DEMO_START + timedelta(days=15 + 140 * 0.5 / 0.65)
+    assert abs(pd.Timestamp(passed.group(1), tz=demo["site"].timezone) - truth) <= timedelta(
+        days=3)
+    assert "Forecast: at or past the cleaning limit 1.50" in fouling
+    assert "priority high" in fouling
+    # B2: a valve left throttled, r ×1.5 on day 70 at 09:30 UTC (11:30 site time)
+    assert "resistance ratio stepped from 1.00 to 1.50 (+50 %) on 2026-06-10 11:" in restriction
+    lost = re.search(r"flow lost (\d+\.\d) m³/h", restriction)
+    assert lost and float(lost.group(1)) > 0
+    # B4: the set point raised 0.3 bar on day 95 at 14:00 UTC (16:00 site time)
+    assert "moved by +0.30 bar on 2026-07-05 16:00" in back_pressure
+    assert "step +0.30 bar" in back_pressure
+    # B3: FT-310 frozen from day 120 03:00 UTC to day 124 (its windows are set aside)
+    assert "FT-310 looks faulty (frozen)" in instrument
+    assert "since 2026-07-30" in instrument
+    # the branch table: the last fitted r of each branch against the simulated truth
+    table = next(t for t in page.tables if t and t[0][:2] == ["branch", "resistance ratio r"])
+    r_last = {row[0].split(" | ")[0]: float(row[1]) for row in table[1:]}
+    r_true = {"B1-reactor": 1 + 0.65 * (DAYS - 1 + 0.5 - 15) / 140, "B2-compressor": 1.5}
+    for name in ("B1-reactor", "B2-compressor", "B3-quench", "B4-process", "B5-spray",
+                 "B6-chiller"):
+        assert r_last[name] == pytest.approx(r_true.get(name, 1.0), abs=0.01), name
 
 
 def test_status_tells_a_killed_run_from_a_running_one(
