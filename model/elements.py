@@ -443,7 +443,7 @@ class Fittings(_Loss):
                 raise ValueError(f"counts[{key!r}] must be a whole number >= 0; got {n!r}")
         object.__setattr__(self, "counts", dict(self.counts))
         d = self.diameter_m
-        k = self.extra_k + sum(n * _FITTINGS[key](d) for key, n in self.counts.items())
+        k = self.extra_k + sum(n * self.k_of(key, d) for key, n in self.counts.items())
         object.__setattr__(self, "k_total", float(k))
 
     @staticmethod
