@@ -48,15 +48,20 @@ import importlib
 from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from datetime import datetime
+from enum import StrEnum
 from typing import Any, ClassVar
 
 import pandas as pd
 
 __all__ = [
+    "ALARM_STATES",
+    "MAINTENANCE_KINDS",
     "QUARANTINE_COLUMNS",
     "READING_COLUMNS",
+    "AlarmStateName",
     "Batch",
     "BranchwatchAdapterError",
+    "MaintenanceKind",
     "Message",
     "Notifier",
     "NotifyError",
@@ -77,6 +82,38 @@ __all__ = [
 READING_COLUMNS: tuple[str, ...] = ("time", "tag", "value", "good")
 #: Rows that could not be read: where they were, why, and the raw text (truncated).
 QUARANTINE_COLUMNS: tuple[str, ...] = ("origin", "line", "reason", "raw")
+
+
+class AlarmStateName(StrEnum):
+    """The ISA-18.2 alarm states, as `monitor.alarms` runs the life cycle (there: `State`)
+    and the results store keeps them (its ``alarms.state`` column and journal)."""
+
+    NORMAL = "normal"
+    UNACK = "unack"  # active, unacknowledged
+    ACK = "ack"  # active, acknowledged
+    RTN_UNACK = "rtn_unack"  # returned to normal, unacknowledged
+    SHELVED = "shelved"
+    OUT_OF_SERVICE = "out_of_service"
+
+
+#: The stored spelling of every alarm state.
+ALARM_STATES: tuple[str, ...] = tuple(s.value for s in AlarmStateName)
+
+
+class MaintenanceKind(StrEnum):
+    """The work a maintenance entry records (``cleaned`` resets the fouling baseline;
+    ``other`` is any other work after which the diagnosis starts a new baseline)."""
+
+    CLEANED = "cleaned"
+    VALVE_SET = "valve_set"
+    METER_CALIBRATED = "meter_calibrated"
+    REPAIRED = "repaired"
+    INSPECTED = "inspected"
+    OTHER = "other"
+
+
+#: The stored spelling of every maintenance kind.
+MAINTENANCE_KINDS: tuple[str, ...] = tuple(k.value for k in MaintenanceKind)
 
 
 class BranchwatchAdapterError(Exception):

@@ -49,6 +49,9 @@ import pandas as pd
 import sqlalchemy as sa
 
 from adapters.base import (
+    ALARM_STATES,
+    MAINTENANCE_KINDS,
+    AlarmStateName,
     Batch,
     ResultsStore,
     StoreError,
@@ -111,25 +114,6 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 _MIGRATIONS = Path(__file__).resolve().parent / "migrations"
-#: ISA-18.2 alarm states as the store spells them.
-ALARM_STATES: tuple[str, ...] = (
-    "normal",
-    "unack",
-    "ack",
-    "rtn_unack",
-    "shelved",
-    "out_of_service",
-)
-#: Maintenance events (``cleaned`` resets the fouling baseline; ``other`` is any other
-#: work after which the diagnosis starts a new baseline).
-MAINTENANCE_KINDS: tuple[str, ...] = (
-    "cleaned",
-    "valve_set",
-    "meter_calibrated",
-    "repaired",
-    "inspected",
-    "other",
-)
 _MIGRATE_LOCK_ID = 0x6277_6D69  # any constant; "bwmi" — shared by every branchwatch
 _IDENT = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,62}$")
 
@@ -701,7 +685,7 @@ class SqlStore(ResultsStore):
                 for k, r in zip(keys, recs, strict=True)
                 # a change of state; an alarm first seen in normal changed nothing
                 if before.get(k) != r["state"] and not (k not in before
-                                                        and r["state"] == "normal")
+                                                        and r["state"] == AlarmStateName.NORMAL)
             ]
             upsert(conn, alarms_t, recs, ("branch", "condition"), replace=True)
             if events:
@@ -714,7 +698,7 @@ class SqlStore(ResultsStore):
         if branch is not None:
             query = query.where(alarms_t.c.branch == branch)
         if active_only:
-            query = query.where(alarms_t.c.state != "normal")
+            query = query.where(alarms_t.c.state != AlarmStateName.NORMAL.value)
         return self._frame(query, alarms_t)
 
     def alarm_events(

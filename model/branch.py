@@ -42,7 +42,7 @@ import logging
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 import numpy.typing as npt
@@ -58,7 +58,7 @@ from model.elements import (
     Fittings,
     Pipe,
 )
-from model.inverse import _Curve, _pressures, _solve_curve, stacked_flows
+from model.inverse import DynamicCurve, header_pressures, solve_curve, stacked_flows
 
 __all__ = [
     "Branch",
@@ -133,56 +133,57 @@ class Tank:
         return self.gas_pressure_pa + rho * water.G * level, self.base_elevation_m
 
 
+class _HeaderEnd:
+    """A termination at a header pressure: fixed in the site file, or the logged (or
+    solved) ``end_pressure_pa`` condition, which overrides it. Subclasses name the
+    field of the fixed pressure and what to say when there is none."""
+
+    _PRESSURE_FIELD: ClassVar[str]
+    _NO_PRESSURE: ClassVar[str]
+    elevation_m: float
+
+    def __post_init__(self) -> None:
+        _finite(self._PRESSURE_FIELD, self._fixed_pressure(), allow_none=True)
+        _finite("elevation_m", self.elevation_m)
+
+    def _fixed_pressure(self) -> float | None:
+        value: float | None = getattr(self, self._PRESSURE_FIELD)
+        return value
+
+    def end(
+        self, rho: np.ndarray, level_m: np.ndarray | None, end_pressure_pa: np.ndarray | None
+    ) -> tuple[np.ndarray, float]:
+        """(P_e [Pa gauge], elevation of the end [m])."""
+        p = end_pressure_pa if end_pressure_pa is not None else self._fixed_pressure()
+        if p is None:
+            raise ValueError(f"end_pressure_pa: {self._NO_PRESSURE}, give end_pressure_pa")
+        return np.zeros_like(rho) + p, self.elevation_m
+
+
 @dataclass(frozen=True)
-class HeldHeader:
+class HeldHeader(_HeaderEnd):
     """A header held at *set_pressure_pa* [Pa gauge] by others, at *elevation_m* [m].
 
     A logged ``end_pressure_pa`` condition overrides the set point.
     """
 
+    _PRESSURE_FIELD: ClassVar[str] = "set_pressure_pa"
+    _NO_PRESSURE: ClassVar[str] = "the held header has no set point"
     set_pressure_pa: float | None = None
     elevation_m: float = 0.0
 
-    def __post_init__(self) -> None:
-        _finite("set_pressure_pa", self.set_pressure_pa, allow_none=True)
-        _finite("elevation_m", self.elevation_m)
-
-    def end(
-        self, rho: np.ndarray, level_m: np.ndarray | None, end_pressure_pa: np.ndarray | None
-    ) -> tuple[np.ndarray, float]:
-        """(P_e [Pa gauge], elevation of the end [m])."""
-        p = end_pressure_pa if end_pressure_pa is not None else self.set_pressure_pa
-        if p is None:
-            raise ValueError(
-                "end_pressure_pa: the held header has no set point, give end_pressure_pa"
-            )
-        return np.zeros_like(rho) + p, self.elevation_m
-
 
 @dataclass(frozen=True)
-class ReturnHeader:
+class ReturnHeader(_HeaderEnd):
     """A common return header at *pressure_pa* [Pa gauge], at *elevation_m* [m].
 
     A logged (or solved) ``end_pressure_pa`` condition overrides *pressure_pa*.
     """
 
+    _PRESSURE_FIELD: ClassVar[str] = "pressure_pa"
+    _NO_PRESSURE: ClassVar[str] = "the return header has no fixed pressure"
     pressure_pa: float | None = None
     elevation_m: float = 0.0
-
-    def __post_init__(self) -> None:
-        _finite("pressure_pa", self.pressure_pa, allow_none=True)
-        _finite("elevation_m", self.elevation_m)
-
-    def end(
-        self, rho: np.ndarray, level_m: np.ndarray | None, end_pressure_pa: np.ndarray | None
-    ) -> tuple[np.ndarray, float]:
-        """(P_e [Pa gauge], elevation of the end [m])."""
-        p = end_pressure_pa if end_pressure_pa is not None else self.pressure_pa
-        if p is None:
-            raise ValueError(
-                "end_pressure_pa: the return header has no fixed pressure, give end_pressure_pa"
-            )
-        return np.zeros_like(rho) + p, self.elevation_m
 
 
 Termination = OpenDischarge | Tank | HeldHeader | ReturnHeader
@@ -501,17 +502,17 @@ class Branch:
         underflow), and where a control valve is shut. Accurate to about 1e-12
         relative.
         """
-        p_s = _pressures(header_pressure_pa)
-        static, curve = self._curve(
+        p_s = header_pressures(header_pressure_pa)
+        static, curve = self.dynamic_curve(
             temperature_c=temperature_c,
             level_m=level_m,
             end_pressure_pa=end_pressure_pa,
             valve_position=valve_position,
             resistance_ratio=resistance_ratio,
         )
-        return _solve_curve(curve, p_s - static, self.name)
+        return solve_curve(curve, p_s - static, self.name)
 
-    def _curve(
+    def dynamic_curve(
         self,
         *,
         temperature_c: npt.ArrayLike = 20.0,
@@ -519,8 +520,9 @@ class Branch:
         end_pressure_pa: npt.ArrayLike | None = None,
         valve_position: npt.ArrayLike | None = None,
         resistance_ratio: npt.ArrayLike = 1.0,
-    ) -> tuple[np.ndarray, _Curve]:
-        """(P_static [Pa gauge], the dynamic curve as coefficients) at these conditions."""
+    ) -> tuple[np.ndarray, DynamicCurve]:
+        """(P_static [Pa gauge], the dynamic curve as coefficients) at these conditions:
+        what `model.inverse.solve_curve` and `stacked_flows` solve for the flow."""
         # Scalar conditions (the usual case for a curve) stay Python floats: a stack of
         # a thousand branches is set up a thousand times, and numpy's 0-d arithmetic
         # costs a microsecond per operation.
@@ -541,7 +543,7 @@ class Branch:
                     quad = quad + _valve_coefficient(v) / np.square(v._kv(pos))
         pipes = tuple((r * k, nu_inv * g, e) for k, g, e in self._pipe_coefficients)
         equipment = tuple((r * a, n) for a, n in self._equipment_coefficients)
-        curve = _Curve(rho, quad, pipes, equipment, self._q_ref)  # type: ignore[arg-type]
+        curve = DynamicCurve(rho, quad, pipes, equipment, self._q_ref)  # type: ignore[arg-type]
         return static, curve
 
 

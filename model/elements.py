@@ -78,13 +78,18 @@ def _props(temperature_c: npt.ArrayLike) -> tuple[np.ndarray, np.ndarray]:
     return water.density(t), water.viscosity(t)
 
 
-class _FixedLoss:
-    """`dp` of an element whose loss does not depend on a valve position."""
+class _Loss:
+    """`dp` of every element: the conditions checked once, here, then the element's
+    own `_dp_props`. Only a control valve reads a *position* (`_checked_position`)."""
 
     def _dp_props(
         self, q: np.ndarray, rho: np.ndarray, mu: np.ndarray, position: np.ndarray | None
     ) -> np.ndarray:
         raise NotImplementedError
+
+    def _checked_position(self, position: npt.ArrayLike | None) -> np.ndarray | None:
+        """The position the loss depends on: none (ignored) but for a control valve."""
+        return None
 
     def dp(
         self,
@@ -94,9 +99,10 @@ class _FixedLoss:
         position: npt.ArrayLike | None = None,
     ) -> np.ndarray:
         """Pressure drop [Pa] at flow *q* [m^3/s] and *temperature_c* [°C]; *position*
-        is ignored."""
+        [-] counts for a control valve only (default: its fixed position)."""
         rho, mu = _props(temperature_c)
-        return self._dp_props(_checked_flow(q), rho, mu, None)
+        pos = self._checked_position(position)
+        return self._dp_props(_checked_flow(q), rho, mu, pos)
 
 
 def _checked_flow(q: npt.ArrayLike) -> np.ndarray:
@@ -264,7 +270,7 @@ def _positive(name: str, value: float) -> None:
 
 
 @dataclass(frozen=True)
-class Pipe(_FixedLoss):
+class Pipe(_Loss):
     """A straight run of round pipe, Darcy–Weisbach with the Colebrook friction factor.
 
     ΔP = f(Re, ε/D)·(L/D)·ρ·v²/2, v = 4Q/(πD²), Re = ρvD/μ (see `friction_factor`).
@@ -394,7 +400,7 @@ _CHECK_VALVES = frozenset(k for k in _FITTINGS if k.startswith("check_valve"))
 
 
 @dataclass(frozen=True)
-class Fittings(_FixedLoss):
+class Fittings(_Loss):
     """Fittings and manual valves at one pipe size, by kind and count.
 
     ΔP = (Σ count·K + extra_k)·ρv²/2 with v the velocity in a pipe of *diameter_m*.
@@ -437,7 +443,7 @@ class Fittings(_FixedLoss):
                 raise ValueError(f"counts[{key!r}] must be a whole number >= 0; got {n!r}")
         object.__setattr__(self, "counts", dict(self.counts))
         d = self.diameter_m
-        k = self.extra_k + sum(n * _FITTINGS[key](d) for key, n in self.counts.items())
+        k = self.extra_k + sum(n * self.k_of(key, d) for key, n in self.counts.items())
         object.__setattr__(self, "k_total", float(k))
 
     @staticmethod
@@ -466,7 +472,7 @@ _CHARACTERISTICS = ("equal_percentage", "linear", "quick_opening")
 
 
 @dataclass(frozen=True)
-class ControlValve:
+class ControlValve(_Loss):
     """A control valve in liquid service, IEC 60534-2-1 non-choked flow.
 
     Q [m^3/h] = Kv(u)·√(ΔP [bar] / (ρ/ρ_ref)), so ΔP = 10^5·(ρ/ρ_ref)·(Q/Kv(u))² [Pa].
@@ -565,26 +571,19 @@ class ControlValve:
             ratio = np.where(qh > 0, ratio, 0.0)
         return np.asarray((PA_PER_BAR / self.reference_density) * rho * (ratio * ratio))
 
-    def dp(
-        self,
-        q: npt.ArrayLike,
-        *,
-        temperature_c: npt.ArrayLike = 20.0,
-        position: npt.ArrayLike | None = None,
-    ) -> np.ndarray:
-        """Pressure drop [Pa] at flow *q* [m^3/s], *temperature_c* [°C], *position* [-]."""
-        rho, mu = _props(temperature_c)
+    def _checked_position(self, position: npt.ArrayLike | None) -> np.ndarray | None:
+        """*position* [-] as an array, its range checked (None: the fixed position)."""
         pos = None if position is None else np.asarray(position, dtype=float)
         if pos is not None:
             self.kv(pos)  # validates the range
-        return self._dp_props(_checked_flow(q), rho, mu, pos)
+        return pos
 
 
 # --------------------------------------------------------------------------- equipment
 
 
 @dataclass(frozen=True)
-class Equipment(_FixedLoss):
+class Equipment(_Loss):
     """Equipment with a rated pressure drop (heat exchanger, strainer, cooler jacket).
 
     ΔP = ΔP_rated·(ρ/ρ_rated)·(Q/Q_rated)^n; n = 2 for fully rough turbulent flow,
@@ -629,7 +628,7 @@ class Equipment(_FixedLoss):
 
 
 @dataclass(frozen=True)
-class Elevation:
+class Elevation(_Loss):
     """A rise (or, negative, a fall) along the branch's route [m].
 
     Static, not dynamic: its `dp` is zero; the branch adds ρ·g·rise_m to its static
@@ -649,14 +648,3 @@ class Elevation:
         self, q: np.ndarray, rho: np.ndarray, mu: np.ndarray, position: np.ndarray | None
     ) -> np.ndarray:
         return np.zeros(np.broadcast(q, rho).shape)
-
-    def dp(
-        self,
-        q: npt.ArrayLike,
-        *,
-        temperature_c: npt.ArrayLike = 20.0,
-        position: npt.ArrayLike | None = None,
-    ) -> np.ndarray:
-        """Dynamic pressure drop: zero [Pa] (the rise is static)."""
-        rho, _ = _props(temperature_c)
-        return self._dp_props(_checked_flow(q), rho, rho, None)

@@ -1,11 +1,11 @@
 """The inverse of a branch curve: the flow Q at a header pressure, for whole arrays.
 
 `model.branch.Branch.flow` and `stacked_flows` (one branch, or many branches stacked
-along a new first axis) hand their dynamic curves here as coefficients (`_Curve`) and
+along a new first axis) hand their dynamic curves here as coefficients (`DynamicCurve`) and
 solve ΔP_dyn(Q) = P_s − P_static by bracketed root finding: safeguarded Newton steps on
 ln Q, where the curve is almost a straight line of slope 1–2, inside a bracket that every
 evaluation narrows (see `_solve_block`). Large arrays are solved in cache-sized blocks
-(`_solve_curve`). A branch carries no flow at or below its threshold P_static (nor below
+(`solve_curve`). A branch carries no flow at or below its threshold P_static (nor below
 1 nPa above it), and never negative flow.
 """
 
@@ -25,7 +25,7 @@ from model.elements import RE_LAMINAR, RE_TURBULENT, friction_factor_slope
 if TYPE_CHECKING:  # only for annotations: model.branch imports this module
     from model.branch import Branch
 
-__all__ = ["stacked_flows"]
+__all__ = ["DynamicCurve", "header_pressures", "solve_curve", "stacked_flows"]
 
 log = logging.getLogger(__name__)
 
@@ -36,7 +36,7 @@ _MAX_ITER = 100  # bisection after 12 steps halves the bracket each time: ample
 
 
 @dataclass(frozen=True)
-class _Curve:
+class DynamicCurve:
     """Dynamic ΔP(Q) of one branch, or a stack of branches along axis 0, as coefficients.
 
     ΔP = ρ·(quad·Q² + Σ kp·f(Q·gp, ep)·Q² + Σ a·Q^n), f from `friction_factor`.
@@ -79,8 +79,8 @@ class _Curve:
 _CHUNK = 1 << 15  # elements per block: the temporaries stay in cache (256 kB each)
 
 
-def _map_curve(curve: _Curve, fn: Callable[[np.ndarray], np.ndarray]) -> _Curve:
-    return _Curve(
+def _map_curve(curve: DynamicCurve, fn: Callable[[np.ndarray], np.ndarray]) -> DynamicCurve:
+    return DynamicCurve(
         fn(curve.rho),
         fn(curve.quad),
         tuple((fn(k), fn(g), fn(e)) for k, g, e in curve.pipes),
@@ -89,7 +89,7 @@ def _map_curve(curve: _Curve, fn: Callable[[np.ndarray], np.ndarray]) -> _Curve:
     )
 
 
-def _arrays(curve: _Curve) -> list[np.ndarray]:
+def _arrays(curve: DynamicCurve) -> list[np.ndarray]:
     out = [curve.rho, curve.quad, curve.q_ref]
     for k, g, e in curve.pipes:
         out += [k, g, e]
@@ -98,7 +98,7 @@ def _arrays(curve: _Curve) -> list[np.ndarray]:
     return [np.asarray(a) for a in out]
 
 
-def _solve_curve(curve: _Curve, y: np.ndarray, name: str) -> np.ndarray:
+def solve_curve(curve: DynamicCurve, y: np.ndarray, name: str) -> np.ndarray:
     """`_solve_block` over blocks of at most `_CHUNK` elements.
 
     On a million elements every numpy temporary is a fresh 8 MB allocation that misses
@@ -153,7 +153,7 @@ class _Keep:
         return a if a.ndim == 0 else a[self.mask]
 
 
-def _solve_block(curve: _Curve, y: np.ndarray, name: str) -> np.ndarray:
+def _solve_block(curve: DynamicCurve, y: np.ndarray, name: str) -> np.ndarray:
     """Q >= 0 with ΔP_dyn(Q) = y where y > 0 (zero elsewhere, and where a valve is shut).
 
     Safeguarded Newton on x = ln Q with residual g = ln ΔP(x) − ln y and the analytic
@@ -248,9 +248,9 @@ def stacked_flows(
     """
     if len(branches) != len(conditions):
         raise ValueError("conditions must hold one mapping per branch")
-    p_s = _pressures(header_pressure_pa)
+    p_s = header_pressures(header_pressure_pa)
     pairs = zip(branches, conditions, strict=True)
-    prepared = [b._curve(**c) for b, c in pairs]
+    prepared = [b.dynamic_curve(**c) for b, c in pairs]
     if not prepared:
         return []
     shape = np.broadcast_shapes(
@@ -290,7 +290,7 @@ def stacked_flows(
         )
         for k in range(n_equip)
     )
-    stacked = _Curve(
+    stacked = DynamicCurve(
         stack([np.asarray(c.rho) for c in curves]),
         stack([np.asarray(c.quad) for c in curves]),
         pipes,  # type: ignore[arg-type]
@@ -298,11 +298,12 @@ def stacked_flows(
         stack([np.asarray(c.q_ref) for c in curves]),
     )
     static = stack([np.asarray(s) for s, _ in prepared])
-    q = _solve_curve(stacked, p_s - static, "stack")
+    q = solve_curve(stacked, p_s - static, "stack")
     return [q[i] for i in range(n)]
 
 
-def _pressures(header_pressure_pa: npt.ArrayLike) -> np.ndarray:
+def header_pressures(header_pressure_pa: npt.ArrayLike) -> np.ndarray:
+    """Header pressures [Pa gauge] as a float array; NaN is refused."""
     p_s = np.asarray(header_pressure_pa, dtype=float)
     if np.any(np.isnan(p_s)):
         raise ValueError("header_pressure_pa must not be NaN")

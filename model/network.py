@@ -268,10 +268,6 @@ class PumpCurve:
         rho = water.density(temperature_c)
         return np.asarray(rho * water.G * self.head(q, speed_ratio=speed_ratio))
 
-    def hydraulic_power(self, q: npt.ArrayLike, temperature_c: npt.ArrayLike = 20.0) -> np.ndarray:
-        """Hydraulic power ρ·g·H·Q [W] at total flow *q* [m^3/s]."""
-        return np.asarray(self.pressure_rise(q, temperature_c) * np.asarray(q, dtype=float))
-
 
 # --------------------------------------------------------------------------- operating point
 

@@ -47,10 +47,10 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta
-from enum import StrEnum
 
 import pandas as pd
 
+from adapters.base import AlarmStateName
 from adapters.units import from_si
 from monitor.diagnose import Finding
 
@@ -91,15 +91,9 @@ CHATTER_WINDOW = timedelta(minutes=1)
 STALE_AFTER = timedelta(hours=24)
 
 
-class State(StrEnum):
-    """ISA-18.2 alarm states."""
-
-    NORMAL = "normal"
-    UNACK = "unack"  # active, unacknowledged
-    ACK = "ack"  # active, acknowledged
-    RTN_UNACK = "rtn_unack"  # returned to normal, unacknowledged
-    SHELVED = "shelved"
-    OUT_OF_SERVICE = "out_of_service"
+#: The ISA-18.2 alarm states (defined once, beside the results store's interface, which
+#: keeps them).
+State = AlarmStateName
 
 
 @dataclass(frozen=True)

@@ -324,6 +324,9 @@ class AnalysisSection(_Strict):
     min_samples: int = Field(default=30, ge=3)
     low_flow_on_delay: Delay = 600.0
     low_flow_off_delay: Delay = 300.0
+    #: a latching low-flow alarm stays in after the flow has come back, until it is
+    #: acknowledged and reset ('branchwatch alarms --reset')
+    low_flow_latching: bool = False
     #: a flow or pressure reading that does not move at all for this long is frozen
     frozen_hold: Period = 3600.0
     #: the steady-state test: over this window (default: a quarter of the analysis

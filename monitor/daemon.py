@@ -42,7 +42,7 @@ import signal
 import threading
 import time
 import urllib.parse
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
@@ -55,12 +55,13 @@ from apscheduler.triggers.cron import CronTrigger
 from apscheduler.triggers.date import DateTrigger
 from apscheduler.triggers.interval import IntervalTrigger
 
+from adapters.base import ReadingsSource, ResultsStore
 from adapters.credentials import mask_secrets, remember_secret
 from monitor.config import Site
 
 log = logging.getLogger(__name__)
 
-__all__ = ["Daemon", "DaemonStats", "wait_for"]
+__all__ = ["Daemon", "DaemonStats", "last_ok_run", "site_jobs", "wait_for"]
 
 T = TypeVar("T")
 
@@ -96,8 +97,8 @@ class DaemonStats:
 class Daemon:
     """Runs the site's jobs on schedule until stopped.
 
-    *jobs* maps a job id to a zero-argument callable (the CLI binds site, store and source
-    into them), which keeps this class free of any knowledge of data or physics.
+    *jobs* maps a job id to a zero-argument callable (`site_jobs` binds site, store and
+    source into them), which keeps this class free of any knowledge of data or physics.
     """
 
     def __init__(
@@ -337,3 +338,67 @@ def wait_for(
             stop.wait(wait)
             delay = min(delay * 2, max_delay_s)
     return None
+
+
+def site_jobs(site: Site, store: ResultsStore, source: ReadingsSource, notifiers: Sequence[Any]
+              ) -> dict[str, Callable[[], None]]:
+    """The jobs the daemon runs for *site*, by name: ingest (and the alarms on it),
+    analyze, report, monthly, and notify where there are *notifiers*; each recorded in
+    the store's job log (`monitor.operations.run_recorded`)."""
+    from monitor.jobs import catch_up, ingest, ingest_and_watch, write_report
+    from monitor.monthly import previous_month, write_monthly
+    from monitor.notifications import deliver, queue_alarms, queue_digest
+    from monitor.operations import run_recorded
+
+    def ingest_job() -> None:
+        watch = ingest_and_watch(site, store, source, run_ingest=lambda: run_recorded(
+            store, "ingest", lambda: ingest(site, store, source)))
+        if notifiers:
+            queue_alarms(site, store, now=datetime.now(UTC))
+        if watch.error is not None:
+            raise watch.error  # counted as a failed run; the alarms were judged
+
+    def analyze_job() -> None:
+        run_recorded(store, "analyze",
+                     lambda: catch_up(site, store, source, now=datetime.now(UTC)))
+
+    reports_lock = threading.Lock()
+
+    def report_job() -> None:
+        now = datetime.now(UTC)
+        day = now - timedelta(days=1)
+        with reports_lock:
+            path = run_recorded(store, "report", lambda: write_report(
+                site, store, day=day, now=now))
+        if notifiers:
+            queue_digest(site, store, path, day=day, now=now)
+
+    def notify_job() -> None:
+        deliver(site, store, notifiers, now=datetime.now(UTC))
+
+    def monthly_job() -> None:
+        # the month before this one; then the morning report of yesterday again, so that
+        # whichever of the two ran first on the 1st, it links to the new monthly report
+        now = datetime.now(UTC)
+        with reports_lock:
+            run_recorded(store, "monthly", lambda: write_monthly(
+                site, store, month=previous_month(site, now), generated=now))
+            write_report(site, store, day=now - timedelta(days=1), now=now)
+
+    jobs = {"ingest": ingest_job, "analyze": analyze_job, "report": report_job,
+            "monthly": monthly_job}
+    if notifiers:
+        jobs["notify"] = notify_job
+    return jobs
+
+
+def last_ok_run(store: ResultsStore) -> Callable[[str], datetime | None]:
+    """For `Daemon`'s *last_ok*: when a job last ran to its end without failing."""
+    import pandas as pd
+
+    def last_ok(job: str) -> datetime | None:
+        runs = store.job_runs(limit=50, job=job)
+        ok = runs[runs["status"] == "ok"] if not runs.empty else runs
+        return None if ok.empty else pd.Timestamp(ok["started"].max()).to_pydatetime()
+
+    return last_ok

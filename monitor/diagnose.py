@@ -15,8 +15,8 @@ frozen meter is never called fouling) and **imbalance** (|Σ branch − total| b
 combined uncertainty for ``imbalance_windows`` windows in a row). Both are one finding
 per condition: runs that come back within ``clear_after_s`` are episodes of one finding
 (count, share of the time, worst value, first and last episode in its evidence), which
-ends when its last episode did, once ``clear_after_s`` has passed. It also costs a
-resistance finding (`finding_cost`). The data types are in `monitor.findings` and
+ends when its last episode did, once ``clear_after_s`` has passed. What a resistance
+finding costs is `monitor.cost`. The data types are in `monitor.findings` and
 importable from here.
 """
 
@@ -25,7 +25,6 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
 
@@ -58,9 +57,7 @@ __all__ = [
     "BranchSettings",
     "DiagnosisSettings",
     "Finding",
-    "FindingCost",
     "diagnose",
-    "finding_cost",
     "findings_to_json",
 ]
 
@@ -217,110 +214,6 @@ def _flag_windows(
         )
         out[str(name)] = agg.reset_index(drop=True)
     return out, last
-
-
-# -- cost ------------------------------------------------------------------------------
-
-#: Assumed pump (wire-to-water) efficiency when the site config gives none [-]. A typical
-#: figure for a centrifugal pump with motor on a drive (common practice); labelled
-#: "assumed" on every result that uses it.
-DEFAULT_PUMP_EFFICIENCY = 0.70
-
-
-@dataclass(frozen=True)
-class FindingCost:
-    """What a finding costs at today's operating point.
-
-    Attributes
-    ----------
-    lost_flow_m3s : clean-curve flow minus today's flow at today's header pressure [m^3/s]
-    lost_flow_fraction : lost flow over the clean-curve flow [-]
-    extra_dp_pa : pressure drop the added resistance takes at today's flow [Pa]
-    extra_power_w : hydraulic power of that drop divided by the pump efficiency [W]
-    extra_energy_kwh_per_day : extra_power × ``hours_per_day`` [kWh/d]
-    pump_efficiency : the efficiency used [-]
-    efficiency_assumed : True when it is `DEFAULT_PUMP_EFFICIENCY`, not a site figure
-    """
-
-    lost_flow_m3s: float
-    lost_flow_fraction: float
-    extra_dp_pa: float
-    extra_power_w: float
-    extra_energy_kwh_per_day: float
-    pump_efficiency: float
-    efficiency_assumed: bool
-    notes: tuple[str, ...] = field(default=())
-
-
-def finding_cost(
-    *,
-    flow_clean_m3s: float,
-    flow_now_m3s: float,
-    dp_dynamic_clean_pa: float,
-    r_now: float,
-    r_baseline: float = 1.0,
-    pump_efficiency: float | None = None,
-    hours_per_day: float = 24.0,
-) -> FindingCost:
-    """Lost flow and extra pump energy of a resistance increase.
-
-    The caller computes, with the branch model at today's header pressure and
-    temperature, the flow the clean (or baseline) branch would carry and the clean
-    dynamic pressure drop at today's flow. Then
-
-        ΔP_extra = (r_now − r_baseline)·ΔP_dyn,clean(Q_now)        [Pa]
-        P_extra  = ΔP_extra·Q_now/η                                [W]
-        E        = P_extra·hours/1000                              [kWh/d]
-
-    Parameters
-    ----------
-    flow_clean_m3s : flow of the clean/baseline branch at today's header pressure [m^3/s]
-    flow_now_m3s : today's flow [m^3/s]
-    dp_dynamic_clean_pa : clean dynamic pressure drop at today's flow [Pa]
-    r_now : today's resistance ratio [-]
-    r_baseline : resistance ratio of the reference state (1.0 = as designed) [-]
-    pump_efficiency : wire-to-water efficiency [-]; None uses the assumed 0.70
-    hours_per_day : running hours per day [h]
-
-    >>> c = finding_cost(flow_clean_m3s=0.040, flow_now_m3s=0.034,
-    ...                  dp_dynamic_clean_pa=1.0e5, r_now=1.4)
-    >>> round(c.extra_dp_pa), round(c.extra_power_w), round(c.extra_energy_kwh_per_day, 2)
-    (40000, 1943, 46.63)
-    """
-    values = {
-        "flow_clean_m3s": flow_clean_m3s,
-        "flow_now_m3s": flow_now_m3s,
-        "dp_dynamic_clean_pa": dp_dynamic_clean_pa,
-        "r_now": r_now,
-        "r_baseline": r_baseline,
-        "hours_per_day": hours_per_day,
-    }
-    for key, val in values.items():
-        if not math.isfinite(val) or val < 0:
-            raise ValueError(f"{key} must be a finite number >= 0, got {val}")
-    if hours_per_day > 24.0:
-        raise ValueError(f"hours_per_day must be at most 24, got {hours_per_day}")
-    assumed = pump_efficiency is None
-    eta = DEFAULT_PUMP_EFFICIENCY if pump_efficiency is None else float(pump_efficiency)
-    if not 0.0 < eta <= 1.0:
-        raise ValueError(f"pump_efficiency must be in (0, 1], got {pump_efficiency}")
-    notes: list[str] = []
-    if assumed:
-        notes.append(f"pump efficiency {eta:.2f} assumed (not in the site config)")
-    extra_dp = max(r_now - r_baseline, 0.0) * dp_dynamic_clean_pa
-    power = extra_dp * flow_now_m3s / eta
-    lost = max(flow_clean_m3s - flow_now_m3s, 0.0)
-    frac = lost / flow_clean_m3s if flow_clean_m3s > 0 else 0.0
-    return FindingCost(
-        lost_flow_m3s=lost,
-        lost_flow_fraction=frac,
-        extra_dp_pa=extra_dp,
-        extra_power_w=power,
-        extra_energy_kwh_per_day=power * hours_per_day / 1000.0,
-        pump_efficiency=eta,
-        efficiency_assumed=assumed,
-        notes=tuple(notes),
-    )
 
 
 def findings_to_json(findings: Sequence[Finding]) -> list[dict[str, Any]]:

@@ -21,6 +21,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import pandas as pd
 
+from adapters.base import MaintenanceKind
 from adapters.units import from_si
 
 __all__ = [
@@ -49,9 +50,9 @@ KINDS: tuple[str, ...] = (
 #: Which open findings a maintenance event ends. Those in `CHECKED_BY_FITS` end only when
 #: the fits after the event show the resistance ratio back down (`monitor.replay`).
 END_BY_EVENT: dict[str, frozenset[str]] = {
-    "cleaned": frozenset({"fouling", "restriction"}),
-    "valve_set": frozenset({"restriction", "back_pressure"}),
-    "meter_calibrated": frozenset({"instrument"}),
+    MaintenanceKind.CLEANED: frozenset({"fouling", "restriction"}),
+    MaintenanceKind.VALVE_SET: frozenset({"restriction", "back_pressure"}),
+    MaintenanceKind.METER_CALIBRATED: frozenset({"instrument"}),
 }
 #: Findings of a raised resistance ratio: an event ends them only when r fell after it.
 CHECKED_BY_FITS: frozenset[str] = frozenset({"fouling", "restriction"})
@@ -60,7 +61,8 @@ CHECKED_BY_FITS: frozenset[str] = frozenset({"fouling", "restriction"})
 #: is "medium"; a fouled branch past its cleaning limit is "high".
 PRIORITIES: dict[float, str] = {1.0: "low", 2.0: "medium", 3.0: "high"}
 #: How the messages name the work of an event kind.
-EVENT_WORDS: dict[str, str] = {"cleaned": "cleaning", "valve_set": "valve setting"}
+EVENT_WORDS: dict[str, str] = {MaintenanceKind.CLEANED: "cleaning",
+                               MaintenanceKind.VALVE_SET: "valve setting"}
 
 
 @dataclass(frozen=True)

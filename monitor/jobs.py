@@ -31,7 +31,6 @@ from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo
 
-import numpy as np
 import pandas as pd
 
 from adapters.base import (
@@ -66,12 +65,12 @@ from monitor.backflow import (
     termination_words,
 )
 from monitor.config import BranchConfig, Site
+from monitor.cost import J_PER_KWH, RESISTANCE_KINDS, branch_cost
 from monitor.diagnose import (
     BranchSettings,
     DiagnosisSettings,
     Finding,
     diagnose,
-    finding_cost,
 )
 
 log = logging.getLogger(__name__)
@@ -648,12 +647,10 @@ def _finding_row(f: Finding) -> dict[str, Any]:
     }
 
 
-_RESISTANCE_KINDS = frozenset({"fouling", "restriction"})
-
-
 def _with_cost(site: Site, history: pd.DataFrame, f: Finding) -> Finding:
-    """Add lost flow and extra pump energy to a resistance finding's evidence."""
-    if f.kind not in _RESISTANCE_KINDS:
+    """Add lost flow and extra pump energy (`monitor.cost`, at the newest fit) to a
+    resistance finding's evidence, in the units the evidence is stored in."""
+    if f.kind not in RESISTANCE_KINDS:
         return f
     try:
         branch = site.branch(f.branch)
@@ -669,28 +666,20 @@ def _with_cost(site: Site, history: pd.DataFrame, f: Finding) -> Finding:
     t_c = float(last.get("temperature_c", site.design_temperature_c))
     if not all(math.isfinite(v) for v in (p_s, q_now, r_now, t_c)):
         return f
-    cond: dict[str, float] = {"temperature_c": t_c, **branch.nominal}
     end_p = last.get("end_pressure_pa")
-    if end_p is not None and math.isfinite(float(end_p)):
-        cond["end_pressure_pa"] = float(end_p)
     r_base = float(f.evidence.get("r_baseline", 1.0))
     if not math.isfinite(r_base) or r_base <= 0:
         r_base = 1.0
-    q_clean = float(branch.model.flow(np.asarray(p_s), resistance_ratio=r_base, **cond))
-    rest, _valve = branch.model.dp_dynamic_parts(
-        np.asarray(q_now), temperature_c=t_c,
-        valve_position=cond.get("valve_position"),
-    )
-    cost = finding_cost(
-        flow_clean_m3s=q_clean, flow_now_m3s=q_now, dp_dynamic_clean_pa=float(rest),
-        r_now=r_now, r_baseline=r_base, pump_efficiency=site.pump_efficiency,
-    )
+    c = branch_cost(site, branch, header_pressure_pa=p_s, flow_m3s=q_now, r_now=r_now,
+                    temperature_c=t_c, r_baseline=r_base,
+                    end_pressure_pa=float(end_p) if end_p is not None
+                    and math.isfinite(float(end_p)) else None)
     evidence = {
         **f.evidence,
-        "lost_flow_m3h": cost.lost_flow_m3s * 3600.0,
-        "lost_flow_fraction": cost.lost_flow_fraction,
-        "extra_dp_bar": cost.extra_dp_pa / 1e5,
-        "extra_energy_kwh_per_day": cost.extra_energy_kwh_per_day,
+        "lost_flow_m3h": c.lost_flow_m3s * 3600.0,
+        "lost_flow_fraction": c.lost_flow_fraction,
+        "extra_dp_bar": c.extra_dp_pa / 1e5,
+        "extra_energy_kwh_per_day": c.extra_energy_j_per_day / J_PER_KWH,
     }
     return replace(f, evidence=evidence)
 
@@ -753,6 +742,7 @@ def low_flow_settings(site: Site, branch: BranchConfig) -> LowFlowSettings:
         range_m3s=max(span, 1e-6),
         on_delay=timedelta(seconds=site.analysis.low_flow_on_delay),
         off_delay=timedelta(seconds=site.analysis.low_flow_off_delay),
+        latching=site.analysis.low_flow_latching,
         max_gap=timedelta(seconds=max(900.0, 3 * site.analysis.sample_period)),
     )
 

@@ -14,9 +14,9 @@ restriction) stood open on a branch, the day's fit gives the branch's header pre
 flow, temperature and r; the flow the branch would carry at the finding's baseline r at
 that header pressure, less the flow it carried, is the lost flow, and the extra pressure
 drop (r − r_baseline)·ΔP_dyn,clean(Q) at that flow, pumped for 24 h at the site's pump
-efficiency, the extra energy (`monitor.diagnose.finding_cost`, the figures the morning
-report's findings carry). Days without a usable fit are not counted, and the page says
-how many days were.
+efficiency, the extra energy (`monitor.cost`, the figures the morning report's findings
+carry; it computes in SI, this page shows kWh and m³/h). Days without a usable fit are
+not counted, and the page says how many days were.
 
 `build_monthly` is pure: it takes frames read from the store and the time the page is
 generated, and returns HTML text; `write_monthly` reads the store and writes the files.
@@ -26,7 +26,6 @@ from __future__ import annotations
 
 import html
 import logging
-import math
 import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -38,8 +37,8 @@ import numpy as np
 import pandas as pd
 
 from adapters.base import ResultsStore
+from monitor import cost
 from monitor.config import BranchConfig, Site
-from monitor.diagnose import finding_cost
 from monitor.plots import BranchHistory, plot_branch_history, plot_monthly_energy, png_data_uri
 from monitor.report import CAUTION, _e, _forecast, _head, _local, _num
 
@@ -60,7 +59,6 @@ __all__ = [
 
 #: How many months the long view reaches back at most (from the first fit, if later).
 HISTORY_MONTHS = 24
-_RESISTANCE = ("fouling", "restriction")
 _KIND_TEXT = {"low_flow": "low flow", "restriction": "restriction",
               "back_pressure": "back-pressure change", "instrument": "instrument fault",
               "imbalance": "header imbalance", "fouling": "fouling",
@@ -126,87 +124,34 @@ class MonthlyInputs:
 # costs
 
 
-def _active(findings: pd.DataFrame, branch: str) -> list[tuple[pd.Timestamp, pd.Timestamp,
-                                                              float]]:
-    """(start, end, r_baseline) of the branch's resistance findings; open: end = +inf."""
-    if findings.empty:
-        return []
-    out = []
-    part = findings[(findings["branch"] == branch) & findings["kind"].isin(_RESISTANCE)]
-    for r in part.to_dict(orient="records"):
-        end = r.get("end")
-        end_t = pd.Timestamp.max.tz_localize("UTC") if end is None or pd.isna(end) \
-            else pd.Timestamp(end)
-        base = _num(r.get("evidence") or {}, "r_baseline")
-        out.append((pd.Timestamp(r["start"]), end_t,
-                    base if base is not None and base > 0 else 1.0))
-    return out
-
-
 def daily_costs(site: Site, fits: pd.DataFrame, findings: pd.DataFrame) -> pd.DataFrame:
-    """Per branch and usable daily fit: lost flow [m³/h] and extra pump energy [kWh/d]
-    while a resistance finding stood open that day (zero on other days); columns
-    ``branch``, ``window_start``, ``window_end``, ``lost_flow_m3h``, ``extra_kwh``,
-    ``costed`` (a finding stood open and the day's fit had what the cost needs)."""
-    cols = ["branch", "window_start", "window_end", "lost_flow_m3h", "extra_kwh", "costed"]
-    if fits.empty:
-        return pd.DataFrame(columns=cols)
-    rows: list[dict[str, Any]] = []
-    for b in site.branches:
-        part = fits[(fits["branch"] == b.name) & fits["r"].notna()]
-        spans = _active(findings, b.name)
-        for f in part.to_dict(orient="records"):
-            ws, we = pd.Timestamp(f["window_start"]), pd.Timestamp(f["window_end"])
-            bases = [base for s, e, base in spans if s < we and e > ws]
-            lost, kwh = (_day_cost(site, b, {str(k): v for k, v in f.items()}, min(bases))
-                         if bases else (0.0, 0.0))
-            rows.append({"branch": b.name, "window_start": ws, "window_end": we,
-                         "lost_flow_m3h": lost, "extra_kwh": kwh,
-                         "costed": bool(bases) and math.isfinite(lost)})
-    out = pd.DataFrame(rows, columns=cols)
-    out[["lost_flow_m3h", "extra_kwh"]] = out[["lost_flow_m3h", "extra_kwh"]].fillna(0.0)
-    return out
+    """`monitor.cost.daily_costs` in the page's units: columns ``branch``,
+    ``window_start``, ``window_end``, ``lost_flow_m3h`` [m³/h], ``extra_kwh`` [kWh/d],
+    ``costed``."""
+    return _days_shown(cost.daily_costs(site, fits, findings))
 
 
-def _day_cost(site: Site, b: BranchConfig, fit: Mapping[str, Any], r_base: float
-              ) -> tuple[float, float]:
-    """(lost flow [m³/h], extra energy [kWh/d]) of one day's fit against *r_base*; NaN
-    when the fit lacks what the cost needs."""
-    def val(key: str) -> float:
-        v = fit.get(key)
-        return float(v) if v is not None and not pd.isna(v) else math.nan
+def _days_shown(days: pd.DataFrame) -> pd.DataFrame:
+    return pd.DataFrame({
+        "branch": days["branch"], "window_start": days["window_start"],
+        "window_end": days["window_end"], "lost_flow_m3h": days["lost_flow_m3s"] * 3600.0,
+        "extra_kwh": days["extra_energy_j"] / cost.J_PER_KWH, "costed": days["costed"],
+    }, columns=["branch", "window_start", "window_end", "lost_flow_m3h", "extra_kwh",
+                "costed"])
 
-    p_s, q_now, r_now = val("header_pressure_pa"), val("mean_flow_m3s"), float(fit["r"])
-    t_c = val("temperature_c")
-    t_c = t_c if math.isfinite(t_c) else site.design_temperature_c
-    if not all(math.isfinite(v) and v >= 0 for v in (p_s, q_now, r_now)):
-        return math.nan, math.nan
-    cond: dict[str, float] = {"temperature_c": t_c, **b.nominal}
-    if math.isfinite(end_p := val("end_pressure_pa")):
-        cond["end_pressure_pa"] = end_p
-    q_clean = float(b.model.flow(np.asarray(p_s), resistance_ratio=r_base, **cond))
-    rest, _valve = b.model.dp_dynamic_parts(np.asarray(q_now), temperature_c=t_c,
-                                            valve_position=cond.get("valve_position"))
-    cost = finding_cost(flow_clean_m3s=q_clean, flow_now_m3s=q_now,
-                        dp_dynamic_clean_pa=float(rest), r_now=r_now, r_baseline=r_base,
-                        pump_efficiency=site.pump_efficiency)
-    return cost.lost_flow_m3s * 3600.0, cost.extra_energy_kwh_per_day
+
+def _totals_shown(totals: pd.DataFrame) -> pd.DataFrame:
+    """`monitor.cost.monthly_totals` in the page's units (kWh, m³/h)."""
+    return pd.DataFrame({
+        "month": totals["month"], "branch": totals["branch"],
+        "extra_kwh": totals["extra_energy_j"] / cost.J_PER_KWH,
+        "lost_flow_m3h": totals["lost_flow_m3s"] * 3600.0, "days": totals["days"],
+        "costed": totals["costed"],
+    }, columns=["month", "branch", "extra_kwh", "lost_flow_m3h", "days", "costed"])
 
 
 def _local_month(site: Site, t: pd.Series) -> pd.Series:
     return pd.to_datetime(t).dt.tz_convert(site.timezone).dt.strftime("%Y-%m")
-
-
-def monthly_totals(site: Site, days: pd.DataFrame) -> pd.DataFrame:
-    """Per local month (of the window start) and branch: ``extra_kwh`` summed,
-    ``lost_flow_m3h`` averaged over the days fitted, ``days`` fitted, ``costed`` days."""
-    if days.empty:
-        return pd.DataFrame(columns=["month", "branch", "extra_kwh", "lost_flow_m3h", "days",
-                                     "costed"])
-    d = days.assign(month=_local_month(site, days["window_start"]))
-    return d.groupby(["month", "branch"], as_index=False).agg(
-        extra_kwh=("extra_kwh", "sum"), lost_flow_m3h=("lost_flow_m3h", "mean"),
-        days=("extra_kwh", "size"), costed=("costed", "sum"))
 
 
 # ---------------------------------------------------------------------------------------
@@ -244,10 +189,10 @@ def build_monthly(inputs: MonthlyInputs) -> str:
 
 
 def _money(site: Site, kwh: float) -> str:
-    price = site.energy_price
-    if price is None:
+    money = cost.energy_cost(site, kwh * cost.J_PER_KWH)
+    if money is None or site.energy_price is None:
         return "—"
-    return f"{kwh * price.per_kwh:,.0f} {price.currency}"
+    return f"{money:,.0f} {site.energy_price.currency}"
 
 
 def _open_at(f: pd.DataFrame, when: pd.Timestamp) -> pd.DataFrame:
@@ -270,8 +215,9 @@ class _Month:
             pd.to_datetime(findings["start"], utc=True) < end]
         self.maintenance = maintenance if maintenance.empty else maintenance[
             pd.to_datetime(maintenance["time"], utc=True) < end]
-        self.days = daily_costs(site, fits, self.findings)
-        self.totals = monthly_totals(site, self.days)
+        si_days = cost.daily_costs(site, fits, self.findings)
+        self.days = _days_shown(si_days)
+        self.totals = _totals_shown(cost.monthly_totals(site, si_days))
 
     # -- helpers -------------------------------------------------------------------------
     def _in_month(self, frame: pd.DataFrame, col: str) -> pd.DataFrame:
@@ -292,9 +238,6 @@ class _Month:
             return 0.0, 0.0, 0
         return float(t["extra_kwh"].sum()), float(t["lost_flow_m3h"].sum()), \
             int(t["costed"].sum())
-
-    def _fitted_days(self, name: str) -> int:
-        return len(self._in_month(self._branch_fits(name), "window_start"))
 
     def _days_in_month(self) -> int:
         return round((self.end - self.start) / pd.Timedelta(days=1))

@@ -46,7 +46,7 @@ from adapters.base import (
     notifier_class,
 )
 from adapters.credentials import read_secret, remember_secret
-from monitor.alarms import describe_condition
+from monitor.alarms import State, describe_condition
 from monitor.config import NotifySection, Site
 
 log = logging.getLogger(__name__)
@@ -151,7 +151,8 @@ def queue_alarms(site: Site, store: ResultsStore, *, now: datetime) -> int:
     events = store.alarm_events(since=now - timedelta(seconds=sec.fresh_for))
     new = 0
     for e in events.to_dict(orient="records"):
-        if e["to_state"] != "unack" or e.get("from_state") not in (None, "normal", "rtn_unack"):
+        if e["to_state"] != State.UNACK or e.get("from_state") not in (None, State.NORMAL,
+                                                                       State.RTN_UNACK):
             continue  # only an activation is news; acks, shelving and returns are not
         priority = alarm_priority(str(e["condition"]))
         if PRIORITIES.index(priority) < floor:

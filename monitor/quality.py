@@ -248,10 +248,6 @@ class ScreenResult:
         """True where a sample may be used for fitting (aligned with ``flags``)."""
         return self.flags["usable"]
 
-    def usable_readings(self) -> pd.DataFrame:
-        """The usable samples as a readings frame."""
-        return self.flags.loc[self.flags["usable"], list(READING_COLUMNS)].reset_index(drop=True)
-
     def for_tag(self, tag: str) -> pd.DataFrame:
         """Flags of one tag, indexed by time."""
         part = self.flags[self.flags["tag"] == tag]

@@ -313,9 +313,6 @@ class BranchReplay:
         self.r[j:][ok] -= offset * sx[ok] / sxx[ok]
         self.s_shift += offset
 
-    def _days(self, t: pd.Timestamp) -> float:
-        return float((t - self.t0) / _DAY)
-
     def _new_segment(self) -> None:
         self.base: _Baseline | None = None
         self.base_idx: list[int] = []

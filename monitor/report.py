@@ -30,6 +30,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt
 import pandas as pd
 
+from adapters.base import AlarmStateName as State
 from adapters.units import from_si
 from monitor.config import Site
 from monitor.findings import episode_text
@@ -369,7 +370,7 @@ def _undelivered(inputs: ReportInputs) -> str:
 
 def _alarms(inputs: ReportInputs) -> str:
     a = inputs.alarms
-    standing = a[a["state"] != "normal"] if not a.empty else a
+    standing = a[a["state"] != State.NORMAL.value] if not a.empty else a
     if standing.empty:
         return ("<h2>Alarms</h2><p>No alarm standing (low flow, frozen meter, stale data"
                 ").</p>" + _undelivered(inputs))

@@ -123,12 +123,10 @@ def test_operating_point_quadratic_pump_closed_form() -> None:
 
 
 def test_affinity_laws() -> None:
-    # Q ∝ N, H ∝ N², P ∝ N³; 10 % more speed: +21 % head, +33 % power (REFERENCES.md)
+    # Q ∝ N, H ∝ N²; 10 % more speed: +21 % head (REFERENCES.md)
     q = np.linspace(0.0, 0.14, 15)
     fast = PUMP.at_speed(1.1)
     assert fast.head(1.1 * q) == pytest.approx(1.21 * PUMP.head(q), rel=1e-12)
-    power_ratio = fast.hydraulic_power(1.1 * q[1:]) / PUMP.hydraulic_power(q[1:])
-    assert power_ratio == pytest.approx(np.full(14, 1.331), rel=1e-12)
     assert PUMP.head(q, speed_ratio=0.9) == pytest.approx(PUMP.at_speed(0.9).head(q))
 
 

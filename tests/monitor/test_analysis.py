@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from adapters.base import READING_COLUMNS
 from model.fit import fit_resistance
 from model.simulate import Fault, FrozenMeter, StepRestriction
 from monitor.analysis import analyze_window, screen_settings
@@ -65,7 +66,8 @@ def _reference(site: Site, readings: pd.DataFrame, a: datetime, b: datetime
                  header_pressure_tag=site.header_pressure_tag,
                  total_flow_tag=site.total_flow_tag)
     freq = pd.Timedelta(seconds=site.analysis.sample_period)
-    wide = to_wide(res.usable_readings(), freq, start=pd.Timestamp(a), end=pd.Timestamp(b))
+    usable = res.flags.loc[res.flags["usable"], list(READING_COLUMNS)].reset_index(drop=True)
+    wide = to_wide(usable, freq, start=pd.Timestamp(a), end=pd.Timestamp(b))
     pt = site.header_pressure_tag
     wide = wide[wide[pt].notna()]
     running = running_mask(wide, pt, None, settings)

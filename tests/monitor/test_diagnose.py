@@ -23,7 +23,6 @@ from monitor.diagnose import (
     DiagnosisSettings,
     Finding,
     diagnose,
-    finding_cost,
 )
 
 T0 = datetime(2025, 1, 1, tzinfo=UTC)
@@ -443,23 +442,6 @@ def test_false_findings_on_clean_branch_years() -> None:
     rate = false / 20
     print(f"false findings per clean branch-year: {rate:.2f}")
     assert rate <= 0.5
-
-
-def test_finding_cost() -> None:
-    # ΔP_extra·Q/η: 0.4 bar extra at 0.034 m³/s through a 0.70-efficient pump
-    # = 40 000·0.034/0.7 = 1942.9 W → 46.63 kWh/d (hand calculation, P = ΔP·Q/η).
-    c = finding_cost(flow_clean_m3s=0.040, flow_now_m3s=0.034, dp_dynamic_clean_pa=1.0e5,
-                     r_now=1.4)  # fmt: skip
-    assert c.extra_power_w == pytest.approx(40_000 * 0.034 / 0.7)
-    assert c.extra_energy_kwh_per_day == pytest.approx(40_000 * 0.034 / 0.7 * 24 / 1000)
-    assert c.lost_flow_fraction == pytest.approx(0.15)
-    assert c.efficiency_assumed and c.notes
-    site = finding_cost(flow_clean_m3s=0.04, flow_now_m3s=0.04, dp_dynamic_clean_pa=1.0e5,
-                        r_now=1.0, pump_efficiency=0.8)  # fmt: skip
-    assert site.extra_power_w == 0 and not site.efficiency_assumed
-    with pytest.raises(ValueError, match="pump_efficiency"):
-        finding_cost(flow_clean_m3s=0.04, flow_now_m3s=0.04, dp_dynamic_clean_pa=1.0e5,
-                     r_now=1.2, pump_efficiency=1.5)  # fmt: skip
 
 
 def test_back_pressure_step_in_fitted_s() -> None:

@@ -16,13 +16,12 @@ import sqlalchemy as sa
 from alembic import op
 from sqlalchemy.dialects import mysql
 
+from adapters.base import ALARM_STATES  # the one list of alarm states
+
 revision = "0001_initial"
 down_revision = None
 branch_labels = None
 depends_on = None
-
-ALARM_STATES = ("normal", "unack", "ack", "rtn_unack", "shelved", "out_of_service")
-
 
 def _time() -> sa.types.TypeEngine[Any]:
     return sa.DateTime(timezone=True).with_variant(mysql.DATETIME(fsp=6), "mysql", "mariadb")
