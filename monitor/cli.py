@@ -180,7 +180,8 @@ EXAMPLES: dict[str, tuple[str, ...]] = {
     ),
     "analyze": (
         "branchwatch analyze site.toml --from 2026-04-01 --to 2026-09-01 --findings findings.json",
-        "branchwatch analyze site.toml --from 2026-08-01 --to 2026-08-02 --fits fits.csv",
+        "branchwatch analyze site.toml --from 2021-09-01 --to 2026-09-01 --executor dask "
+        "--scheduler tcp://10.0.0.5:8786",
         "branchwatch analyze site.toml --from 2025-09-01 --to 2026-09-01 --jobs 2   # a year",
     ),
     "log": (
@@ -540,6 +541,27 @@ low flow, instrument faults, header imbalance. Dates without a zone are site tim
         Each worker holds one window's readings in memory: lower N on a small machine
         or for a very large site; --jobs 1 does everything in this process.""",
     )
+    p.add_argument(
+        "--executor", choices=("local", "dask"), default="local",
+        help="""where the windows are analysed: 'local' (default) in this process and
+        its --jobs worker processes; 'dask' on a Dask distributed cluster, in tasks of
+        one month of windows for a group of branches, each task reading only its own
+        windows and writing its own results (a retried task rewrites the same rows).
+        Needs a PostgreSQL (or other database server) store that every worker can
+        reach: a SQLite file is refused. Install with pip install 'branchwatch[fleet]'""",
+    )
+    p.add_argument(
+        "--scheduler", metavar="ADDRESS",
+        help="""with --executor dask: the scheduler to use, e.g. tcp://10.0.0.5:8786
+        (started with 'dask scheduler'; workers with 'dask worker ADDRESS'). Without it,
+        a cluster of --jobs worker processes is started on this machine""",
+    )
+    p.add_argument(
+        "--group-size", type=_positive_int, metavar="N",
+        help="""with --executor dask: at most N branches per task (default: all the
+        site's branches in one task per month); smaller groups spread a large site over
+        more workers""",
+    )
 
 
 #: The default of ``analyze --jobs`` never exceeds this many processes: reading from one
@@ -570,10 +592,15 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
     end = _parse_time(args.end, site, "--to")
     if end <= start:
         raise UserError("--to must be after --from")
+    if args.executor != "dask" and (args.scheduler or args.group_size):
+        raise UserError("--scheduler and --group-size need --executor dask")
     store, source = _open(site)
     try:
-        summary = _analyze_with_progress(site, store, source, start, end, quiet=args.quiet,
-                                         jobs=args.jobs)
+        if args.executor == "dask":
+            summary = _analyze_on_cluster(site, store, source, start, end, args)
+        else:
+            summary = _analyze_with_progress(site, store, source, start, end,
+                                             quiet=args.quiet, jobs=args.jobs)
         if args.fits:
             from monitor.jobs import current_fits
 
@@ -872,6 +899,46 @@ def _analyze_with_progress(
             store, "analyze",
             lambda: analyze(site, store, source, start, end, progress=progress, jobs=jobs),
         )
+
+
+def _analyze_on_cluster(
+    site: Site, store: ResultsStore, source: ReadingsSource, start: datetime, end: datetime,
+    args: argparse.Namespace,
+) -> Any:
+    """`monitor.cluster.analyze_on_cluster` for one site, with a progress bar of tasks
+    and the cluster's dashboard address on stderr, recorded as a job run."""
+    from monitor.cluster import SiteRun
+
+    run = SiteRun(site, store, source)
+    return _run_recorded(store, "analyze", lambda: _cluster_runs(
+        [run], start, end, args)[0])
+
+
+def _cluster_runs(runs: Sequence[Any], start: datetime, end: datetime,
+                  args: argparse.Namespace) -> list[Any]:
+    """Analyse *runs* (`monitor.cluster.SiteRun`) on the cluster *args* name, with a
+    progress bar; the store is checked before any cluster is started or reached."""
+    from tqdm import tqdm
+
+    from monitor.cluster import ClusterError, analyze_on_cluster, check_shared, connect
+
+    try:
+        for run in runs:
+            check_shared(run)
+        with connect(args.scheduler, workers=args.jobs) as client:
+            if not args.quiet:
+                print(f"Dask dashboard: {client.dashboard_link}", file=sys.stderr)
+            tty = sys.stderr.isatty()
+            with tqdm(total=None, unit="task", disable=args.quiet, file=sys.stderr,
+                      desc="analysing", mininterval=0.1 if tty else 30.0) as bar:
+                def progress(done: int, total: int) -> None:
+                    bar.total = total
+                    bar.update(done - bar.n)
+
+                return analyze_on_cluster(client, runs, start, end,
+                                          group_size=args.group_size, progress=progress)
+    except ClusterError as exc:
+        raise UserError(str(exc)) from None
 
 
 def _iso_map(frame: pd.DataFrame, key: str, time_col: str) -> dict[str, str]:
