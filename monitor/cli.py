@@ -207,6 +207,11 @@ EXAMPLES: dict[str, tuple[str, ...]] = {
         "branchwatch report site.toml --date 2026-08-14",
         "branchwatch report site.toml --month 2026-08",
     ),
+    "fleet": (
+        "branchwatch fleet fleet.toml",
+        "branchwatch fleet fleet.toml --from 2026-08-01 --to 2026-09-01 --executor dask",
+        "branchwatch fleet fleet.toml --report /srv/reports/fleet.html --json",
+    ),
     "run": (
         "branchwatch run site.toml",
         "branchwatch run site.toml --for 600 --health-file /tmp/bw-health.json   # a trial",
@@ -1357,6 +1362,100 @@ def _cmd_notify(args: argparse.Namespace) -> int:
     return EXIT_OK if done.failed == 0 and not (args.test and done.sent == 0) else EXIT_USAGE
 
 
+# ---------------------------------------------------------------------------------------
+# fleet
+
+
+def _register_fleet(verbs: Any) -> None:
+    p = _add_verb(
+        verbs, "fleet", _cmd_fleet, "several sites: analyse them, rank their branches",
+        """Read a fleet file (a list of site files, each with its own store), optionally analyse
+every site over a period first, then write the fleet summary page: every site's
+branches ranked by the cost of their open findings (extra pumping energy, lost flow).
+With --executor dask all sites are analysed in one run on the cluster; their stores
+must be database servers (PostgreSQL), not SQLite files. One store shared by the
+whole fleet is not supported yet.""",
+        config=False,
+    )
+    p.add_argument("config", metavar="FLEET", type=Path, help="fleet file (TOML)")
+    p.add_argument("--from", dest="start", metavar="DATE",
+                   help="analyse every site from this day first (with --to)")
+    p.add_argument("--to", dest="end", metavar="DATE", help="end of the period (exclusive)")
+    p.add_argument("--executor", choices=("local", "dask"), default="local",
+                   help="as for analyze: 'local' site after site, 'dask' all at once")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="as for analyze")
+    p.add_argument("--group-size", type=_positive_int, metavar="N", help="as for analyze")
+    p.add_argument("--jobs", type=_positive_int, default=default_jobs(), metavar="N",
+                   help="as for analyze")
+    p.add_argument("--report", type=Path, metavar="FILE",
+                   help="write the summary page here instead of [fleet] report")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--json", action="store_true", help="print the ranking as JSON")
+
+
+def _cmd_fleet(args: argparse.Namespace) -> int:
+    from monitor.cluster import SiteRun
+    from monitor.fleet import build_fleet_report, fleet_ranking, load_fleet
+
+    fleet = load_fleet(args.config)
+    if (args.start is None) != (args.end is None):
+        raise UserError("give both --from and --to, or neither (summary only)")
+    if args.executor != "dask" and (args.scheduler or args.group_size):
+        raise UserError("--scheduler and --group-size need --executor dask")
+    sites = [load_site(path) for path in fleet.sites]
+    opened: list[tuple[Site, ResultsStore, ReadingsSource]] = []
+    try:
+        for site in sites:
+            opened.append((site, *_open(site)))
+        if args.start is not None:
+            periods = [(_parse_time(args.start, s, "--from"), _parse_time(args.end, s, "--to"))
+                       for s in sites]
+            if any(b <= a for a, b in periods):
+                raise UserError("--to must be after --from")
+            if args.executor == "dask":
+                starts = {a for a, _ in periods}
+                ends = {b for _, b in periods}
+                if len(starts) > 1 or len(ends) > 1:
+                    raise UserError("with --executor dask the sites of a fleet must share a "
+                                    "time zone, or give --from and --to with a UTC offset")
+                runs = [SiteRun(site, store, source) for site, store, source in opened]
+                summaries = _cluster_runs(runs, periods[0][0], periods[0][1], args)
+            else:
+                summaries = [_analyze_with_progress(site, store, source, a, b,
+                                                    quiet=args.quiet, jobs=args.jobs)
+                             for (site, store, source), (a, b) in zip(opened, periods,
+                                                                      strict=True)]
+            for (site, _, _), summary in zip(opened, summaries, strict=True):
+                print(f"{site.name}: {summary.windows} windows, {summary.fits} branch fits "
+                      f"({summary.fits_ok} usable), {len(summary.findings)} findings",
+                      file=sys.stderr if args.json else sys.stdout)
+        ranking = fleet_ranking([(site, store) for site, store, _ in opened])
+    finally:
+        for _, store, source in opened:
+            source.close()
+            store.close()
+    page = build_fleet_report(fleet.name, ranking, generated=datetime.now(UTC),
+                              sites=len(sites))
+    out = args.report or fleet.report
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(page, encoding="utf-8")
+    if args.json:
+        print(json.dumps([{
+            "site": c.site, "branch": c.branch, "findings": list(c.findings),
+            "extra_energy_kwh_per_day": c.extra_energy_kwh_per_day,
+            "lost_flow_m3h": c.lost_flow_m3h, "confidence": c.confidence,
+            "message": c.message,
+        } for c in ranking], indent=2))
+    else:
+        for i, c in enumerate(ranking, 1):
+            if not c.findings:
+                continue
+            print(f"{i:>3}. {c.site} / {c.branch}: {', '.join(c.findings)}; "
+                  f"{c.extra_energy_kwh_per_day:.0f} kWh/day, {c.lost_flow_m3h:.1f} m3/h lost")
+        print(f"fleet summary written to {out}")
+    return EXIT_OK
+
+
 _VERBS: list[Callable[[Any], None]] = [
     _register_demo,
     _register_check,
@@ -1369,6 +1468,7 @@ _VERBS: list[Callable[[Any], None]] = [
     _register_notify,
     _register_report,
     _register_run,
+    _register_fleet,
 ]
 
 
