@@ -331,6 +331,11 @@ def analyze_on_cluster(
         for future in distributed.as_completed(every):
             if future.status == "error":
                 raise _failed(runs, tasks.get(future.key), future)
+            if future.status != "finished":  # cancelled: the scheduler went away
+                raise ClusterError(
+                    f"the cluster dropped its tasks ({future.status}): the scheduler went "
+                    "away or was restarted; the windows stored so far are kept, and a "
+                    "rerun writes the rest")
             done += 1
             if progress is not None:
                 progress(done, len(every))
