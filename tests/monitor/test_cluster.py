@@ -27,6 +27,7 @@ import sqlalchemy as sa
 
 from adapters.store import SqlStore
 from model.simulate import StepRestriction
+from monitor.analysis import analyze_window
 from monitor.cli import main
 from monitor.cluster import (
     SchedulerUnreachable,
@@ -107,6 +108,7 @@ def serial(site_file: Path, postgres_url: str, schemas: list[str]) -> dict[str, 
     """The one-process results (``--executor local --jobs 1``)."""
     site = load_site(site_file)
     store = _store(postgres_url, schemas, site)
+    assert store.shared
     summary = analyze(site, store, open_source(site), START, END, jobs=1)
     out = {"summary": summary, "fits": _fits(store), "findings": _findings(store),
            "screening": _screening(store), "balance": store.read_balance()}
@@ -216,6 +218,7 @@ def test_no_scheduler_is_a_clear_error_and_a_rerun_completes(
 def test_a_sqlite_store_is_refused_with_what_to_use(site_file: Path, tmp_path: Path) -> None:
     site = load_site(site_file)
     store = SqlStore(f"sqlite:///{tmp_path / 'store.db'}")
+    assert not store.shared
     with pytest.raises(StoreNotShared, match="SQLite file, which workers on other machines "
                        "cannot share; use a PostgreSQL store"):
         analyze_on_cluster(None, [SiteRun(site, store, open_source(site))], START, END)
@@ -253,3 +256,38 @@ def test_tasks_are_months_of_branch_groups(site_file: Path) -> None:
     assert not tags & {b.flow_tag for b in other}
     with pytest.raises(ValueError, match="group size must be 1 or more"):
         branch_groups(site, 0)
+
+
+def test_a_group_of_branches_gives_the_whole_sites_rows_for_them(
+    site_file: Path, tmp_path: Path
+) -> None:
+    site = load_site(site_file)
+    store = SqlStore(f"sqlite:///{tmp_path / 'store.db'}")
+    ingest(site, store, open_source(site))
+    ws, we = list(windows(START, END, site.window, site.timezone))[18]  # the step's day
+    whole = analyze_window(site, store.read_readings(list(site.tags), ws, we), ws, we)
+    got: dict[str, dict[str, Any]] = {}
+    screening, health = [], []
+    balance = None
+    for i, group in enumerate(branch_groups(site, 4)):
+        tags = group_tags(site, group, header=i == 0)
+        part = analyze_window(site, store.read_readings(tags, ws, we), ws, we,
+                              branches=group, header=i == 0)
+        if i == 0:
+            balance = part.balance
+        else:
+            assert part.balance is None
+        got.update({f["branch"]: f for f in part.fits})
+        screening.append(part.screening)
+        health.append(part.health)
+    store.close()
+    assert whole.balance is not None and balance == whole.balance
+    pd.testing.assert_frame_equal(
+        pd.DataFrame([got[f["branch"]] for f in whole.fits]), pd.DataFrame(whole.fits))
+    key = ["branch", "tag"]
+    pd.testing.assert_frame_equal(
+        pd.concat(screening).sort_values(key).reset_index(drop=True),
+        whole.screening.sort_values(key).reset_index(drop=True), check_dtype=False)
+    pd.testing.assert_frame_equal(
+        pd.concat(health).sort_values(["tag", "day", "flag"]).reset_index(drop=True),
+        whole.health.sort_values(["tag", "day", "flag"]).reset_index(drop=True))
