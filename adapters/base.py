@@ -266,6 +266,13 @@ class ResultsStore(abc.ABC):
     #: Where each alias lives; imported on first use (a driver may be optional).
     _modules: ClassVar[dict[str, str]] = {"sqlalchemy": "adapters.store"}
 
+    @property
+    def shared(self) -> bool:
+        """Whether processes on other machines can open this store as well (a database
+        server), as a backfill on a cluster needs; a file or in-memory database cannot be
+        shared. False unless an implementation says otherwise."""
+        return False
+
     def __init_subclass__(cls, **kwargs: Any) -> None:
         super().__init_subclass__(**kwargs)
         if cls.alias:

@@ -346,6 +346,12 @@ class SqlStore(ResultsStore):
     def __repr__(self) -> str:
         return f"SqlStore({mask_secrets(self.url.render_as_string(hide_password=True))!r})"
 
+    @property
+    def shared(self) -> bool:
+        """A database server is; a SQLite file is not (it lives on one machine's disk, and
+        SQLite's locking is not safe over network file systems)."""
+        return self.dialect != "sqlite"
+
     def __reduce__(self) -> tuple[Any, ...]:
         """Pickled as the way to open it again (a worker process opens its own
         connections); the schema is up to date already. An in-memory SQLite database

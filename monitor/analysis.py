@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import logging
 import math
+from collections.abc import Collection
 from dataclasses import dataclass, fields, replace
 from datetime import datetime
 from typing import Any
@@ -111,7 +112,8 @@ def logging_interval(readings: pd.DataFrame, tag: str) -> float | None:
 
 
 def analyze_window(
-    site: Site, readings: pd.DataFrame, start: datetime, end: datetime
+    site: Site, readings: pd.DataFrame, start: datetime, end: datetime, *,
+    branches: Collection[str] | None = None, header: bool = True,
 ) -> WindowAnalysis:
     """Screen, select and fit one window [start, end) of *readings* (a readings frame).
 
@@ -119,6 +121,14 @@ def analyze_window(
     and the branch's own flow are steady (`monitor.quality.steady_mask`'s rule, tag by
     tag): a transient on another branch shows in the header pressure when it matters to
     this one. The header balance keeps only samples where every flow is steady.
+
+    With *branches* (names), only those branches are fitted and only their tags'
+    screening counts and data health are returned; with *header* False, neither the
+    header tags' counts and health nor the balance either. A group of branches analysed
+    this way gives the same rows as the whole site does for them (each branch's fit needs
+    the header tags and its own, nothing of the other branches), so a site can be split
+    into groups of branches (`monitor.cluster`). The balance and a branch without a flow
+    meter need every flow meter's readings: they belong with *header*.
     """
     readings = readings[readings["tag"].isin(list(site.tags))]
     interval = logging_interval(readings, site.header_pressure_tag)
@@ -158,6 +168,8 @@ def analyze_window(
     inferred = _inferred_flow(site, grid)
     fits = []
     for branch in site.branches:
+        if branches is not None and branch.name not in branches:
+            continue
         if branch.flow_tag is None and inferred is not None and inferred[0] == branch.name:
             # every metered flow steady: the difference is as steady as they are
             fits.append(_fit_row(site, branch, grid, keep_all, t0, t1, running, why, rule,
@@ -165,7 +177,12 @@ def analyze_window(
         else:
             keep = base & steady.get(branch.flow_tag or "", base)
             fits.append(_fit_row(site, branch, grid, keep, t0, t1, running, why, rule))
-    balance = _balance(site, grid, keep_all, t0, t1)
+    balance = _balance(site, grid, keep_all, t0, t1) if header else None
+    if branches is not None or not header:
+        owned = set(branches or ()) | ({"header"} if header else set())
+        screening = screening[screening["branch"].isin(owned)].reset_index(drop=True)
+        tags = set(screening["tag"])
+        health = health[health["tag"].isin(tags)].reset_index(drop=True)
     return WindowAnalysis(
         fits=fits, screening=screening, balance=balance, health=health, samples=len(readings)
     )

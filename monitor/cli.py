@@ -263,10 +263,17 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
     end = _parse_time(args.end, site, "--to")
     if end <= start:
         raise UserError("--to must be after --from")
+    if args.executor != "dask" and (args.scheduler or args.group_size):
+        raise UserError("--scheduler and --group-size need --executor dask")
     store, source = _open(site)
     try:
-        summary = analyze_with_progress(site, store, source, start, end, quiet=args.quiet,
-                                         jobs=args.jobs)
+        if args.executor == "dask":
+            from monitor.cli_fleet import analyze_on_cluster
+
+            summary = analyze_on_cluster(site, store, source, start, end, args)
+        else:
+            summary = analyze_with_progress(site, store, source, start, end,
+                                            quiet=args.quiet, jobs=args.jobs)
         if args.fits:
             from monitor.jobs import current_fits
 
@@ -588,12 +595,18 @@ def _cmd_notify(args: argparse.Namespace) -> int:
     return EXIT_OK if done.failed == 0 and not (args.test and done.sent == 0) else EXIT_USAGE
 
 
+def _cmd_fleet(args: argparse.Namespace) -> int:
+    from monitor.cli_fleet import cmd_fleet
+
+    return cmd_fleet(args)
+
+
 def _parser() -> argparse.ArgumentParser:
     return build_parser({
         "demo": _cmd_demo, "check": _cmd_check, "curve": _cmd_curve, "ingest": _cmd_ingest,
         "analyze": _cmd_analyze, "log": _cmd_log, "status": _cmd_status,
         "alarms": _cmd_alarms, "notify": _cmd_notify, "report": _cmd_report,
-        "run": _cmd_run,
+        "run": _cmd_run, "fleet": _cmd_fleet,
     })
 
 

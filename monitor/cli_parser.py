@@ -89,7 +89,8 @@ EXAMPLES: dict[str, tuple[str, ...]] = {
     ),
     "analyze": (
         "branchwatch analyze site.toml --from 2026-04-01 --to 2026-09-01 --findings findings.json",
-        "branchwatch analyze site.toml --from 2026-08-01 --to 2026-08-02 --fits fits.csv",
+        "branchwatch analyze site.toml --from 2021-09-01 --to 2026-09-01 --executor dask "
+        "--scheduler tcp://10.0.0.5:8786",
         "branchwatch analyze site.toml --from 2025-09-01 --to 2026-09-01 --jobs 2   # a year",
     ),
     "log": (
@@ -114,6 +115,11 @@ EXAMPLES: dict[str, tuple[str, ...]] = {
         "branchwatch report site.toml",
         "branchwatch report site.toml --date 2026-08-14",
         "branchwatch report site.toml --month 2026-08",
+    ),
+    "fleet": (
+        "branchwatch fleet fleet.toml",
+        "branchwatch fleet fleet.toml --from 2026-08-01 --to 2026-09-01 --executor dask",
+        "branchwatch fleet fleet.toml --report /srv/reports/fleet.html --json",
     ),
     "run": (
         "branchwatch run site.toml",
@@ -199,6 +205,31 @@ low flow, instrument faults, header imbalance. Dates without a zone are site tim
         stop, and the daemon (or 'analyze --from' the next window) goes on from there.
         Each worker holds one window's readings in memory: lower N on a small machine
         or for a very large site; --jobs 1 does everything in this process.""",
+    )
+    _add_executor_options(p)
+
+
+def _add_executor_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument(
+        "--executor", choices=("local", "dask"), default="local",
+        help="""where the windows are analysed: 'local' (default) in this process and
+        its --jobs worker processes; 'dask' on a Dask distributed cluster, in tasks of
+        one month of windows for a group of branches, each task reading only its own
+        windows and writing its own results (a retried task rewrites the same rows).
+        Needs a PostgreSQL (or other database server) store that every worker can
+        reach: a SQLite file is refused. Install with pip install 'branchwatch[fleet]'""",
+    )
+    p.add_argument(
+        "--scheduler", metavar="ADDRESS",
+        help="""with --executor dask: the scheduler to use, e.g. tcp://10.0.0.5:8786
+        (started with 'dask scheduler'; workers with 'dask worker ADDRESS'). Without it,
+        a cluster of --jobs worker processes is started on this machine""",
+    )
+    p.add_argument(
+        "--group-size", type=positive_int, metavar="N",
+        help="""with --executor dask: at most N branches per task (default: all the
+        site's branches in one task per month); smaller groups spread a large site over
+        more workers""",
     )
 
 
@@ -371,6 +402,30 @@ given up at once and shown here, in 'status' and in the next morning report.""",
     p.add_argument("--test", action="store_true", help="queue and send one test message")
 
 
+def _register_fleet(verbs: Any) -> None:
+    p = _add_verb(
+        verbs, "fleet", "several sites: analyse them, rank their branches",
+        """Read a fleet file (a list of site files, each with its own store), optionally analyse
+every site over a period first, then write the fleet summary page: every site's
+branches ranked by the cost of their open findings (extra pumping energy, lost flow).
+With --executor dask all sites are analysed in one run on the cluster; their stores
+must be database servers (PostgreSQL), not SQLite files. One store shared by the
+whole fleet is not supported yet.""",
+        config=False,
+    )
+    p.add_argument("config", metavar="FLEET", type=Path, help="fleet file (TOML)")
+    p.add_argument("--from", dest="start", metavar="DATE",
+                   help="analyse every site from this day first (with --to)")
+    p.add_argument("--to", dest="end", metavar="DATE", help="end of the period (exclusive)")
+    p.add_argument("--jobs", type=positive_int, default=default_jobs(), metavar="N",
+                   help="as for analyze")
+    _add_executor_options(p)
+    p.add_argument("--report", type=Path, metavar="FILE",
+                   help="write the summary page here instead of [fleet] report")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--json", action="store_true", help="print the ranking as JSON")
+
+
 _VERBS: list[Callable[[Any], None]] = [
     _register_demo,
     _register_check,
@@ -383,5 +438,6 @@ _VERBS: list[Callable[[Any], None]] = [
     _register_notify,
     _register_report,
     _register_run,
+    _register_fleet,
 ]
 

@@ -36,7 +36,7 @@ from monitor.config import Site
 from monitor.findings import episode_text
 from monitor.plots import png_data_uri
 
-__all__ = ["ReportInputs", "attention_order", "build_report"]
+__all__ = ["ReportInputs", "attention_order", "build_report", "page_head"]
 
 #: Which findings come first when neither is past its cleaning limit: a sudden change
 #: before a slow one.
@@ -219,6 +219,12 @@ td.num, th.num {{ text-align: right; font-variant-numeric: tabular-nums; }}
 .over {{ color: #b3261e; font-weight: 600; }}
 img {{ max-width: 100%; }}
 {extra_css}</style></head><body>"""
+
+
+def page_head(title: str, extra_css: str = "") -> str:
+    """The start of a report page (doctype, title, the reports' style sheet, ``<body>``),
+    for other pages in the same look (the fleet summary)."""
+    return _head(title, extra_css)
 
 
 def _num(ev: Mapping[str, Any], key: str) -> float | None:
