@@ -471,6 +471,11 @@ def _print_alarm_events(site: Site, events: Sequence[Any]) -> None:
 def _print_ingest(summary: Any) -> None:
     print(f"read {summary.read} readings in {summary.batches} batches; stored "
           f"{summary.stored} new, {summary.duplicates} already stored")
+    if summary.corrections_applied or summary.corrections_refused:
+        print(f"corrected readings: {summary.corrections_applied} applied (their analysed "
+              f"windows are fitted again by the next analysis), "
+              f"{summary.corrections_refused} refused (first stored value kept); "
+              "journalled in the store, see [source] corrections")
     if summary.quarantined:
         print(f"quarantined {summary.quarantined} rows:")
         for reason, count in sorted(summary.quarantine_reasons.items(), key=lambda kv: -kv[1]):
@@ -589,6 +594,9 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
         store.close()
     print(f"{summary.windows} windows, {summary.fits} branch fits ({summary.fits_ok} usable), "
           f"{len(summary.findings)} findings")
+    if summary.refitted or summary.corrections:
+        print(f"{summary.refitted} analysed windows fitted again for "
+              f"{summary.corrections} corrected readings")
     _print_findings(site, summary.findings)
     if replayed is not None:
         if not replayed:
@@ -775,6 +783,7 @@ def _cmd_status(args: argparse.Namespace) -> int:
         findings = store.read_findings()
         quarantine = store.quarantine_counts()
         outbox = store.outbox()
+        corrections = store.correction_counts()
     finally:
         store.close()
     open_findings = findings[findings["end"].isna()] if not findings.empty else findings
@@ -797,6 +806,7 @@ def _cmd_status(args: argparse.Namespace) -> int:
             "jobs": _jsonable(runs.to_dict(orient="records")),
             "open_findings": len(open_findings),
             "quarantine": quarantine,
+            "corrections": corrections,
             "messages": {st: int((outbox["status"] == st).sum()) if not outbox.empty else 0
                          for st in ("pending", "sent", "failed")},
             "messages_not_sent": _jsonable(undelivered[
@@ -838,6 +848,11 @@ def _cmd_status(args: argparse.Namespace) -> int:
         more = _episodes(site, str(r.branch), str(r.kind), r.evidence).removeprefix(", ")
         print(f"  {r.branch:<16} {r.kind:<14} since {_local(site, r.start)}"
               f"{f' ({more})' if more else ''}: {r.message}")
+    if any(corrections.values()):
+        print(f"\ncorrected readings: {corrections['applied']} applied "
+              f"({corrections['pending']} waiting for re-analysis: 'branchwatch analyze' or "
+              f"the daily job fits their windows again), {corrections['refused']} refused "
+              "(first stored value kept; [source] corrections)")
     if quarantine:
         print("\nquarantined rows by reason: "
               + ", ".join(f"{k} {v}" for k, v in sorted(quarantine.items())))
