@@ -196,7 +196,7 @@ def values_differ(old: Any, new: Any) -> Any:
     """
     old = np.asarray(old, dtype="float64")
     new = np.asarray(new, dtype="float64")
-    with np.errstate(invalid="ignore"):
+    with np.errstate(invalid="ignore", over="ignore"):
         close = np.abs(new - old) <= CORRECTION_ATOL + CORRECTION_RTOL * np.maximum(
             np.abs(old), np.abs(new))
     return ~(close | (np.isnan(old) & np.isnan(new)))

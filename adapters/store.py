@@ -470,7 +470,8 @@ class SqlStore(ResultsStore):
             at = known.get_indexer(pd.MultiIndex.from_arrays([frame["tag"].to_numpy(), t_ns]))
             fresh = at < 0
             if not fresh.all():
-                changed = _changes(frame[~fresh], table[at[~fresh]])
+                same = at[~fresh]
+                changed = _changes(frame[~fresh], table[:, 2][same], table[:, 3][same])
             frame = frame[fresh]
         if frame.empty:
             return 0, changed
@@ -1104,13 +1105,15 @@ _NO_CHANGES = pd.DataFrame(
 )
 
 
-def _changes(frame: pd.DataFrame, old: np.ndarray[Any, Any]) -> pd.DataFrame:
+def _changes(
+    frame: pd.DataFrame, values: np.ndarray[Any, Any], good: np.ndarray[Any, Any]
+) -> pd.DataFrame:
     """The rows of *frame* (readings already stored) whose value or quality differs from
-    the stored one in *old* (driver rows tag, time, value, good; row for row), with the
-    stored ``old_value`` and ``old_good`` beside them. Vectorised: a re-sent export of
-    equal values costs one comparison of two arrays."""
-    old_value = pd.Series(old[:, 2], dtype=object).astype("float64").to_numpy()
-    old_good = old[:, 3].astype(bool)
+    the stored *values* and *good* (driver objects, row for row), with the stored
+    ``old_value`` and ``old_good`` beside them. Vectorised: a re-sent export of equal
+    values costs one comparison of two arrays."""
+    old_value = values.astype("float64")  # NULL (None) becomes NaN
+    old_good = good.astype(bool)
     differ = values_differ(old_value, frame["value"].to_numpy("float64")) | (
         old_good != frame["good"].to_numpy(bool))
     if not differ.any():

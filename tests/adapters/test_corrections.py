@@ -168,6 +168,9 @@ def test_values_differ_tolerance() -> None:
     new = np.array([3.1e5 + 0.3, 3.1e5 + 0.32, 5e-10, 2e-9, np.nan, 1.0, 0.0117 * (1 + 2e-6)])
     # 1e-6 relative + 1e-9 absolute (the store's stated tolerance): 0.31 Pa at 3.1 bar
     assert values_differ(old, new).tolist() == [False, True, False, True, False, True, True]
+    # no overflow warning (warnings are errors here) at the ends of the float range
+    assert values_differ(np.array([1e308, 1e308]), np.array([-1e308, 1e308])).tolist() == [
+        True, False]
 
 
 def test_a_reading_stored_without_value_then_given_one(store: SqlStore) -> None:

@@ -166,17 +166,27 @@ def test_apply_refits_exactly_the_corrected_window(
             == fresh.store.read_findings()[keys].sort_values(keys).values.tolist())
 
 
-def test_analyze_of_another_period_refits_the_corrected_window(
-    demo: Path, tmp_path: Path, runs: list[Run]
+@pytest.mark.parametrize("period", ["later", "same"])
+def test_analyze_refits_the_corrected_window_once(
+    demo: Path, tmp_path: Path, runs: list[Run], period: str
 ) -> None:
     run = Run(_copy(demo, tmp_path / "site", "apply"))
     runs.append(run)
     ingest(run.site, run.store, run.source)
     analyze(run.site, run.store, run.source, START, END)
+    n_fits = len(run.fits())
     _reissue(run.site)
     ingest(run.site, run.store, run.source)
-    later = analyze(run.site, run.store, run.source, END, END + timedelta(days=1))
+    # 'analyze' of a later period fits the corrected window too; of a period that holds
+    # the window, fits it once, as one of the period's
+    span = (END, END + timedelta(days=2)) if period == "later" else (START, END)
+    later = analyze(run.site, run.store, run.source, *span)
     assert (later.refitted, later.corrections) == (1, 3)
+    assert later.windows == (1 if period == "later" else 3)
+    refits = 1 if period == "later" else 0  # beside the period's own windows
+    assert later.fits == len(run.site.branches) * (later.windows + refits)
+    new_windows = later.windows if period == "later" else 0  # the rest were stored before
+    assert len(run.fits()) == n_fits + len(run.site.branches) * new_windows
     # the analysis of a period that holds the window marks nothing twice
     again = analyze(run.site, run.store, run.source, START, END)
     assert (again.refitted, again.corrections) == (0, 0)
