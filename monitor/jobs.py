@@ -382,6 +382,11 @@ def analyze(
     With *jobs* > 1, a backfill long enough to gain from it (*parallel_after_s*) has its
     windows read and analysed in that many worker processes (see `analyze_windows`); the
     results are the same.
+
+    Windows analysed before (inside the period or not) that hold a reading changed by an
+    applied correction (`pending_corrections`) are analysed again too, first; their rows
+    are replaced, and the corrections of each window are marked re-analysed once its new
+    results are stored. The diagnosis then reads from the earliest of them.
     """
     if jobs < 1:
         raise ValueError(f"jobs must be >= 1, got {jobs}")
@@ -1217,7 +1222,8 @@ def catch_up(
     """Analyse every whole window that closed since the last analysed one.
 
     The daily job: after downtime it catches up on all missed windows; run twice it
-    re-fits nothing new (the last window is already stored) and re-diagnoses.
+    re-fits nothing new (the last window is already stored) and re-diagnoses. Windows
+    whose readings an applied correction changed since are fitted again (`analyze`).
     """
     marks = store.watermarks()
     if not marks.fits.empty:
