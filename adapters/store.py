@@ -467,6 +467,9 @@ class SqlStore(ResultsStore):
         if have:
             table = np.array(have, dtype=object).reshape(len(have), 4)
             known = pd.MultiIndex.from_arrays([table[:, 0], to_utc_index(table[:, 1]).asi8])
+            if not known.is_unique:  # one instant stored as two texts (SQLite): the first
+                first = ~known.duplicated()
+                known, table = known[first], table[first]
             at = known.get_indexer(pd.MultiIndex.from_arrays([frame["tag"].to_numpy(), t_ns]))
             fresh = at < 0
             if not fresh.all():

@@ -229,3 +229,18 @@ def test_migration_0008_up_down_and_up_keeps_readings(opener: Any) -> None:
     _alembic(store, "upgrade", "head")
     assert store.read_corrections().empty
     assert len(store.read_readings(["FT-311"], T0, T0 + timedelta(minutes=1))) == 1
+
+
+def test_one_instant_stored_as_two_texts_does_not_stop_ingest(tmp_path: Path) -> None:
+    # SQLite keys the time as text: a row written by another program in ISO 'T' form is
+    # the same instant as the store's own; the comparison takes the first
+    store = SqlStore(f"sqlite:///{tmp_path / 'b.db'}")
+    try:
+        store.store_batch(_batch(_readings(3)), source="csv")
+        with store.engine.begin() as conn:
+            conn.execute(sa.text("INSERT INTO readings (tag, time, value, good) VALUES "
+                                 "('FT-311', '2026-02-09T06:00:00+00:00', 0.5, 1)"))
+        out = store.write_batch(_batch(_readings(3)), source="csv")
+        assert (out.stored, out.refused) == (0, 0)
+    finally:
+        store.close()
