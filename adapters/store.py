@@ -465,16 +465,19 @@ class SqlStore(ResultsStore):
         )
         have = raw_rows(conn, query)
         if have:
-            table = np.array(have, dtype=object).reshape(len(have), 4)
-            known = pd.MultiIndex.from_arrays([table[:, 0], to_utc_index(table[:, 1]).asi8])
+            # column lists by comprehension: several times faster than one object array
+            known = pd.MultiIndex.from_arrays(
+                [[h[0] for h in have], to_utc_index([h[1] for h in have]).asi8])
+            values = np.array([h[2] for h in have], dtype="float64")  # NULL becomes NaN
+            good = np.array([h[3] for h in have], dtype=bool)
             if not known.is_unique:  # one instant stored as two texts (SQLite): the first
                 first = ~known.duplicated()
-                known, table = known[first], table[first]
+                known, values, good = known[first], values[first], good[first]
             at = known.get_indexer(pd.MultiIndex.from_arrays([frame["tag"].to_numpy(), t_ns]))
             fresh = at < 0
             if not fresh.all():
                 same = at[~fresh]
-                changed = _changes(frame[~fresh], table[:, 2][same], table[:, 3][same])
+                changed = _changes(frame[~fresh], values[same], good[same])
             frame = frame[fresh]
         if frame.empty:
             return 0, changed
@@ -1112,11 +1115,10 @@ def _changes(
     frame: pd.DataFrame, values: np.ndarray[Any, Any], good: np.ndarray[Any, Any]
 ) -> pd.DataFrame:
     """The rows of *frame* (readings already stored) whose value or quality differs from
-    the stored *values* and *good* (driver objects, row for row), with the stored
-    ``old_value`` and ``old_good`` beside them. Vectorised: a re-sent export of equal
-    values costs one comparison of two arrays."""
-    old_value = values.astype("float64")  # NULL (None) becomes NaN
-    old_good = good.astype(bool)
+    the stored *values* [SI] and *good* (row for row), with the stored ``old_value`` and
+    ``old_good`` beside them. Vectorised: a re-sent export of equal values costs one
+    comparison of two arrays."""
+    old_value, old_good = values, good
     differ = values_differ(old_value, frame["value"].to_numpy("float64")) | (
         old_good != frame["good"].to_numpy(bool))
     if not differ.any():
