@@ -51,15 +51,20 @@ from datetime import datetime
 from enum import StrEnum
 from typing import Any, ClassVar
 
+import numpy as np
 import pandas as pd
 
 __all__ = [
     "ALARM_STATES",
+    "CORRECTION_ATOL",
+    "CORRECTION_POLICIES",
+    "CORRECTION_RTOL",
     "MAINTENANCE_KINDS",
     "QUARANTINE_COLUMNS",
     "READING_COLUMNS",
     "AlarmStateName",
     "Batch",
+    "BatchWrite",
     "BranchwatchAdapterError",
     "MaintenanceKind",
     "Message",
@@ -77,6 +82,7 @@ __all__ = [
     "notifier_class",
     "open_store",
     "source_class",
+    "values_differ",
 ]
 
 READING_COLUMNS: tuple[str, ...] = ("time", "tag", "value", "good")
@@ -206,6 +212,45 @@ class Batch:
     notes: Mapping[str, int] = field(default_factory=dict)
 
 
+#: What the site's ``[source] corrections`` may say about a stored reading that a later
+#: export brings with another value: keep the first stored value, or take the latest.
+CORRECTION_POLICIES: tuple[str, ...] = ("refuse", "apply")
+#: A value counts as changed beyond this relative and absolute difference (SI): a float
+#: written to text and read back (or converted bar → Pa and back) is not a correction.
+CORRECTION_RTOL = 1e-6
+CORRECTION_ATOL = 1e-9
+
+
+def values_differ(old: Any, new: Any) -> Any:
+    """Element-wise: is *new* a different value from *old* (arrays of SI floats)?
+
+    Beyond ``CORRECTION_ATOL + CORRECTION_RTOL * max(|old|, |new|)``; NaN (no value)
+    equals NaN and differs from any number.
+
+    >>> values_differ(np.array([1e5, 1e5, np.nan, np.nan]),
+    ...               np.array([1e5 * (1 + 1e-9), 1.001e5, np.nan, 0.0])).tolist()
+    [False, True, False, True]
+    """
+    old = np.asarray(old, dtype="float64")
+    new = np.asarray(new, dtype="float64")
+    with np.errstate(invalid="ignore", over="ignore"):
+        close = np.abs(new - old) <= CORRECTION_ATOL + CORRECTION_RTOL * np.maximum(
+            np.abs(old), np.abs(new))
+    return ~(close | (np.isnan(old) & np.isnan(new)))
+
+
+@dataclass(frozen=True)
+class BatchWrite:
+    """What storing one batch did: readings newly stored, corrections applied and
+    corrections refused (newly journalled; one met again is not counted), and the first
+    correction as an example for the log (None when there was none)."""
+
+    stored: int
+    applied: int = 0
+    refused: int = 0
+    example: str | None = None
+
+
 class ReadingsSource(abc.ABC):
     """Where historian readings come from.
 
@@ -304,13 +349,46 @@ class ResultsStore(abc.ABC):
         jobs: pd.DataFrame
 
     # readings and ingest bookkeeping -------------------------------------------------
-    @abc.abstractmethod
     def store_batch(self, batch: Batch, *, source: str) -> int:
         """Store a batch's readings, quarantine rows and cursor in one transaction.
 
         Returns the number of readings newly stored (duplicates of stored readings are
-        not counted).
+        not counted). A stored reading the batch brings with another value is kept and
+        journalled as refused (`write_batch` with ``corrections="refuse"``).
         """
+        return self.write_batch(batch, source=source).stored
+
+    @abc.abstractmethod
+    def write_batch(
+        self, batch: Batch, *, source: str, corrections: str = "refuse"
+    ) -> BatchWrite:
+        """`store_batch` under a corrections policy (one of `CORRECTION_POLICIES`).
+
+        A reading already stored whose value (beyond `values_differ`'s tolerance) or
+        quality the batch changes is a correction: ``"refuse"`` keeps the stored reading,
+        ``"apply"`` replaces it; either way it is journalled (`read_corrections`), a
+        refused one once however often it comes again. All in the batch's transaction.
+        """
+
+    @abc.abstractmethod
+    def read_corrections(
+        self, *, action: str | None = None, pending: bool = False,
+        start: datetime | None = None, end: datetime | None = None,
+    ) -> pd.DataFrame:
+        """The corrections journal (id, tag, time, old_value, new_value, old_good,
+        new_good, source, origin, line, recorded_at, action, reanalysed_at), by time;
+        *pending*: applied ones not yet re-analysed; *start*/*end*: reading times in
+        ``[start, end)``."""
+
+    @abc.abstractmethod
+    def mark_reanalysed(self, ids: Iterable[int], *, when: datetime | None = None) -> int:
+        """Mark applied corrections as re-analysed (at *when*, default now); returns how
+        many were marked."""
+
+    @abc.abstractmethod
+    def correction_counts(self) -> dict[str, int]:
+        """Journalled corrections: ``applied``, ``refused`` and ``pending`` (applied, not
+        yet re-analysed)."""
 
     @abc.abstractmethod
     def cursors(self, source: str) -> dict[str, dict[str, Any]]:

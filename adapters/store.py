@@ -12,17 +12,20 @@ Tables
 ``readings`` (tag, time) · ``cursors`` (source, key) · ``quarantine`` · ``fits`` (branch,
 window_start, window_end) · ``findings`` (branch, kind, start) · ``alarms`` (branch,
 condition) and its journal ``alarm_events`` · ``maintenance`` · ``job_runs`` ·
-``data_health`` (tag, day, flag). The natural key of each is in brackets.
+``data_health`` (tag, day, flag) · ``corrections`` (the journal of changed readings). The
+natural key of each is in brackets.
 
 Writes
 ------
 Every public write is one transaction. Upserts on natural keys use each dialect's own
 statement — ``INSERT … ON CONFLICT`` on SQLite and PostgreSQL, ``INSERT … ON DUPLICATE
 KEY UPDATE`` on MariaDB/MySQL — and a delete-then-insert inside the same transaction on
-any other dialect. Readings are never overwritten: a (tag, time) already stored keeps its
-first value, and `SqlStore.store_batch` counts only the readings it newly stored (the
-batch is anti-joined against what is stored before the insert; the insert itself still
-ignores conflicts, so a concurrent writer cannot make it fail).
+any other dialect. A (tag, time) already stored keeps its first value unless the site's
+corrections policy says ``apply``: `SqlStore.write_batch` compares the batch with what is
+stored before the insert (one range read, compared as arrays), inserts only the new
+readings (the insert itself still ignores conflicts, so a concurrent writer cannot make
+it fail), and journals each reading the batch changes — applied or refused — in
+``corrections``, in the same transaction.
 
 Times
 -----
@@ -45,17 +48,21 @@ from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from typing import Any, ClassVar
 
+import numpy as np
 import pandas as pd
 import sqlalchemy as sa
 
 from adapters.base import (
     ALARM_STATES,
+    CORRECTION_POLICIES,
     MAINTENANCE_KINDS,
     AlarmStateName,
     Batch,
+    BatchWrite,
     ResultsStore,
     StoreError,
     empty_readings,
+    values_differ,
 )
 from adapters.credentials import (
     is_authentication_failure,
@@ -87,6 +94,7 @@ from adapters.migrations.tables import (
     UTCDateTime,
     alarm_events_t,
     alarms_t,
+    corrections_t,
     cursors_t,
     data_health_t,
     findings_t,
@@ -362,11 +370,16 @@ class SqlStore(ResultsStore):
         return (_reopen, (url, self.schema, self.busy_timeout_s))
 
     # readings and ingest bookkeeping -------------------------------------------------
-    def store_batch(self, batch: Batch, *, source: str) -> int:
+    def write_batch(
+        self, batch: Batch, *, source: str, corrections: str = "refuse"
+    ) -> BatchWrite:
         """Store a batch's readings, quarantine rows and cursor in one transaction.
 
-        Readings whose (tag, time) is already stored are skipped, not overwritten, and
-        not counted; within the batch a repeated (tag, time) keeps its last row.
+        Readings whose (tag, time) is not stored yet are inserted; within the batch a
+        repeated (tag, time) keeps its last row. A stored reading the batch brings again
+        with an equal value (`values_differ`) and quality is skipped; with another value
+        or quality it is a correction, handled by *corrections* (see
+        `ResultsStore.write_batch`) and journalled in ``corrections``.
 
         Parameters
         ----------
@@ -374,19 +387,30 @@ class SqlStore(ResultsStore):
             Readings frame (see `adapters.base`), quarantine frame and cursor.
         source
             Name of the source the cursor belongs to [-].
+        corrections
+            ``"refuse"`` (keep the stored value) or ``"apply"`` (take the batch's) [-].
 
         Returns
         -------
-        int
-            Number of readings newly stored [-].
+        BatchWrite
+            Readings newly stored, corrections applied and newly refused [-].
         """
         _name(source, "source", 100)
         _name(batch.cursor_key, "batch.cursor_key", 400)
+        if corrections not in CORRECTION_POLICIES:
+            raise ValueError(f"corrections must be one of {CORRECTION_POLICIES}, "
+                             f"got {corrections!r}")
         frame = prepare_readings(batch.readings)
         quarantined = quarantine_rows(batch.quarantined, source)
         now = datetime.now(UTC)
+        applied = refused = 0
+        example = None
         with self._write() as conn:
-            stored = self._insert_readings(conn, frame)
+            stored, changed = self._insert_readings(conn, frame)
+            if not changed.empty:
+                applied, refused, example = _journal(
+                    conn, changed, corrections, source=source, origin=batch.cursor_key,
+                    now=now)
             upsert(
                 conn,
                 quarantine_t,
@@ -408,28 +432,45 @@ class SqlStore(ResultsStore):
                 ("source", "key"),
                 replace=True,
             )
-        log.debug("stored %d of %d readings from %s", stored, len(frame), source)
-        return stored
+        log.debug("stored %d of %d readings from %s (%d corrections applied, %d refused)",
+                  stored, len(frame), source, applied, refused)
+        return BatchWrite(stored=stored, applied=applied, refused=refused, example=example)
 
-    def _insert_readings(self, conn: sa.Connection, frame: pd.DataFrame) -> int:
+    def _insert_readings(
+        self, conn: sa.Connection, frame: pd.DataFrame
+    ) -> tuple[int, pd.DataFrame]:
+        """Insert the readings not stored yet; returns their count and the stored readings
+        the frame changes (`_changes`)."""
+        changed = _NO_CHANGES
         if frame.empty:
-            return 0
+            return 0, changed
         t_ns = frame["time"].to_numpy("datetime64[ns]").view("int64")
         lo, hi = frame["time"].min(), frame["time"].max()
         raw_time = time_text(readings_t.c.time, conn.dialect.name)
-        query = sa.select(readings_t.c.tag, raw_time).where(
+        raw_good = sa.type_coerce(readings_t.c.good, sa.types.NullType())
+        query = sa.select(readings_t.c.tag, raw_time, readings_t.c.value, raw_good).where(
             readings_t.c.tag.in_(sorted(set(frame["tag"]))),
             readings_t.c.time >= lo,
             readings_t.c.time <= hi,
         )
         have = raw_rows(conn, query)
         if have:
-            stored_ns = to_utc_index([h[1] for h in have]).asi8
-            known = pd.MultiIndex.from_arrays([[h[0] for h in have], stored_ns])
-            fresh = ~pd.MultiIndex.from_arrays([frame["tag"].to_numpy(), t_ns]).isin(known)
+            # column lists by comprehension: several times faster than one object array
+            known = pd.MultiIndex.from_arrays(
+                [[h[0] for h in have], to_utc_index([h[1] for h in have]).asi8])
+            values = np.array([h[2] for h in have], dtype="float64")  # NULL becomes NaN
+            good = np.array([h[3] for h in have], dtype=bool)
+            if not known.is_unique:  # one instant stored as two texts (SQLite): the first
+                first = ~known.duplicated()
+                known, values, good = known[first], values[first], good[first]
+            at = known.get_indexer(pd.MultiIndex.from_arrays([frame["tag"].to_numpy(), t_ns]))
+            fresh = at < 0
+            if not fresh.all():
+                same = at[~fresh]
+                changed = _changes(frame[~fresh], values[same], good[same])
             frame = frame[fresh]
         if frame.empty:
-            return 0
+            return 0, changed
         columns = {
             "tag": frame["tag"].tolist(),
             "time": native_times(frame["time"], conn.dialect.name),
@@ -438,7 +479,7 @@ class SqlStore(ResultsStore):
         }
         if conn.dialect.name == "postgresql" and conn.dialect.driver == "psycopg":
             copy_readings_pg(conn, columns)
-            return len(frame)
+            return len(frame), changed
         # Compiled once, executed by the driver on plain tuples: SQLAlchemy's per-row
         # parameter handling would cost more than the database's own work.
         stmt = upsert_statement(conn.dialect.name, readings_raw, ("tag", "time"), [], replace=False)
@@ -455,7 +496,7 @@ class SqlStore(ResultsStore):
             ]
         for i in range(0, len(params), CHUNK):
             conn.exec_driver_sql(sql, params[i : i + CHUNK])
-        return len(frame)
+        return len(frame), changed
 
     def cursors(self, source: str) -> dict[str, dict[str, Any]]:
         """The stored cursors of *source* (cursor key → cursor)."""
@@ -511,6 +552,59 @@ class SqlStore(ResultsStore):
             query = query.where(quarantine_t.c.stored_at >= utc_datetime(since, "since"))
         with self._read() as conn:
             return {reason: int(n) for reason, n in conn.execute(query).all()}
+
+    # the corrections journal ---------------------------------------------------------
+    def read_corrections(
+        self, *, action: str | None = None, pending: bool = False,
+        start: datetime | None = None, end: datetime | None = None,
+    ) -> pd.DataFrame:
+        """The corrections journal, by reading time then id (see
+        `ResultsStore.read_corrections`); ``line`` is <NA> where the source did not say."""
+        t = corrections_t
+        query = sa.select(t).order_by(t.c.time, t.c.id)
+        if action is not None:
+            query = query.where(t.c.action == action)
+        if pending:
+            query = query.where(t.c.action == "applied", t.c.reanalysed_at.is_(None))
+        if start is not None:
+            query = query.where(t.c.time >= utc_datetime(start, "start"))
+        if end is not None:
+            query = query.where(t.c.time < utc_datetime(end, "end"))
+        frame = self._frame(query, t)
+        frame["line"] = frame["line"].astype("Int64")
+        for col in ("old_good", "new_good"):
+            frame[col] = frame[col].astype(bool)
+        return frame
+
+    def mark_reanalysed(self, ids: Iterable[int], *, when: datetime | None = None) -> int:
+        """Mark applied corrections *ids* as re-analysed at *when* (default now)."""
+        keys = sorted({int(i) for i in ids})
+        if not keys:
+            return 0
+        stamp = utc_datetime(when, "when") if when is not None else datetime.now(UTC)
+        t = corrections_t
+        marked = 0
+        with self._write() as conn:
+            for i in range(0, len(keys), 500):  # IN lists of bounded length
+                marked += conn.execute(
+                    t.update().where(t.c.id.in_(keys[i : i + 500]), t.c.action == "applied",
+                                     t.c.reanalysed_at.is_(None)).values(reanalysed_at=stamp)
+                ).rowcount
+        return marked
+
+    def correction_counts(self) -> dict[str, int]:
+        """Journalled corrections: applied, refused, pending (applied, not re-analysed)."""
+        t = corrections_t
+        waiting = sa.func.sum(sa.case((sa.and_(t.c.action == "applied",
+                                               t.c.reanalysed_at.is_(None)), 1), else_=0))
+        with self._read() as conn:
+            rows = conn.execute(sa.select(t.c.action, sa.func.count(), waiting)
+                                .group_by(t.c.action)).all()
+        out = {"applied": 0, "refused": 0, "pending": 0}
+        for action, count, pending in rows:
+            out[str(action)] = int(count)
+            out["pending"] += int(pending or 0)
+        return out
 
     # fits and findings ---------------------------------------------------------------
     def upsert_fits(self, rows: Iterable[Mapping[str, Any]]) -> int:
@@ -997,6 +1091,91 @@ class SqlStore(ResultsStore):
                 # a nullable integer (maintenance.replaces) keeps its NULLs as <NA>
                 frame[col] = frame[col].astype("Int64" if frame[col].isna().any() else "int64")
         return frame
+
+
+#: No stored reading changed (`SqlStore._insert_readings`).
+_NO_CHANGES = pd.DataFrame(
+    {"time": pd.Series([], dtype="datetime64[ns, UTC]"), "tag": pd.Series([], dtype=object),
+     "value": pd.Series([], dtype="float64"), "good": pd.Series([], dtype=bool),
+     "old_value": pd.Series([], dtype="float64"), "old_good": pd.Series([], dtype=bool)}
+)
+
+
+def _changes(
+    frame: pd.DataFrame, values: np.ndarray[Any, Any], good: np.ndarray[Any, Any]
+) -> pd.DataFrame:
+    """The rows of *frame* (readings already stored) whose value or quality differs from
+    the stored *values* [SI] and *good* (row for row), with the stored ``old_value`` and
+    ``old_good`` beside them. Vectorised: a re-sent export of equal values costs one
+    comparison of two arrays."""
+    old_value, old_good = values, good
+    differ = values_differ(old_value, frame["value"].to_numpy("float64")) | (
+        old_good != frame["good"].to_numpy(bool))
+    if not differ.any():
+        return _NO_CHANGES
+    out = frame[differ].reset_index(drop=True)
+    out["old_value"] = old_value[differ]
+    out["old_good"] = old_good[differ]
+    return out
+
+
+def _journal(
+    conn: sa.Connection, changed: pd.DataFrame, policy: str, *, source: str, origin: str,
+    now: datetime,
+) -> tuple[int, int, str | None]:
+    """Handle the corrections *changed* under *policy* inside the batch's transaction:
+    ``apply`` writes the new values into ``readings``; both journal them, a refused one
+    only when the same reading was not refused with the same new value before. Returns
+    (applied, refused, an example for the log)."""
+    action = "applied" if policy == "apply" else "refused"
+    rows = [
+        {"tag": tag, "time": time.to_pydatetime(), "old_value": num(ov), "new_value": num(nv),
+         "old_good": bool(og), "new_good": bool(ng), "source": source, "origin": origin[:400],
+         "line": None, "recorded_at": now, "action": action, "reanalysed_at": None}
+        for tag, time, ov, nv, og, ng in zip(
+            changed["tag"], changed["time"], changed["old_value"], changed["value"],
+            changed["old_good"], changed["good"], strict=True)
+    ]
+    t = corrections_t
+    if action == "refused":
+        seen: dict[tuple[str, datetime], list[tuple[float | None, bool]]] = {}
+        times = [r["time"] for r in rows]
+        for tag, time, value, good in conn.execute(
+            sa.select(t.c.tag, t.c.time, t.c.new_value, t.c.new_good).where(
+                t.c.action == "refused", t.c.tag.in_(sorted(set(changed["tag"]))),
+                t.c.time >= min(times), t.c.time <= max(times))
+        ).all():
+            seen.setdefault((tag, time), []).append((value, bool(good)))
+        rows = [r for r in rows if not any(
+            good == r["new_good"] and not values_differ(
+                np.nan if value is None else value,
+                np.nan if r["new_value"] is None else r["new_value"])
+            for value, good in seen.get((r["tag"], r["time"]), []))]
+    else:
+        r_t = readings_t
+        conn.execute(
+            r_t.update()
+            .where(r_t.c.tag == sa.bindparam("b_tag"),
+                   r_t.c.time == sa.bindparam("b_time", type_=UTCDateTime()))
+            .values(value=sa.bindparam("b_value", type_=sa.Double()),
+                    good=sa.bindparam("b_good", type_=sa.Boolean())),
+            [{"b_tag": r["tag"], "b_time": r["time"], "b_value": r["new_value"],
+              "b_good": r["new_good"]} for r in rows],
+        )
+    if not rows:
+        return 0, 0, None
+    conn.execute(t.insert(), rows)
+    first = rows[0]
+    example = (f"{first['tag']} at {first['time']:%Y-%m-%d %H:%M:%S}Z: stored "
+               f"{_shown(first['old_value'])}, now {_shown(first['new_value'])} (SI)")
+    if first["old_good"] != first["new_good"]:
+        example += f", quality {'good' if first['new_good'] else 'bad'} (was " \
+                   f"{'good' if first['old_good'] else 'bad'})"
+    return (len(rows), 0, example) if action == "applied" else (0, len(rows), example)
+
+
+def _shown(value: float | None) -> str:
+    return "no value" if value is None else f"{value:.9g}"
 
 
 def _new_id(result: sa.CursorResult[Any]) -> int:

@@ -4,7 +4,8 @@ Prints, for SQLite (a temp file) and — when reachable — PostgreSQL and Maria
 loopback: readings stored per second by `SqlStore.store_batch` (new rows), the same batch
 again (all duplicates), and `read_readings` rows per second; beside them a bare driver
 load of the same rows into an identical table (sqlite3 executemany / psycopg COPY /
-pymysql executemany), as the ratio store ÷ bare. Then screening speed of
+pymysql executemany), as the ratio store ÷ bare; and the same batch once more with 1 % of
+its values corrected, under ``corrections = "apply"``. Then screening speed of
 `monitor.quality.screen` in samples per second.
 
     .venv/bin/python benchmarks/store.py [--rows 288000] [--repeat 3]
@@ -119,12 +120,16 @@ def bench_store(
     cleanup: Callable[[], None],
 ) -> None:
     n = len(frame)
-    first, again, read = [], [], []
+    first, again, read, fixed = [], [], [], []
+    corrected = frame.copy()
+    corrected.loc[::100, "value"] *= 1.01  # 1 % of the readings re-issued 1 % higher
+    n_fixed = len(corrected.loc[::100])
     try:
         for i in range(repeat):
             store = SqlStore(url, schema=schema)
             with store.engine.begin() as conn:
                 conn.execute(sa.text("DELETE FROM readings"))
+                conn.execute(sa.text("DELETE FROM corrections"))
             batch = Batch(frame, empty_quarantine(), f"bench-{i}", {"offset": n})
             t0 = time.perf_counter()
             stored = store.store_batch(batch, source="bench")
@@ -141,6 +146,11 @@ def bench_store(
             )
             read.append(time.perf_counter() - t0)
             assert len(out) == n
+            t0 = time.perf_counter()
+            wrote = store.write_batch(Batch(corrected, empty_quarantine(), f"bench-{i}",
+                                            {"offset": n}), source="bench", corrections="apply")
+            fixed.append(time.perf_counter() - t0)
+            assert wrote.applied == n_fixed, (wrote, n_fixed)
             store.close()
         bare = min(bare_load(url, schema, frame) for _ in range(repeat))
     finally:
@@ -149,6 +159,10 @@ def bench_store(
         f"{label:<11} store {n / min(first):>9,.0f} rows/s   again (duplicates) "
         f"{n / min(again):>9,.0f} rows/s   read {n / min(read):>9,.0f} rows/s   "
         f"bare driver load {n / bare:>9,.0f} rows/s   store/bare time x{min(first) / bare:.1f}"
+    )
+    print(
+        f"{'':<11} again with 1 % corrected (apply: {n_fixed:,} updated and journalled) "
+        f"{n / min(fixed):>9,.0f} rows/s"
     )
 
 

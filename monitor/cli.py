@@ -289,6 +289,9 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
         store.close()
     print(f"{summary.windows} windows, {summary.fits} branch fits ({summary.fits_ok} usable), "
           f"{len(summary.findings)} findings")
+    if summary.refitted or summary.corrections:
+        print(f"{summary.refitted} analysed windows fitted again for "
+              f"{summary.corrections} corrected readings")
     print_findings(site, summary.findings)
     if replayed is not None:
         if not replayed:

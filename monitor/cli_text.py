@@ -84,6 +84,11 @@ def print_alarm_events(site: Site, events: Sequence[Any]) -> None:
 def print_ingest(summary: Any) -> None:
     print(f"read {summary.read} readings in {summary.batches} batches; stored "
           f"{summary.stored} new, {summary.duplicates} already stored")
+    if summary.corrections_applied or summary.corrections_refused:
+        print(f"corrected readings: {summary.corrections_applied} applied (their analysed "
+              f"windows are fitted again by the next analysis), "
+              f"{summary.corrections_refused} refused (first stored value kept); "
+              "journalled in the store, see [source] corrections")
     if summary.quarantined:
         print(f"quarantined {summary.quarantined} rows:")
         for reason, count in sorted(summary.quarantine_reasons.items(), key=lambda kv: -kv[1]):
@@ -178,6 +183,12 @@ def print_status(site: Site, st: Any) -> None:
         more = episodes(site, f.branch, f.kind, f.evidence).removeprefix(", ")
         print(f"  {f.branch:<16} {f.kind:<14} since {local(site, f.start)}"
               f"{f' ({more})' if more else ''}: {f.message}")
+    if any(st.corrections.values()):
+        c = st.corrections
+        print(f"\ncorrected readings: {c['applied']} applied "
+              f"({c['pending']} waiting for re-analysis: 'branchwatch analyze' or "
+              f"the daily job fits their windows again), {c['refused']} refused "
+              "(first stored value kept; [source] corrections)")
     if st.quarantine:
         print("\nquarantined rows by reason: "
               + ", ".join(f"{k} {v}" for k, v in sorted(st.quarantine.items())))

@@ -161,6 +161,10 @@ class SourceSection(_Strict):
     overlap: Duration = 7200.0
     # both
     good_quality: list[str] = Field(default_factory=lambda: ["", "good", "GOOD", "192", "G"])
+    #: a reading already stored that a later export brings with another value: "refuse"
+    #: keeps the first stored value, "apply" takes the new one; both journal it, and an
+    #: applied one has its analysed windows fitted again
+    corrections: Literal["refuse", "apply"] = "refuse"
 
     model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
 

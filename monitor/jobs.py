@@ -31,9 +31,11 @@ from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo
 
+import numpy as np
 import pandas as pd
 
 from adapters.base import (
+    BatchWrite,
     BranchwatchAdapterError,
     ReadingsSource,
     ResultsStore,
@@ -85,6 +87,7 @@ __all__ = [
     "analyze",
     "analyze_windows",
     "catch_up",
+    "corrected_windows",
     "diagnose_site",
     "diagnosis_settings",
     "evaluate_alarms",
@@ -92,6 +95,7 @@ __all__ = [
     "ingest_and_watch",
     "newest_readings",
     "open_source",
+    "pending_corrections",
     "replay_alarms",
     "stale_after",
     "tag_owners",
@@ -153,12 +157,18 @@ class IngestSummary:
     notes: dict[str, int]
     batches: int
     cursors: dict[str, dict[str, Any]] = field(default_factory=dict)
+    #: stored readings this pass brought with another value, by what the site's
+    #: ``[source] corrections`` policy did (refused ones met before are not counted)
+    corrections_applied: int = 0
+    corrections_refused: int = 0
 
     def to_json_dict(self) -> dict[str, Any]:
         return {
             "read": self.read,
             "stored": self.stored,
             "duplicates": self.duplicates,
+            "corrections_applied": self.corrections_applied,
+            "corrections_refused": self.corrections_refused,
             "quarantined": self.quarantined,
             "quarantine_reasons": self.quarantine_reasons,
             "notes": self.notes,
@@ -179,16 +189,21 @@ def ingest(site: Site, store: ResultsStore, source: ReadingsSource) -> IngestSum
     cursor. Readings already stored are not doubled (upsert on tag and time), nor are
     quarantine rows; the summary counts what is new (see `IngestSummary`).
     """
-    read = stored = n = 0
+    read = stored = n = applied = refused = 0
     notes: Counter[str] = Counter()
     started = datetime.now(UTC)
+    policy = site.source.corrections if site.source is not None else "refuse"
     for batch in source.batches(store.cursors(source.name)):
         n += 1
-        new = store.store_batch(batch, source=source.name)
+        wrote = store.write_batch(batch, source=source.name, corrections=policy)
         read += len(batch.readings)
-        stored += new
+        stored += wrote.stored
+        applied += wrote.applied
+        refused += wrote.refused
         notes.update(batch.notes)
-        log.debug("batch %s: %d readings, %d new", batch.cursor_key, len(batch.readings), new)
+        log.debug("batch %s: %d readings, %d new", batch.cursor_key, len(batch.readings),
+                  wrote.stored)
+        _log_corrections(batch.cursor_key, wrote)
     reasons: Counter[str] = Counter()
     if n:
         for reason, count in store.quarantine_counts(source.name, since=started).items():
@@ -203,12 +218,26 @@ def ingest(site: Site, store: ResultsStore, source: ReadingsSource) -> IngestSum
         notes={k: v for k, v in notes.items() if k != "quarantined"},
         batches=n,
         cursors=store.cursors(source.name),
+        corrections_applied=applied,
+        corrections_refused=refused,
     )
     log.info(
         "ingest from %s: %d read, %d stored, %d duplicates, %d quarantined",
         source.name, read, stored, read - stored, quarantined,
     )
     return summary
+
+
+def _log_corrections(origin: str, wrote: BatchWrite) -> None:
+    """One line per batch that changed stored readings: the count and a first example."""
+    if wrote.applied:
+        log.warning("%s: %d stored readings corrected (e.g. %s); [source] corrections = "
+                    "\"apply\": the new values replace them and their analysed windows are "
+                    "fitted again at the next analysis", origin, wrote.applied, wrote.example)
+    if wrote.refused:
+        log.warning("%s: %d stored readings come with another value (e.g. %s); kept as first "
+                    "stored and journalled ([source] corrections = \"refuse\"; \"apply\" "
+                    "takes the new values)", origin, wrote.refused, wrote.example)
 
 
 def _reason_kind(reason: str) -> str:
@@ -307,6 +336,15 @@ class AnalyzeSummary:
     fits_ok: int
     readings: int
     findings: list[Finding]
+    #: windows analysed before whose inputs an applied correction changed, fitted again
+    refitted: int = 0
+    #: applied corrections marked re-analysed by this run
+    corrections: int = 0
+
+    def to_json_dict(self) -> dict[str, Any]:
+        return {"windows": self.windows, "fits": self.fits, "fits_ok": self.fits_ok,
+                "readings": self.readings, "findings": len(self.findings),
+                "refitted": self.refitted, "corrections": self.corrections}
 
 
 def read_window(
@@ -344,31 +382,88 @@ def analyze(
     With *jobs* > 1, a backfill long enough to gain from it (*parallel_after_s*) has its
     windows read and analysed in that many worker processes (see `analyze_windows`); the
     results are the same.
+
+    Windows analysed before (inside the period or not) that hold a reading changed by an
+    applied correction (`pending_corrections`) are analysed again too, first; their rows
+    are replaced, and the corrections of each window are marked re-analysed once its new
+    results are stored. The diagnosis then reads from the earliest of them.
     """
     if jobs < 1:
         raise ValueError(f"jobs must be >= 1, got {jobs}")
     spans = list(windows(start, end, site.window, site.timezone))
-    n_fits = n_ok = n_read = 0
-    results = analyze_windows(site, store, source, spans, jobs=jobs,
+    pending = pending_corrections(site, store)
+    corrected = corrected_windows(site, store, pending)
+    in_period = set(spans)
+    todo = [w for w in corrected if w not in in_period] + spans
+    n_fits = n_ok = n_read = n_refit = n_marked = 0
+    results = analyze_windows(site, store, source, todo, jobs=jobs,
                               parallel_after_s=parallel_after_s)
     for i, result in enumerate(results):
         store.store_window(
             fits=result.fits, screening=result.screening, balance=result.balance,
             health=result.health,
         )
+        # marked once the window's new fits are committed: a kill in between leaves the
+        # corrections pending, and the next run fits the window again (same rows)
+        ws, we = todo[i]
+        n_marked += store.mark_reanalysed(_inside(pending, ws, we))
+        n_refit += (ws, we) in corrected
         n_read += result.samples
         n_fits += len(result.fits)
         n_ok += sum(1 for f in result.fits if f.get("status") in ("ok", "not_identifiable"))
         if progress is not None:
-            progress(i + 1, len(spans))
-    findings = diagnose_site(site, store, now=end, source=source, since=start)
+            progress(i + 1, len(todo))
+    since = min([start, *(ws for ws, _ in corrected)])
+    findings = diagnose_site(site, store, now=end, source=source, since=since)
     log.info(
         "analysis %s .. %s: %d windows, %d fits (%d usable), %d findings",
         start, end, len(spans), n_fits, n_ok, len(findings),
     )
+    if corrected:
+        log.info("%d analysed windows fitted again for %d corrected readings (%s .. %s)",
+                 n_refit, n_marked, corrected[0][0], corrected[-1][1])
     return AnalyzeSummary(
-        windows=len(spans), fits=n_fits, fits_ok=n_ok, readings=n_read, findings=findings
+        windows=len(spans), fits=n_fits, fits_ok=n_ok, readings=n_read, findings=findings,
+        refitted=n_refit, corrections=n_marked,
     )
+
+
+def pending_corrections(site: Site, store: ResultsStore) -> pd.DataFrame:
+    """Applied corrections of the site's tags not re-analysed yet (id, time, …)."""
+    pending = store.read_corrections(pending=True)
+    return pending[pending["tag"].isin(list(site.tags))].reset_index(drop=True)
+
+
+def corrected_windows(
+    site: Site, store: ResultsStore, pending: pd.DataFrame
+) -> list[tuple[datetime, datetime]]:
+    """The analysed windows (of the present ``[analysis] window``, those with stored
+    fits) that hold a reading of *pending*, in time order."""
+    if pending.empty:
+        return []
+    times = np.sort(pd.DatetimeIndex(pending["time"]).asi8)
+    first, last = pd.Timestamp(times[0], tz="UTC"), pd.Timestamp(times[-1], tz="UTC")
+    fits = current_fits(site, store.read_fits(
+        start=(first - 2 * site.window).to_pydatetime(),
+        end=(last + pd.Timedelta(microseconds=1)).to_pydatetime()))
+    if fits.empty:
+        return []
+    spans = sorted({(pd.Timestamp(a).to_pydatetime(), pd.Timestamp(b).to_pydatetime())
+                    for a, b in zip(fits["window_start"], fits["window_end"], strict=True)})
+    lo = np.array([pd.Timestamp(a).value for a, _ in spans], dtype="int64")
+    hi = np.array([pd.Timestamp(b).value for _, b in spans], dtype="int64")
+    at = np.searchsorted(times, lo, side="left")  # the first correction at or after start
+    holds = (at < len(times)) & (times[np.minimum(at, len(times) - 1)] < hi)
+    return [span for span, hit in zip(spans, holds, strict=True) if hit]
+
+
+def _inside(pending: pd.DataFrame, start: datetime, end: datetime) -> list[int]:
+    """Ids of the corrections in *pending* whose reading time is in [start, end)."""
+    if pending.empty:
+        return []
+    t = pd.DatetimeIndex(pending["time"])
+    hit = (t >= pd.Timestamp(start)) & (t < pd.Timestamp(end))
+    return [int(i) for i in pending["id"][hit]]
 
 
 def analyze_windows(
@@ -1118,7 +1213,8 @@ def catch_up(
     """Analyse every whole window that closed since the last analysed one.
 
     The daily job: after downtime it catches up on all missed windows; run twice it
-    re-fits nothing new (the last window is already stored) and re-diagnoses.
+    re-fits nothing new (the last window is already stored) and re-diagnoses. Windows
+    whose readings an applied correction changed since are fitted again (`analyze`).
     """
     marks = store.watermarks()
     if not marks.fits.empty:

@@ -154,6 +154,8 @@ class StatusSummary:
     stale_after_s : age beyond which a tag is stale [s]
     tags : every tag of the site file and every tag with stored readings, by name
     fits_last : (branch, end of its last analysed window), as the store orders them
+    corrections : corrected readings journalled: applied, refused, and applied ones
+        still waiting for their windows' re-analysis (pending)
     messages : count of outbox messages by state (`MESSAGE_STATES`)
     notify_configured : the site file has a [notify] section
     """
@@ -167,6 +169,7 @@ class StatusSummary:
     jobs: tuple[JobRun, ...]
     open_findings: tuple[OpenFindingLine, ...]
     quarantine: Mapping[str, int]
+    corrections: Mapping[str, int]
     messages: Mapping[str, int]
     not_sent: tuple[UnsentMessage, ...]
     notify_configured: bool
@@ -193,6 +196,7 @@ class StatusSummary:
             "jobs": jsonable([dict(j.record) for j in self.jobs]),
             "open_findings": len(self.open_findings),
             "quarantine": dict(self.quarantine),
+            "corrections": dict(self.corrections),
             "messages": dict(self.messages),
             "messages_not_sent": jsonable([
                 {"key": m.key, "channel": m.channel, "subject": m.subject,
@@ -209,6 +213,7 @@ def status_summary(site: Site, store: ResultsStore, *, now: datetime, runs: int 
     findings = store.read_findings()
     quarantine = store.quarantine_counts()
     outbox = store.outbox()
+    corrections = store.correction_counts()
     limit_s = stale_after(site)
     newest = {str(t): pd.Timestamp(v) for t, v in
               zip(marks.readings["tag"], marks.readings["last"], strict=True)}
@@ -225,6 +230,7 @@ def status_summary(site: Site, store: ResultsStore, *, now: datetime, runs: int 
         site=site.name, timezone=site.timezone, now=now, stale_after_s=limit_s,
         tags=tuple(tags), fits_last=fits_last, jobs=_job_runs(job_rows),
         open_findings=_open_findings(findings), quarantine=quarantine,
+        corrections=corrections,
         messages={st: int((outbox["status"] == st).sum()) if not outbox.empty else 0
                   for st in MESSAGE_STATES},
         not_sent=_not_sent(outbox), notify_configured=site.notify is not None,

@@ -200,6 +200,28 @@ outbox_t = sa.Table(
     sa.Column("last_error", sa.Text()),
     sa.Index("ix_outbox_status_next_try", "status", "next_try"),
 )
+#: 0008_corrections: the journal of stored readings a later export brought with another
+#: value — refused (the first value kept) or applied (the new value taken), and for an
+#: applied one when the analysis windows it fell in were fitted again
+corrections_t = sa.Table(
+    "corrections",
+    metadata,
+    sa.Column("id", sa.BigInteger().with_variant(sa.Integer(), "sqlite"), primary_key=True),
+    sa.Column("tag", Tag, nullable=False),
+    sa.Column("time", T(), nullable=False),
+    sa.Column("old_value", sa.Double()),
+    sa.Column("new_value", sa.Double()),
+    sa.Column("old_good", sa.Boolean(), nullable=False),
+    sa.Column("new_good", sa.Boolean(), nullable=False),
+    sa.Column("source", sa.String(100), nullable=False),
+    sa.Column("origin", sa.String(400), nullable=False),
+    sa.Column("line", sa.BigInteger()),
+    sa.Column("recorded_at", T(), nullable=False),
+    sa.Column("action", sa.String(10), nullable=False),
+    sa.Column("reanalysed_at", T()),
+    sa.Index("ix_corrections_tag_time", "tag", "time"),
+    sa.Index("ix_corrections_pending", "action", "reanalysed_at"),
+)
 job_runs_t = sa.Table(
     "job_runs",
     metadata,

@@ -208,3 +208,44 @@ def test_nan_and_inf_values_are_quarantined(
     assert got.quarantined["line"].tolist() == [20260601000100, 20260601000200]  # their times
     assert got.notes["nonfinite_values"] == 2
     assert sorted(got.readings["value"].tolist()) == pytest.approx([100.0 / 3600, 3e5])
+
+
+def edit(url: str, table: str, aware: bool, minute: int, tag: str, value: float) -> None:
+    """The historian corrects one stored row in place (same time and tag)."""
+    engine = sa.create_engine(url)
+    tbl = sa.Table(table, sa.MetaData(), autoload_with=engine)
+    at = T0 + timedelta(minutes=minute)
+    with engine.begin() as conn:
+        conn.execute(tbl.update().where(tbl.c.time == (at if aware else at.replace(tzinfo=None)),
+                                        tbl.c.tag == tag).values(value=value))
+    engine.dispose()
+
+
+@pytest.mark.parametrize("policy", ["refuse", "apply"])
+def test_a_row_corrected_inside_the_overlap(
+    database: tuple[str, str, bool], tmp_path: Path, store: ResultsStore,
+    monkeypatch: pytest.MonkeyPatch, policy: str,
+) -> None:
+    url, table, aware = database
+    monkeypatch.setenv(ENV, url)
+    site = make_site(tmp_path, table, corrections=policy)
+    insert(url, table, aware, minutes("PT-100", range(60)) + minutes("FT-110", range(60)))
+    assert run(site, store).stored == 120
+    edit(url, table, aware, 50, "PT-100", 3.25)  # 3.050 bar re-entered as 3.25 bar
+    second = run(site, store)
+    assert second.stored == 0
+    assert (second.corrections_applied, second.corrections_refused) == (
+        (1, 0) if policy == "apply" else (0, 1))
+    journal = store.read_corrections()
+    assert len(journal) == 1 and journal["tag"].iloc[0] == "PT-100"
+    assert pd.Timestamp(journal["time"].iloc[0]) == instant(50, aware)
+    # 1 bar = 1e5 Pa (SI Brochure, 9th ed., Table 8)
+    assert journal["old_value"].iloc[0] == pytest.approx(3.05e5)
+    assert journal["new_value"].iloc[0] == pytest.approx(3.25e5)
+    assert journal["source"].iloc[0] == f"sql:{table}"
+    kept = stored(store).set_index(["tag", "time"]).loc[("PT-100", instant(50, aware)), "value"]
+    assert kept == pytest.approx(3.25e5 if policy == "apply" else 3.05e5)
+    # every later pass re-reads the overlap, and journals the refused row no more
+    third = run(site, store)
+    assert (third.corrections_applied, third.corrections_refused) == (0, 0)
+    assert len(store.read_corrections()) == 1

@@ -40,6 +40,7 @@ ALL_TABLES = {
     "maintenance",
     "job_runs",
     "data_health",
+    "corrections",
     "branchwatch_schema_version",
 }
 
@@ -127,7 +128,7 @@ def test_migrations_create_schema_and_reopen_is_a_noop(opener: Any) -> None:
             MigrationContext.configure(
                 conn, opts={"version_table": "branchwatch_schema_version"}
             ).get_current_revision()
-            == "0007_outbox"
+            == "0008_corrections"
         )
         # The tables the store queries through agree with what the migration built.
         diff = compare_metadata(MigrationContext.configure(conn), tables.metadata)
@@ -138,7 +139,7 @@ def test_migrations_create_schema_and_reopen_is_a_noop(opener: Any) -> None:
     assert len(_all(second, ["FT-203"])) == 3
     with second.engine.connect() as conn:
         versions = conn.execute(sa.text("SELECT version_num FROM branchwatch_schema_version"))
-        assert [v for (v,) in versions] == ["0007_outbox"]
+        assert [v for (v,) in versions] == ["0008_corrections"]
 
 
 def test_store_batch_is_idempotent(store: SqlStore) -> None:

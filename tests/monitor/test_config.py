@@ -103,3 +103,21 @@ def test_sql_source_refuses_credentials_in_file() -> None:
     data["source"] = {"kind": "sql", "table": "readings"}
     with pytest.raises(ConfigError, match="url_env"):
         parse_site(data, path="site.toml")
+
+
+def test_corrections_policy_defaults_to_refuse_and_is_validated() -> None:
+    site = load_site(EXAMPLE)
+    assert site.source is not None and site.source.corrections == "refuse"
+    data = _example()
+    data["source"]["corrections"] = "apply"
+    applied = parse_site(data, path="site.toml").source
+    assert applied is not None and applied.corrections == "apply"
+    data["source"].pop("corrections")
+    bare = parse_site(data, path="site.toml").source
+    assert bare is not None and bare.corrections == "refuse"
+    data["source"]["corrections"] = "latest"
+    with pytest.raises(ConfigError) as err:
+        parse_site(data, path="site.toml")
+    text = str(err.value)
+    assert text.startswith("site.toml: source.corrections:") and "\n" not in text
+    assert "'refuse'" in text and "'apply'" in text
