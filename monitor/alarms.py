@@ -217,8 +217,9 @@ def _site_time(t: datetime, timezone: str) -> str:
 #: Alarm priority per condition (ISA-18.2 priorities: what an operator answers first).
 #: Back-flow can contaminate the supply: high. Low flow overheats equipment: high too
 #: when it lasts, but the tool advises and its limit is an engineering minimum: medium.
+#: A flow drop against the branch's own level: medium, as low flow.
 #: Instrument and communication alarms: low (our choice).
-PRIORITIES: dict[str, str] = {"backflow": "high", "low_flow": "medium"}
+PRIORITIES: dict[str, str] = {"backflow": "high", "low_flow": "medium", "flow_drop": "medium"}
 
 
 def priority_of(condition: str) -> str:
@@ -875,6 +876,8 @@ def describe_condition(branch: str, condition: str) -> str:
         return f"low flow on {branch}"
     if condition == "backflow":
         return f"back-flow hazard on {branch}"
+    if condition == "flow_drop":
+        return f"flow drop on {branch}"
     if condition == "stale source":
         return "stale source (no tag has fresh data)"
     return condition.replace("_", " ")

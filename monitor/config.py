@@ -22,7 +22,7 @@ import re
 import tomllib
 import zoneinfo
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import timedelta
 from pathlib import Path
 from typing import Annotated, Any, Literal
@@ -302,6 +302,41 @@ class TerminationSpec(_Strict):
         return self
 
 
+class FlowDropSection(_Strict):
+    """[flow_drop] (site-wide) or a branch's ``flow_drop = {…}``: the relative flow-drop
+    alarm, off unless ``enabled``. A branch's keys override the site's; a branch that
+    says ``enabled = false`` is left out of a site-wide alarm. Flow only (no pump curve,
+    no fit), so it serves a test rig or a branch without a model.
+
+    fraction : alarm at a flow this share below the branch's recent level ("5 %" or 0.05)
+    reference : the recent level is the flow's median over this long before the drop
+    hold : the drop must last this long before it is annunciated
+    deadband : the condition clears within ``fraction - deadband`` of the level
+    off_delay : and after this long there
+    """
+
+    enabled: bool | None = None
+    fraction: Fraction | None = None
+    reference: Period | None = None
+    hold: Delay | None = None
+    deadband: Fraction | None = None
+    off_delay: Delay | None = None
+
+    @field_validator("fraction")
+    @classmethod
+    def _share(cls, value: float | None) -> float | None:
+        if value is not None and not 0 < value < 1:
+            raise ValueError(f"must be a share between 0 and 1 like '5 %' or 0.05, got {value}")
+        return value
+
+    @field_validator("deadband")
+    @classmethod
+    def _small_share(cls, value: float | None) -> float | None:
+        if value is not None and not 0 <= value < 1:
+            raise ValueError(f"must be a share from 0 to 1 like '2 %' or 0.02, got {value}")
+        return value
+
+
 class BranchSection(_Strict):
     name: str = Field(min_length=1)
     description: str = ""
@@ -312,6 +347,8 @@ class BranchSection(_Strict):
     termination: TerminationSpec
     elements: list[ElementSpec] = Field(min_length=1)
     check_valve: bool | None = None
+    #: this branch's relative flow-drop alarm (keys override the site's [flow_drop])
+    flow_drop: FlowDropSection | None = None
 
 
 class AnalysisSection(_Strict):
@@ -494,6 +531,7 @@ class SiteFile(_Strict):
     report: ReportSection = ReportSection()
     notify: NotifySection | None = None
     cost: CostSection | None = None
+    flow_drop: FlowDropSection = FlowDropSection()
     branch: list[BranchSection] = Field(min_length=1)
 
     @model_validator(mode="after")
@@ -522,6 +560,45 @@ class SiteFile(_Strict):
 
 
 @dataclass(frozen=True)
+class FlowDrop:
+    """A branch's relative flow-drop alarm, resolved (see `FlowDropSection`)."""
+
+    fraction: float = 0.05  # [-]
+    reference_s: float = 1800.0  # [s]
+    hold_s: float = 60.0  # [s]
+    deadband: float = 0.02  # [-]
+    off_delay_s: float = 30.0  # [s]
+
+
+def _flow_drop(site: FlowDropSection, branch: FlowDropSection | None, has_meter: bool,
+               ) -> FlowDrop | None:
+    """The branch's flow-drop alarm from the site's and the branch's keys (None: off)."""
+    def pick(key: str) -> Any:
+        own = getattr(branch, key) if branch is not None else None
+        return own if own is not None else getattr(site, key)
+
+    if not pick("enabled"):
+        return None
+    if not has_meter:
+        if branch is not None and branch.enabled:
+            raise ValueError("flow_drop is enabled but the branch has no flow meter "
+                             "('flow'); enable it on metered branches only")
+        return None  # a site-wide alarm skips the branches without a meter
+    default = FlowDrop()
+    got = FlowDrop(
+        fraction=pick("fraction") if pick("fraction") is not None else default.fraction,
+        reference_s=pick("reference") or default.reference_s,
+        hold_s=pick("hold") if pick("hold") is not None else default.hold_s,
+        deadband=pick("deadband") if pick("deadband") is not None else default.deadband,
+        off_delay_s=pick("off_delay") if pick("off_delay") is not None else default.off_delay_s,
+    )
+    if not got.deadband < got.fraction:
+        raise ValueError(f"flow_drop.deadband ({got.deadband:g}) must be smaller than "
+                         f"flow_drop.fraction ({got.fraction:g})")
+    return got
+
+
+@dataclass(frozen=True)
 class BranchConfig:
     """One branch: its model, its tags and its limits (SI)."""
 
@@ -537,6 +614,8 @@ class BranchConfig:
     #: typical values of the logged conditions (level_m, end_pressure_pa, valve_position)
     #: from the tags' ``nominal``: used by `curve` and when a tag has no data
     nominal: Mapping[str, float] = field(default_factory=dict)
+    #: the relative flow-drop alarm, when enabled for this branch
+    flow_drop: FlowDrop | None = None
 
     @property
     def logged_conditions(self) -> dict[str, str]:
@@ -719,7 +798,9 @@ def _build(doc: SiteFile, path: Path) -> Site:
     for i, sec in enumerate(doc.branch):
         where = f"branch[{i}] ({sec.name})"
         try:
-            branches.append(_build_branch(sec, tags, doc.analysis.cleaning_limit))
+            branch = _build_branch(sec, tags, doc.analysis.cleaning_limit)
+            branches.append(replace(branch, flow_drop=_flow_drop(
+                doc.flow_drop, sec.flow_drop, branch.flow_tag is not None)))
         except (ValueError, KeyError) as exc:
             raise ValueError(f"{where}: {exc}") from None
         except ArithmeticError:  # e.g. 1e308 m3/h raised to the equipment's exponent

@@ -45,11 +45,13 @@ from monitor.alarms import (
     AlarmEvent,
     AlarmState,
     BackflowAlarmSettings,
+    FlowDropSettings,
     FrozenSettings,
     LowFlowSettings,
     StaleSettings,
     State,
     evaluate_backflow,
+    evaluate_flow_drop,
     evaluate_frozen,
     evaluate_low_flow,
     evaluate_stale,
@@ -878,9 +880,12 @@ def _sample_alarms(
         ((states[(b, c)].last_sample or first) if (b, c) in states else first)
         for b, c, _, _ in checks
     ) if checks else now
-    # the condition tags' newest reading before the first new header sample counts too
-    readings = read_tags(site, store, source, tags,
-                         since_all - timedelta(seconds=_condition_lag(site)), now)
+    # the condition tags' newest reading before the first new header sample counts too,
+    # and a flow-drop check needs its reference span before its first new sample
+    lag = max([_condition_lag(site)] + [
+        flow_drop_settings(site, site.branch(b)).lookback.total_seconds()
+        for b, c, _, _ in checks if c == "flow_drop"])
+    readings = read_tags(site, store, source, tags, since_all - timedelta(seconds=lag), now)
     good = readings[readings["good"].to_numpy(bool)]
     by_tag = {str(t): part for t, part in good.groupby("tag")}
     frozen = FrozenSettings(hold=timedelta(seconds=site.analysis.frozen_hold))
@@ -892,10 +897,19 @@ def _sample_alarms(
         series = (pd.Series(part["value"].to_numpy(float), index=pd.DatetimeIndex(part["time"]))
                   if part is not None else pd.Series([], dtype=float,
                                                     index=pd.DatetimeIndex([], tz="UTC")))
-        if state.last_sample is None and not series.empty:
+        if state.last_sample is None and not series.empty and condition != "flow_drop":
             series = series[series.index >= pd.Timestamp(first)]
         spec = site.tags[tag]
-        if condition == "low_flow":
+        if condition == "flow_drop":
+            # the whole series: the level needs the samples before the first judged one
+            judged = state if state.last_sample is not None else replace(
+                state, last_sample=first - timedelta(microseconds=1))
+            new, happened = evaluate_flow_drop(
+                series, judged, flow_drop_settings(site, site.branch(branch)), now,
+                unit=spec.unit, timezone=site.timezone, resting=resting.get(tag))
+            if new.last_sample == judged.last_sample:
+                new = state  # nothing new judged: nothing to store
+        elif condition == "low_flow":
             new, happened = evaluate_low_flow(
                 series, state, low_flow_settings(site, site.branch(branch)), now,
                 diagnosis=[f for f in findings if f.branch == branch],
@@ -930,6 +944,20 @@ def _condition_tags(site: Site) -> list[str]:
 def _condition_lag(site: Site) -> float:
     """How far before the first new sample the condition tags are read [s]."""
     return max(900.0, 3.0 * site.analysis.sample_period)
+
+
+def flow_drop_settings(site: Site, branch: BranchConfig) -> FlowDropSettings:
+    """Flow-drop alarm settings of *branch* (its ``flow_drop`` resolved with the site's
+    ``[flow_drop]``; the branch must have it enabled)."""
+    fd = branch.flow_drop
+    if fd is None:
+        raise ValueError(f"branch {branch.name!r} has no flow_drop alarm enabled")
+    return FlowDropSettings(
+        fraction=fd.fraction, reference=timedelta(seconds=fd.reference_s),
+        hold=timedelta(seconds=fd.hold_s), deadband=fd.deadband,
+        off_delay=timedelta(seconds=fd.off_delay_s),
+        max_gap=timedelta(seconds=_condition_lag(site)),
+    )
 
 
 def backflow_settings(site: Site, branch: BranchConfig) -> BackflowAlarmSettings:
@@ -1067,6 +1095,7 @@ def alarm_checks(site: Site) -> list[tuple[str, str, str, float | None]]:
     ``backflow`` (a high-priority alarm) on every branch that can run back
     (`monitor.backflow.hazard_branches`: no check valve, a termination that holds water or
     pressure), judged on the header pressure against the branch's static back-pressure.
+    ``flow_drop`` on every metered branch whose ``flow_drop`` alarm is enabled.
 
     A tag shared by several branches (a common return header) is judged once, under
     the first branch that names it.
@@ -1085,6 +1114,8 @@ def alarm_checks(site: Site) -> list[tuple[str, str, str, float | None]]:
     checks += [(branch, f"frozen {tag}", tag, None) for tag, branch in owner.items()]
     checks += [(b.name, "backflow", site.header_pressure_tag, None)
                for b in hazard_branches(site)]
+    checks += [(b.name, "flow_drop", b.flow_tag, None) for b in site.branches
+               if b.flow_drop is not None and b.flow_tag is not None]
     return checks
 
 
