@@ -87,6 +87,29 @@ Delay = Annotated[float, _quantity("s", lowest="zero")]
 FlowFloor = Annotated[float, _quantity("m3/s", lowest="zero")]
 
 
+#: Window sizes shorter than a day must divide 24 h into whole seconds (see `monitor.jobs.windows`).
+DAY_S = 86_400
+
+
+def window_problem(seconds: float) -> str | None:
+    """Why a window of *seconds* cannot be used, or None when it can: a whole number of
+    days, or a whole number of seconds that divides 24 h (1, 5, 10, 15, 30 min, 1, 2, 3,
+    4, 6, 8, 12 h …)."""
+    if not seconds > 0:
+        return f"must be positive, got {seconds:g} s"
+    if seconds >= DAY_S:
+        if seconds % DAY_S:
+            return (f"{seconds / 3600:g} h is not a whole number of days; use whole days "
+                    "(\"1 day\", \"7 days\") or a duration that divides 24 h")
+        return None
+    if seconds != int(seconds) or DAY_S % int(seconds):
+        shown = f"{seconds / 60:g} min" if seconds >= 60 else f"{seconds:g} s"
+        return (f"{shown} does not divide 24 h, so the windows of each day could not "
+                "start at the same local times; use a duration that divides 24 h (1, 2, 5, "
+                "10, 15, 20, 30 min, 1, 2, 3, 4, 6, 8 or 12 h) or whole days")
+    return None
+
+
 class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
@@ -375,6 +398,14 @@ class AnalysisSection(_Strict):
     #: a condition that comes and goes (low flow, a sick meter, a header imbalance) is
     #: one finding until it has stayed away this long (a week: the plant's load cycle)
     clear_after: Duration = 7 * 86_400.0
+
+    @field_validator("window")
+    @classmethod
+    def _day_aligned(cls, value: float) -> float:
+        problem = window_problem(value)
+        if problem is not None:
+            raise ValueError(problem)
+        return value
 
     @field_validator("stale_after", "steady_window")
     @classmethod
