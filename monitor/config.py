@@ -422,6 +422,30 @@ class AnalysisSection(_Strict):
         return value
 
 
+class DiagnosisSection(_Strict):
+    """[diagnosis]: the spans of the diagnosis as times of the plant, converted to
+    windows of ``[analysis] window`` (`monitor.findings.DiagnosisSettings.for_window`).
+    The defaults are those of daily windows: a baseline of 14 days, the level over 14
+    days, a trend judged over 20 to 180 days. A rig or a commissioning run with minute
+    windows sets them in minutes or hours (README, "test rig and commissioning runs").
+    """
+
+    #: the good windows after the start (or a cleaning) that set the reference level
+    baseline: Period | None = None
+    #: the trailing windows whose level predicts the next one (steps, restrictions)
+    level: Period | None = None
+    #: the shortest and the longest stretch a fouling trend is judged over
+    trend_shortest: Period | None = None
+    trend_longest: Period | None = None
+
+    @model_validator(mode="after")
+    def _ordered(self) -> DiagnosisSection:
+        if (self.trend_shortest is not None and self.trend_longest is not None
+                and self.trend_longest < self.trend_shortest):
+            raise ValueError("trend_longest must not be shorter than trend_shortest")
+        return self
+
+
 class ScheduleSection(_Strict):
     """When the daemon works, in the site's local time.
 
@@ -558,6 +582,7 @@ class SiteFile(_Strict):
     header: HeaderSection
     pump: PumpSection | None = None
     analysis: AnalysisSection = AnalysisSection()
+    diagnosis: DiagnosisSection = DiagnosisSection()
     schedule: ScheduleSection = ScheduleSection()
     report: ReportSection = ReportSection()
     notify: NotifySection | None = None
@@ -687,6 +712,8 @@ class Site:
     notify: NotifySection | None = None
     #: the ``[cost]`` section's price (None: not configured; costs are shown in kWh only)
     energy_price: EnergyPrice | None = None
+    #: the spans of the diagnosis (``[diagnosis]``), as durations
+    diagnosis: DiagnosisSection = field(default_factory=DiagnosisSection)
 
     @property
     def header(self) -> ParallelHeader:
@@ -875,6 +902,7 @@ def _build(doc: SiteFile, path: Path) -> Site:
         tags=tags,
         notify=_notify(doc.notify, base),
         energy_price=doc.cost.energy_price if doc.cost is not None else None,
+        diagnosis=doc.diagnosis,
     )
 
 

@@ -583,12 +583,16 @@ def _worker_window(span: tuple[datetime, datetime]) -> WindowAnalysis:
 
 
 def diagnosis_settings(site: Site) -> DiagnosisSettings:
-    """Diagnosis thresholds with the site's per-branch limits; messages state flows in
-    each flow tag's own unit."""
+    """Diagnosis thresholds with the site's per-branch limits, their spans from
+    ``[diagnosis]`` converted to windows of ``[analysis] window``; messages state flows
+    in each flow tag's own unit."""
     def unit(tag: str | None) -> str:
         return site.tags[tag].unit if tag is not None and tag in site.tags else "m3/h"
 
-    return DiagnosisSettings(
+    spans = site.diagnosis
+    return DiagnosisSettings.for_window(
+        site.window.total_seconds(), baseline_s=spans.baseline, level_s=spans.level,
+        trend_min_s=spans.trend_shortest, trend_max_s=spans.trend_longest,
         branches={
             b.name: BranchSettings(
                 cleaning_limit_r=b.cleaning_limit,
