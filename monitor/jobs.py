@@ -880,8 +880,8 @@ def _store_alarms(
 def replay_alarms(
     site: Site, store: ResultsStore, source: ReadingsSource, start: datetime, end: datetime
 ) -> list[AlarmEvent]:
-    """Judge the sample-driven alarms (low flow, frozen meter, back-flow) over a past
-    period [start, end): what `evaluate_alarms` does at each ingest, for readings that
+    """Judge the sample-driven alarms (low flow, frozen meter, back-flow, flow drop) over
+    a past period [start, end): what `evaluate_alarms` does at each ingest, for readings that
     arrived late (a backfill of older files), which the live checks never see — they
     look back only `ALARM_FIRST_LOOKBACK_S` before the wall clock.
 

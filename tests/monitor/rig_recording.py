@@ -137,7 +137,7 @@ def closures_plan(seconds: int, branches: int, *, count: int = 20, length_s: int
     out = []
     for k in range(count):
         jitter = int(rng.integers(-30, 31))
-        length = max(60, min(length_s + jitter, slot - 240))
+        length = max(60, min(length_s + jitter, slot - 60))
         start = slot * (k + 1) - length // 2
         out.append(Closure(branch=k % branches, start_s=int(start), length_s=int(length),
                            depth=float(depths[k])))

@@ -10,14 +10,16 @@ flow-drop alarm catches the closure within it.
 
 from __future__ import annotations
 
+import tomllib
 from datetime import timedelta
+from pathlib import Path
 
 import numpy as np
 import pytest
 
 from adapters.base import open_store
-from monitor.config import load_site
-from monitor.jobs import analyze, ingest, open_source, replay_alarms
+from monitor.config import load_site, parse_site
+from monitor.jobs import analyze, diagnosis_settings, ingest, open_source, replay_alarms
 from tests.monitor.rig_recording import START, Closure, record, site_toml
 
 CLOSURE = Closure(branch=0, start_s=420, length_s=420, depth=0.08)
@@ -80,3 +82,24 @@ def test_a_second_replay_changes_nothing(rig: dict[str, object]) -> None:
     after = store.read_alarms()  # type: ignore[attr-defined]
     assert np.array_equal(before["state"].to_numpy(), after["state"].to_numpy())
 
+
+
+
+def test_the_readme_rig_settings_are_a_valid_site() -> None:
+    # the settings the README gives for a rig, with this rig's [site] and branches
+    readme = (Path(__file__).parents[2] / "README.md").read_text(encoding="utf-8")
+    part = readme.split("## Test rig and commissioning runs", 1)[1]
+    block = []
+    for line in part.split("\n\n", 2)[2].splitlines():  # the first code block
+        if line and not line.startswith("    "):
+            break
+        block.append(line[4:])
+    given = tomllib.loads("\n".join(block))
+    assert {"source", "header", "analysis", "diagnosis", "flow_drop"} <= set(given)
+    rig_site = tomllib.loads(site_toml(branches=2))
+    site = parse_site({**rig_site, **given}, path="README.md")
+    assert site.window == timedelta(minutes=1)
+    assert site.source is not None and site.source.delimiter == ";"
+    assert all(b.flow_drop is not None and b.flow_drop.hold_s == 20.0
+               for b in site.branches)
+    assert diagnosis_settings(site).baseline_windows == 20
