@@ -553,7 +553,7 @@ def flow_level(series: pd.Series, settings: FlowDropSettings, *,
                      index=pd.DatetimeIndex(series.index).tz_convert("UTC")).sort_index()
     data = data[~data.index.duplicated(keep="last")]
     if resting is not None:
-        data = data.mask(_at_times(resting, pd.DatetimeIndex(data.index)))
+        data = data.mask(np.asarray(_at_times(resting, pd.DatetimeIndex(data.index)), bool))
     data = data.dropna()
     if data.empty:
         return data
@@ -561,8 +561,8 @@ def flow_level(series: pd.Series, settings: FlowDropSettings, *,
     roll = data.rolling(span, closed="left")
     level = roll.median()
     # coverage: the samples in the span against what the span holds at the typical step
-    step = pd.Series(data.index).diff().median()
-    step_s = step.total_seconds() if pd.notna(step) and step.total_seconds() > 0 else 1.0
+    steps = np.diff(pd.DatetimeIndex(data.index).as_unit("ns").asi8) / 1e9
+    step_s = float(np.median(steps)) if len(steps) and np.median(steps) > 0 else 1.0
     need = settings.min_coverage * span.total_seconds() / step_s
     return level.where(roll.count() >= max(need, 1.0))
 
