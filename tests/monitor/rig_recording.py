@@ -8,9 +8,10 @@ manual valve on the branches is closed part way about 20 times, each closure abo
 and deep enough to take 5–40 % of the branch's flow. No pump curve is known.
 
 The flows follow the branches' own models (`model.branch.Branch.flow`) at the true
-header pressure, a closure being a resistance ratio r = 1/(1 − depth)² on the whole
-branch (flow goes as 1/√r at a fixed drop); the header pressure follows a pump whose
-pressure falls with the square of the total flow, so a closure raises it slightly. The
+header pressure, a closure being a resistance ratio r on the whole
+branch set so that the branch loses that share of the flow it had open; the header
+pressure follows a pump whose pressure falls with the square of the total flow, so a
+closure raises it slightly. The
 pump curve lives here only; the site file does not know it.
 
 Used by tests/monitor/test_rig.py (a few minutes) and benchmarks/rig.py (the full ~3 h).
@@ -68,7 +69,7 @@ min_samples = 20
 
 [flow_drop]
 enabled = {str(flow_drop).lower()}
-fraction = "5 %"
+fraction = "4 %"
 reference = "10 min"
 hold = "20 s"
 ''']
@@ -155,26 +156,38 @@ def record(site: Site, *, seconds: int, closures: tuple[Closure, ...] = (),
     rng = np.random.default_rng(seed)
     n, nb = seconds, len(site.branches)
     times = pd.date_range(START, periods=n, freq="1s")
-    ratio = np.ones((nb, n))
-    for c in closures:
-        ratio[c.branch, c.start_s:c.start_s + c.length_s] = 1.0 / (1.0 - c.depth) ** 2
     wander = 1.0 + 0.01 * np.sin(np.arange(n) * 2 * np.pi / 2400.0)
     shut_off = SHUT_OFF_PA * wander**2  # affinity: pressure with speed squared
     models = [b.model for b in site.branches]
     q_design = sum(float(m.flow(np.asarray(0.07 * BAR))) for m in models)
     k_pump = (SHUT_OFF_PA - 0.07 * BAR) / q_design**2  # the pump gives 0.07 bar there
 
-    def total(p: np.ndarray) -> np.ndarray:
-        return np.sum([m.flow(p, resistance_ratio=ratio[i]) for i, m in enumerate(models)],
-                      axis=0)
+    def solve(ratio: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Header pressure and branch flows where the pump meets the branches."""
+        def total(p: np.ndarray) -> np.ndarray:
+            return np.sum([m.flow(p, resistance_ratio=ratio[i])
+                           for i, m in enumerate(models)], axis=0)
 
-    lo, hi = np.zeros(n), shut_off.copy()
-    for _ in range(40):  # bisection: pump(Q(p)) - p falls as p rises
-        mid = 0.5 * (lo + hi)
-        up = shut_off - k_pump * total(mid) ** 2 > mid
-        lo, hi = np.where(up, mid, lo), np.where(up, hi, mid)
-    p_true = 0.5 * (lo + hi)
-    q_true = np.array([m.flow(p_true, resistance_ratio=ratio[i]) for i, m in enumerate(models)])
+        lo, hi = np.zeros(n), shut_off.copy()
+        for _ in range(40):  # bisection: pump(Q(p)) - p falls as p rises
+            mid = 0.5 * (lo + hi)
+            up = shut_off - k_pump * total(mid) ** 2 > mid
+            lo, hi = np.where(up, mid, lo), np.where(up, hi, mid)
+        p = 0.5 * (lo + hi)
+        return p, np.array([m.flow(p, resistance_ratio=ratio[i])
+                            for i, m in enumerate(models)])
+
+    # a closure's depth is the share of flow it takes: the header rises a little when a
+    # valve closes, so the ratio that does it is found by a few corrections
+    open_flows = solve(np.ones((nb, n)))[1]
+    want = np.ones((nb, n))
+    for c in closures:
+        want[c.branch, c.start_s:c.start_s + c.length_s] = 1.0 - c.depth
+    ratio = 1.0 / want**2
+    p_true, q_true = solve(ratio)
+    for _ in range(8):
+        ratio *= ((q_true / open_flows) / want) ** 2
+        p_true, q_true = solve(ratio)
     gauge = GAUGE_STEP_PA * np.round((p_true + rng.normal(0, 0.006 * BAR, n)) / GAUGE_STEP_PA)
     meters = q_true * (1.0 + meter_noise * rng.standard_normal(q_true.shape))
     return Recording(times=times, header_pa=gauge, flows_m3s=meters, closures=closures)

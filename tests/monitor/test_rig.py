@@ -2,10 +2,10 @@
 
 The recording is our own (tests/monitor/rig_recording.py): 1-second samples, a header
 gauge that resolves 0.05 bar at about 0.07 bar gauge, flows in L/min, a `;`-separated
-CSV with spaces in the tag names, no pump curve, and one valve closure of 7 min taking
-8 % of a branch's flow. What must hold (issue 12): every window's verdict names its
-cause — here the gauge, too coarse for the drop it must measure — and the relative
-flow-drop alarm catches the closure within it.
+CSV with spaces in the tag names, no pump curve, and two valve closures of 7 min at the
+same time, taking 8 % of one branch's flow and 5 % of the other's. What must hold
+(issue 12): every window's verdict names its cause — here the gauge, too coarse for the
+drop it must measure — and the relative flow-drop alarm catches each closure within it.
 """
 
 from __future__ import annotations
@@ -23,6 +23,8 @@ from monitor.jobs import analyze, diagnosis_settings, ingest, open_source, repla
 from tests.monitor.rig_recording import START, Closure, record, site_toml
 
 CLOSURE = Closure(branch=0, start_s=420, length_s=420, depth=0.08)
+#: the shallowest closure the alarm is set for, on the other branch at the same time
+SHALLOW = Closure(branch=1, start_s=420, length_s=420, depth=0.05)
 SECONDS = 16 * 60
 
 
@@ -32,7 +34,7 @@ def rig(tmp_path_factory: pytest.TempPathFactory) -> dict[str, object]:
     path = folder / "rig.toml"
     path.write_text(site_toml(branches=2, window="1 min"), encoding="utf-8")
     site = load_site(path)
-    rec = record(site, seconds=SECONDS, closures=(CLOSURE,))
+    rec = record(site, seconds=SECONDS, closures=(CLOSURE, SHALLOW))
     rec.write_csv(folder / "inbox")
     store = open_store(site.store_url)
     source = open_source(site)
@@ -61,15 +63,17 @@ def test_every_minute_window_names_the_cause_of_its_verdict(rig: dict[str, objec
         assert "dynamic drop is" in message
 
 
-def test_the_closure_is_caught_within_it_and_nothing_else(rig: dict[str, object]) -> None:
-    events = [e for e in rig["events"] if e.condition == "flow_drop"]  # type: ignore[attr-defined]
-    on = [e for e in events if e.action == "activated"]
-    assert [e.branch for e in on] == ["loop A"]
-    began = START + timedelta(seconds=CLOSURE.start_s)
-    ended = began + timedelta(seconds=CLOSURE.length_s)
-    assert began < on[0].time < ended
-    assert "Flow drop on loop A" in on[0].message and "L/min" in on[0].message
+@pytest.mark.parametrize("closure", [CLOSURE, SHALLOW], ids=["8 %", "5 %"])
+def test_each_closure_is_caught_within_it_and_nothing_else(rig: dict[str, object],
+                                                           closure: Closure) -> None:
+    branch = ("loop A", "loop B")[closure.branch]
+    events = [e for e in rig["events"]  # type: ignore[attr-defined]
+              if e.condition == "flow_drop" and e.branch == branch]
     assert [e.action for e in events] == ["activated", "returned"]
+    began = START + timedelta(seconds=closure.start_s)
+    ended = began + timedelta(seconds=closure.length_s)
+    assert began < events[0].time < ended
+    assert f"Flow drop on {branch}" in events[0].message and "L/min" in events[0].message
     assert events[1].time > ended
 
 
