@@ -1,6 +1,7 @@
 """The synthetic test-rig recording through the real path, and the flow-drop alarm's figures.
 
-    .venv/bin/python benchmarks/rig.py [--hours 3] [--window "1 min"] [--no-demo]
+    .venv/bin/python benchmarks/rig.py [--hours 3] [--window "1 min"] [--demo-days 365]
+                                       [--no-rig] [--no-demo]
 
 1. The rig (tests/monitor/rig_recording.py): ~3 h of 1-second samples, three branches,
    a 0.05-bar gauge at ~0.07 bar, L/min, a `;` CSV, no pump curve, 20 valve closures of
@@ -92,21 +93,24 @@ def rig(hours: float, window: str, folder: Path) -> None:
     source.close()
 
 
-def demo_year(folder: Path) -> None:
+def demo_year(folder: Path, days: int) -> None:
     t = time.perf_counter()
-    paths = prepare_demo(folder / "demo", days=365, step_s=120.0)
+    paths = prepare_demo(folder / "demo", days=days, step_s=120.0)
     with paths.site_file.open("a", encoding="utf-8") as f:
         f.write("\n[flow_drop]\nenabled = true\n")
     site = load_site(paths.site_file)
     store, source = open_store(site.store_url), open_source(site)
     got = ingest(site, store, source)
-    print(f"\ndemo year: {got.stored} readings ({time.perf_counter() - t:.0f} s to build "
+    print(f"\ndemo, {days} days: {got.stored} readings ({time.perf_counter() - t:.0f} s to build "
           "and ingest)")
     t = time.perf_counter()
-    end = DEMO_START + timedelta(days=365)
+    end = DEMO_START + timedelta(days=days)
     on = [e for e in replay_alarms(site, store, source, DEMO_START, end)
           if e.condition == "flow_drop" and e.action == "activated"]
-    print(f"  flow_drop at defaults on {len(site.branches)} branches: {len(on)} activations "
+    watched = [b.name for b in site.branches if b.flow_drop is not None]
+    print(f"  flow_drop at defaults on {len(watched)} of {len(site.branches)} branches "
+          f"({', '.join(watched)}; a branch whose control valve logs its position is left "
+          f"out): {len(on)} activations "
           f"({time.perf_counter() - t:.0f} s)")
     faults = {(f.branch, pd.Timestamp(f.time)) for f in demo_faults()  # type: ignore[attr-defined]
               if type(f).__name__ in ("StepRestriction", "BackPressureStep")}
@@ -125,11 +129,14 @@ def main() -> None:
     ap.add_argument("--hours", type=float, default=3.0)
     ap.add_argument("--window", default="1 min")
     ap.add_argument("--no-demo", action="store_true")
+    ap.add_argument("--demo-days", type=int, default=365)
+    ap.add_argument("--no-rig", action="store_true")
     args = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
-        rig(args.hours, args.window, Path(tmp))
+        if not args.no_rig:
+            rig(args.hours, args.window, Path(tmp))
         if not args.no_demo:
-            demo_year(Path(tmp))
+            demo_year(Path(tmp), args.demo_days)
 
 
 if __name__ == "__main__":

@@ -49,6 +49,7 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 from enum import StrEnum
+from typing import Literal
 
 import numpy as np
 import pandas as pd
@@ -549,6 +550,16 @@ def flow_level(series: pd.Series, settings: FlowDropSettings, *,
     samples in the *reference* span before it (the sample itself left out), NaN where
     fewer than *min_coverage* of the span hold samples. Samples where *resting* is True
     (the branch cannot flow: pumps stopped) are left out of the level."""
+    return _trailing_median(series, pd.Timedelta(settings.reference), settings.min_coverage,
+                            resting=resting, closed="left")
+
+
+def _trailing_median(series: pd.Series, span: pd.Timedelta, coverage: float, *,
+                     resting: pd.Series | None = None,
+                     closed: Literal["left", "both"] = "left") -> pd.Series:
+    """Median of *series* over the *span* before each sample (``closed="left"``: the
+    sample left out; ``"both"``: in), NaN where fewer than *coverage* of the span hold
+    samples at the series' typical step; times in UTC, one value per time."""
     data = pd.Series(series.to_numpy(dtype=float),
                      index=pd.DatetimeIndex(series.index).tz_convert("UTC")).sort_index()
     data = data[~data.index.duplicated(keep="last")]
@@ -557,14 +568,25 @@ def flow_level(series: pd.Series, settings: FlowDropSettings, *,
     data = data.dropna()
     if data.empty:
         return data
-    span = pd.Timedelta(settings.reference)
-    roll = data.rolling(span, closed="left")
+    roll = data.rolling(span, closed=closed)
     level = roll.median()
-    # coverage: the samples in the span against what the span holds at the typical step
     steps = np.diff(pd.DatetimeIndex(data.index).as_unit("ns").asi8) / 1e9
     step_s = float(np.median(steps)) if len(steps) and np.median(steps) > 0 else 1.0
-    need = settings.min_coverage * span.total_seconds() / step_s
+    need = coverage * span.total_seconds() / step_s
     return level.where(roll.count() >= max(need, 1.0))
+
+
+def _newest_at(values: pd.Series) -> Callable[[datetime], float]:
+    """A lookup of *values* (on UTC times): the newest value at or before a time (NaN
+    before any)."""
+    times = pd.DatetimeIndex(values.index).as_unit("ns").asi8
+    arr = values.to_numpy(dtype=float)
+
+    def at(t: datetime) -> float:
+        i = int(np.searchsorted(times, pd.Timestamp(t).value, side="right")) - 1
+        return float(arr[i]) if i >= 0 else math.nan
+
+    return at
 
 
 def evaluate_flow_drop(
@@ -576,6 +598,7 @@ def evaluate_flow_drop(
     unit: str = "m3/h",
     timezone: str = "UTC",
     resting: pd.Series | None = None,
+    driving: pd.Series | None = None,
 ) -> tuple[AlarmState, list[AlarmEvent]]:
     """Run the relative flow-drop check over new flow samples of one branch.
 
@@ -595,20 +618,38 @@ def evaluate_flow_drop(
     resting : True where the branch cannot flow (pumps stopped, header at or below its
         threshold): those samples are neither judged nor part of the level; a stop is
         the low-flow alarm's business, not a drop against the level
+    driving : the pressure that drives the branch, header minus its static
+        back-pressure [Pa], by UTC time (None: not used). A flow change the header
+        explains is not a drop: the level is scaled by √(driving now / driving at the
+        level), the driving pressure taken as its median over the hold and over the
+        reference span (a turbulent branch's flow goes with the square root of its
+        pressure drop, Darcy–Weisbach with a constant friction factor). So a pump turned
+        down at night lowers the level with the flow, and a closure, which raises the
+        header a little, does not hide. Give it only where the header gauge resolves the
+        driving pressure finely (`monitor.jobs` does it below 2 % of it).
 
     ``last_value`` is the flow [m^3/s]; ``pending_since`` / ``clear_since`` as usual. The
     level of an active alarm is taken from before ``activated_at - hold``.
     """
-    level = flow_level(series, settings, resting=resting)
     hold = settings.hold
+    level_at = _newest_at(flow_level(series, settings, resting=resting))
+    d_ref: Callable[[datetime], float] | None = None
+    d_now: Callable[[datetime], float] | None = None
+    if driving is not None and not driving.empty:
+        d_ref = _newest_at(_trailing_median(driving, pd.Timedelta(settings.reference),
+                                            settings.min_coverage, closed="left"))
+        d_now = _newest_at(_trailing_median(driving, pd.Timedelta(max(hold, timedelta(
+            seconds=1))), 1e-9, closed="both"))
 
-    times = pd.DatetimeIndex(level.index).as_unit("ns").asi8
-    values = level.to_numpy(dtype=float)
-
-    def level_before(t: datetime) -> float:
-        """The level at the newest sample at or before *t* (NaN before any)."""
-        i = int(np.searchsorted(times, pd.Timestamp(t).value, side="right")) - 1
-        return float(values[i]) if i >= 0 else math.nan
+    def expected(anchor: datetime, t: datetime) -> float:
+        """The level from before *anchor*, scaled to the driving pressure at *t*."""
+        ref = level_at(anchor)
+        if d_ref is None or d_now is None:
+            return ref
+        was, now_ = d_ref(anchor), d_now(t)
+        if not (math.isfinite(was) and math.isfinite(now_) and was > 0 and now_ > 0):
+            return ref
+        return ref * math.sqrt(now_ / was)
 
     def shown(v: float) -> float:
         return _in_unit(v, unit, "flow")
@@ -620,20 +661,21 @@ def evaluate_flow_drop(
             return dataclasses.replace(s, pending_since=None, clear_since=None), []
         if not s.active:
             since = s.pending_since or t
-            ref = level_before(since)
+            ref = expected(since, t)
             if not (math.isfinite(ref) and ref > 0 and q <= (1 - settings.fraction) * ref):
                 return dataclasses.replace(s, pending_since=None), []
             s = dataclasses.replace(s, pending_since=since)
             if t - since < hold:
                 return s, []
             v, lim = format_pair(shown(q), shown((1 - settings.fraction) * ref))
+            at_header = " (scaled to the header pressure now)" if d_ref is not None else ""
             return _annunciate_on(s, t, (
                 f"Flow drop on {s.branch}: {v} {unit}, {1 - q / ref:.0%} below its recent "
-                f"level {shown(ref):.4g} {unit} (alarm at {settings.fraction:.0%} below: "
-                f"{lim} {unit}) since {_site_time(since, timezone)}; check valves and "
-                "strainers on the branch"))
+                f"level {shown(ref):.4g} {unit}{at_header} (alarm at "
+                f"{settings.fraction:.0%} below: {lim} {unit}) since "
+                f"{_site_time(since, timezone)}; check valves and strainers on the branch"))
         start = (s.activated_at or t) - hold
-        ref = level_before(start)
+        ref = expected(start, t)
         back = (1 - settings.fraction + settings.deadband) * ref
         if not (math.isfinite(ref) and q >= back):
             return dataclasses.replace(s, clear_since=None), []

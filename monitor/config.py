@@ -336,9 +336,13 @@ class FlowDropSection(_Strict):
     hold : the drop must last this long before it is annunciated
     deadband : the condition clears within ``fraction - deadband`` of the level
     off_delay : and after this long there
+    follow_header : scale the level with the header pressure, so a flow change the
+        header explains (a pump turned down) is not a drop; used only where the header
+        gauge resolves the branch's driving pressure finely (default true)
     """
 
     enabled: bool | None = None
+    follow_header: bool | None = None
     fraction: Fraction | None = None
     reference: Period | None = None
     hold: Delay | None = None
@@ -624,11 +628,16 @@ class FlowDrop:
     hold_s: float = 60.0  # [s]
     deadband: float = 0.02  # [-]
     off_delay_s: float = 30.0  # [s]
+    follow_header: bool = True
 
 
 def _flow_drop(site: FlowDropSection, branch: FlowDropSection | None, has_meter: bool,
-               ) -> FlowDrop | None:
-    """The branch's flow-drop alarm from the site's and the branch's keys (None: off)."""
+               modulated: bool) -> FlowDrop | None:
+    """The branch's flow-drop alarm from the site's and the branch's keys (None: off).
+
+    A site-wide ``[flow_drop]`` leaves out the branches without a meter and those whose
+    control valve logs its position (*modulated*): that valve moves the flow on purpose,
+    and each move would read as a drop. Such a branch can still enable it itself."""
     def pick(key: str) -> Any:
         own = getattr(branch, key) if branch is not None else None
         return own if own is not None else getattr(site, key)
@@ -640,6 +649,8 @@ def _flow_drop(site: FlowDropSection, branch: FlowDropSection | None, has_meter:
             raise ValueError("flow_drop is enabled but the branch has no flow meter "
                              "('flow'); enable it on metered branches only")
         return None  # a site-wide alarm skips the branches without a meter
+    if modulated and not (branch is not None and branch.enabled):
+        return None
     default = FlowDrop()
     got = FlowDrop(
         fraction=pick("fraction") if pick("fraction") is not None else default.fraction,
@@ -647,6 +658,8 @@ def _flow_drop(site: FlowDropSection, branch: FlowDropSection | None, has_meter:
         hold_s=pick("hold") if pick("hold") is not None else default.hold_s,
         deadband=pick("deadband") if pick("deadband") is not None else default.deadband,
         off_delay_s=pick("off_delay") if pick("off_delay") is not None else default.off_delay_s,
+        follow_header=pick("follow_header") if pick("follow_header") is not None
+        else default.follow_header,
     )
     if not got.deadband < got.fraction:
         raise ValueError(f"flow_drop.deadband ({got.deadband:g}) must be smaller than "
@@ -858,7 +871,8 @@ def _build(doc: SiteFile, path: Path) -> Site:
         try:
             branch = _build_branch(sec, tags, doc.analysis.cleaning_limit)
             branches.append(replace(branch, flow_drop=_flow_drop(
-                doc.flow_drop, sec.flow_drop, branch.flow_tag is not None)))
+                doc.flow_drop, sec.flow_drop, branch.flow_tag is not None,
+                branch.valve_position_tag is not None)))
         except (ValueError, KeyError) as exc:
             raise ValueError(f"{where}: {exc}") from None
         except ArithmeticError:  # e.g. 1e308 m3/h raised to the equipment's exponent

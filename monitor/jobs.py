@@ -75,6 +75,7 @@ from monitor.diagnose import (
     diagnose,
     finding_cost,
 )
+from monitor.quality import resolution_by_tag
 
 log = logging.getLogger(__name__)
 
@@ -955,9 +956,11 @@ def _sample_alarms(
             # the whole series: the level needs the samples before the first judged one
             judged = state if state.last_sample is not None else replace(
                 state, last_sample=first - timedelta(microseconds=1))
+            b = site.branch(branch)
             new, happened = evaluate_flow_drop(
-                series, judged, flow_drop_settings(site, site.branch(branch)), now,
-                unit=spec.unit, timezone=site.timezone, resting=resting.get(tag))
+                series, judged, flow_drop_settings(site, b), now, unit=spec.unit,
+                timezone=site.timezone, resting=resting.get(tag),
+                driving=driving_pressure(site, b, good))
             if new.last_sample == judged.last_sample:
                 new = state  # nothing new judged: nothing to store
         elif condition == "low_flow":
@@ -995,6 +998,35 @@ def _condition_tags(site: Site) -> list[str]:
 def _condition_lag(site: Site) -> float:
     """How far before the first new sample the condition tags are read [s]."""
     return max(900.0, 3.0 * site.analysis.sample_period)
+
+
+#: The header gauge must resolve the branch's driving pressure to this share for the
+#: flow-drop alarm to follow the header (our choice: a step of 2 % of the driving pressure
+#: moves the expected flow by 1 %, a fifth of the default alarm fraction).
+FOLLOW_HEADER_SHARE = 0.02
+
+
+def driving_pressure(site: Site, branch: BranchConfig, readings: pd.DataFrame
+                     ) -> pd.Series | None:
+    """The header pressure less the branch's static back-pressure [Pa] at each header
+    sample where the pumps run, for the flow-drop alarm to follow the header; None when
+    ``follow_header`` is off or the header gauge is too coarse for it (its resolution,
+    estimated from the readings, above `FOLLOW_HEADER_SHARE` of the median driving
+    pressure: a test rig's 0.05-bar gauge at 0.07 bar)."""
+    if branch.flow_drop is None or not branch.flow_drop.follow_header:
+        return None
+    m = static_margin(site, branch, readings)
+    if m.empty:
+        return None
+    drive = (m["header_pa"] - m["static_pa"]).dropna()
+    drive = drive[drive > 0]
+    if drive.empty:
+        return None
+    head = readings[readings["tag"] == site.header_pressure_tag]
+    step = resolution_by_tag(head).get(site.header_pressure_tag, 0.0)
+    if step > FOLLOW_HEADER_SHARE * float(drive.median()):
+        return None
+    return drive
 
 
 def flow_drop_settings(site: Site, branch: BranchConfig) -> FlowDropSettings:

@@ -9,6 +9,7 @@ same samples changes nothing.
 
 from __future__ import annotations
 
+import tomllib
 from datetime import UTC, datetime, timedelta
 
 import numpy as np
@@ -22,6 +23,8 @@ from monitor.alarms import (
     evaluate_flow_drop,
     flow_level,
 )
+from monitor.config import ConfigError, parse_site
+from tests.monitor.rig_recording import site_toml
 
 T0 = datetime(2026, 5, 11, 9, 0, tzinfo=UTC)
 LPM = 1e-3 / 60  # L/min in m³/s
@@ -115,3 +118,59 @@ def test_settings_reject_bad_values() -> None:
                {"min_coverage": 0.0}):
         with pytest.raises(ValueError, match=next(iter(kw))):
             FlowDropSettings(**kw)  # type: ignore[arg-type]
+
+
+def _turndown(flow_share: float, pressure_share: float) -> tuple[pd.Series, pd.Series]:
+    """40 L/min and a driving pressure of 2 bar; from 15 min on both lowered (a pump
+    turned down: the flow share goes with the square root of the pressure share)."""
+    rng = np.random.default_rng(3)
+    n = 1800
+    q = np.full(n, 40.0) * np.where(np.arange(n) >= 900, flow_share, 1.0)
+    p = np.full(n, 2.0e5) * np.where(np.arange(n) >= 900, pressure_share, 1.0)
+    flow = seconds(q * (1 + 0.003 * rng.standard_normal(n)))
+    drive = pd.Series(p * (1 + 0.002 * rng.standard_normal(n)), index=flow.index)
+    return flow, drive
+
+
+def test_a_flow_change_the_header_explains_is_not_a_drop() -> None:
+    # turndown: pressure to 81 %, flow to 90 % (√0.81): explained, no alarm
+    flow, drive = _turndown(0.90, 0.81)
+    assert run(flow, driving=drive)[1] == []
+    assert [e.action for e in run(flow)[1]] == ["activated"]  # flow alone: an alarm
+    # a closure: flow to 92 % while the header rises a little: still a drop
+    flow, drive = _turndown(0.92, 1.01)
+    _, events = run(flow, driving=drive)
+    assert [e.action for e in events] == ["activated"]
+    assert "scaled to the header pressure now" in events[0].message
+
+
+def _site_with(flow_drop: str, branch_extra: str = "") -> object:
+    text = site_toml(branches=2).replace('[flow_drop]\nenabled = true\nfraction = "4 %"\n'
+                                         'reference = "10 min"\nhold = "20 s"\n', flow_drop)
+    if branch_extra:
+        text = text.replace('name = "loop B"\n', f'name = "loop B"\n{branch_extra}\n')
+    return parse_site(tomllib.loads(text), path="rig.toml")
+
+
+def test_flow_drop_is_off_unless_enabled_and_a_branch_overrides_the_site() -> None:
+    off = _site_with("")
+    assert all(b.flow_drop is None for b in off.branches)  # type: ignore[attr-defined]
+    site = _site_with('[flow_drop]\nenabled = true\nfraction = "8 %"\n',
+                      'flow_drop = { fraction = "12 %", hold = "2 min" }')
+    a, b = site.branches  # type: ignore[attr-defined]
+    assert (a.flow_drop.fraction, a.flow_drop.hold_s) == (pytest.approx(0.08), 60.0)
+    assert (b.flow_drop.fraction, b.flow_drop.hold_s) == (pytest.approx(0.12), 120.0)
+    one = _site_with("", "flow_drop = { enabled = true }")
+    assert [x.flow_drop is not None for x in one.branches] == [False, True]  # type: ignore[attr-defined]
+    left_out = _site_with("[flow_drop]\nenabled = true\n", "flow_drop = { enabled = false }")
+    assert [x.flow_drop is not None for x in left_out.branches] == [True, False]  # type: ignore[attr-defined]
+
+
+def test_flow_drop_mistakes_are_one_line_with_their_key() -> None:
+    with pytest.raises(ConfigError, match=r"flow_drop\.fraction: must be a share") as err:
+        _site_with('[flow_drop]\nenabled = true\nfraction = "150 %"\n')
+    assert "\n" not in str(err.value)
+    with pytest.raises(ConfigError, match=r"deadband .* must be smaller than"):
+        _site_with('[flow_drop]\nenabled = true\nfraction = "3 %"\ndeadband = "4 %"\n')
+    with pytest.raises(ConfigError, match=r"flow_drop\.hold"):
+        _site_with('[flow_drop]\nenabled = true\nhold = "-5 s"\n')
