@@ -97,6 +97,13 @@ CHATTER_WINDOW = timedelta(minutes=1)
 STALE_AFTER = timedelta(hours=24)
 
 
+def _not_negative(settings: object, *names: str) -> None:
+    """Refuse a negative delay among *names* of *settings* (a settings dataclass)."""
+    for name in names:
+        if getattr(settings, name) < timedelta(0):
+            raise ValueError(f"{name} must not be negative, got {getattr(settings, name)}")
+
+
 class State(StrEnum):
     """ISA-18.2 alarm states."""
 
@@ -137,9 +144,7 @@ class LowFlowSettings:
             raise ValueError(f"range_m3s must be positive, got {self.range_m3s}")
         if not 0 <= self.deadband_fraction < 1:
             raise ValueError(f"deadband_fraction must be in [0, 1), got {self.deadband_fraction}")
-        for name in ("on_delay", "off_delay", "max_gap"):
-            if getattr(self, name) < timedelta(0):
-                raise ValueError(f"{name} must not be negative, got {getattr(self, name)}")
+        _not_negative(self, "on_delay", "off_delay", "max_gap")
 
     @property
     def clear_level_m3s(self) -> float:
@@ -312,6 +317,19 @@ def _aware(when: datetime, name: str) -> pd.Timestamp:
     return t
 
 
+def _held(s: AlarmState, t: datetime, mark: Literal["pending_since", "clear_since"],
+          delay: timedelta) -> tuple[AlarmState, datetime, bool]:
+    """An on- or off-delay at sample time *t*: the state with *mark* set (kept when it
+    was), since when the condition has held, and whether *delay* has passed."""
+    if mark == "pending_since":
+        since = s.pending_since or t
+        s = dataclasses.replace(s, pending_since=since)
+    else:
+        since = s.clear_since or t
+        s = dataclasses.replace(s, clear_since=since)
+    return s, since, t - since >= delay
+
+
 #: One judged sample: the state before it, its time, its value and its flag (see
 #: `_judge_samples`); returns the state after it and the events it caused.
 SampleStep = Callable[[AlarmState, datetime, float, bool], tuple[AlarmState, list[AlarmEvent]]]
@@ -385,9 +403,8 @@ def evaluate_low_flow(
         if not s.active:
             if q >= settings.min_flow_m3s:
                 return dataclasses.replace(s, pending_since=None), []
-            since = s.pending_since or t
-            s = dataclasses.replace(s, pending_since=since)
-            if t - since < settings.on_delay:
+            s, since, due = _held(s, t, "pending_since", settings.on_delay)
+            if not due:
                 return s, []
             v, lim = format_pair(_in_unit(q, unit, "flow"),
                                  _in_unit(settings.min_flow_m3s, unit, "flow"))
@@ -396,9 +413,8 @@ def evaluate_low_flow(
                 f"since {_site_time(since, timezone)}{_cause(s.branch, diagnosis)}."))
         if q < settings.clear_level_m3s:
             return dataclasses.replace(s, clear_since=None), []
-        since = s.clear_since or t
-        s = dataclasses.replace(s, clear_since=since)
-        if t - since < settings.off_delay:
+        s, since, due = _held(s, t, "clear_since", settings.off_delay)
+        if not due:
             return s, []
         v, lim = format_pair(_in_unit(q, unit, "flow"),
                              _in_unit(settings.clear_level_m3s, unit, "flow"))
@@ -533,9 +549,7 @@ class FlowDropSettings:
             raise ValueError(f"min_coverage must be in (0, 1], got {self.min_coverage}")
         if self.reference <= timedelta(0):
             raise ValueError(f"reference must be positive, got {self.reference}")
-        for name in ("hold", "off_delay", "max_gap"):
-            if getattr(self, name) < timedelta(0):
-                raise ValueError(f"{name} must not be negative, got {getattr(self, name)}")
+        _not_negative(self, "hold", "off_delay", "max_gap")
 
     @property
     def lookback(self) -> timedelta:
@@ -664,8 +678,8 @@ def evaluate_flow_drop(
             ref = expected(since, t)
             if not (math.isfinite(ref) and ref > 0 and q <= (1 - settings.fraction) * ref):
                 return dataclasses.replace(s, pending_since=None), []
-            s = dataclasses.replace(s, pending_since=since)
-            if t - since < hold:
+            s, since, due = _held(s, t, "pending_since", hold)
+            if not due:
                 return s, []
             v, lim = format_pair(shown(q), shown((1 - settings.fraction) * ref))
             at_header = " (scaled to the header pressure now)" if d_ref is not None else ""
@@ -679,9 +693,8 @@ def evaluate_flow_drop(
         back = (1 - settings.fraction + settings.deadband) * ref
         if not (math.isfinite(ref) and q >= back):
             return dataclasses.replace(s, clear_since=None), []
-        since = s.clear_since or t
-        s = dataclasses.replace(s, clear_since=since)
-        if t - since < settings.off_delay:
+        s, since, due = _held(s, t, "clear_since", settings.off_delay)
+        if not due:
             return s, []
         v, lim = format_pair(shown(q), shown(back))
         return _annunciate_off(s, t, False, (
@@ -723,9 +736,7 @@ class BackflowAlarmSettings:
     def __post_init__(self) -> None:
         if not (math.isfinite(self.deadband_pa) and self.deadband_pa >= 0):
             raise ValueError(f"deadband_pa must be >= 0, got {self.deadband_pa}")
-        for name in ("on_delay", "off_delay", "max_gap"):
-            if getattr(self, name) < timedelta(0):
-                raise ValueError(f"{name} must not be negative, got {getattr(self, name)}")
+        _not_negative(self, "on_delay", "off_delay", "max_gap")
 
 
 def evaluate_backflow(
@@ -771,9 +782,8 @@ def evaluate_backflow(
         if not s.active:
             if m >= 0:
                 return dataclasses.replace(s, pending_since=None), []
-            since = s.pending_since or t
-            s = dataclasses.replace(s, pending_since=since)
-            if first or t - since < settings.on_delay:
+            s, since, due = _held(s, t, "pending_since", settings.on_delay)
+            if first or not due:
                 return s, []
             hp, st = format_pair(bar(p_s), bar(static), digits=2)
             return _annunciate_on(s, t, (
@@ -785,9 +795,8 @@ def evaluate_backflow(
                 "pressure or isolate the branch as site procedures say"))
         if m < settings.deadband_pa:
             return dataclasses.replace(s, clear_since=None), []
-        since = s.clear_since or t
-        s = dataclasses.replace(s, clear_since=since)
-        if t - since < settings.off_delay:
+        s, since, due = _held(s, t, "clear_since", settings.off_delay)
+        if not due:
             return s, []
         hp, st = format_pair(bar(p_s), bar(static), digits=2)
         return _annunciate_off(s, t, False, (
