@@ -72,6 +72,7 @@ enabled = {str(flow_drop).lower()}
 fraction = "4 %"
 reference = "10 min"
 hold = "20 s"
+deadband = "1 %"
 ''']
     for i in range(branches):
         pipe = f'length = "{2 + i} m", inner_diameter = "{20 - 2 * i} mm", roughness = "0.0015 mm"'
