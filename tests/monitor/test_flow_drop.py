@@ -9,6 +9,7 @@ same samples changes nothing.
 
 from __future__ import annotations
 
+import re
 import tomllib
 from datetime import UTC, datetime, timedelta
 
@@ -145,8 +146,8 @@ def test_a_flow_change_the_header_explains_is_not_a_drop() -> None:
 
 
 def _site_with(flow_drop: str, branch_extra: str = "") -> object:
-    text = site_toml(branches=2).replace('[flow_drop]\nenabled = true\nfraction = "4 %"\n'
-                                         'reference = "10 min"\nhold = "20 s"\n', flow_drop)
+    # the rig's own [flow_drop] section (up to the blank line) replaced by *flow_drop*
+    text = re.sub(r"\[flow_drop\]\n(?:.+\n)*", flow_drop, site_toml(branches=2), count=1)
     if branch_extra:
         text = text.replace('name = "loop B"\n', f'name = "loop B"\n{branch_extra}\n')
     return parse_site(tomllib.loads(text), path="rig.toml")
