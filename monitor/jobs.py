@@ -957,9 +957,10 @@ def _sample_alarms(
             judged = state if state.last_sample is not None else replace(
                 state, last_sample=first - timedelta(microseconds=1))
             b = site.branch(branch)
+            frozen_now = _frozen_spans(states, events, tag)
             new, happened = evaluate_flow_drop(
                 series, judged, flow_drop_settings(site, b), now, unit=spec.unit,
-                timezone=site.timezone, resting=resting.get(tag),
+                timezone=site.timezone, resting=_either(resting.get(tag), frozen_now),
                 driving=driving_pressure(site, b, good))
             if new.last_sample == judged.last_sample:
                 new = state  # nothing new judged: nothing to store
@@ -984,6 +985,37 @@ def _sample_alarms(
         events.extend(happened)
         if new != state or key not in states:
             rows.append(alarm_row(new, limit_m3s=limit, now=now))
+
+
+def _frozen_spans(states: Mapping[tuple[str, str], AlarmState],
+                  events: Sequence[AlarmEvent], tag: str) -> pd.Series | None:
+    """True while the frozen-meter alarm of *tag* is active (from its stored state and
+    this evaluation's events), None when it never was: a frozen meter's flat reading
+    against a moving header is the frozen alarm's business, so the flow-drop check
+    leaves those samples alone (designed suppression, ISA-18.2)."""
+    condition = f"frozen {tag}"
+    before = next((st for (_, c), st in states.items() if c == condition), None)
+    flips = [(e.time, e.action == "activated") for e in events
+             if e.condition == condition and e.action in ("activated", "returned")]
+    if not flips and not (before is not None and before.active):
+        return None
+    start = pd.Timestamp("1970-01-01", tz="UTC")
+    times = [start] + [pd.Timestamp(t) for t, _ in flips]
+    values = [bool(before is not None and before.active)] + [on for _, on in flips]
+    return pd.Series(values, index=pd.DatetimeIndex(times))
+
+
+def _either(a: pd.Series | None, b: pd.Series | None) -> pd.Series | None:
+    """The OR of two step masks (bool, on UTC times, each holding until its next time)."""
+    if a is None or b is None:
+        return a if b is None else b
+    index = pd.DatetimeIndex(a.index).union(pd.DatetimeIndex(b.index))
+
+    def on(m: pd.Series) -> np.ndarray:
+        m = m[~pd.DatetimeIndex(m.index).duplicated(keep="last")].sort_index()
+        return m.astype(float).reindex(index, method="ffill").fillna(0.0).to_numpy() > 0.5
+
+    return pd.Series(on(a) | on(b), index=index)
 
 
 def _condition_tags(site: Site) -> list[str]:

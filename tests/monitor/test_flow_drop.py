@@ -175,3 +175,29 @@ def test_flow_drop_mistakes_are_one_line_with_their_key() -> None:
         _site_with('[flow_drop]\nenabled = true\nfraction = "3 %"\ndeadband = "4 %"\n')
     with pytest.raises(ConfigError, match=r"flow_drop\.hold"):
         _site_with('[flow_drop]\nenabled = true\nhold = "-5 s"\n')
+
+
+def test_a_frozen_meter_suppresses_the_drop_check_while_its_alarm_is_in() -> None:
+    from monitor.alarms import AlarmEvent
+    from monitor.jobs import _either, _frozen_spans
+
+    tag = "FT 11 loop A"
+    on, off = T0 + timedelta(minutes=20), T0 + timedelta(minutes=50)
+    events = [AlarmEvent(on, "loop A", f"frozen {tag}", "activated", State.UNACK),
+              AlarmEvent(off, "loop A", f"frozen {tag}", "returned", State.RTN_UNACK)]
+    spans = _frozen_spans({}, events, tag)
+    assert spans is not None
+    stopped = pd.Series([False, True, False], index=pd.DatetimeIndex(
+        [T0, T0 + timedelta(minutes=5), T0 + timedelta(minutes=6)]))
+    mask = _either(stopped, spans)
+    assert mask is not None
+    at = {m: bool(mask[mask.index <= T0 + timedelta(minutes=m)].iloc[-1])
+          for m in (1, 5, 10, 30, 60)}
+    assert at == {1: False, 5: True, 10: False, 30: True, 60: False}
+    assert _frozen_spans({}, [], tag) is None  # never frozen: nothing suppressed
+    # a frozen 47.5 L/min against a driving pressure that moves: no drop alarm
+    flow = seconds(np.full(1800, 47.5))
+    drive = pd.Series(2.0e5 * (1 + 0.15 * (np.arange(1800) >= 900)), index=flow.index)
+    assert [e.action for e in run(flow, driving=drive)[1]] == ["activated"]
+    held = pd.Series([True], index=pd.DatetimeIndex([T0]))
+    assert run(flow, driving=drive, resting=held)[1] == []
