@@ -1,9 +1,10 @@
 """Near-real-time alarms with the ISA-18.2 / IEC 62682 alarm life cycle.
 
-Four conditions, each its own alarm: **low flow** per branch, **frozen** transmitter per
-flow and pressure tag, **stale data** (communication loss) per tag and per source, and the
+Five conditions, each its own alarm: **low flow** per branch, **frozen** transmitter per
+flow and pressure tag, **stale data** (communication loss) per tag and per source, the
 high-priority **back-flow hazard** per branch without a check valve (the header below the
-branch's static back-pressure, `evaluate_backflow`).
+branch's static back-pressure, `evaluate_backflow`) and, where enabled, the **flow drop**
+of a branch against its own recent level (`evaluate_flow_drop`: flow only, no model).
 The checks run on every ingest — independent of the daily fit, and the stale-data check
 also when the ingest failed, which is when it matters. Everything here is a pure
 function of its inputs: the caller keeps the `AlarmState` (in the results store) and
@@ -44,10 +45,12 @@ from __future__ import annotations
 import dataclasses
 import logging
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta
+from typing import Literal
 
+import numpy as np
 import pandas as pd
 
 from adapters.base import AlarmStateName
@@ -59,6 +62,7 @@ __all__ = [
     "AlarmRateSummary",
     "AlarmState",
     "BackflowAlarmSettings",
+    "FlowDropSettings",
     "FrozenSettings",
     "LowFlowSettings",
     "StaleSettings",
@@ -67,9 +71,11 @@ __all__ = [
     "alarm_rate_summary",
     "describe_condition",
     "evaluate_backflow",
+    "evaluate_flow_drop",
     "evaluate_frozen",
     "evaluate_low_flow",
     "evaluate_stale",
+    "flow_level",
     "format_age",
     "format_pair",
     "priority_of",
@@ -89,6 +95,13 @@ FLOOD_WINDOW = timedelta(minutes=10)
 CHATTER_COUNT = 3
 CHATTER_WINDOW = timedelta(minutes=1)
 STALE_AFTER = timedelta(hours=24)
+
+
+def _not_negative(settings: object, *names: str) -> None:
+    """Refuse a negative delay among *names* of *settings* (a settings dataclass)."""
+    for name in names:
+        if getattr(settings, name) < timedelta(0):
+            raise ValueError(f"{name} must not be negative, got {getattr(settings, name)}")
 
 
 #: The ISA-18.2 alarm states (defined once, beside the results store's interface, which
@@ -125,9 +138,7 @@ class LowFlowSettings:
             raise ValueError(f"range_m3s must be positive, got {self.range_m3s}")
         if not 0 <= self.deadband_fraction < 1:
             raise ValueError(f"deadband_fraction must be in [0, 1), got {self.deadband_fraction}")
-        for name in ("on_delay", "off_delay", "max_gap"):
-            if getattr(self, name) < timedelta(0):
-                raise ValueError(f"{name} must not be negative, got {getattr(self, name)}")
+        _not_negative(self, "on_delay", "off_delay", "max_gap")
 
     @property
     def clear_level_m3s(self) -> float:
@@ -206,8 +217,9 @@ def _site_time(t: datetime, timezone: str) -> str:
 #: Alarm priority per condition (ISA-18.2 priorities: what an operator answers first).
 #: Back-flow can contaminate the supply: high. Low flow overheats equipment: high too
 #: when it lasts, but the tool advises and its limit is an engineering minimum: medium.
+#: A flow drop against the branch's own level: medium, as low flow.
 #: Instrument and communication alarms: low (our choice).
-PRIORITIES: dict[str, str] = {"backflow": "high", "low_flow": "medium"}
+PRIORITIES: dict[str, str] = {"backflow": "high", "low_flow": "medium", "flow_drop": "medium"}
 
 
 def priority_of(condition: str) -> str:
@@ -299,6 +311,59 @@ def _aware(when: datetime, name: str) -> pd.Timestamp:
     return t
 
 
+def _held(s: AlarmState, t: datetime, mark: Literal["pending_since", "clear_since"],
+          delay: timedelta) -> tuple[AlarmState, datetime, bool]:
+    """An on- or off-delay at sample time *t*: the state with *mark* set (kept when it
+    was), since when the condition has held, and whether *delay* has passed."""
+    if mark == "pending_since":
+        since = s.pending_since or t
+        s = dataclasses.replace(s, pending_since=since)
+    else:
+        since = s.clear_since or t
+        s = dataclasses.replace(s, clear_since=since)
+    return s, since, t - since >= delay
+
+
+#: One judged sample: the state before it, its time, its value and its flag (see
+#: `_judge_samples`); returns the state after it and the events it caused.
+SampleStep = Callable[[AlarmState, datetime, float, bool], tuple[AlarmState, list[AlarmEvent]]]
+
+
+def _judge_samples(
+    series: pd.Series, state: AlarmState, now: datetime, step: SampleStep, *,
+    max_gap: timedelta | None = None, out_of_service_clears_pending: bool = False,
+    flags: pd.Series | None = None,
+) -> tuple[AlarmState, list[AlarmEvent]]:
+    """The loop every sample-driven alarm shares, around its own *step*.
+
+    Takes the new samples of *series* (`_new_samples`: the input checks), and for each:
+    ends an expired shelf; out of service, only notes the sample (and forgets a pending
+    run with *out_of_service_clears_pending*); after a gap longer than *max_gap* restarts
+    the delays; then calls *step* with the sample's flag: *flags* (bool, on UTC times,
+    e.g. "the branch cannot flow") at the sample's time (`_at_times`). A shelf that
+    expires by *now* ends too. Returns the state and the events in time order.
+    """
+    data, t_now = _new_samples(series, state, now)
+    marks = _at_times(flags, pd.DatetimeIndex(data.index))
+    s, events = state, []
+    for ts, v, flag in zip(data.index, data.to_numpy(), marks, strict=True):
+        t = ts.to_pydatetime()
+        value = float(v)
+        s, ev = _expire_shelf(s, t)
+        events += ev
+        if s.state == State.OUT_OF_SERVICE:
+            s = dataclasses.replace(s, last_sample=t, last_value=value)
+            if out_of_service_clears_pending:
+                s = dataclasses.replace(s, pending_since=None)
+            continue
+        if max_gap is not None and s.last_sample is not None and t - s.last_sample > max_gap:
+            s = dataclasses.replace(s, pending_since=None, clear_since=None)
+        s, ev = step(s, t, value, flag)
+        events += ev
+    s, ev = _expire_shelf(s, t_now.to_pydatetime())
+    return s, events + ev
+
+
 def evaluate_low_flow(
     series: pd.Series,
     state: AlarmState,
@@ -326,50 +391,32 @@ def evaluate_low_flow(
     -------
     (new state, events in time order)
     """
-    data, t_now = _new_samples(series, state, now)
-    s, events = state, []
-    for ts, q in zip(data.index, data.to_numpy(), strict=True):
-        t = ts.to_pydatetime()
-        q = float(q)
-        s, ev = _expire_shelf(s, t)
-        events += ev
-        if s.state == State.OUT_OF_SERVICE:
-            s = dataclasses.replace(s, last_sample=t, last_value=q)
-            continue
-        if s.last_sample is not None and t - s.last_sample > settings.max_gap:
-            s = dataclasses.replace(s, pending_since=None, clear_since=None)
+    def step(s: AlarmState, t: datetime, q: float, _flag: bool
+             ) -> tuple[AlarmState, list[AlarmEvent]]:
         s = dataclasses.replace(s, last_sample=t, last_value=q)
         if not s.active:
-            if q < settings.min_flow_m3s:
-                since = s.pending_since or t
-                s = dataclasses.replace(s, pending_since=since)
-                if t - since >= settings.on_delay:
-                    v, lim = format_pair(_in_unit(q, unit, "flow"),
-                                         _in_unit(settings.min_flow_m3s, unit, "flow"))
-                    msg = (
-                        f"Low flow on {s.branch}: {v} {unit}, below its minimum {lim} {unit} "
-                        f"since {_site_time(since, timezone)}{_cause(s.branch, diagnosis)}."
-                    )
-                    s, ev = _annunciate_on(s, t, msg)
-                    events += ev
-            else:
-                s = dataclasses.replace(s, pending_since=None)
-        elif q >= settings.clear_level_m3s:
-            since = s.clear_since or t
-            s = dataclasses.replace(s, clear_since=since)
-            if t - since >= settings.off_delay:
-                v, lim = format_pair(_in_unit(q, unit, "flow"),
-                                     _in_unit(settings.clear_level_m3s, unit, "flow"))
-                msg = (f"Low flow on {s.branch} cleared at {_site_time(t, timezone)}: "
-                       f"{v} {unit}, back at or above {lim} {unit} (its minimum plus the "
-                       "deadband)")
-                s, ev = _annunciate_off(s, t, settings.latching, msg)
-                events += ev
-        else:
-            s = dataclasses.replace(s, clear_since=None)
-    s, ev = _expire_shelf(s, t_now.to_pydatetime())
-    events += ev
-    return s, events
+            if q >= settings.min_flow_m3s:
+                return dataclasses.replace(s, pending_since=None), []
+            s, since, due = _held(s, t, "pending_since", settings.on_delay)
+            if not due:
+                return s, []
+            v, lim = format_pair(_in_unit(q, unit, "flow"),
+                                 _in_unit(settings.min_flow_m3s, unit, "flow"))
+            return _annunciate_on(s, t, (
+                f"Low flow on {s.branch}: {v} {unit}, below its minimum {lim} {unit} "
+                f"since {_site_time(since, timezone)}{_cause(s.branch, diagnosis)}."))
+        if q < settings.clear_level_m3s:
+            return dataclasses.replace(s, clear_since=None), []
+        s, since, due = _held(s, t, "clear_since", settings.off_delay)
+        if not due:
+            return s, []
+        v, lim = format_pair(_in_unit(q, unit, "flow"),
+                             _in_unit(settings.clear_level_m3s, unit, "flow"))
+        return _annunciate_off(s, t, settings.latching, (
+            f"Low flow on {s.branch} cleared at {_site_time(t, timezone)}: {v} {unit}, back "
+            f"at or above {lim} {unit} (its minimum plus the deadband)"))
+
+    return _judge_samples(series, state, now, step, max_gap=settings.max_gap)
 
 
 @dataclass(frozen=True)
@@ -424,20 +471,13 @@ def evaluate_frozen(
     a healthy meter shows, so those samples are not judged: they end a held run instead of
     lengthening it, as a moving reading would.
     """
-    data, t_now = _new_samples(series, state, now)
-    resting = _at_times(no_flow, pd.DatetimeIndex(data.index))
-
     def shown(v: float) -> str:
         shown_v = _in_unit(v, unit_label, kind) if kind is not None else v * scale
         return f"{shown_v:.4g}"
 
-    s, events = state, []
-    for ts, v, rest in zip(data.index, data.to_numpy(), resting, strict=True):
-        t = ts.to_pydatetime()
-        v = float(v)
-        rest = rest and abs(v) <= near_zero
-        s, ev = _expire_shelf(s, t)
-        events += ev
+    def step(s: AlarmState, t: datetime, v: float, resting: bool
+             ) -> tuple[AlarmState, list[AlarmEvent]]:
+        rest = resting and abs(v) <= near_zero
         held = (
             not rest
             and s.last_sample is not None
@@ -445,32 +485,219 @@ def evaluate_frozen(
             and abs(v - s.last_value) <= settings.tolerance
             and not (settings.ignore_zero and v == 0.0)
         )
-        if s.state == State.OUT_OF_SERVICE:
-            s = dataclasses.replace(s, last_sample=t, last_value=v, pending_since=None)
-            continue
         if not held:
             s = dataclasses.replace(s, last_sample=t, last_value=v, pending_since=None)
-            if s.active:
-                why = ("the branch cannot flow now and the meter rests near zero" if rest
-                       else f"it reads {shown(v)} {unit_label}".replace("  ", " "))
-                s, ev = _annunciate_off(
-                    s, t, False, f"{tag} on {s.branch} is no longer held at "
-                    f"{_site_time(t, timezone)}: {why}")
-                events += ev
-            continue
+            if not s.active:
+                return s, []
+            why = ("the branch cannot flow now and the meter rests near zero" if rest
+                   else f"it reads {shown(v)} {unit_label}".replace("  ", " "))
+            return _annunciate_off(s, t, False, f"{tag} on {s.branch} is no longer held at "
+                                   f"{_site_time(t, timezone)}: {why}")
         since = s.pending_since or s.last_sample
         s = dataclasses.replace(s, last_sample=t, pending_since=since)
-        if not s.active and since is not None and t - since >= settings.hold:
-            msg = (
-                f"{tag} on {s.branch} has read exactly {shown(v)} {unit_label} since "
-                f"{_site_time(since, timezone)}: the transmitter looks frozen; check it "
-                "before trusting this reading"
-            ).replace("  ", " ")
-            s, ev = _annunciate_on(s, t, msg)
-            events += ev
-    s, ev = _expire_shelf(s, t_now.to_pydatetime())
-    events += ev
-    return s, events
+        if s.active or since is None or t - since < settings.hold:
+            return s, []
+        return _annunciate_on(s, t, (
+            f"{tag} on {s.branch} has read exactly {shown(v)} {unit_label} since "
+            f"{_site_time(since, timezone)}: the transmitter looks frozen; check it "
+            "before trusting this reading").replace("  ", " "))
+
+    return _judge_samples(series, state, now, step, out_of_service_clears_pending=True,
+                          flags=no_flow)
+
+
+@dataclass(frozen=True)
+class FlowDropSettings:
+    """Relative flow-drop alarm settings of one branch: flow only, no pump curve, no fit.
+
+    fraction : the alarm's condition is a flow at least this share below the branch's own
+        recent level [-] (0.05: 5 %)
+    reference : the recent level is the median of the flow over this long before the
+        drop began [s]; a median, so a drop shorter than half of it does not pull the
+        level down with it
+    hold : the drop must last this long before it is annunciated (the on-delay) [s]
+    deadband : the condition clears once the flow is back above the level less
+        ``fraction - deadband`` of it [-] (2 % of the level, our choice: above the
+        scatter of a magnetic meter at steady flow)
+    off_delay : and stays there this long [s]
+    min_coverage : share of *reference* that must hold samples for a level to be
+        trusted [-]; before that (a check just started) nothing is judged
+    max_gap : a longer gap between samples restarts the delays
+    """
+
+    fraction: float = 0.05
+    reference: timedelta = timedelta(minutes=30)
+    hold: timedelta = timedelta(minutes=1)
+    deadband: float = 0.02
+    off_delay: timedelta = timedelta(seconds=30)
+    min_coverage: float = 0.5
+    max_gap: timedelta = timedelta(minutes=15)
+
+    def __post_init__(self) -> None:
+        if not 0 < self.fraction < 1:
+            raise ValueError(f"fraction must be in (0, 1), got {self.fraction}")
+        if not 0 <= self.deadband < self.fraction:
+            raise ValueError(f"deadband must be in [0, fraction={self.fraction}), "
+                             f"got {self.deadband}")
+        if not 0 < self.min_coverage <= 1:
+            raise ValueError(f"min_coverage must be in (0, 1], got {self.min_coverage}")
+        if self.reference <= timedelta(0):
+            raise ValueError(f"reference must be positive, got {self.reference}")
+        _not_negative(self, "hold", "off_delay", "max_gap")
+
+    @property
+    def lookback(self) -> timedelta:
+        """How far before the first new sample the flow must be given: a reference span
+        before the start of a drop that may have begun up to a hold before it."""
+        return self.reference + self.hold + self.max_gap
+
+
+def flow_level(series: pd.Series, settings: FlowDropSettings, *,
+               resting: pd.Series | None = None) -> pd.Series:
+    """The branch's recent level at each sample of *series* [SI]: the median of the
+    samples in the *reference* span before it (the sample itself left out), NaN where
+    fewer than *min_coverage* of the span hold samples. Samples where *resting* is True
+    (the branch cannot flow: pumps stopped) are left out of the level."""
+    return _trailing_median(series, pd.Timedelta(settings.reference), settings.min_coverage,
+                            resting=resting, closed="left")
+
+
+def _trailing_median(series: pd.Series, span: pd.Timedelta, coverage: float, *,
+                     resting: pd.Series | None = None,
+                     closed: Literal["left", "both"] = "left") -> pd.Series:
+    """Median of *series* over the *span* before each sample (``closed="left"``: the
+    sample left out; ``"both"``: in), NaN where fewer than *coverage* of the span hold
+    samples at the series' typical step; times in UTC, one value per time."""
+    data = pd.Series(series.to_numpy(dtype=float),
+                     index=pd.DatetimeIndex(series.index).tz_convert("UTC")).sort_index()
+    data = data[~data.index.duplicated(keep="last")]
+    if resting is not None:
+        data = data.mask(np.asarray(_at_times(resting, pd.DatetimeIndex(data.index)), bool))
+    data = data.dropna()
+    if data.empty:
+        return data
+    roll = data.rolling(span, closed=closed)
+    level = roll.median()
+    steps = np.diff(pd.DatetimeIndex(data.index).as_unit("ns").asi8) / 1e9
+    step_s = float(np.median(steps)) if len(steps) and np.median(steps) > 0 else 1.0
+    need = coverage * span.total_seconds() / step_s
+    return level.where(roll.count() >= max(need, 1.0))
+
+
+def _newest_at(values: pd.Series) -> Callable[[datetime], float]:
+    """A lookup of *values* (on UTC times): the newest value at or before a time (NaN
+    before any)."""
+    times = pd.DatetimeIndex(values.index).as_unit("ns").asi8
+    arr = values.to_numpy(dtype=float)
+
+    def at(t: datetime) -> float:
+        i = int(np.searchsorted(times, pd.Timestamp(t).value, side="right")) - 1
+        return float(arr[i]) if i >= 0 else math.nan
+
+    return at
+
+
+def evaluate_flow_drop(
+    series: pd.Series,
+    state: AlarmState,
+    settings: FlowDropSettings,
+    now: datetime,
+    *,
+    unit: str = "m3/h",
+    timezone: str = "UTC",
+    resting: pd.Series | None = None,
+    driving: pd.Series | None = None,
+) -> tuple[AlarmState, list[AlarmEvent]]:
+    """Run the relative flow-drop check over new flow samples of one branch.
+
+    The condition: the flow is at least ``fraction`` below the branch's recent level (the
+    median over ``reference``, `flow_level`) for ``hold``. While a drop is pending or
+    active the level is the one from before it began, so a long closure does not become
+    the new normal and clear itself; it clears once the flow is back within
+    ``fraction - deadband`` of that level for ``off_delay``. Needs no pump curve and no
+    fit: it works on a rig or a branch without a model.
+
+    Parameters
+    ----------
+    series : flow samples [m^3/s] by UTC time, including at least
+        ``settings.lookback`` before the first new one (for the level); samples at or
+        before ``state.last_sample`` or after *now* are not judged again
+    state, now, unit, timezone : as for `evaluate_low_flow`
+    resting : True where the branch cannot flow (pumps stopped, header at or below its
+        threshold): those samples are neither judged nor part of the level; a stop is
+        the low-flow alarm's business, not a drop against the level
+    driving : the pressure that drives the branch, header minus its static
+        back-pressure [Pa], by UTC time (None: not used). A flow change the header
+        explains is not a drop: the level is scaled by √(driving now / driving at the
+        level), the driving pressure taken as its median over the hold and over the
+        reference span (a turbulent branch's flow goes with the square root of its
+        pressure drop, Darcy–Weisbach with a constant friction factor). So a pump turned
+        down at night lowers the level with the flow, and a closure, which raises the
+        header a little, does not hide. Give it only where the header gauge resolves the
+        driving pressure finely (`monitor.jobs` does it below 2 % of it).
+
+    ``last_value`` is the flow [m^3/s]; ``pending_since`` / ``clear_since`` as usual. The
+    level of an active alarm is taken from before ``activated_at - hold``.
+    """
+    hold = settings.hold
+    level_at = _newest_at(flow_level(series, settings, resting=resting))
+    d_ref: Callable[[datetime], float] | None = None
+    d_now: Callable[[datetime], float] | None = None
+    if driving is not None and not driving.empty:
+        d_ref = _newest_at(_trailing_median(driving, pd.Timedelta(settings.reference),
+                                            settings.min_coverage, closed="left"))
+        d_now = _newest_at(_trailing_median(driving, pd.Timedelta(max(hold, timedelta(
+            seconds=1))), 1e-9, closed="both"))
+
+    def expected(anchor: datetime, t: datetime) -> float:
+        """The level from before *anchor*, scaled to the driving pressure at *t*."""
+        ref = level_at(anchor)
+        if d_ref is None or d_now is None:
+            return ref
+        was, now_ = d_ref(anchor), d_now(t)
+        if not (math.isfinite(was) and math.isfinite(now_) and was > 0 and now_ > 0):
+            return ref
+        return ref * math.sqrt(now_ / was)
+
+    def shown(v: float) -> float:
+        return _in_unit(v, unit, "flow")
+
+    def step(s: AlarmState, t: datetime, q: float, rest: bool
+             ) -> tuple[AlarmState, list[AlarmEvent]]:
+        s = dataclasses.replace(s, last_sample=t, last_value=q)
+        if rest:
+            return dataclasses.replace(s, pending_since=None, clear_since=None), []
+        if not s.active:
+            since = s.pending_since or t
+            ref = expected(since, t)
+            if not (math.isfinite(ref) and ref > 0 and q <= (1 - settings.fraction) * ref):
+                return dataclasses.replace(s, pending_since=None), []
+            s, since, due = _held(s, t, "pending_since", hold)
+            if not due:
+                return s, []
+            v, lim = format_pair(shown(q), shown((1 - settings.fraction) * ref))
+            at_header = " (scaled to the header pressure now)" if d_ref is not None else ""
+            return _annunciate_on(s, t, (
+                f"Flow drop on {s.branch}: {v} {unit}, {1 - q / ref:.0%} below its recent "
+                f"level {shown(ref):.4g} {unit}{at_header} (alarm at "
+                f"{settings.fraction:.0%} below: {lim} {unit}) since "
+                f"{_site_time(since, timezone)}; check valves and strainers on the branch"))
+        start = (s.activated_at or t) - hold
+        ref = expected(start, t)
+        back = (1 - settings.fraction + settings.deadband) * ref
+        if not (math.isfinite(ref) and q >= back):
+            return dataclasses.replace(s, clear_since=None), []
+        s, since, due = _held(s, t, "clear_since", settings.off_delay)
+        if not due:
+            return s, []
+        v, lim = format_pair(shown(q), shown(back))
+        return _annunciate_off(s, t, False, (
+            f"Flow drop on {s.branch} cleared at {_site_time(t, timezone)}: {v} {unit}, "
+            f"back at or above {lim} {unit} (within "
+            f"{settings.fraction - settings.deadband:.0%} of its level before the drop, "
+            f"{shown(ref):.4g} {unit})"))
+
+    return _judge_samples(series, state, now, step, max_gap=settings.max_gap, flags=resting)
 
 
 @dataclass(frozen=True)
@@ -503,9 +730,7 @@ class BackflowAlarmSettings:
     def __post_init__(self) -> None:
         if not (math.isfinite(self.deadband_pa) and self.deadband_pa >= 0):
             raise ValueError(f"deadband_pa must be >= 0, got {self.deadband_pa}")
-        for name in ("on_delay", "off_delay", "max_gap"):
-            if getattr(self, name) < timedelta(0):
-                raise ValueError(f"{name} must not be negative, got {getattr(self, name)}")
+        _not_negative(self, "on_delay", "off_delay", "max_gap")
 
 
 def evaluate_backflow(
@@ -534,7 +759,6 @@ def evaluate_backflow(
         if col not in samples.columns:
             raise ValueError(f"samples lacks column {col!r}; needs header_pa and static_pa")
     margin = samples["header_pa"].astype(float) - samples["static_pa"].astype(float)
-    data, t_now = _new_samples(margin, state, now)
     header = samples["header_pa"].astype(float)
     header.index = pd.DatetimeIndex(header.index).tz_convert("UTC")
     header = header[~header.index.duplicated(keep="last")]
@@ -543,55 +767,39 @@ def evaluate_backflow(
     def bar(v: float) -> float:
         return _in_unit(v, unit, "pressure")
 
-    s, events = state, []
-    for ts, m in zip(data.index, data.to_numpy(), strict=True):
-        t = ts.to_pydatetime()
-        m = float(m)
-        s, ev = _expire_shelf(s, t)
-        events += ev
-        if s.state == State.OUT_OF_SERVICE:
-            s = dataclasses.replace(s, last_sample=t, last_value=m)
-            continue
-        if s.last_sample is not None and t - s.last_sample > settings.max_gap:
-            s = dataclasses.replace(s, pending_since=None, clear_since=None)
+    def step(s: AlarmState, t: datetime, m: float, _flag: bool
+             ) -> tuple[AlarmState, list[AlarmEvent]]:
         first = s.pending_since is None
         s = dataclasses.replace(s, last_sample=t, last_value=m)
-        p_s = float(header.get(ts, math.nan))
+        p_s = float(header.get(pd.Timestamp(t), math.nan))
         static = p_s - m
         if not s.active:
-            if m < 0:
-                since = s.pending_since or t
-                s = dataclasses.replace(s, pending_since=since)
-                if not first and t - since >= settings.on_delay:
-                    hp, st = format_pair(bar(p_s), bar(static), digits=2)
-                    msg = (
-                        f"Back-flow hazard on {s.branch}: header {hp} {unit}, below the "
-                        f"branch's static back-pressure {st} {unit} (by "
-                        f"{abs(bar(p_s) - bar(static)):.2f} {unit}) since "
-                        f"{_site_time(since, tz)}, and no check valve: water can run back "
-                        f"from {settings.termination} into the supply. Raise the header "
-                        "pressure or isolate the branch as site procedures say"
-                    )
-                    s, ev = _annunciate_on(s, t, msg)
-                    events += ev
-            else:
-                s = dataclasses.replace(s, pending_since=None)
-        elif m >= settings.deadband_pa:
-            since = s.clear_since or t
-            s = dataclasses.replace(s, clear_since=since)
-            if t - since >= settings.off_delay:
-                hp, st = format_pair(bar(p_s), bar(static), digits=2)
-                msg = (f"Back-flow hazard on {s.branch} cleared at {_site_time(t, tz)}: "
-                       f"header {hp} {unit}, back above the static back-pressure {st} "
-                       f"{unit} by more than the deadband "
-                       f"{bar(settings.deadband_pa) - bar(0.0):.2f} {unit}")
-                s, ev = _annunciate_off(s, t, False, msg)
-                events += ev
-        else:
-            s = dataclasses.replace(s, clear_since=None)
-    s, ev = _expire_shelf(s, t_now.to_pydatetime())
-    events += ev
-    return s, events
+            if m >= 0:
+                return dataclasses.replace(s, pending_since=None), []
+            s, since, due = _held(s, t, "pending_since", settings.on_delay)
+            if first or not due:
+                return s, []
+            hp, st = format_pair(bar(p_s), bar(static), digits=2)
+            return _annunciate_on(s, t, (
+                f"Back-flow hazard on {s.branch}: header {hp} {unit}, below the "
+                f"branch's static back-pressure {st} {unit} (by "
+                f"{abs(bar(p_s) - bar(static)):.2f} {unit}) since "
+                f"{_site_time(since, tz)}, and no check valve: water can run back "
+                f"from {settings.termination} into the supply. Raise the header "
+                "pressure or isolate the branch as site procedures say"))
+        if m < settings.deadband_pa:
+            return dataclasses.replace(s, clear_since=None), []
+        s, since, due = _held(s, t, "clear_since", settings.off_delay)
+        if not due:
+            return s, []
+        hp, st = format_pair(bar(p_s), bar(static), digits=2)
+        return _annunciate_off(s, t, False, (
+            f"Back-flow hazard on {s.branch} cleared at {_site_time(t, tz)}: "
+            f"header {hp} {unit}, back above the static back-pressure {st} "
+            f"{unit} by more than the deadband "
+            f"{bar(settings.deadband_pa) - bar(0.0):.2f} {unit}"))
+
+    return _judge_samples(margin, state, now, step, max_gap=settings.max_gap)
 
 
 @dataclass(frozen=True)
@@ -713,6 +921,8 @@ def describe_condition(branch: str, condition: str) -> str:
         return f"low flow on {branch}"
     if condition == "backflow":
         return f"back-flow hazard on {branch}"
+    if condition == "flow_drop":
+        return f"flow drop on {branch}"
     if condition == "stale source":
         return "stale source (no tag has fresh data)"
     return condition.replace("_", " ")

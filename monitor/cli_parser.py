@@ -189,8 +189,9 @@ low flow, instrument faults, header imbalance. Dates without a zone are site tim
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument(
         "--alarms", action="store_true",
-        help="also judge the low-flow, frozen-meter and back-flow alarms over the period, "
-        "as the ingest checks would have (the live checks look back only 24 h): for "
+        help="also judge the low-flow, frozen-meter, back-flow and flow-drop alarms over "
+        "the period, as the ingest checks would have (the live checks look back only 24 h): "
+        "for "
         "files of a past period read late. Each alarm change is journalled at its own "
         "historic time; stale-data alarms are not replayed",
     )

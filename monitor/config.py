@@ -22,7 +22,7 @@ import re
 import tomllib
 import zoneinfo
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import timedelta
 from pathlib import Path
 from typing import Annotated, Any, Literal
@@ -85,6 +85,29 @@ Period = Annotated[float, _quantity("s", lowest="positive")]
 #: a delay that may be zero but not negative
 Delay = Annotated[float, _quantity("s", lowest="zero")]
 FlowFloor = Annotated[float, _quantity("m3/s", lowest="zero")]
+
+
+#: Window sizes shorter than a day must divide 24 h into whole seconds (see `monitor.jobs.windows`).
+DAY_S = 86_400
+
+
+def window_problem(seconds: float) -> str | None:
+    """Why a window of *seconds* cannot be used, or None when it can: a whole number of
+    days, or a whole number of seconds that divides 24 h (1, 5, 10, 15, 30 min, 1, 2, 3,
+    4, 6, 8, 12 h …)."""
+    if not seconds > 0:
+        return f"must be positive, got {seconds:g} s"
+    if seconds >= DAY_S:
+        if seconds % DAY_S:
+            return (f"{seconds / 3600:g} h is not a whole number of days; use whole days "
+                    "(\"1 day\", \"7 days\") or a duration that divides 24 h")
+        return None
+    if seconds != int(seconds) or DAY_S % int(seconds):
+        shown = f"{seconds / 60:g} min" if seconds >= 60 else f"{seconds:g} s"
+        return (f"{shown} does not divide 24 h, so the windows of each day could not "
+                "start at the same local times; use a duration that divides 24 h (1, 2, 5, "
+                "10, 15, 20, 30 min, 1, 2, 3, 4, 6, 8 or 12 h) or whole days")
+    return None
 
 
 class _Strict(BaseModel):
@@ -306,6 +329,45 @@ class TerminationSpec(_Strict):
         return self
 
 
+class FlowDropSection(_Strict):
+    """[flow_drop] (site-wide) or a branch's ``flow_drop = {…}``: the relative flow-drop
+    alarm, off unless ``enabled``. A branch's keys override the site's; a branch that
+    says ``enabled = false`` is left out of a site-wide alarm. Flow only (no pump curve,
+    no fit), so it serves a test rig or a branch without a model.
+
+    fraction : alarm at a flow this share below the branch's recent level ("5 %" or 0.05)
+    reference : the recent level is the flow's median over this long before the drop
+    hold : the drop must last this long before it is annunciated
+    deadband : the condition clears within ``fraction - deadband`` of the level
+    off_delay : and after this long there
+    follow_header : scale the level with the header pressure, so a flow change the
+        header explains (a pump turned down) is not a drop; used only where the header
+        gauge resolves the branch's driving pressure finely (default true)
+    """
+
+    enabled: bool | None = None
+    follow_header: bool | None = None
+    fraction: Fraction | None = None
+    reference: Period | None = None
+    hold: Delay | None = None
+    deadband: Fraction | None = None
+    off_delay: Delay | None = None
+
+    @field_validator("fraction")
+    @classmethod
+    def _share(cls, value: float | None) -> float | None:
+        if value is not None and not 0 < value < 1:
+            raise ValueError(f"must be a share between 0 and 1 like '5 %' or 0.05, got {value}")
+        return value
+
+    @field_validator("deadband")
+    @classmethod
+    def _small_share(cls, value: float | None) -> float | None:
+        if value is not None and not 0 <= value < 1:
+            raise ValueError(f"must be a share from 0 to 1 like '2 %' or 0.02, got {value}")
+        return value
+
+
 class BranchSection(_Strict):
     name: str = Field(min_length=1)
     description: str = ""
@@ -316,6 +378,8 @@ class BranchSection(_Strict):
     termination: TerminationSpec
     elements: list[ElementSpec] = Field(min_length=1)
     check_valve: bool | None = None
+    #: this branch's relative flow-drop alarm (keys override the site's [flow_drop])
+    flow_drop: FlowDropSection | None = None
 
 
 class AnalysisSection(_Strict):
@@ -346,6 +410,14 @@ class AnalysisSection(_Strict):
     #: one finding until it has stayed away this long (a week: the plant's load cycle)
     clear_after: Duration = 7 * 86_400.0
 
+    @field_validator("window")
+    @classmethod
+    def _day_aligned(cls, value: float) -> float:
+        problem = window_problem(value)
+        if problem is not None:
+            raise ValueError(problem)
+        return value
+
     @field_validator("stale_after", "steady_window")
     @classmethod
     def _positive_age(cls, value: float | None) -> float | None:
@@ -359,6 +431,30 @@ class AnalysisSection(_Strict):
         if not value >= 0:
             raise ValueError(f"must be a duration of 0 or more like '7 days', got {value} s")
         return value
+
+
+class DiagnosisSection(_Strict):
+    """[diagnosis]: the spans of the diagnosis as times of the plant, converted to
+    windows of ``[analysis] window`` (`monitor.findings.DiagnosisSettings.for_window`).
+    The defaults are those of daily windows: a baseline of 14 days, the level over 14
+    days, a trend judged over 20 to 180 days. A rig or a commissioning run with minute
+    windows sets them in minutes or hours (README, "test rig and commissioning runs").
+    """
+
+    #: the good windows after the start (or a cleaning) that set the reference level
+    baseline: Period | None = None
+    #: the trailing windows whose level predicts the next one (steps, restrictions)
+    level: Period | None = None
+    #: the shortest and the longest stretch a fouling trend is judged over
+    trend_shortest: Period | None = None
+    trend_longest: Period | None = None
+
+    @model_validator(mode="after")
+    def _ordered(self) -> DiagnosisSection:
+        if (self.trend_shortest is not None and self.trend_longest is not None
+                and self.trend_longest < self.trend_shortest):
+            raise ValueError("trend_longest must not be shorter than trend_shortest")
+        return self
 
 
 class ScheduleSection(_Strict):
@@ -497,10 +593,12 @@ class SiteFile(_Strict):
     header: HeaderSection
     pump: PumpSection | None = None
     analysis: AnalysisSection = AnalysisSection()
+    diagnosis: DiagnosisSection = DiagnosisSection()
     schedule: ScheduleSection = ScheduleSection()
     report: ReportSection = ReportSection()
     notify: NotifySection | None = None
     cost: CostSection | None = None
+    flow_drop: FlowDropSection = FlowDropSection()
     branch: list[BranchSection] = Field(min_length=1)
 
     @model_validator(mode="after")
@@ -529,6 +627,54 @@ class SiteFile(_Strict):
 
 
 @dataclass(frozen=True)
+class FlowDrop:
+    """A branch's relative flow-drop alarm, resolved (see `FlowDropSection`)."""
+
+    fraction: float = 0.05  # [-]
+    reference_s: float = 1800.0  # [s]
+    hold_s: float = 60.0  # [s]
+    deadband: float = 0.02  # [-]
+    off_delay_s: float = 30.0  # [s]
+    follow_header: bool = True
+
+
+def _flow_drop(site: FlowDropSection, branch: FlowDropSection | None, has_meter: bool,
+               modulated: bool) -> FlowDrop | None:
+    """The branch's flow-drop alarm from the site's and the branch's keys (None: off).
+
+    A site-wide ``[flow_drop]`` leaves out the branches without a meter and those whose
+    control valve logs its position (*modulated*): that valve moves the flow on purpose,
+    and each move would read as a drop. Such a branch can still enable it itself."""
+    def pick(key: str) -> Any:
+        own = getattr(branch, key) if branch is not None else None
+        return own if own is not None else getattr(site, key)
+
+    if not pick("enabled"):
+        return None
+    if not has_meter:
+        if branch is not None and branch.enabled:
+            raise ValueError("flow_drop is enabled but the branch has no flow meter "
+                             "('flow'); enable it on metered branches only")
+        return None  # a site-wide alarm skips the branches without a meter
+    if modulated and not (branch is not None and branch.enabled):
+        return None
+    default = FlowDrop()
+    got = FlowDrop(
+        fraction=pick("fraction") if pick("fraction") is not None else default.fraction,
+        reference_s=pick("reference") or default.reference_s,
+        hold_s=pick("hold") if pick("hold") is not None else default.hold_s,
+        deadband=pick("deadband") if pick("deadband") is not None else default.deadband,
+        off_delay_s=pick("off_delay") if pick("off_delay") is not None else default.off_delay_s,
+        follow_header=pick("follow_header") if pick("follow_header") is not None
+        else default.follow_header,
+    )
+    if not got.deadband < got.fraction:
+        raise ValueError(f"flow_drop.deadband ({got.deadband:g}) must be smaller than "
+                         f"flow_drop.fraction ({got.fraction:g})")
+    return got
+
+
+@dataclass(frozen=True)
 class BranchConfig:
     """One branch: its model, its tags and its limits (SI)."""
 
@@ -544,6 +690,8 @@ class BranchConfig:
     #: typical values of the logged conditions (level_m, end_pressure_pa, valve_position)
     #: from the tags' ``nominal``: used by `curve` and when a tag has no data
     nominal: Mapping[str, float] = field(default_factory=dict)
+    #: the relative flow-drop alarm, when enabled for this branch
+    flow_drop: FlowDrop | None = None
 
     @property
     def logged_conditions(self) -> dict[str, str]:
@@ -584,6 +732,8 @@ class Site:
     notify: NotifySection | None = None
     #: the ``[cost]`` section's price (None: not configured; costs are shown in kWh only)
     energy_price: EnergyPrice | None = None
+    #: the spans of the diagnosis (``[diagnosis]``), as durations
+    diagnosis: DiagnosisSection = field(default_factory=DiagnosisSection)
 
     @property
     def header(self) -> ParallelHeader:
@@ -726,7 +876,10 @@ def _build(doc: SiteFile, path: Path) -> Site:
     for i, sec in enumerate(doc.branch):
         where = f"branch[{i}] ({sec.name})"
         try:
-            branches.append(_build_branch(sec, tags, doc.analysis.cleaning_limit))
+            branch = _build_branch(sec, tags, doc.analysis.cleaning_limit)
+            branches.append(replace(branch, flow_drop=_flow_drop(
+                doc.flow_drop, sec.flow_drop, branch.flow_tag is not None,
+                branch.valve_position_tag is not None)))
         except (ValueError, KeyError) as exc:
             raise ValueError(f"{where}: {exc}") from None
         except ArithmeticError:  # e.g. 1e308 m3/h raised to the equipment's exponent
@@ -770,6 +923,7 @@ def _build(doc: SiteFile, path: Path) -> Site:
         tags=tags,
         notify=_notify(doc.notify, base),
         energy_price=doc.cost.energy_price if doc.cost is not None else None,
+        diagnosis=doc.diagnosis,
     )
 
 

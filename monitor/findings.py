@@ -140,6 +140,10 @@ class BranchSettings:
             raise ValueError(f"min_flow_m3s must be >= 0, got {self.min_flow_m3s}")
 
 
+#: The fewest windows a span of the diagnosis may hold (`DiagnosisSettings.for_window`).
+SPAN_FLOORS = {"baseline_windows": 5, "level_windows": 5, "min_trend_windows": 10}
+
+
 @dataclass(frozen=True)
 class DiagnosisSettings:
     """Thresholds of the diagnosis. σ is the day-to-day scatter of the baseline.
@@ -194,6 +198,50 @@ class DiagnosisSettings:
     #: is a condition gone.
     clear_after_s: float = 7 * 86_400.0
     balance_flow_unit: str = "m3/h"  # the total flow tag's unit, for imbalance messages
+
+    @classmethod
+    def for_window(
+        cls, window_s: float, *, baseline_s: float | None = None, level_s: float | None = None,
+        trend_min_s: float | None = None, trend_max_s: float | None = None, **kw: Any,
+    ) -> DiagnosisSettings:
+        """Settings for windows of *window_s* [s]: the spans that are times of the plant
+        (the baseline, the level that predicts the next window, the shortest and longest
+        trend) given as durations [s] — by default the daily windows' counts as days
+        (14, 14, 20 and 180 days) — and converted to window counts, never fewer than
+        `SPAN_FLOORS` (a median or a scatter of fewer windows is not worth reporting:
+        our choice; a Mann–Kendall test is used from 10 points, common practice). The
+        trailing look-backs of the trend test scale with the longest trend. Daily
+        windows get the defaults exactly.
+
+        The counts of windows *in a row* (``trend_persistence``, ``verify_windows``,
+        ``imbalance_windows``, ``spike_windows``) stay counts: they confirm a result in
+        successive windows, a statistical need, not a time of the plant.
+
+        >>> s = DiagnosisSettings.for_window(60.0, baseline_s=1200.0, level_s=600.0,
+        ...                                  trend_min_s=1200.0, trend_max_s=3 * 3600.0)
+        >>> s.baseline_windows, s.level_windows, s.min_trend_windows, s.trend_lookbacks
+        (20, 10, 20, (10, 20, 30, 60, 120, 180))
+        >>> DiagnosisSettings.for_window(3600.0).baseline_windows  # 14 days of hours
+        336
+        """
+        if not window_s > 0:
+            raise ValueError(f"window_s must be positive, got {window_s}")
+        day = 86_400.0
+
+        def count(span_s: float | None, default_days: int, floor: int) -> int:
+            span = default_days * day if span_s is None else span_s
+            if not span > 0:
+                raise ValueError(f"a diagnosis span must be positive, got {span} s")
+            return max(floor, round(span / window_s))
+
+        base = count(baseline_s, 14, SPAN_FLOORS["baseline_windows"])
+        level = count(level_s, 14, SPAN_FLOORS["level_windows"])
+        low = count(trend_min_s, 20, SPAN_FLOORS["min_trend_windows"])
+        high = max(low, count(trend_max_s, 180, SPAN_FLOORS["min_trend_windows"]))
+        looks = sorted({min(high, max(low // 2, round(k * high / 180)))
+                        for k in (10, 20, 30, 60, 120, 180)})
+        return cls(baseline_windows=base, level_windows=level, min_trend_windows=low,
+                   max_trend_windows=high, trend_lookbacks=tuple(looks), **kw)
 
     def __post_init__(self) -> None:
         for name in ("baseline_windows", "level_windows", "min_trend_windows"):

@@ -25,7 +25,7 @@ from collections.abc import Callable, Iterator, Mapping, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
 from contextlib import contextmanager, suppress
 from dataclasses import dataclass, field, replace
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, date, datetime, timedelta
 from itertools import islice
 from pathlib import Path
 from typing import Any
@@ -46,11 +46,13 @@ from monitor.alarms import (
     AlarmEvent,
     AlarmState,
     BackflowAlarmSettings,
+    FlowDropSettings,
     FrozenSettings,
     LowFlowSettings,
     StaleSettings,
     State,
     evaluate_backflow,
+    evaluate_flow_drop,
     evaluate_frozen,
     evaluate_low_flow,
     evaluate_stale,
@@ -66,7 +68,7 @@ from monitor.backflow import (
     static_margin,
     termination_words,
 )
-from monitor.config import BranchConfig, Site
+from monitor.config import DAY_S, BranchConfig, Site, window_problem
 from monitor.cost import J_PER_KWH, RESISTANCE_KINDS, branch_cost
 from monitor.diagnose import (
     BranchSettings,
@@ -74,6 +76,7 @@ from monitor.diagnose import (
     Finding,
     diagnose,
 )
+from monitor.quality import resolution_by_tag
 
 log = logging.getLogger(__name__)
 
@@ -268,37 +271,86 @@ def windows(
 ) -> Iterator[tuple[datetime, datetime]]:
     """Analysis windows covering [start, end), as UTC pairs.
 
-    Windows of whole days are aligned to the site's local midnight (a DST day is 23 or
-    25 hours long, as the plant lived it); shorter windows are aligned to UTC multiples of
-    their size. Only whole windows are returned.
+    Every window belongs to one local day of the site. Windows of whole days run from
+    the site's local midnight to the local midnight *size* later (a DST day is 23 or 25
+    hours long, as the plant lived it). Shorter windows, whose size must divide 24 h
+    (`window_problem`), start at the local midnight and follow each other at *size* of
+    elapsed time; on a day whose length is not a whole number of windows (a DST change
+    day: 23 or 25 h, or 23.5 h at Lord Howe Island) the last window of the day is cut at
+    the next local midnight. So a zone with a half- or quarter-hour offset (Asia/Kolkata,
+    Australia/Adelaide, Asia/Kathmandu) gets windows on its own clock's whole hours, and a
+    clock change neither doubles nor skips a window: each window ends where the next
+    begins. Only windows that lie whole in [start, end) are returned.
+
+    Why not any size, with a cut window at every day's end: a 7-minute window would leave
+    a 5-minute stub each day, a window of another size in every trend; a size that
+    divides the day is always near the one wanted.
 
     >>> ws = list(windows(datetime(2026, 3, 28, tzinfo=UTC), datetime(2026, 3, 31, tzinfo=UTC),
     ...                   timedelta(days=1), "Europe/Berlin"))
     >>> [(a.isoformat(), (b - a).total_seconds() / 3600) for a, b in ws]
     [('2026-03-28T23:00:00+00:00', 23.0), ('2026-03-29T22:00:00+00:00', 24.0)]
+    >>> t0 = datetime(2026, 3, 29, 0, tzinfo=UTC)
+    >>> ws = list(windows(t0, t0 + timedelta(hours=3), timedelta(hours=1), "Asia/Kolkata"))
+    >>> [a.strftime("%H:%M") for a, _ in ws]
+    ['00:30', '01:30']
     """
     if start.tzinfo is None or end.tzinfo is None:
         raise ValueError("windows() needs timezone-aware start and end")
     seconds = size.total_seconds()
-    if seconds <= 0:
-        raise ValueError(f"window size must be positive; got {size}")
-    if seconds % 86_400 == 0:
-        zone = ZoneInfo(timezone)
-        days = int(seconds // 86_400)
-        local = start.astimezone(zone)
-        day = local.date() if local.time() == datetime.min.time() else local.date() + timedelta(1)
-        while True:
-            a = datetime.combine(day, datetime.min.time(), zone).astimezone(UTC)
-            b = datetime.combine(day + timedelta(days), datetime.min.time(), zone).astimezone(UTC)
+    problem = window_problem(seconds)
+    if problem is not None:
+        raise ValueError(f"window size {size}: {problem}")
+    zone = ZoneInfo(timezone)
+    days = max(1, int(seconds // DAY_S))
+
+    def midnight(day: date) -> datetime:
+        return _local_midnight(day, zone)
+
+    day = start.astimezone(zone).date()
+    if days > 1 and midnight(day) < start:
+        day += timedelta(1)  # whole-day windows start at the first midnight in the span
+    while midnight(day) < end:
+        a, day_end = midnight(day), midnight(day + timedelta(days))
+        while a < day_end:
+            b = min(a + size, day_end)
             if b > end:
                 return
-            yield a, b
-            day += timedelta(days)
-    else:
-        t0 = pd.Timestamp(start).ceil(pd.Timedelta(seconds=seconds)).to_pydatetime()
-        while t0 + size <= end:
-            yield t0, t0 + size
-            t0 += size
+            if a >= start:
+                yield a, b
+            a = b
+        day += timedelta(days)
+
+
+def _local_midnight(day: date, zone: ZoneInfo) -> datetime:
+    """The UTC instant the local *day* begins (in a zone whose clocks skip midnight, the
+    first instant of the day)."""
+    return datetime.combine(day, datetime.min.time(), zone).astimezone(UTC)
+
+
+def window_length_ok(site: Site, starts: pd.Series, ends: pd.Series) -> np.ndarray:
+    """True where [start, end) is a window of the site's present size (`windows`): whole
+    days with their DST slack, or a full sub-day window, or the cut last window of a
+    local day (it ends at a local midnight and is as long as the day's remainder)."""
+    size = site.window.total_seconds()
+    length = (ends - starts).dt.total_seconds().to_numpy(float)
+    if size >= DAY_S:
+        slack = 3600.0 * (size // DAY_S)
+        return np.abs(length - size) <= slack
+    full = np.abs(length - size) <= 1.0
+    if full.all():
+        return full
+    zone = ZoneInfo(site.timezone)
+    stubs: dict[pd.Timestamp, float] = {}
+    for t in pd.unique(ends[~full]):
+        end = pd.Timestamp(t).to_pydatetime()
+        day = end.astimezone(zone).date()
+        if end == _local_midnight(day, zone):
+            length_of_day = (end - _local_midnight(day - timedelta(1), zone)).total_seconds()
+            stubs[pd.Timestamp(t)] = length_of_day % size
+    stub = np.array([stubs.get(pd.Timestamp(t), 0.0) for t in ends], dtype=float)
+    cut = (stub > 0) & (np.abs(length - stub) <= 1.0)
+    return full | cut
 
 
 def current_fits(site: Site, fits: pd.DataFrame) -> pd.DataFrame:
@@ -308,15 +360,13 @@ def current_fits(site: Site, fits: pd.DataFrame) -> pd.DataFrame:
     setting does not throw the old ones away), but a diagnosis, a report or an export
     reads one size only: mixing daily and hourly fits would make one trend of two
     sampling rates. Windows of whole days are local days, so 23 or 25 hours long on a
-    daylight-saving day; they count as the same size.
+    daylight-saving day, and the last sub-day window of such a day is cut at local
+    midnight (`windows`); they count as the same size (`window_length_ok`).
     """
     if fits.empty:
         return fits
-    size = site.window.total_seconds()
-    length = (pd.to_datetime(fits["window_end"], utc=True)
-              - pd.to_datetime(fits["window_start"], utc=True)).dt.total_seconds()
-    slack = 3600.0 * (size // 86_400) if size % 86_400 == 0 else 1.0
-    keep = (length - size).abs() <= slack
+    keep = pd.Series(window_length_ok(site, pd.to_datetime(fits["window_start"], utc=True),
+                                      pd.to_datetime(fits["window_end"], utc=True)))
     if not keep.all():
         log.info("%d fits of windows of another size than [analysis] window (%s) set aside",
                  int((~keep).sum()), site.window)
@@ -628,12 +678,16 @@ def _worker_window(span: tuple[datetime, datetime]) -> WindowAnalysis:
 
 
 def diagnosis_settings(site: Site) -> DiagnosisSettings:
-    """Diagnosis thresholds with the site's per-branch limits; messages state flows in
-    each flow tag's own unit."""
+    """Diagnosis thresholds with the site's per-branch limits, their spans from
+    ``[diagnosis]`` converted to windows of ``[analysis] window``; messages state flows
+    in each flow tag's own unit."""
     def unit(tag: str | None) -> str:
         return site.tags[tag].unit if tag is not None and tag in site.tags else "m3/h"
 
-    return DiagnosisSettings(
+    spans = site.diagnosis
+    return DiagnosisSettings.for_window(
+        site.window.total_seconds(), baseline_s=spans.baseline, level_s=spans.level,
+        trend_min_s=spans.trend_shortest, trend_max_s=spans.trend_longest,
         branches={
             b.name: BranchSettings(
                 cleaning_limit_r=b.cleaning_limit,
@@ -912,8 +966,8 @@ def _store_alarms(
 def replay_alarms(
     site: Site, store: ResultsStore, source: ReadingsSource, start: datetime, end: datetime
 ) -> list[AlarmEvent]:
-    """Judge the sample-driven alarms (low flow, frozen meter, back-flow) over a past
-    period [start, end): what `evaluate_alarms` does at each ingest, for readings that
+    """Judge the sample-driven alarms (low flow, frozen meter, back-flow, flow drop) over
+    a past period [start, end): what `evaluate_alarms` does at each ingest, for readings that
     arrived late (a backfill of older files), which the live checks never see — they
     look back only `ALARM_FIRST_LOOKBACK_S` before the wall clock.
 
@@ -963,9 +1017,12 @@ def _sample_alarms(
         ((states[(b, c)].last_sample or first) if (b, c) in states else first)
         for b, c, _, _ in checks
     ) if checks else now
-    # the condition tags' newest reading before the first new header sample counts too
-    readings = read_tags(site, store, source, tags,
-                         since_all - timedelta(seconds=_condition_lag(site)), now)
+    # the condition tags' newest reading before the first new header sample counts too,
+    # and a flow-drop check needs its reference span before its first new sample
+    lag = max([_condition_lag(site)] + [
+        flow_drop_settings(site, site.branch(b)).lookback.total_seconds()
+        for b, c, _, _ in checks if c == "flow_drop"])
+    readings = read_tags(site, store, source, tags, since_all - timedelta(seconds=lag), now)
     good = readings[readings["good"].to_numpy(bool)]
     by_tag = {str(t): part for t, part in good.groupby("tag")}
     frozen = FrozenSettings(hold=timedelta(seconds=site.analysis.frozen_hold))
@@ -977,10 +1034,22 @@ def _sample_alarms(
         series = (pd.Series(part["value"].to_numpy(float), index=pd.DatetimeIndex(part["time"]))
                   if part is not None else pd.Series([], dtype=float,
                                                     index=pd.DatetimeIndex([], tz="UTC")))
-        if state.last_sample is None and not series.empty:
+        if state.last_sample is None and not series.empty and condition != "flow_drop":
             series = series[series.index >= pd.Timestamp(first)]
         spec = site.tags[tag]
-        if condition == "low_flow":
+        if condition == "flow_drop":
+            # the whole series: the level needs the samples before the first judged one
+            judged = state if state.last_sample is not None else replace(
+                state, last_sample=first - timedelta(microseconds=1))
+            b = site.branch(branch)
+            frozen_now = _frozen_spans(states, events, tag)
+            new, happened = evaluate_flow_drop(
+                series, judged, flow_drop_settings(site, b), now, unit=spec.unit,
+                timezone=site.timezone, resting=_either(resting.get(tag), frozen_now),
+                driving=driving_pressure(site, b, good))
+            if new.last_sample == judged.last_sample:
+                new = state  # nothing new judged: nothing to store
+        elif condition == "low_flow":
             new, happened = evaluate_low_flow(
                 series, state, low_flow_settings(site, site.branch(branch)), now,
                 diagnosis=[f for f in findings if f.branch == branch],
@@ -1003,6 +1072,37 @@ def _sample_alarms(
             rows.append(alarm_row(new, limit_m3s=limit, now=now))
 
 
+def _frozen_spans(states: Mapping[tuple[str, str], AlarmState],
+                  events: Sequence[AlarmEvent], tag: str) -> pd.Series | None:
+    """True while the frozen-meter alarm of *tag* is active (from its stored state and
+    this evaluation's events), None when it never was: a frozen meter's flat reading
+    against a moving header is the frozen alarm's business, so the flow-drop check
+    leaves those samples alone (designed suppression, ISA-18.2)."""
+    condition = f"frozen {tag}"
+    before = next((st for (_, c), st in states.items() if c == condition), None)
+    flips = [(e.time, e.action == "activated") for e in events
+             if e.condition == condition and e.action in ("activated", "returned")]
+    if not flips and not (before is not None and before.active):
+        return None
+    start = pd.Timestamp("1970-01-01", tz="UTC")
+    times = [start] + [pd.Timestamp(t) for t, _ in flips]
+    values = [bool(before is not None and before.active)] + [on for _, on in flips]
+    return pd.Series(values, index=pd.DatetimeIndex(times))
+
+
+def _either(a: pd.Series | None, b: pd.Series | None) -> pd.Series | None:
+    """The OR of two step masks (bool, on UTC times, each holding until its next time)."""
+    if a is None or b is None:
+        return a if b is None else b
+    index = pd.DatetimeIndex(a.index).union(pd.DatetimeIndex(b.index))
+
+    def on(m: pd.Series) -> np.ndarray:
+        m = m[~pd.DatetimeIndex(m.index).duplicated(keep="last")].sort_index()
+        return m.astype(float).reindex(index, method="ffill").fillna(0.0).to_numpy() > 0.5
+
+    return pd.Series(on(a) | on(b), index=index)
+
+
 def _condition_tags(site: Site) -> list[str]:
     """Tags the back-flow check and the frozen exemption need besides the checked ones."""
     tags = {site.header_pressure_tag, site.header_temperature_tag, site.total_flow_tag,
@@ -1015,6 +1115,49 @@ def _condition_tags(site: Site) -> list[str]:
 def _condition_lag(site: Site) -> float:
     """How far before the first new sample the condition tags are read [s]."""
     return max(900.0, 3.0 * site.analysis.sample_period)
+
+
+#: The header gauge must resolve the branch's driving pressure to this share for the
+#: flow-drop alarm to follow the header (our choice: a step of 2 % of the driving pressure
+#: moves the expected flow by 1 %, a fifth of the default alarm fraction).
+FOLLOW_HEADER_SHARE = 0.02
+
+
+def driving_pressure(site: Site, branch: BranchConfig, readings: pd.DataFrame
+                     ) -> pd.Series | None:
+    """The header pressure less the branch's static back-pressure [Pa] at each header
+    sample where the pumps run, for the flow-drop alarm to follow the header; None when
+    ``follow_header`` is off or the header gauge is too coarse for it (its resolution,
+    estimated from the readings, above `FOLLOW_HEADER_SHARE` of the median driving
+    pressure: a test rig's 0.05-bar gauge at 0.07 bar)."""
+    if branch.flow_drop is None or not branch.flow_drop.follow_header:
+        return None
+    m = static_margin(site, branch, readings)
+    if m.empty:
+        return None
+    drive = (m["header_pa"] - m["static_pa"]).dropna()
+    drive = drive[drive > 0]
+    if drive.empty:
+        return None
+    head = readings[readings["tag"] == site.header_pressure_tag]
+    step = resolution_by_tag(head).get(site.header_pressure_tag, 0.0)
+    if step > FOLLOW_HEADER_SHARE * float(drive.median()):
+        return None
+    return drive
+
+
+def flow_drop_settings(site: Site, branch: BranchConfig) -> FlowDropSettings:
+    """Flow-drop alarm settings of *branch* (its ``flow_drop`` resolved with the site's
+    ``[flow_drop]``; the branch must have it enabled)."""
+    fd = branch.flow_drop
+    if fd is None:
+        raise ValueError(f"branch {branch.name!r} has no flow_drop alarm enabled")
+    return FlowDropSettings(
+        fraction=fd.fraction, reference=timedelta(seconds=fd.reference_s),
+        hold=timedelta(seconds=fd.hold_s), deadband=fd.deadband,
+        off_delay=timedelta(seconds=fd.off_delay_s),
+        max_gap=timedelta(seconds=_condition_lag(site)),
+    )
 
 
 def backflow_settings(site: Site, branch: BranchConfig) -> BackflowAlarmSettings:
@@ -1152,6 +1295,7 @@ def alarm_checks(site: Site) -> list[tuple[str, str, str, float | None]]:
     ``backflow`` (a high-priority alarm) on every branch that can run back
     (`monitor.backflow.hazard_branches`: no check valve, a termination that holds water or
     pressure), judged on the header pressure against the branch's static back-pressure.
+    ``flow_drop`` on every metered branch whose ``flow_drop`` alarm is enabled.
 
     A tag shared by several branches (a common return header) is judged once, under
     the first branch that names it.
@@ -1170,6 +1314,8 @@ def alarm_checks(site: Site) -> list[tuple[str, str, str, float | None]]:
     checks += [(branch, f"frozen {tag}", tag, None) for tag, branch in owner.items()]
     checks += [(b.name, "backflow", site.header_pressure_tag, None)
                for b in hazard_branches(site)]
+    checks += [(b.name, "flow_drop", b.flow_tag, None) for b in site.branches
+               if b.flow_drop is not None and b.flow_tag is not None]
     return checks
 
 
