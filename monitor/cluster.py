@@ -46,7 +46,14 @@ from adapters.credentials import mask_secrets
 from monitor.analysis import analyze_window
 from monitor.config import Site
 from monitor.diagnose import Finding
-from monitor.jobs import AnalyzeSummary, diagnose_site, open_source, read_tags, windows
+from monitor.jobs import (
+    AnalyzeSummary,
+    diagnose_site,
+    diagnosis_time,
+    open_source,
+    read_tags,
+    windows,
+)
 
 log = logging.getLogger(__name__)
 
@@ -262,7 +269,8 @@ def run_diagnosis(site: Site, shipped: bytes, own_source: bool, start: datetime,
     (their results are its arguments, so the scheduler runs it after them)."""
     store = _opened_store(shipped)
     source = _opened_source(site) if own_source else None
-    return diagnose_site(site, store, now=end, source=source, since=start)
+    return diagnose_site(site, store, now=diagnosis_time(store, end), source=source,
+                         since=start)
 
 
 # ---------------------------------------------------------------------------------------

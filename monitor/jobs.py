@@ -427,7 +427,9 @@ def analyze(
     Each window's fits, screening counts, balance and data health are written in one
     transaction, in window order, so an interrupted backfill keeps every window up to the
     first unfinished one and a rerun rewrites the same rows. The diagnosis then runs over
-    the whole stored history up to *end* and upserts its findings on (branch, kind, start).
+    the whole analysed history (`diagnosis_time`: up to *end*, or to the newest analysed
+    window where one later than *end* is stored) and upserts its findings on
+    (branch, kind, start).
 
     With *jobs* > 1, a backfill long enough to gain from it (*parallel_after_s*) has its
     windows read and analysed in that many worker processes (see `analyze_windows`); the
@@ -464,7 +466,8 @@ def analyze(
         if progress is not None:
             progress(i + 1, len(todo))
     since = min([start, *(ws for ws, _ in corrected)])
-    findings = diagnose_site(site, store, now=end, source=source, since=since)
+    findings = diagnose_site(site, store, now=diagnosis_time(store, end), source=source,
+                             since=since)
     log.info(
         "analysis %s .. %s: %d windows, %d fits (%d usable), %d findings",
         start, end, len(spans), n_fits, n_ok, len(findings),
@@ -700,6 +703,17 @@ def diagnosis_settings(site: Site) -> DiagnosisSettings:
         clear_after_s=float(site.analysis.clear_after),
         balance_flow_unit=unit(site.total_flow_tag),
     )
+
+
+def diagnosis_time(store: ResultsStore, end: datetime) -> datetime:
+    """The time the diagnosis after an analysis up to *end* runs to: *end*, or the end of
+    the newest analysed window where one later than *end* is stored. Analysing a past
+    period again (a late file, a correction) must not wind the stored findings back to
+    that period's end: they stay the diagnosis of the whole analysed history."""
+    ends = pd.to_datetime(store.watermarks().fits["last_window_end"], utc=True)
+    if ends.empty or pd.isna(ends.max()):
+        return end
+    return max(end, ends.max().to_pydatetime())
 
 
 def diagnose_site(

@@ -121,6 +121,22 @@ def test_rerun_of_analysis_changes_nothing(demo: dict[str, Any]) -> None:
     assert sorted(after["kind"]) == sorted(before["kind"])
 
 
+def test_analysing_a_past_period_again_keeps_the_findings_of_the_whole_history(
+    own: dict[str, Any],
+) -> None:
+    # a late file or a correction makes the user (or the catch-up) analyse a past period
+    # again: the findings must stay those of everything analysed, not wind back to the
+    # period's end (the fouling finding lost its passed cleaning limit that way)
+    store, site, source = own["store"], own["site"], own["source"]
+    columns = ["branch", "kind", "start", "end", "message"]
+    before = store.read_findings()[columns].sort_values(["branch", "kind"])
+    early = DEMO_START + timedelta(days=20)
+    summary = analyze(site, store, source, early, early + timedelta(days=1))
+    after = store.read_findings()[columns].sort_values(["branch", "kind"])
+    pd.testing.assert_frame_equal(after.reset_index(drop=True), before.reset_index(drop=True))
+    assert sorted(f.kind for f in summary.findings) == sorted(before["kind"])
+
+
 def test_resistance_findings_carry_their_cost(demo: dict[str, Any]) -> None:
     f = _found(demo, "B2-compressor", "restriction")[0]
     assert f.evidence["lost_flow_m3h"] > 0
