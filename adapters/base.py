@@ -633,8 +633,10 @@ def notifier_class(alias: str) -> type[Notifier]:
     return _lookup(Notifier._registry, alias, "notifier")
 
 
-def open_store(url: str, *, alias: str = "sqlalchemy") -> ResultsStore:
-    """Open the results store at *url* (creating or upgrading its tables)."""
+def open_store(url: str, *, alias: str = "sqlalchemy", schema: str | None = None
+               ) -> ResultsStore:
+    """Open the results store at *url* (creating or upgrading its tables), in *schema*
+    of the database where one is given (a fleet's shared store: one schema per site)."""
     cls: Any = ResultsStore.by_alias(alias)
-    store: ResultsStore = cls(url)
+    store: ResultsStore = cls(url) if schema is None else cls(url, schema=schema)
     return store

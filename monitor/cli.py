@@ -159,13 +159,16 @@ def _cmd_curve(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _open(site: Site) -> tuple[ResultsStore, ReadingsSource]:
+def _open(site: Site, *, shared: tuple[str, str] | None = None
+          ) -> tuple[ResultsStore, ReadingsSource]:
     """The site's store and readings source; bad [source] settings (an unset url_env, a
     secrets file that is missing, unreadable, open to others or holds no URL, a missing
-    driver) become one `UserError` line naming the file and key."""
+    driver) become one `UserError` line naming the file and key. *shared* (URL, schema):
+    a fleet's shared store, used instead of the site's own."""
     from monitor.jobs import open_source
 
-    store = open_store(site.store_url)
+    store = (open_store(site.store_url) if shared is None
+             else open_store(shared[0], schema=shared[1]))
     try:
         source = open_source(site)
     except (ValueError, ImportError) as exc:

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import logging
 import sys
 from collections.abc import Sequence
 from datetime import UTC, datetime
@@ -16,6 +17,8 @@ from typing import Any
 from adapters.base import ReadingsSource, ResultsStore
 from monitor.cli_text import analyze_with_progress
 from monitor.config import Site, load_site
+
+log = logging.getLogger(__name__)
 
 
 def analyze_on_cluster(
@@ -74,8 +77,14 @@ def cmd_fleet(args: argparse.Namespace) -> int:
     sites = [load_site(path) for path in fleet.sites]
     opened: list[tuple[Site, ResultsStore, ReadingsSource]] = []
     try:
-        for site in sites:
-            opened.append((site, *_open(site)))
+        for i, site in enumerate(sites):
+            if fleet.store_url is None:
+                opened.append((site, *_open(site)))
+                continue
+            key = fleet.keys[i]
+            log.info("%s: results in schema %s of the fleet's shared store (the site "
+                     "file's own [store] is not used in a fleet run)", site.name, key)
+            opened.append((site, *_open(site, shared=(fleet.store_url, key))))
         if args.start is not None:
             periods = [(_parse_time(args.start, s, "--from"), _parse_time(args.end, s, "--to"))
                        for s in sites]

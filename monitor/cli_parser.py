@@ -406,12 +406,12 @@ given up at once and shown here, in 'status' and in the next morning report.""",
 def _register_fleet(verbs: Any) -> None:
     p = _add_verb(
         verbs, "fleet", "several sites: analyse them, rank their branches",
-        """Read a fleet file (a list of site files, each with its own store), optionally analyse
-every site over a period first, then write the fleet summary page: every site's
-branches ranked by the cost of their open findings (extra pumping energy, lost flow).
-With --executor dask all sites are analysed in one run on the cluster; their stores
-must be database servers (PostgreSQL), not SQLite files. One store shared by the
-whole fleet is not supported yet.""",
+        """Read a fleet file (a list of site files, each with its own store, or one shared
+PostgreSQL store with a schema per site), optionally analyse every site over a period
+first, then write the fleet summary page: every site's branches ranked by the cost of
+their open findings (extra pumping energy, lost flow). With --executor dask all sites
+are analysed in one run on the cluster; their stores must be database servers
+(PostgreSQL), not SQLite files.""",
         config=False,
     )
     p.add_argument("config", metavar="FLEET", type=Path, help="fleet file (TOML)")

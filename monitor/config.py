@@ -53,6 +53,7 @@ __all__ = [
     "Site",
     "load_site",
     "parse_site",
+    "read_store_url",
 ]
 
 
@@ -966,9 +967,34 @@ def _running_pressure(doc: SiteFile, path: Path) -> float:
     return 50_000.0 if found is None else found
 
 
-def _store_url(sec: StoreSection, base: Path, *, allow_outside: bool) -> str:
+def read_store_url(table: Any, path: Path) -> str:
+    """The store URL a ``[store]`` *table* of the file at *path* gives (``url``, or
+    ``url_env`` / ``secrets_file`` relative to the file's folder and inside it), with the
+    site file's checks; `ConfigError` names the file and the key. The fleet file's
+    shared store is read with this too."""
+    if not isinstance(table, dict):
+        raise ConfigError(f"{path}: store must be a table ([store])")
+    try:
+        sec = StoreSection.model_validate(table)
+    except ValidationError as exc:
+        err = exc.errors()[0]
+        loc = _loc_text(("store", *err["loc"]))
+        msg = ("unknown key; allowed: url, url_env, secrets_file"
+               if err["type"] == "extra_forbidden" else err["msg"].removeprefix("Value error, "))
+        raise ConfigError(f"{path}: {loc}: {msg}") from None
+    base = path.parent
+    try:
+        if sec.secrets_file:
+            _inside(base, base / sec.secrets_file, "store.secrets_file", sec.secrets_file)
+        return _store_url(sec, base, allow_outside=False, file_kind=path.name)
+    except ValueError as exc:
+        raise ConfigError(f"{path}: {exc}") from None
+
+
+def _store_url(sec: StoreSection, base: Path, *, allow_outside: bool,
+               file_kind: str = "the site file") -> str:
     """The store URL: from the file, or read from ``url_env`` / ``secrets_file``;
-    checked for a known database kind, no password in the site file, and (SQLite) a
+    checked for a known database kind, no password in *file_kind*, and (SQLite) a
     file inside the site folder unless *allow_outside*."""
     secrets: Path | None = None
     if sec.url_env or sec.secrets_file:
@@ -983,7 +1009,7 @@ def _store_url(sec: StoreSection, base: Path, *, allow_outside: bool) -> str:
     url = parse_url(text, f"{key}: {secrets}" if secrets else key)
     if key == "store.url" and url_secrets(url):
         raise ValueError(
-            "store.url: a password in the site file is not allowed; put the URL in an "
+            f"store.url: a password in {file_kind} is not allowed; put the URL in an "
             "environment variable ([store] url_env) or a secrets file ([store] secrets_file)"
         )
     resolved = _resolve_sqlite(text, base)

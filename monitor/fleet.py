@@ -6,23 +6,35 @@ site file. `load_fleet` validates it with errors that name the file and the key.
 what its open findings cost (extra pump energy, then lost flow); `build_fleet_report`
 turns the ranking into one self-contained HTML page, every text escaped.
 
-One shared PostgreSQL store for the whole fleet (sites kept apart by a site key in every
-table) is not supported yet: a fleet file with a ``[store]`` section is refused.
+A fleet file may instead give one shared store, ``[store]`` (``url``, ``url_env`` or
+``secrets_file``, read as a site file's [store] is): a PostgreSQL database in which every
+site keeps its results in its own schema, named by the site's *key* — ``key = "..."`` in
+its ``[[site]]`` entry, or ``bw_`` and a slug of the site's name. The schema keeps the
+sites apart without a site column in any table, so the store's tables, queries and
+migrations are those of a one-site store (each schema is migrated on its own) and an
+existing store needs no migration; a site is given its own permissions or dropped with
+its schema. For a fleet run the shared store overrides each site file's own [store].
+SQLite is refused as a shared store: workers on other machines cannot share a file.
 
 Sketch of the file::
 
     [fleet]
     name = "Northern plants"
     report = "reports/fleet.html"      # relative to this file
+    [store]                            # optional: one PostgreSQL store for every site
+    url_env = "BRANCHWATCH_FLEET_DB"
     [[site]]
     file = "sites/plant-a.toml"        # relative to this file
+    key = "bw_plant_a"                 # optional: the site's schema in the shared store
 """
 
 from __future__ import annotations
 
 import html
 import math
+import re
 import tomllib
+import unicodedata
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime
@@ -32,14 +44,19 @@ from typing import Any
 import pandas as pd
 
 from adapters.base import ResultsStore
-from monitor.config import ConfigError, Site
+from adapters.credentials import parse_url
+from monitor.config import ConfigError, Site, read_store_url
 from monitor.report import CAUTION, page_head
 
 __all__ = ["BranchCost", "Fleet", "build_fleet_report", "fleet_ranking", "load_fleet",
-           "site_costs"]
+           "site_costs", "site_key"]
 
 _FLEET_KEYS = {"name", "report"}
-_SITE_KEYS = {"file"}
+_SITE_KEYS = {"file", "key"}
+#: a site key: the name of the site's schema in the shared store
+_KEY = re.compile(r"[a-z][a-z0-9_]{0,39}")
+_KEY_RULE = ("lowercase letters, digits and underscores, starting with a letter, at most "
+             "40 characters, not starting with pg_")
 
 
 @dataclass(frozen=True)
@@ -51,6 +68,49 @@ class Fleet:
     name: str
     sites: tuple[Path, ...]
     report: Path
+    #: the shared store's URL (None: every site keeps its own store)
+    store_url: str | None = None
+    #: with a shared store: each site's key, its schema there, in the order of *sites*
+    keys: tuple[str, ...] = ()
+
+
+def site_key(name: str) -> str:
+    """The default key of a site named *name*: ``bw_`` and its name in lowercase ASCII
+    letters and digits, other characters as one underscore, cut to 40 characters.
+
+    >>> site_key("Fenwick Marsh — Loop A")
+    'bw_fenwick_marsh_loop_a'
+    """
+    ascii_name = unicodedata.normalize("NFKD", name).encode("ascii", "ignore").decode()
+    slug = re.sub(r"[^a-z0-9]+", "_", ascii_name.lower()).strip("_")
+    return ("bw_" + slug)[:40].rstrip("_") if slug else ""
+
+
+def _site_name(file: Path) -> str | None:
+    """The ``[site] name`` of a site file, or None where it has none (`load_site` will
+    say what is wrong with it)."""
+    try:
+        doc = tomllib.loads(file.read_text(encoding="utf-8"))
+    except (OSError, tomllib.TOMLDecodeError):
+        return None
+    name = doc.get("site", {}).get("name") if isinstance(doc.get("site"), dict) else None
+    return name if isinstance(name, str) else None
+
+
+def _shared_store(table: Any, path: Path) -> str:
+    """The fleet's shared store URL, refused unless it is PostgreSQL."""
+    url = read_store_url(table, path)
+    backend = parse_url(url, "store").get_backend_name()
+    if backend == "sqlite":
+        raise ConfigError(
+            f"{path.name}: store: a SQLite file cannot be a fleet's shared store (workers on "
+            "other machines cannot share a file; a fleet needs a database server); give a "
+            "PostgreSQL URL, or leave [store] out and let each site keep its own store")
+    if backend != "postgresql":
+        raise ConfigError(
+            f"{path.name}: store: a fleet's shared store must be PostgreSQL (each site gets "
+            f"a schema of its own), got {backend}")
+    return url
 
 
 def load_fleet(path: Path) -> Fleet:
@@ -63,14 +123,10 @@ def load_fleet(path: Path) -> Fleet:
             from None
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{name}: not valid TOML: {exc}") from None
-    if "store" in doc:
-        raise ConfigError(
-            f"{name}: store: one shared store for the fleet is not supported yet; give each "
-            "site its own [store] in its site file and leave [store] out of the fleet file"
-        )
-    unknown = set(doc) - {"fleet", "site"}
+    unknown = set(doc) - {"fleet", "site", "store"}
     if unknown:
-        raise ConfigError(f"{name}: unknown section(s) {sorted(unknown)}; allowed: fleet, site")
+        raise ConfigError(f"{name}: unknown section(s) {sorted(unknown)}; "
+                          "allowed: fleet, store, site")
     head = doc.get("fleet", {})
     if not isinstance(head, dict):
         raise ConfigError(f"{name}: fleet must be a table ([fleet])")
@@ -85,12 +141,15 @@ def load_fleet(path: Path) -> Fleet:
     entries = doc.get("site", [])
     if not isinstance(entries, list) or not entries:
         raise ConfigError(f"{name}: site: list at least one site file ([[site]] file = ...)")
+    shared = _shared_store(doc["store"], path) if "store" in doc else None
     base = path.parent
     files: list[Path] = []
+    keys: dict[str, str] = {}  # key -> where it was given
     for i, entry in enumerate(entries):
         where = f"{name}: site[{i}]"
         if not isinstance(entry, dict) or set(entry) - _SITE_KEYS or "file" not in entry:
-            raise ConfigError(f"{where}: give exactly file = \"path/to/site.toml\"")
+            raise ConfigError(f"{where}: give file = \"path/to/site.toml\" and, with a "
+                              "shared [store], optionally key = \"schema_name\"")
         if not isinstance(entry["file"], str) or not entry["file"].strip():
             raise ConfigError(f"{where}.file must be a non-empty string")
         file = (base / entry["file"]).resolve()
@@ -100,7 +159,26 @@ def load_fleet(path: Path) -> Fleet:
         if file in files:
             raise ConfigError(f"{where}.file: {entry['file']!r} is listed twice")
         files.append(file)
-    return Fleet(path=path, name=title, sites=tuple(files), report=(base / report).resolve())
+        if shared is None:
+            if "key" in entry:
+                raise ConfigError(f"{where}.key: a key names the site's schema in the "
+                                  "fleet's shared store; give [store] or leave key out")
+            continue
+        if "key" in entry:
+            key, what = entry["key"], f"{where}.key"
+        else:
+            site_name = _site_name(file)
+            key = site_key(site_name) if site_name is not None else ""
+            what = f"{where}: the key made from its site name {site_name!r}"
+        if not isinstance(key, str) or not _KEY.fullmatch(key) or key.startswith("pg_"):
+            raise ConfigError(f"{what}: {key!r} is not a site key ({_KEY_RULE}); give "
+                              "key = \"...\" in this [[site]] entry")
+        if key in keys:
+            raise ConfigError(f"{what}: {key!r} is already the key of {keys[key]}; every "
+                              "site needs a key of its own (give key = \"...\")")
+        keys[key] = f"site[{i}]"
+    return Fleet(path=path, name=title, sites=tuple(files), report=(base / report).resolve(),
+                 store_url=shared, keys=tuple(keys))
 
 
 @dataclass(frozen=True)

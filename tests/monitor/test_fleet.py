@@ -20,7 +20,7 @@ from adapters.store import SqlStore
 from monitor.cli import main
 from monitor.config import ConfigError, load_site
 from monitor.demo import EXAMPLE_SITE
-from monitor.fleet import build_fleet_report, fleet_ranking, load_fleet
+from monitor.fleet import build_fleet_report, fleet_ranking, load_fleet, site_key
 
 T0 = datetime(2026, 6, 1, tzinfo=UTC)
 CONFIG = Path(__file__).resolve().parents[2] / "config"
@@ -106,8 +106,31 @@ def test_the_example_fleet_file_loads() -> None:
 
 
 @pytest.mark.parametrize(("text", "message"), [
-    ('[store]\nurl = "postgresql://db/fleet"\n[[site]]\nfile = "a/site.toml"\n',
-     "one shared store for the fleet is not supported yet"),
+    ('[store]\nurl = "sqlite:///fleet.db"\n[[site]]\nfile = "a/site.toml"\n',
+     r"store: a SQLite file cannot be a fleet's shared store \(workers on other machines "
+     "cannot share a file; a fleet needs a database server\\)"),
+    ('[store]\nurl = "mysql+pymysql://db/fleet"\n[[site]]\nfile = "a/site.toml"\n',
+     "shared store must be PostgreSQL"),
+    ('[store]\nurl = "postgresql://u:pw@db/fleet"\n[[site]]\nfile = "a/site.toml"\n',
+     "store.url: a password in fleet.toml is not allowed"),
+    ('[store]\nurl_env = "BW_TEST_NO_SUCH_VARIABLE"\n[[site]]\nfile = "a/site.toml"\n',
+     "store.url_env"),
+    ('[store]\nhost = "db"\n[[site]]\nfile = "a/site.toml"\n', "store.host: unknown key"),
+    ('[store]\nurl = "postgresql://db/fleet"\n[[site]]\nfile = "a/site.toml"\n'
+     '[[site]]\nfile = "b/site.toml"\n',
+     r"site\[1\]: the key made from its site name 'Plant A': 'bw_plant_a' is already the "
+     r"key of site\[0\]"),
+    ('[store]\nurl = "postgresql://db/fleet"\n[[site]]\nfile = "a/site.toml"\nkey = "k"\n'
+     '[[site]]\nfile = "b/site.toml"\nkey = "k"\n',
+     r"site\[1\].key: 'k' is already the key of site\[0\]"),
+    ('[store]\nurl = "postgresql://db/fleet"\n[[site]]\nfile = "a/site.toml"\n'
+     'key = "Plant-A"\n', r"site\[0\].key: 'Plant-A' is not a site key \(lowercase"),
+    ('[store]\nurl = "postgresql://db/fleet"\n[[site]]\nfile = "a/site.toml"\n'
+     f'key = "{"a" * 41}"\n', "is not a site key"),
+    ('[store]\nurl = "postgresql://db/fleet"\n[[site]]\nfile = "a/site.toml"\n'
+     'key = "pg_a"\n', "is not a site key"),
+    ('[[site]]\nfile = "a/site.toml"\nkey = "bw_a"\n',
+     r"site\[0\].key: a key names the site's schema in the fleet's shared store"),
     ("[fleet]\n", "list at least one site file"),
     ('[[site]]\nfile = "nowhere.toml"\n', r"site\[0\].file: 'nowhere.toml' is not a file"),
     ('[[site]]\nfile = "a/site.toml"\n[[site]]\nfile = "a/../a/site.toml"\n',
@@ -117,11 +140,26 @@ def test_the_example_fleet_file_loads() -> None:
 ])
 def test_a_bad_fleet_file_names_file_and_key(tmp_path: Path, text: str, message: str) -> None:
     _site_file(tmp_path / "a", "Plant A")
+    _site_file(tmp_path / "b", "Plant A")  # the same name: the same default key
     path = tmp_path / "fleet.toml"
     path.write_text(text)
     with pytest.raises(ConfigError, match=message) as info:
         load_fleet(path)
-    assert str(info.value).startswith("fleet.toml")
+    assert str(info.value).startswith(("fleet.toml", str(path)))
+    assert "\n" not in str(info.value)
+
+
+def test_a_shared_store_gives_every_site_a_key(tmp_path: Path) -> None:
+    _site_file(tmp_path / "a", "Fenwick Marsh — Loop A")
+    _site_file(tmp_path / "b", "Plant B")
+    path = tmp_path / "fleet.toml"
+    path.write_text('[store]\nurl = "postgresql://db.example/fleet"\n'
+                    '[[site]]\nfile = "a/site.toml"\n'
+                    '[[site]]\nfile = "b/site.toml"\nkey = "holloway_b"\n')
+    fleet = load_fleet(path)
+    assert fleet.store_url == "postgresql://db.example/fleet"
+    assert fleet.keys == ("bw_fenwick_marsh_loop_a", "holloway_b")
+    assert site_key("x" * 60) == "bw_" + "x" * 37 and site_key("—") == ""
 
 
 def test_cli_fleet_refuses_sqlite_for_dask(fleet_file: Path,
