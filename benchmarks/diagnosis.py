@@ -22,9 +22,10 @@ windows where r_true is constant and no meter is faulted. Then the goals, met or
 
 Then the alarm load (EEMUA 191) of the near-real-time checks the daemon runs at each ingest
 (`monitor.jobs.alarm_checks`: low flow per branch, frozen meter per flow and pressure tag;
-`monitor.alarms.evaluate_low_flow` / `evaluate_frozen` with the site's settings, as
-`monitor.jobs.evaluate_alarms` calls them) over each simulated year, summed by
-`monitor.alarms.alarm_rate_summary`: alarms per operator-hour (one operator for the site),
+`monitor.alarm_process.evaluate_low_flow` / `monitor.alarm_instruments.evaluate_frozen`
+with the site's settings, as `monitor.jobs.evaluate_alarms` calls them) over each
+simulated year, summed by `monitor.alarm_rates.alarm_rate_summary`: alarms per
+operator-hour (one operator for the site),
 the peak count in any 10 minutes, standing alarms (in alarm over 24 h) and chattering
 ones (3 activations within a minute). The stale-data alarm never fires on simulated
 data (no gaps) and is not counted.
@@ -62,14 +63,10 @@ from model.simulate import (
     Simulation,
     StepRestriction,
 )
-from monitor.alarms import (
-    AlarmEvent,
-    AlarmState,
-    FrozenSettings,
-    alarm_rate_summary,
-    evaluate_frozen,
-    evaluate_low_flow,
-)
+from monitor.alarm_instruments import FrozenSettings, evaluate_frozen
+from monitor.alarm_process import evaluate_low_flow
+from monitor.alarm_rates import alarm_rate_summary
+from monitor.alarms import AlarmEvent, AlarmState
 from monitor.analysis import analyze_window
 from monitor.config import Site, parse_site
 from monitor.demo import simulate_site

@@ -7,7 +7,7 @@ turns logged readings into that condition, sample by sample, for every branch th
 have it (`hazard_branches`), and turns the samples into findings (`backflow_findings`):
 one finding per branch and condition, not one per day, with its share of time, its worst
 margin and when it happens (site-local hour, load, pump speed). The alarm that comes on at
-ingest is `monitor.alarms.evaluate_backflow`; the same samples feed it (`static_margin`).
+ingest is `monitor.alarm_process.evaluate_backflow`; the same samples feed it (`static_margin`).
 
 `cannot_flow` gives, per flow meter, the times its branch cannot flow: the instrument
 screening and the frozen-meter alarm leave a meter alone that reads about zero then.

@@ -1,7 +1,7 @@
 """Low flow, the daily record: window mean flow below the branch minimum.
 
-The near-real-time alarm is `monitor.alarms`; this is its record in the findings. One
-finding per condition: each run of windows whose mean flow is below the minimum (cleared
+The near-real-time alarm is `monitor.alarm_process`; this is its record in the findings.
+One finding per condition: each run of windows whose mean flow is below the minimum (cleared
 ``low_flow_deadband`` above it) is an episode of it (`monitor.findings.Episodes`); spells
 that come back within ``clear_after_s`` are the same condition, and it ends when its last
 episode did, once ``clear_after_s`` has passed without another.

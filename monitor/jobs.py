@@ -42,22 +42,21 @@ from adapters.base import (
     StoreError,
     source_class,
 )
-from monitor.alarms import (
-    AlarmEvent,
-    AlarmState,
+from monitor.alarm_instruments import (
+    FrozenSettings,
+    StaleSettings,
+    evaluate_frozen,
+    evaluate_stale,
+)
+from monitor.alarm_process import (
     BackflowAlarmSettings,
     FlowDropSettings,
-    FrozenSettings,
     LowFlowSettings,
-    StaleSettings,
-    State,
     evaluate_backflow,
     evaluate_flow_drop,
-    evaluate_frozen,
     evaluate_low_flow,
-    evaluate_stale,
-    priority_of,
 )
+from monitor.alarms import AlarmEvent, AlarmState, State, priority_of
 from monitor.analysis import WindowAnalysis, analyze_window
 from monitor.backflow import (
     cannot_flow,

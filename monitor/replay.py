@@ -52,8 +52,8 @@ Causes and how they are told apart (DESIGN §3)
   (or a removed restriction): the finding ends at the fall, its message says how to
   log it, and a new baseline starts (`monitor.detect_fouling`).
 * **low_flow** — window mean flow below the branch minimum (the near-real-time alarm
-  is `monitor.alarms`; this is its daily record). One finding per condition: spells
-  that come back within ``clear_after_s`` are episodes of it (`monitor.findings.Episodes`);
+  is `monitor.alarm_process`; this is its daily record). One finding per condition:
+  spells that come back within ``clear_after_s`` are episodes of it (`monitor.findings.Episodes`);
   it ends when its last one did, once ``clear_after_s`` has passed without another.
 * **imbalance** — not a per-branch matter: `monitor.diagnose`.
 

@@ -11,14 +11,13 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from monitor.alarm_process import LowFlowSettings, evaluate_low_flow
+from monitor.alarm_rates import alarm_rate_summary
 from monitor.alarms import (
     AlarmEvent,
     AlarmState,
-    LowFlowSettings,
     State,
     acknowledge,
-    alarm_rate_summary,
-    evaluate_low_flow,
     remove_from_service,
     reset,
     return_to_service,
@@ -338,7 +337,7 @@ def test_returned_entry_says_the_condition_cleared() -> None:
 
 
 def test_stale_return_says_fresh_again() -> None:
-    from monitor.alarms import StaleSettings, evaluate_stale
+    from monitor.alarm_instruments import StaleSettings, evaluate_stale
 
     st = StaleSettings(stale_after=timedelta(minutes=15))
     s, ev = evaluate_stale(T0, AlarmState("header", "stale PT-100"), st,
@@ -352,7 +351,7 @@ def test_stale_return_says_fresh_again() -> None:
 
 
 def test_frozen_message_in_the_tags_unit_and_site_time() -> None:
-    from monitor.alarms import FrozenSettings, evaluate_frozen
+    from monitor.alarm_instruments import FrozenSettings, evaluate_frozen
 
     idx = pd.DatetimeIndex([T0 + timedelta(minutes=k) for k in range(70)])
     held = pd.Series(np.full(70, 31.5 * LPM), index=idx)
@@ -363,10 +362,10 @@ def test_frozen_message_in_the_tags_unit_and_site_time() -> None:
 
 
 def test_backflow_alarm_needs_two_samples_and_clears_past_the_deadband() -> None:
-    # the back-flow alarm's own rules (monitor.alarms.evaluate_backflow): header below
+    # the back-flow alarm's own rules (monitor.alarm_process.evaluate_backflow): header below
     # the static back-pressure on two samples in a row raises it; it returns only once
     # the header is 0.05 bar (deadband, our choice) above for the off-delay
-    from monitor.alarms import BackflowAlarmSettings, evaluate_backflow
+    from monitor.alarm_process import BackflowAlarmSettings, evaluate_backflow
 
     cfg = BackflowAlarmSettings(off_delay=TWO_MIN, timezone="Europe/Berlin")
     idx = pd.DatetimeIndex([T0 + timedelta(minutes=k) for k in range(12)])

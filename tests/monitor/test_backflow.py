@@ -32,7 +32,8 @@ import pytest
 
 from adapters.base import ReadingsSource, ResultsStore, open_store
 from model.water import G, density
-from monitor.alarms import AlarmState, FrozenSettings, evaluate_frozen
+from monitor.alarm_instruments import FrozenSettings, evaluate_frozen
+from monitor.alarms import AlarmState
 from monitor.backflow import cannot_flow, hazard_branches
 from monitor.cli import main
 from monitor.config import Site, load_site

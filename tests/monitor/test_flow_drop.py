@@ -17,13 +17,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from monitor.alarms import (
-    AlarmState,
-    FlowDropSettings,
-    State,
-    evaluate_flow_drop,
-    flow_level,
-)
+from monitor.alarm_process import FlowDropSettings, evaluate_flow_drop, flow_level
+from monitor.alarms import AlarmState, State
 from monitor.config import ConfigError, parse_site
 from tests.monitor.rig_recording import site_toml
 

@@ -22,12 +22,11 @@ import pandas as pd
 import pytest
 
 from adapters.base import Batch, empty_quarantine, open_store
+from monitor.alarm_instruments import StaleSettings, evaluate_stale
 from monitor.alarms import (
     AlarmState,
-    StaleSettings,
     State,
     acknowledge,
-    evaluate_stale,
     format_age,
     remove_from_service,
     shelve,

@@ -7,7 +7,8 @@ from datetime import UTC, datetime, timedelta
 import numpy as np
 import pandas as pd
 
-from monitor.alarms import AlarmState, FrozenSettings, State, evaluate_frozen
+from monitor.alarm_instruments import FrozenSettings, evaluate_frozen
+from monitor.alarms import AlarmState, State
 
 T0 = datetime(2026, 5, 1, tzinfo=UTC)
 

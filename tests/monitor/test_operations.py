@@ -16,7 +16,8 @@ import pandas as pd
 import pytest
 
 from adapters.base import open_store
-from monitor.alarms import AlarmState, State, evaluate_low_flow
+from monitor.alarm_process import evaluate_low_flow
+from monitor.alarms import AlarmState, State
 from monitor.config import Site
 from monitor.jobs import alarm_row, low_flow_settings
 from monitor.operations import AlarmAction, alarm_action, alarm_listing, status_summary
