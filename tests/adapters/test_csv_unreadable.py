@@ -22,7 +22,8 @@ import sqlalchemy as sa
 
 from adapters import csv_source
 from adapters.base import ResultsStore, TagSpec, open_store
-from adapters.csv_source import MAX_LINE_BYTES, CsvSource
+from adapters.csv_chunks import MAX_LINE_BYTES
+from adapters.csv_source import CsvSource
 from monitor.config import ConfigError, Site, parse_site
 from monitor.demo import EXAMPLE_SITE
 from monitor.jobs import IngestSummary, ingest, open_source
