@@ -50,7 +50,7 @@ def rig(hours: float, window: str, folder: Path) -> None:
           f"({min(c.length_s for c in plan)}-{max(c.length_s for c in plan)} s, depths "
           f"{min(c.depth for c in plan):.0%}-{max(c.depth for c in plan):.0%}), "
           f"made in {time.perf_counter() - t:.1f} s")
-    store, source = open_store(site.store_url), open_source(site)
+    store, source = open_store(site.store_url, schema=site.store_schema), open_source(site)
     t = time.perf_counter()
     got = ingest(site, store, source)
     print(f"  ingest: {got.stored} readings, {got.quarantined} quarantined "
@@ -99,7 +99,7 @@ def demo_year(folder: Path, days: int) -> None:
     with paths.site_file.open("a", encoding="utf-8") as f:
         f.write("\n[flow_drop]\nenabled = true\n")
     site = load_site(paths.site_file)
-    store, source = open_store(site.store_url), open_source(site)
+    store, source = open_store(site.store_url, schema=site.store_schema), open_source(site)
     got = ingest(site, store, source)
     print(f"\ndemo, {days} days: {got.stored} readings ({time.perf_counter() - t:.0f} s to build "
           "and ingest)")

@@ -159,7 +159,7 @@ def live(args: argparse.Namespace) -> int:
         daemon.wait(timeout=300)
         log_file.close()
 
-    store = open_store(site.store_url)
+    store = open_store(site.store_url, schema=site.store_schema)
     try:
         generated = pd.concat(exported)
         expected = int(generated.notna().sum().sum())
@@ -230,7 +230,7 @@ def main() -> int:
     frame = pd.DataFrame({t: v for t, v in sim.values.items() if t in site.tags}, index=times)
     inbox = folder / "inbox"
 
-    store = open_store(site.store_url)
+    store = open_store(site.store_url, schema=site.store_schema)
     source = open_source(site)
     t0 = time.perf_counter()
     exported: list[pd.DataFrame] = []
@@ -258,7 +258,7 @@ def main() -> int:
         if since == RESTART_AT:
             source.close()
             store.close()
-            store = open_store(site.store_url)
+            store = open_store(site.store_url, schema=site.store_schema)
             source = open_source(site)
         result = ingest_and_watch(site, store, source, clock=lambda t=now: t)
         if result.error:

@@ -159,6 +159,17 @@ def _cmd_curve(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _site_store(site: Site) -> ResultsStore:
+    """The site's own results store, in the schema its ``[store] schema`` names."""
+    return open_store(site.store_url, schema=site.store_schema)
+
+
+def _store_text(site: Site) -> str:
+    """The site's store for a message: its URL, passwords masked, and its schema."""
+    schema = f", schema {site.store_schema}" if site.store_schema else ""
+    return mask_secrets(site.store_url) + schema
+
+
 def _open(site: Site, *, shared: tuple[str, str] | None = None
           ) -> tuple[ResultsStore, ReadingsSource]:
     """The site's store and readings source; bad [source] settings (an unset url_env, a
@@ -167,7 +178,7 @@ def _open(site: Site, *, shared: tuple[str, str] | None = None
     a fleet's shared store, used instead of the site's own."""
     from monitor.jobs import open_source
 
-    store = (open_store(site.store_url) if shared is None
+    store = (_site_store(site) if shared is None
              else open_store(shared[0], schema=shared[1]))
     try:
         source = open_source(site)
@@ -213,7 +224,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
     except (BranchwatchAdapterError, ImportError, ValueError, KeyError) as exc:
         raise UserError(str(exc)) from None
     try:
-        print(f"results store ok: {mask_secrets(site.store_url)}")
+        print(f"results store ok: {_store_text(site)}")
         problems = source.check()
         print(f"readings source {source.name}: " + ("ok" if not problems else "PROBLEMS"))
         for p in problems:
@@ -345,7 +356,7 @@ def _cmd_log(args: argparse.Namespace) -> int:
     if given and args.branch is None:
         raise UserError("name the branch the work was done on, e.g. "
                         f"'branchwatch log {args.config} BRANCH --cleaned 2026-08-14'")
-    store = open_store(site.store_url)
+    store = _site_store(site)
     try:
         if args.withdraw is not None:
             store.withdraw_maintenance(args.withdraw, by=_who(args), note=args.note or "")
@@ -380,7 +391,7 @@ def _cmd_status(args: argparse.Namespace) -> int:
     from monitor.operations import status_summary
 
     site = _site(args)
-    store = open_store(site.store_url)
+    store = _site_store(site)
     try:
         st = status_summary(site, store, now=datetime.now(UTC))
     finally:
@@ -409,7 +420,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     curve = solve_curve(site, CurveRequest())
     if curve.ok:
         plot_system_curve(site, curve, folder / "system-curve.png")
-    store = open_store(site.store_url)
+    store = _site_store(site)
     source = open_source(site)
     try:
         print("ingesting the exports ...")
@@ -452,7 +463,7 @@ def _cmd_alarms(args: argparse.Namespace) -> int:
     )
 
     site = _site(args)
-    store = open_store(site.store_url)
+    store = _site_store(site)
     try:
         now = datetime.now(UTC)
         chosen = [(k, getattr(args, k)) for k in ALARM_OPTIONS if getattr(args, k)]
@@ -501,7 +512,7 @@ def _cmd_report(args: argparse.Namespace) -> int:
         return _monthly_report(site, args.month, now)
     day = (_parse_time(args.date, site, "--date") if args.date
            else now - timedelta(days=1))
-    store = open_store(site.store_url)
+    store = _site_store(site)
     try:
         path = _run_recorded(store, "report",
                              lambda: write_report(site, store, day=day, now=now))
@@ -521,7 +532,7 @@ def _monthly_report(site: Site, text: str, now: datetime) -> int:
     except ValueError as exc:
         raise UserError(f"--month: {exc}") from None
     start, end = month_bounds(site, month)
-    store = open_store(site.store_url)
+    store = _site_store(site)
     try:
         if store.read_fits(start=start, end=end).empty:
             marks = store.watermarks().fits
@@ -548,10 +559,10 @@ def _cmd_run(args: argparse.Namespace) -> int:
         build_notifiers(site)  # a bad [notify] setting stops the start, before waiting
     except ValueError as exc:
         raise UserError(str(exc)) from None
-    where = f"results store {mask_secrets(site.store_url)}"
+    where = f"results store {_store_text(site)}"
     # A store that is down at start is waited for, not given up on: the daemon is often
     # started by the system before its database server is ready.
-    store = wait_for(lambda: open_store(site.store_url), what=where,
+    store = wait_for(lambda: _site_store(site), what=where,
                      secret_url=site.store_url, give_up_after_s=args.duration,
                      retry_on=(BranchwatchAdapterError, ConnectionError, OSError))
     if store is None:
@@ -587,7 +598,7 @@ def _cmd_notify(args: argparse.Namespace) -> int:
     if not notifiers:
         raise UserError(f"{site.path.name}: no [notify.email] or [notify.webhook] section; "
                         "nobody to tell (see config/example-site.toml)")
-    store = open_store(site.store_url)
+    store = _site_store(site)
     try:
         now = datetime.now(UTC)
         if args.test:

@@ -47,6 +47,7 @@ from model.elements import ControlValve, Elevation, Equipment, Fittings, Pipe
 from model.network import ParallelHeader, PumpCurve
 
 __all__ = [
+    "SITE_KEY_RULE",
     "BranchConfig",
     "ConfigError",
     "EnergyPrice",
@@ -54,6 +55,7 @@ __all__ = [
     "load_site",
     "parse_site",
     "read_store_url",
+    "site_key_problem",
 ]
 
 
@@ -145,13 +147,46 @@ class SiteSection(_Strict):
         return value
 
 
+#: a site key: the name of a site's schema in a PostgreSQL store (``[store] schema`` of
+#: a site file, ``key`` of a fleet file's [[site]] entry); PostgreSQL cuts names at 63
+#: bytes and keeps ``pg_`` for itself
+_SITE_KEY = re.compile(r"[a-z][a-z0-9_]{0,39}")
+SITE_KEY_RULE = ("lowercase letters, digits and underscores, starting with a letter, at "
+                 "most 40 characters, not starting with pg_")
+
+
+def site_key_problem(key: object) -> str | None:
+    """Why *key* cannot name a site's schema, or None where it can.
+
+    >>> site_key_problem("bw_fenwick_b") is None
+    True
+    >>> site_key_problem("pg_a").startswith("'pg_a' is not a site key (lowercase")
+    True
+    """
+    if isinstance(key, str) and _SITE_KEY.fullmatch(key) and not key.startswith("pg_"):
+        return None
+    return f"{key!r} is not a site key ({SITE_KEY_RULE})"
+
+
 class StoreSection(_Strict):
     """Where results go: ``url`` (no password), or ``url_env`` / ``secrets_file`` for a
-    URL with credentials, read at load (see `adapters.credentials`)."""
+    URL with credentials, read at load (see `adapters.credentials`); ``schema``: the
+    PostgreSQL schema the site's tables are kept in (a fleet's shared store)."""
 
     url: str = "sqlite:///branchwatch.db"
     url_env: str | None = Field(default=None, min_length=1)
     secrets_file: str | None = Field(default=None, min_length=1)
+    schema_name: str | None = Field(default=None, alias="schema")
+
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+    @field_validator("schema_name")
+    @classmethod
+    def _a_site_key(cls, value: str | None) -> str | None:
+        problem = site_key_problem(value) if value is not None else None
+        if problem:
+            raise ValueError(problem)
+        return value
 
     @model_validator(mode="after")
     def _one_place(self) -> StoreSection:
@@ -735,6 +770,8 @@ class Site:
     energy_price: EnergyPrice | None = None
     #: the spans of the diagnosis (``[diagnosis]``), as durations
     diagnosis: DiagnosisSection = field(default_factory=DiagnosisSection)
+    #: ``[store] schema``: the PostgreSQL schema of the site's tables (None: the default)
+    store_schema: str | None = None
 
     @property
     def header(self) -> ParallelHeader:
@@ -895,6 +932,7 @@ def _build(doc: SiteFile, path: Path) -> Site:
         if not doc.site.allow_paths_outside:
             _inside(base, base / given, key, given)
     store_url = _store_url(doc.store, base, allow_outside=doc.site.allow_paths_outside)
+    _schema_needs_postgresql(doc.store, store_url)
     report_folder = (base / doc.report.folder).resolve()
     if not doc.site.allow_paths_outside:
         _inside(base, report_folder, "report.folder", doc.report.folder)
@@ -925,7 +963,17 @@ def _build(doc: SiteFile, path: Path) -> Site:
         notify=_notify(doc.notify, base),
         energy_price=doc.cost.energy_price if doc.cost is not None else None,
         diagnosis=doc.diagnosis,
+        store_schema=doc.store.schema_name,
     )
+
+
+def _schema_needs_postgresql(sec: StoreSection, url: str) -> None:
+    """Refuse ``[store] schema`` on a store that is not PostgreSQL."""
+    backend = parse_url(url, "store").get_backend_name()
+    if sec.schema_name is not None and backend != "postgresql":
+        raise ValueError(
+            f"store.schema: a schema is kept in a PostgreSQL store only, this store is "
+            f"{backend}; leave store.schema out or give a PostgreSQL URL")
 
 
 def _secrets_files(doc: SiteFile) -> list[tuple[str, str]]:

@@ -13,7 +13,11 @@ its ``[[site]]`` entry, or ``bw_`` and a slug of the site's name. The schema kee
 sites apart without a site column in any table, so the store's tables, queries and
 migrations are those of a one-site store (each schema is migrated on its own) and an
 existing store needs no migration; a site is given its own permissions or dropped with
-its schema. For a fleet run the shared store overrides each site file's own [store].
+its schema. For a fleet run the shared store overrides each site file's own [store] URL.
+A site file may name its schema itself (``[store] schema``, so that its own commands and
+daemon reach it): a fleet entry without a key then takes that schema as the key, and an
+entry whose key differs from it is refused — one site's results in two schemas would
+leave the fleet summary reading one the site's daemon does not write.
 SQLite is refused as a shared store: workers on other machines cannot share a file.
 
 Sketch of the file::
@@ -45,7 +49,7 @@ import pandas as pd
 
 from adapters.base import ResultsStore
 from adapters.credentials import parse_url
-from monitor.config import ConfigError, Site, read_store_url
+from monitor.config import ConfigError, Site, read_store_url, site_key_problem
 from monitor.report import CAUTION, page_head
 
 __all__ = ["BranchCost", "Fleet", "build_fleet_report", "fleet_ranking", "load_fleet",
@@ -53,10 +57,6 @@ __all__ = ["BranchCost", "Fleet", "build_fleet_report", "fleet_ranking", "load_f
 
 _FLEET_KEYS = {"name", "report"}
 _SITE_KEYS = {"file", "key"}
-#: a site key: the name of the site's schema in the shared store
-_KEY = re.compile(r"[a-z][a-z0-9_]{0,39}")
-_KEY_RULE = ("lowercase letters, digits and underscores, starting with a letter, at most "
-             "40 characters, not starting with pg_")
 
 
 @dataclass(frozen=True)
@@ -86,19 +86,27 @@ def site_key(name: str) -> str:
     return ("bw_" + slug)[:40].rstrip("_") if slug else ""
 
 
-def _site_name(file: Path) -> str | None:
-    """The ``[site] name`` of a site file, or None where it has none (`load_site` will
-    say what is wrong with it)."""
+def _site_facts(file: Path) -> tuple[str | None, str | None]:
+    """The ``[site] name`` and ``[store] schema`` of a site file, None for each it does
+    not have (`load_site` will say what is wrong with it)."""
     try:
         doc = tomllib.loads(file.read_text(encoding="utf-8"))
     except (OSError, tomllib.TOMLDecodeError):
-        return None
-    name = doc.get("site", {}).get("name") if isinstance(doc.get("site"), dict) else None
-    return name if isinstance(name, str) else None
+        return None, None
+    found = []
+    for table, key in (("site", "name"), ("store", "schema")):
+        value = doc.get(table, {}).get(key) if isinstance(doc.get(table), dict) else None
+        found.append(value if isinstance(value, str) else None)
+    return found[0], found[1]
 
 
 def _shared_store(table: Any, path: Path) -> str:
     """The fleet's shared store URL, refused unless it is PostgreSQL."""
+    if isinstance(table, dict) and "schema" in table:
+        raise ConfigError(
+            f"{path.name}: store.schema: a fleet's shared store keeps every site in a schema "
+            "of its own, named by its key; leave schema out here and give key = \"...\" in "
+            "a [[site]] entry where the default key will not do")
     url = read_store_url(table, path)
     backend = parse_url(url, "store").get_backend_name()
     if backend == "sqlite":
@@ -164,15 +172,22 @@ def load_fleet(path: Path) -> Fleet:
                 raise ConfigError(f"{where}.key: a key names the site's schema in the "
                                   "fleet's shared store; give [store] or leave key out")
             continue
+        site_name, schema = _site_facts(file)
         if "key" in entry:
             key, what = entry["key"], f"{where}.key"
+            if schema is not None and key != schema:
+                raise ConfigError(
+                    f"{what}: {key!r} is not the schema {schema!r} its site file "
+                    f"{entry['file']} names ([store] schema), which the site's own commands "
+                    "and daemon use; give the same name in both, or leave key out here")
+        elif schema is not None:
+            key, what = schema, f"{where}: the schema its site file names ([store] schema)"
         else:
-            site_name = _site_name(file)
             key = site_key(site_name) if site_name is not None else ""
             what = f"{where}: the key made from its site name {site_name!r}"
-        if not isinstance(key, str) or not _KEY.fullmatch(key) or key.startswith("pg_"):
-            raise ConfigError(f"{what}: {key!r} is not a site key ({_KEY_RULE}); give "
-                              "key = \"...\" in this [[site]] entry")
+        problem = site_key_problem(key)
+        if problem:
+            raise ConfigError(f"{what}: {problem}; give key = \"...\" in this [[site]] entry")
         if key in keys:
             raise ConfigError(f"{what}: {key!r} is already the key of {keys[key]}; every "
                               "site needs a key of its own (give key = \"...\")")

@@ -121,3 +121,30 @@ def test_corrections_policy_defaults_to_refuse_and_is_validated() -> None:
     text = str(err.value)
     assert text.startswith("site.toml: source.corrections:") and "\n" not in text
     assert "'refuse'" in text and "'apply'" in text
+
+
+def test_store_schema_is_read_for_postgresql() -> None:
+    data = _example()
+    data["store"] = {"url": "postgresql://db.example/fleet", "schema": "bw_fenwick_b"}
+    assert parse_site(data, path="site.toml").store_schema == "bw_fenwick_b"
+    assert load_site(EXAMPLE).store_schema is None
+
+
+@pytest.mark.parametrize(("store", "message"), [
+    ({"url": "sqlite:///var/b.db", "schema": "bw_b"},
+     "site.toml: store.schema: a schema is kept in a PostgreSQL store only, this store is "
+     "sqlite; leave store.schema out or give a PostgreSQL URL"),
+    ({"url": "mysql+pymysql://db.example/plant", "schema": "bw_b"},
+     "site.toml: store.schema: a schema is kept in a PostgreSQL store only, this store is "
+     "mysql; leave store.schema out or give a PostgreSQL URL"),
+    ({"url": "postgresql://db.example/fleet", "schema": "Plant-B"},
+     "site.toml: store.schema: 'Plant-B' is not a site key (lowercase letters"),
+    ({"url": "postgresql://db.example/fleet", "schema": "pg_b"},
+     "site.toml: store.schema: 'pg_b' is not a site key"),
+])
+def test_store_schema_is_refused_in_one_line(store: dict[str, str], message: str) -> None:
+    data = _example()
+    data["store"] = store
+    with pytest.raises(ConfigError) as info:
+        parse_site(data, path="site.toml")
+    assert str(info.value).startswith(message) and "\n" not in str(info.value)

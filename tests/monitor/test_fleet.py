@@ -169,3 +169,47 @@ def test_cli_fleet_refuses_sqlite_for_dask(fleet_file: Path,
     assert code == 2
     assert "cannot share; use a PostgreSQL store" in capsys.readouterr().err
     shutil.rmtree(fleet_file.parent / "out", ignore_errors=True)
+
+
+def _with_schema(site_file: Path, schema: str) -> None:
+    text = site_file.read_text().replace(
+        'url = "sqlite:///var/branchwatch.db"',
+        f'url = "postgresql://db.example/fleet"\nschema = "{schema}"')
+    site_file.write_text(text)
+
+
+def test_a_site_files_schema_is_its_key_in_the_shared_store(tmp_path: Path) -> None:
+    _with_schema(_site_file(tmp_path / "a", "Plant A"), "fenwick_a")
+    _with_schema(_site_file(tmp_path / "b", "Plant B"), "holloway_b")
+    path = tmp_path / "fleet.toml"
+    path.write_text('[store]\nurl = "postgresql://db.example/fleet"\n'
+                    '[[site]]\nfile = "a/site.toml"\n'
+                    '[[site]]\nfile = "b/site.toml"\nkey = "holloway_b"\n')
+    assert load_fleet(path).keys == ("fenwick_a", "holloway_b")
+
+
+def test_a_key_other_than_the_site_files_schema_is_refused(tmp_path: Path) -> None:
+    _with_schema(_site_file(tmp_path / "a", "Plant A"), "fenwick_a")
+    _with_schema(_site_file(tmp_path / "b", "Plant B"), "fenwick_a")
+    path = tmp_path / "fleet.toml"
+    head = '[store]\nurl = "postgresql://db.example/fleet"\n[[site]]\nfile = "a/site.toml"\n'
+    path.write_text(head + 'key = "bw_other"\n')
+    with pytest.raises(ConfigError, match=r"^fleet.toml: site\[0\].key: 'bw_other' is not the "
+                       r"schema 'fenwick_a' its site file a/site.toml names \(\[store\] "
+                       "schema\\), which the site's own commands and daemon use"):
+        load_fleet(path)
+    # two site files naming one schema: the second one's key is a duplicate
+    path.write_text(head + '[[site]]\nfile = "b/site.toml"\n')
+    with pytest.raises(ConfigError, match=r"site\[1\]: the schema its site file names "
+                       r"\(\[store\] schema\): 'fenwick_a' is already the key of site\[0\]"):
+        load_fleet(path)
+
+
+def test_the_shared_store_takes_no_schema(tmp_path: Path) -> None:
+    _site_file(tmp_path / "a", "Plant A")
+    path = tmp_path / "fleet.toml"
+    path.write_text('[store]\nurl = "postgresql://db.example/fleet"\nschema = "all"\n'
+                    '[[site]]\nfile = "a/site.toml"\n')
+    with pytest.raises(ConfigError, match=r"^fleet.toml: store.schema: a fleet's shared "
+                       "store keeps every site in a schema of its own"):
+        load_fleet(path)
