@@ -21,6 +21,7 @@ from alembic.autogenerate import compare_metadata
 from alembic.migration import MigrationContext
 
 from adapters import store as store_module
+from adapters import store_readings
 from adapters.base import Batch, ResultsStore, StoreError
 from adapters.migrations import tables
 from adapters.store import SqlStore
@@ -170,14 +171,14 @@ def test_overlapping_batch_counts_only_new_readings(store: SqlStore) -> None:
 def test_failure_inside_store_batch_leaves_nothing(
     store: SqlStore, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    real = store_module.upsert
+    real = store_readings.upsert
 
     def failing(conn: sa.Connection, table: sa.Table, *args: Any, **kw: Any) -> None:
         if table is tables.cursors_t:  # readings and quarantine are written by now
             raise RuntimeError("disk full (injected)")
         real(conn, table, *args, **kw)
 
-    monkeypatch.setattr(store_module, "upsert", failing)
+    monkeypatch.setattr(store_readings, "upsert", failing)
     with pytest.raises(RuntimeError, match="injected"):
         store.store_batch(_batch(_readings(30, ["FT-203"])), source="csv")
     monkeypatch.undo()
@@ -268,16 +269,16 @@ def test_ctrl_c_in_a_write_lets_the_transaction_end_first(
 ) -> None:
     # SIGINT arrives while the batch's transaction is open: the batch is stored whole,
     # then KeyboardInterrupt is raised, and the store takes the next write at once.
-    real_upsert = store_module.upsert
+    real_upsert = store_readings.upsert
 
     def interrupted(*args: Any, **kwargs: Any) -> None:
         real_upsert(*args, **kwargs)
         signal.raise_signal(signal.SIGINT)
 
-    monkeypatch.setattr(store_module, "upsert", interrupted)
+    monkeypatch.setattr(store_readings, "upsert", interrupted)
     with pytest.raises(KeyboardInterrupt):
         store.store_batch(_batch(_readings(3, ["FT-203"])), source="csv")
-    monkeypatch.setattr(store_module, "upsert", real_upsert)
+    monkeypatch.setattr(store_readings, "upsert", real_upsert)
     assert signal.getsignal(signal.SIGINT) is signal.default_int_handler
     assert len(_all(store, ["FT-203"])) == 3
     assert store.store_batch(_batch(_readings(4, ["FT-203"]), "b.csv"), source="csv") == 1
@@ -453,7 +454,7 @@ def test_a_concurrent_writer_never_doubles_readings(
     store.store_batch(_batch(_readings(20, tags)), source="csv")
     # Pretend the readings were not there when looked up (another writer stored them
     # between the look-up and the insert): the insert must neither double nor lose any.
-    monkeypatch.setattr(store_module, "raw_rows", lambda conn, query: [])
+    monkeypatch.setattr(store_readings, "raw_rows", lambda conn, query: [])
     try:
         store.store_batch(_batch(_readings(25, tags), offset=300), source="csv")
         monkeypatch.undo()

@@ -21,6 +21,7 @@ import pytest
 import sqlalchemy as sa
 
 from adapters import store as store_module
+from adapters.migrations.tables import UTCDateTime
 from adapters.store import SqlStore
 from monitor import cli
 from monitor.diagnose import DiagnosisSettings, diagnose
@@ -215,7 +216,7 @@ def test_upgrade_from_0005_keeps_the_logged_entries(db: tuple[str, str | None]) 
         command.upgrade(cfg, "0005_tag_case")
     old_t = sa.Table("maintenance", sa.MetaData(), sa.Column("id", sa.Integer),
                      sa.Column("branch", sa.String(100)), sa.Column("kind", sa.String(40)),
-                     sa.Column("time", store_module.UTCDateTime()), sa.Column("note", sa.Text))
+                     sa.Column("time", UTCDateTime()), sa.Column("note", sa.Text))
     with old.engine.begin() as conn:
         conn.execute(old_t.insert(), [
             {"branch": "CW-3", "kind": "cleaned", "time": NOW - timedelta(days=40),
