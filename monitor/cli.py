@@ -163,7 +163,7 @@ def _open(site: Site) -> tuple[ResultsStore, ReadingsSource]:
     """The site's store and readings source; bad [source] settings (an unset url_env, a
     secrets file that is missing, unreadable, open to others or holds no URL, a missing
     driver) become one `UserError` line naming the file and key."""
-    from monitor.jobs import open_source
+    from monitor.ingest import open_source
 
     store = open_store(site.store_url)
     try:
@@ -233,7 +233,8 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 def _cmd_ingest(args: argparse.Namespace) -> int:
-    from monitor.jobs import ingest, ingest_and_watch
+    from monitor.alarm_watch import ingest_and_watch
+    from monitor.ingest import ingest
 
     site = _site(args)
     store, source = _open(site)
@@ -275,13 +276,13 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
             summary = analyze_with_progress(site, store, source, start, end,
                                             quiet=args.quiet, jobs=args.jobs)
         if args.fits:
-            from monitor.jobs import current_fits
+            from monitor.windows import current_fits
 
             write_fits_csv(current_fits(site, store.read_fits(start=start, end=end)),
                             args.fits)
         replayed = None
         if args.alarms:
-            from monitor.jobs import replay_alarms
+            from monitor.alarm_watch import replay_alarms
 
             replayed = replay_alarms(site, store, source, start, end)
     finally:
@@ -392,8 +393,9 @@ def _cmd_status(args: argparse.Namespace) -> int:
 def _cmd_demo(args: argparse.Namespace) -> int:
     from monitor.demo import DEMO_START, prepare_demo
     from monitor.diagnose import findings_to_json
-    from monitor.jobs import ingest, open_source, write_report
+    from monitor.ingest import ingest, open_source
     from monitor.monthly import previous_month, write_monthly
+    from monitor.morning_report import write_report
     from monitor.plots import plot_system_curve
     from monitor.whatif import CurveRequest, solve_curve
 
@@ -490,7 +492,7 @@ def _cmd_alarms(args: argparse.Namespace) -> int:
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
-    from monitor.jobs import ReportWriteError, write_report
+    from monitor.morning_report import ReportWriteError, write_report
 
     site = _site(args)
     now = datetime.now(UTC)
@@ -537,7 +539,7 @@ def _monthly_report(site: Site, text: str, now: datetime) -> int:
 
 def _cmd_run(args: argparse.Namespace) -> int:
     from monitor.daemon import Daemon, last_ok_run, site_jobs, wait_for
-    from monitor.jobs import open_source
+    from monitor.ingest import open_source
     from monitor.notifications import build_notifiers
 
     site = _site(args)

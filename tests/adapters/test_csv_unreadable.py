@@ -25,7 +25,7 @@ from adapters.base import ResultsStore, TagSpec, open_store
 from adapters.csv_source import MAX_LINE_BYTES, CsvSource
 from monitor.config import ConfigError, Site, parse_site
 from monitor.demo import EXAMPLE_SITE
-from monitor.jobs import IngestSummary, ingest, open_source
+from monitor.ingest import IngestSummary, ingest, open_source
 from tests.adapters.ingest_helpers import ingest as ingest_batches
 from tests.adapters.ingest_helpers import write
 
