@@ -16,7 +16,7 @@ through `SqlStore.store_batch`.
   runs), wall and CPU of all processes. The year is estimated from each: the first
   windows (worker start included) once, the steady per-window time of the later windows
   for the rest of the 365, and the diagnosis of a whole year's history timed on its own
-  (`monitor.jobs.diagnose_site` over 365 windows made by repeating the measured windows'
+  (`monitor.site_diagnosis.diagnose_site` over 365 windows made by repeating the measured windows'
   stored fits, screening counts and balances with shifted window times).
 
 Wall and CPU time are printed: the machine is shared.
@@ -53,7 +53,8 @@ from monitor.analysis import analyze_window
 from monitor.config import Site, parse_site
 from monitor.demo import simulate_site
 from monitor.diagnose import diagnose
-from monitor.jobs import analyze, diagnose_site, diagnosis_settings
+from monitor.jobs import analyze
+from monitor.site_diagnosis import diagnose_site, diagnosis_settings
 
 EXAMPLE = Path(__file__).resolve().parent.parent / "config" / "example-site.toml"
 START = datetime(2026, 4, 1, tzinfo=UTC)

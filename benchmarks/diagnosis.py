@@ -8,10 +8,10 @@ on the tank branch, ±0.2–0.3 bar on the held process header, whose margin at 
 small) and a frozen flow meter (1–4 days). The other two branches stay clean all year.
 
 The data go through the product's code path without files or a store: per window of
-`monitor.jobs.windows` (the site's local days), `monitor.analysis.analyze_window` on the
+`monitor.windows.windows` (the site's local days), `monitor.analysis.analyze_window` on the
 simulated readings; then one `monitor.diagnose.diagnose` over the collected fit rows,
 screening counts and balances, with the columns the store keeps — as
-`monitor.jobs.diagnose_site` does with stored ones.
+`monitor.site_diagnosis.diagnose_site` does with stored ones.
 
 Printed per fault kind: recall (found with the right kind within the goal's time, and at
 any time), wrong-kind rate (another resistance, back-pressure or instrument finding on
@@ -21,11 +21,11 @@ faulted branches before their fault); median |r − r_true| / r_true over usable
 windows where r_true is constant and no meter is faulted. Then the goals, met or not.
 
 Then the alarm load (EEMUA 191) of the near-real-time checks the daemon runs at each ingest
-(`monitor.jobs.alarm_checks`: low flow per branch, frozen meter per flow and pressure tag;
-`monitor.alarm_process.evaluate_low_flow` / `monitor.alarm_instruments.evaluate_frozen`
-with the site's settings, as `monitor.jobs.evaluate_alarms` calls them) over each
-simulated year, summed by `monitor.alarm_rates.alarm_rate_summary`: alarms per
-operator-hour (one operator for the site),
+(`monitor.alarm_points.alarm_checks`: low flow per branch, frozen meter per flow and
+pressure tag; `monitor.alarm_process.evaluate_low_flow` /
+`monitor.alarm_instruments.evaluate_frozen` with the site's settings, as
+`monitor.alarm_watch.evaluate_alarms` calls them) over each simulated year, summed by
+`monitor.alarm_rates.alarm_rate_summary`: alarms per operator-hour (one operator for the site),
 the peak count in any 10 minutes, standing alarms (in alarm over 24 h) and chattering
 ones (3 activations within a minute). The stale-data alarm never fires on simulated
 data (no gaps) and is not counted.
@@ -64,6 +64,7 @@ from model.simulate import (
     StepRestriction,
 )
 from monitor.alarm_instruments import FrozenSettings, evaluate_frozen
+from monitor.alarm_points import alarm_checks, low_flow_settings
 from monitor.alarm_process import evaluate_low_flow
 from monitor.alarm_rates import alarm_rate_summary
 from monitor.alarms import AlarmEvent, AlarmState
@@ -71,7 +72,8 @@ from monitor.analysis import analyze_window
 from monitor.config import Site, parse_site
 from monitor.demo import simulate_site
 from monitor.diagnose import Finding, diagnose
-from monitor.jobs import alarm_checks, diagnosis_settings, low_flow_settings, windows
+from monitor.site_diagnosis import diagnosis_settings
+from monitor.windows import windows
 
 EXAMPLE = Path(__file__).resolve().parent.parent / "config" / "example-site.toml"
 YEAR_START = datetime(2026, 1, 1, tzinfo=UTC)
@@ -291,9 +293,9 @@ def run_site(seed: int, step_s: float, cache: Path | None = None) -> SiteResult:
 
 
 def alarm_journal(site: Site, sim: Simulation) -> list[AlarmEvent]:
-    """The near-real-time checks (`monitor.jobs.alarm_checks`) over the year: low flow
-    (`evaluate_low_flow` with `monitor.jobs.low_flow_settings`) and frozen meter
-    (`evaluate_frozen`, ``[analysis] frozen_hold``), as `monitor.jobs.evaluate_alarms`
+    """The near-real-time checks (`monitor.alarm_points.alarm_checks`) over the year: low flow
+    (`evaluate_low_flow` with `monitor.alarm_points.low_flow_settings`) and frozen meter
+    (`evaluate_frozen`, ``[analysis] frozen_hold``), as `monitor.alarm_watch.evaluate_alarms`
     runs them at each ingest. The checks are incremental over samples (their state
     carries the delays from one ingest to the next), so one call over the year gives the
     journal the ingests would have written, up to the time each ingest happens."""

@@ -31,9 +31,11 @@ import pandas as pd
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from adapters.base import open_store
+from monitor.alarm_watch import replay_alarms
 from monitor.config import load_site
 from monitor.demo import DEMO_START, demo_faults, prepare_demo
-from monitor.jobs import analyze, ingest, open_source, replay_alarms
+from monitor.ingest import ingest, open_source
+from monitor.jobs import analyze
 from tests.monitor.rig_recording import START, closures_plan, record, site_toml
 
 

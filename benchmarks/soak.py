@@ -2,7 +2,7 @@
 
 The example site (`config/example-site.toml`) is simulated for one day at 1-minute
 samples. A historian exporter drops a wide CSV export into the inbox every 15 minutes,
-and the daemon's ingest job (`monitor.jobs.ingest_and_watch`, what `run` calls on its
+and the daemon's ingest job (`monitor.alarm_watch.ingest_and_watch`, what `run` calls on its
 schedule) runs every 15 minutes on a virtual clock, then the daily analysis and the
 morning report run as `run` runs them. On the way the source misbehaves:
 
@@ -216,7 +216,10 @@ def main() -> int:
     if args.live:
         return live(args)
 
-    from monitor.jobs import catch_up, ingest_and_watch, open_source, write_report
+    from monitor.alarm_watch import ingest_and_watch
+    from monitor.ingest import open_source
+    from monitor.jobs import catch_up
+    from monitor.morning_report import write_report
 
     folder = args.folder or Path(tempfile.mkdtemp(prefix="bw-soak-"))
     if folder.exists():

@@ -291,7 +291,7 @@ def evaluate_flow_drop(
         pressure drop, Darcy–Weisbach with a constant friction factor). So a pump turned
         down at night lowers the level with the flow, and a closure, which raises the
         header a little, does not hide. Give it only where the header gauge resolves the
-        driving pressure finely (`monitor.jobs` does it below 2 % of it).
+        driving pressure finely (`monitor.alarm_points` does it below 2 % of it).
 
     ``last_value`` is the flow [m^3/s]; ``pending_since`` / ``clear_since`` as usual. The
     level of an active alarm is taken from before ``activated_at - hold``.

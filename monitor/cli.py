@@ -176,7 +176,7 @@ def _open(site: Site, *, shared: tuple[str, str] | None = None
     secrets file that is missing, unreadable, open to others or holds no URL, a missing
     driver) become one `UserError` line naming the file and key. *shared* (URL, schema):
     a fleet's shared store, used instead of the site's own."""
-    from monitor.jobs import open_source
+    from monitor.ingest import open_source
 
     store = (_site_store(site) if shared is None
              else open_store(shared[0], schema=shared[1]))
@@ -247,7 +247,8 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 def _cmd_ingest(args: argparse.Namespace) -> int:
-    from monitor.jobs import ingest, ingest_and_watch
+    from monitor.alarm_watch import ingest_and_watch
+    from monitor.ingest import ingest
 
     site = _site(args)
     store, source = _open(site)
@@ -289,13 +290,13 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
             summary = analyze_with_progress(site, store, source, start, end,
                                             quiet=args.quiet, jobs=args.jobs)
         if args.fits:
-            from monitor.jobs import current_fits
+            from monitor.windows import current_fits
 
             write_fits_csv(current_fits(site, store.read_fits(start=start, end=end)),
                             args.fits)
         replayed = None
         if args.alarms:
-            from monitor.jobs import replay_alarms
+            from monitor.alarm_watch import replay_alarms
 
             replayed = replay_alarms(site, store, source, start, end)
     finally:
@@ -406,8 +407,9 @@ def _cmd_status(args: argparse.Namespace) -> int:
 def _cmd_demo(args: argparse.Namespace) -> int:
     from monitor.demo import DEMO_START, prepare_demo
     from monitor.diagnose import findings_to_json
-    from monitor.jobs import ingest, open_source, write_report
+    from monitor.ingest import ingest, open_source
     from monitor.monthly import previous_month, write_monthly
+    from monitor.morning_report import write_report
     from monitor.plots import plot_system_curve
     from monitor.whatif import CurveRequest, solve_curve
 
@@ -504,7 +506,7 @@ def _cmd_alarms(args: argparse.Namespace) -> int:
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
-    from monitor.jobs import ReportWriteError, write_report
+    from monitor.morning_report import ReportWriteError, write_report
 
     site = _site(args)
     now = datetime.now(UTC)
@@ -551,7 +553,7 @@ def _monthly_report(site: Site, text: str, now: datetime) -> int:
 
 def _cmd_run(args: argparse.Namespace) -> int:
     from monitor.daemon import Daemon, last_ok_run, site_jobs, wait_for
-    from monitor.jobs import open_source
+    from monitor.ingest import open_source
     from monitor.notifications import build_notifiers
 
     site = _site(args)

@@ -253,7 +253,7 @@ def analyze_with_progress(
 
 
 def watch_json(site: Site, watch: Any) -> dict[str, Any]:
-    """``ingest --json``: the summary of a `monitor.jobs.WatchPass`, its error and the
+    """``ingest --json``: the summary of a `monitor.alarm_watch.WatchPass`, its error and the
     alarm changes it made."""
     summary = watch.summary
     return {**(summary.to_json_dict() if summary is not None else {}),

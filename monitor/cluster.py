@@ -13,7 +13,7 @@ of sites at once, with the work spread over the workers of a Dask scheduler:
   health on their natural keys, replacing what is there. A task retried after its worker
   died part-way writes the same rows again; nothing is doubled, nothing lost.
 * A site's **diagnosis** is one more task that waits for all of that site's window
-  tasks, then runs `monitor.jobs.diagnose_site` over the stored history in window order,
+  tasks, then runs `monitor.site_diagnosis.diagnose_site` over the stored history in window order,
   exactly as the one-machine path does after its last window.
 
 The store must be one every worker can open (`ResultsStore.shared`: a database server
@@ -46,14 +46,10 @@ from adapters.credentials import mask_secrets
 from monitor.analysis import analyze_window
 from monitor.config import Site
 from monitor.diagnose import Finding
-from monitor.jobs import (
-    AnalyzeSummary,
-    diagnose_site,
-    diagnosis_time,
-    open_source,
-    read_tags,
-    windows,
-)
+from monitor.ingest import open_source, read_tags
+from monitor.jobs import AnalyzeSummary
+from monitor.site_diagnosis import diagnose_site, diagnosis_time
+from monitor.windows import windows
 
 log = logging.getLogger(__name__)
 

@@ -90,7 +90,8 @@ Delay = Annotated[float, _quantity("s", lowest="zero")]
 FlowFloor = Annotated[float, _quantity("m3/s", lowest="zero")]
 
 
-#: Window sizes shorter than a day must divide 24 h into whole seconds (see `monitor.jobs.windows`).
+#: Window sizes shorter than a day must divide 24 h into whole seconds
+#: (see `monitor.windows.windows`).
 DAY_S = 86_400
 
 

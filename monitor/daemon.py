@@ -345,8 +345,11 @@ def site_jobs(site: Site, store: ResultsStore, source: ReadingsSource, notifiers
     """The jobs the daemon runs for *site*, by name: ingest (and the alarms on it),
     analyze, report, monthly, and notify where there are *notifiers*; each recorded in
     the store's job log (`monitor.operations.run_recorded`)."""
-    from monitor.jobs import catch_up, ingest, ingest_and_watch, write_report
+    from monitor.alarm_watch import ingest_and_watch
+    from monitor.ingest import ingest
+    from monitor.jobs import catch_up
     from monitor.monthly import previous_month, write_monthly
+    from monitor.morning_report import write_report
     from monitor.notifications import deliver, queue_alarms, queue_digest
     from monitor.operations import run_recorded
 

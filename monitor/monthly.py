@@ -653,7 +653,7 @@ def write_monthly(site: Site, store: ResultsStore, *, month: str, generated: dat
     """
     month = parse_month(month)
     _, end = month_bounds(site, month)
-    from monitor.jobs import current_fits  # jobs imports this module
+    from monitor.windows import current_fits
 
     fits = current_fits(site, store.read_fits(start=history_start(site, month), end=end))
     findings = store.read_findings()

@@ -24,14 +24,9 @@ import pandas as pd
 
 from adapters.base import ResultsStore
 from monitor import alarms as life
+from monitor.alarm_points import SOURCE_ALARM_BRANCH, alarm_row, alarm_state_from_row, stale_after
 from monitor.alarms import AlarmState, State
 from monitor.config import Site
-from monitor.jobs import (
-    SOURCE_ALARM_BRANCH,
-    alarm_row,
-    alarm_state_from_row,
-    stale_after,
-)
 
 __all__ = [
     "AlarmAction",

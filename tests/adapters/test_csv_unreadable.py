@@ -26,7 +26,7 @@ from adapters.csv_chunks import MAX_LINE_BYTES
 from adapters.csv_source import CsvSource
 from monitor.config import ConfigError, Site, parse_site
 from monitor.demo import EXAMPLE_SITE
-from monitor.jobs import IngestSummary, ingest, open_source
+from monitor.ingest import IngestSummary, ingest, open_source
 from tests.adapters.ingest_helpers import ingest as ingest_batches
 from tests.adapters.ingest_helpers import write
 

@@ -25,7 +25,7 @@ from adapters.base import ResultsStore, TagSpec, open_store
 from adapters.sql_source import SqlSource
 from monitor.config import ConfigError, Site, parse_site
 from monitor.demo import EXAMPLE_SITE
-from monitor.jobs import IngestSummary, ingest, open_source
+from monitor.ingest import IngestSummary, ingest, open_source
 from tests.adapters.ingest_helpers import ingest as ingest_batches
 
 T0 = datetime(2026, 6, 1, tzinfo=UTC)

@@ -19,9 +19,11 @@ from typing import Any
 import pandas as pd
 
 from adapters.base import open_store
+from monitor.alarm_watch import ingest_and_watch
 from monitor.config import load_site
 from monitor.demo import simulate_site
-from monitor.jobs import catch_up, ingest_and_watch, open_source
+from monitor.ingest import open_source
+from monitor.jobs import catch_up
 from tests.faults.harness import export, site_text
 
 START = datetime(2026, 6, 10, tzinfo=UTC)  # any day: the clock below is virtual

@@ -20,7 +20,7 @@ import pytest
 
 from adapters.base import open_store
 from monitor.cli import main
-from monitor.jobs import ingest, open_source
+from monitor.ingest import ingest, open_source
 from tests.faults.harness import make_site
 
 

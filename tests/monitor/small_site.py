@@ -14,7 +14,7 @@ from pathlib import Path
 from adapters.base import open_store
 from monitor.config import Site, load_site
 from monitor.demo import prepare_demo
-from monitor.jobs import ingest, open_source
+from monitor.ingest import ingest, open_source
 
 DAYS = 2
 

@@ -224,7 +224,8 @@ def alarm_site(tmp_path_factory: pytest.TempPathFactory) -> Path:
 def judged_site(alarm_site: Path, tmp_path: Path) -> tuple[Path, Site]:
     """A copy of the site whose alarms were judged now: its April data is stale."""
     from adapters.base import open_store
-    from monitor.jobs import evaluate_alarms, open_source
+    from monitor.alarm_watch import evaluate_alarms
+    from monitor.ingest import open_source
     from tests.monitor.small_site import copy_site
 
     site_file, site = copy_site(alarm_site, tmp_path / "site")

@@ -33,18 +33,14 @@ import pytest
 from adapters.base import ReadingsSource, ResultsStore, open_store
 from model.water import G, density
 from monitor.alarm_instruments import FrozenSettings, evaluate_frozen
+from monitor.alarm_watch import ingest_and_watch, replay_alarms
 from monitor.alarms import AlarmState
 from monitor.backflow import cannot_flow, hazard_branches
 from monitor.cli import main
 from monitor.config import Site, load_site
-from monitor.jobs import (
-    analyze,
-    ingest,
-    ingest_and_watch,
-    open_source,
-    replay_alarms,
-    write_report,
-)
+from monitor.ingest import ingest, open_source
+from monitor.jobs import analyze
+from monitor.morning_report import write_report
 from monitor.report import CAUTION
 
 TZ = "Europe/Berlin"

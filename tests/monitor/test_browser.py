@@ -33,8 +33,8 @@ from typing import Any
 import pytest
 
 from monitor.config import Site
-from monitor.jobs import write_report
 from monitor.monthly import write_monthly
+from monitor.morning_report import write_report
 from tests.conftest import REQUIRE_SERVERS
 from tests.monitor.test_monthly import GENERATED, MONTH, filled_store, make_site
 

@@ -41,7 +41,9 @@ from monitor.cluster import (
 )
 from monitor.config import Site, load_site
 from monitor.demo import EXAMPLE_SITE, simulate_site, write_exports
-from monitor.jobs import analyze, ingest, open_source, windows
+from monitor.ingest import ingest, open_source
+from monitor.jobs import analyze
+from monitor.windows import windows
 
 distributed = pytest.importorskip("distributed")
 

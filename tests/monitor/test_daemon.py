@@ -202,7 +202,7 @@ _POOL_SCRIPT = textwrap.dedent("""
     import pickle, sys, time
     from adapters.base import open_store
     from monitor.config import load_site
-    from monitor.jobs import worker_pool
+    from monitor.backfill import worker_pool
     site = load_site(sys.argv[1])
     store = open_store(site.store_url)
     pool = worker_pool(site, pickle.dumps(store), False, 2)
@@ -252,9 +252,9 @@ _FALLBACK_SCRIPT = textwrap.dedent("""
     import os, subprocess, sys, time
     child = '''
     import sys, time
-    import monitor.jobs as jobs
+    import monitor.backfill as backfill
     sys.platform = "no-prctl"   # take the portable path: the parent check thread alone
-    jobs._die_with_parent(int(sys.argv[1]))
+    backfill._die_with_parent(int(sys.argv[1]))
     print("ready", flush=True)
     time.sleep(600)
     '''

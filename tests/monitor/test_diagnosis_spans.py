@@ -14,7 +14,7 @@ import pytest
 
 from monitor.config import ConfigError, parse_site
 from monitor.diagnose import DiagnosisSettings, diagnose
-from monitor.jobs import diagnosis_settings
+from monitor.site_diagnosis import diagnosis_settings
 from tests.monitor.rig_recording import site_toml
 from tests.monitor.test_diagnose import Fault, make_history
 

@@ -21,7 +21,8 @@ from monitor.cli import main
 from monitor.config import load_site
 from monitor.diagnose import BranchSettings, DiagnosisSettings, Finding, diagnose
 from monitor.findings import flow_pair
-from monitor.jobs import _finding_row, diagnose_site, write_report
+from monitor.morning_report import write_report
+from monitor.site_diagnosis import _finding_row, diagnose_site
 from tests.monitor.test_diagnose import T0, Fault, days_after_t0, make_history, run
 
 EXAMPLE_SITE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"

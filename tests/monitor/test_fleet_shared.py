@@ -26,7 +26,7 @@ from monitor.cli import main
 from monitor.config import load_site
 from monitor.demo import EXAMPLE_SITE, simulate_site, write_exports
 from monitor.fleet import load_fleet
-from monitor.jobs import ingest, open_source
+from monitor.ingest import ingest, open_source
 
 START = datetime(2026, 5, 3, 22, tzinfo=UTC)  # local midnight, Europe/Berlin (CEST)
 END = START + timedelta(days=3)

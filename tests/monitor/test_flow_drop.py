@@ -173,8 +173,8 @@ def test_flow_drop_mistakes_are_one_line_with_their_key() -> None:
 
 
 def test_a_frozen_meter_suppresses_the_drop_check_while_its_alarm_is_in() -> None:
+    from monitor.alarm_watch import _either, _frozen_spans
     from monitor.alarms import AlarmEvent
-    from monitor.jobs import _either, _frozen_spans
 
     tag = "FT 11 loop A"
     on, off = T0 + timedelta(minutes=20), T0 + timedelta(minutes=50)

@@ -4,7 +4,7 @@ morning report's header.
 References: the alarm life cycle is ISA-18.2 / IEC 62682 (REFERENCES.md): one alarm per
 condition, acknowledged, returned to normal, shelved, out of service. The age limit
 (max(1 h, 4 x ingest interval, 3 x sample period)) is this project's choice, documented
-in `monitor.jobs.stale_after`. Data: the demo site (invented), see `small_site`.
+in `monitor.alarm_points.stale_after`. Data: the demo site (invented), see `small_site`.
 """
 
 from __future__ import annotations
@@ -23,6 +23,8 @@ import pytest
 
 from adapters.base import Batch, empty_quarantine, open_store
 from monitor.alarm_instruments import StaleSettings, evaluate_stale
+from monitor.alarm_points import stale_after
+from monitor.alarm_watch import evaluate_alarms, ingest_and_watch, newest_readings
 from monitor.alarms import (
     AlarmState,
     State,
@@ -33,14 +35,8 @@ from monitor.alarms import (
 )
 from monitor.cli import main
 from monitor.config import Site
-from monitor.jobs import (
-    evaluate_alarms,
-    ingest_and_watch,
-    newest_readings,
-    open_source,
-    stale_after,
-    write_report,
-)
+from monitor.ingest import open_source
+from monitor.morning_report import write_report
 from tests.monitor.small_site import copy_site, ingested_site
 
 T0 = datetime(2026, 12, 2, 6, 0, tzinfo=UTC)

@@ -18,11 +18,13 @@ import pytest
 
 from adapters.base import open_store
 from adapters.store import SqlStore
-from monitor import jobs as jobs_module
+from monitor import backfill
 from monitor.cli import main
 from monitor.config import Site, load_site
 from monitor.demo import DEMO_START, prepare_demo
-from monitor.jobs import analyze, ingest, open_source, windows
+from monitor.ingest import ingest, open_source
+from monitor.jobs import analyze
+from monitor.windows import windows
 
 DAYS = 6
 END = DEMO_START + timedelta(days=DAYS)
@@ -81,13 +83,13 @@ def _fits(store: SqlStore) -> pd.DataFrame:
 def _spy_workers(monkeypatch: pytest.MonkeyPatch) -> list[int]:
     """Counts of windows handed to worker processes, one entry per pool."""
     handed: list[int] = []
-    real = jobs_module._in_workers
+    real = backfill._in_workers
 
     def spy(*args: Any) -> Any:
         handed.append(len(args[3]))
         return real(*args)
 
-    monkeypatch.setattr(jobs_module, "_in_workers", spy)
+    monkeypatch.setattr(backfill, "_in_workers", spy)
     return handed
 
 

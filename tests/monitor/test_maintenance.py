@@ -310,7 +310,8 @@ def test_simulated_site_logged_cleanings_checked_against_the_fits(tmp_path: Path
     from model.scenario import Cleaning, FoulingRamp
     from monitor.config import load_site
     from monitor.demo import simulate_site, write_exports
-    from monitor.jobs import analyze, ingest, open_source
+    from monitor.ingest import ingest, open_source
+    from monitor.jobs import analyze
 
     start, days = datetime(2026, 4, 1, tzinfo=UTC), 75
     day = timedelta(days=1)

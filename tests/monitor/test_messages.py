@@ -35,7 +35,8 @@ from monitor.config import parse_site
 from monitor.demo import simulate_site
 from monitor.diagnose import BranchSettings, DiagnosisSettings, Finding, diagnose
 from monitor.findings import percent
-from monitor.jobs import diagnosis_settings, windows
+from monitor.site_diagnosis import diagnosis_settings
+from monitor.windows import windows
 from tests.monitor.test_diagnose import Fault, make_history
 
 EXAMPLE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"

@@ -29,7 +29,6 @@ from monitor import cli
 from monitor.config import ConfigError, Site, load_site, parse_energy_price
 from monitor.daemon import Daemon, _monthly, last_fire_time
 from monitor.findings import Finding
-from monitor.jobs import _with_cost, write_report
 from monitor.monthly import (
     MonthlyInputs,
     build_monthly,
@@ -40,6 +39,8 @@ from monitor.monthly import (
     previous_month,
     write_monthly,
 )
+from monitor.morning_report import write_report
+from monitor.site_diagnosis import _with_cost
 
 EXAMPLE_SITE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"
 T0 = datetime(2025, 9, 1, tzinfo=UTC)
@@ -225,8 +226,9 @@ def test_daily_cost_agrees_with_the_findings_cost_and_scales_with_the_rise(site:
     finally:
         store.close()
     days = daily_costs(site, fits, findings).set_index(["branch", "window_start"])
-    # the cost the daily diagnosis stores in a finding's evidence (monitor.jobs._with_cost,
-    # from the newest fit) is the monthly report's cost of that same day: one rule
+    # the cost the daily diagnosis stores in a finding's evidence
+    # (monitor.site_diagnosis._with_cost, from the newest fit) is the monthly report's cost
+    # of that same day: one rule
     f = finding_rows()[0]
     costed = _with_cost(site, fits, Finding(
         branch=f["branch"], kind=f["kind"], start=f["start"], detected=f["detected"],

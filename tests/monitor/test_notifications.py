@@ -22,7 +22,7 @@ import pytest
 from adapters.base import open_store
 from monitor.cli import main
 from monitor.config import load_site
-from monitor.jobs import write_report
+from monitor.morning_report import write_report
 from monitor.notifications import (
     alarm_priority,
     build_notifiers,

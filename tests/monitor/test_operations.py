@@ -16,10 +16,10 @@ import pandas as pd
 import pytest
 
 from adapters.base import open_store
+from monitor.alarm_points import alarm_row, low_flow_settings
 from monitor.alarm_process import evaluate_low_flow
 from monitor.alarms import AlarmState, State
 from monitor.config import Site
-from monitor.jobs import alarm_row, low_flow_settings
 from monitor.operations import AlarmAction, alarm_action, alarm_listing, status_summary
 
 BRANCH = "B3-quench"  # limit 20 m3/h in the demo site file

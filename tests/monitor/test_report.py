@@ -22,7 +22,7 @@ import pytest
 
 from adapters.store import SqlStore
 from monitor.config import Site, load_site
-from monitor.jobs import write_report
+from monitor.morning_report import write_report
 from monitor.report import ReportInputs, attention_order, build_report
 
 EXAMPLE_SITE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"

@@ -18,8 +18,11 @@ import numpy as np
 import pytest
 
 from adapters.base import open_store
+from monitor.alarm_watch import replay_alarms
 from monitor.config import load_site, parse_site
-from monitor.jobs import analyze, diagnosis_settings, ingest, open_source, replay_alarms
+from monitor.ingest import ingest, open_source
+from monitor.jobs import analyze
+from monitor.site_diagnosis import diagnosis_settings
 from tests.monitor.rig_recording import START, Closure, record, site_toml
 
 CLOSURE = Closure(branch=0, start_s=420, length_s=420, depth=0.08)

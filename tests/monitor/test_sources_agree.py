@@ -23,7 +23,8 @@ from adapters.units import from_si
 from monitor.analysis import analyze_window
 from monitor.config import load_site, parse_site
 from monitor.demo import DEMO_START, EXAMPLE_SITE, simulate_site
-from monitor.jobs import ingest, open_source, read_window, windows
+from monitor.ingest import ingest, open_source, read_window
+from monitor.windows import windows
 
 DAYS = 4
 

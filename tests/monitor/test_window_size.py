@@ -16,7 +16,7 @@ import pytest
 from adapters.base import open_store
 from monitor.cli import main
 from monitor.config import load_site
-from monitor.jobs import current_fits
+from monitor.windows import current_fits
 from tests.monitor.small_site import copy_site, ingested_site
 
 

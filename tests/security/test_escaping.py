@@ -19,7 +19,7 @@ import tomli_w
 
 from adapters.store import SqlStore
 from monitor.config import load_site
-from monitor.jobs import write_report
+from monitor.morning_report import write_report
 from monitor.notifications import queue_test
 
 EXAMPLE = Path(__file__).parents[2] / "config" / "example-site.toml"
