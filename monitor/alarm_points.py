@@ -20,7 +20,7 @@ from monitor.alarms import (
 )
 from monitor.backflow import hazard_branches, static_margin, termination_words
 from monitor.config import BranchConfig, Site
-from monitor.quality import resolution_by_tag
+from monitor.sample_checks import resolution_by_tag
 
 __all__ = [
     "SOURCE_ALARM_BRANCH",

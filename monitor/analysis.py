@@ -34,10 +34,10 @@ from monitor.config import BranchConfig, Site
 from monitor.quality import (
     ScreenSettings,
     TagLimits,
-    resolution_by_tag,
     running_mask,
     screen,
 )
+from monitor.sample_checks import resolution_by_tag
 
 log = logging.getLogger(__name__)
 
