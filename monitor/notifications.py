@@ -47,7 +47,8 @@ from adapters.base import (
 )
 from adapters.credentials import read_secret, remember_secret
 from monitor.alarms import State, describe_condition
-from monitor.config import NotifySection, Site
+from monitor.analysis_sections import NotifySection
+from monitor.config import Site
 
 log = logging.getLogger(__name__)
 

@@ -13,7 +13,8 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
-from monitor.config import DAY_S, Site, window_problem
+from monitor.config import Site
+from monitor.site_sections import DAY_S, window_problem
 
 log = logging.getLogger(__name__)
 

@@ -32,7 +32,8 @@ def test_finding_cost() -> None:
 
 
 def test_energy_is_priced_per_joule() -> None:
-    from monitor.config import EnergyPrice, load_site
+    from monitor.analysis_sections import EnergyPrice
+    from monitor.config import load_site
 
     site = load_site(Path(__file__).parents[2] / "config" / "example-site.toml")
     priced = dataclasses.replace(site, energy_price=EnergyPrice(0.18, "EUR"))

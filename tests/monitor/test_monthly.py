@@ -26,7 +26,8 @@ import pytest
 
 from adapters.store import SqlStore
 from monitor import cli
-from monitor.config import ConfigError, Site, load_site, parse_energy_price
+from monitor.analysis_sections import parse_energy_price
+from monitor.config import ConfigError, Site, load_site
 from monitor.daemon import Daemon, _monthly, last_fire_time
 from monitor.findings import Finding
 from monitor.monthly import (
