@@ -269,6 +269,9 @@ def test_ctrl_c_in_a_write_lets_the_transaction_end_first(
 ) -> None:
     # SIGINT arrives while the batch's transaction is open: the batch is stored whole,
     # then KeyboardInterrupt is raised, and the store takes the next write at once.
+    # Python's own Ctrl-C handler, as in a terminal: a run started in the background
+    # (nohup, a service) inherits SIGINT ignored (the autouse fixture restores it after)
+    signal.signal(signal.SIGINT, signal.default_int_handler)
     real_upsert = store_readings.upsert
 
     def interrupted(*args: Any, **kwargs: Any) -> None:
