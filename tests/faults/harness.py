@@ -155,15 +155,17 @@ def run_killed(args: Sequence[str], *, kills: int, rng: random.Random, span_s: f
                out: Path, timeout_s: float = 600.0, min_s: float = 1.0) -> KillLog:
     """Run the CLI with *args*; SIGKILL it *kills* times, each after a delay drawn from
     *rng* in [*min_s*, *span_s*] (a run that ends first is counted as done and run again
-    with a new draw, up to 3 x *kills* starts); then run it once more to its end. *out*
-    gets all output."""
+    with a new draw inside the time it took, up to 3 x *kills* starts); then run it once
+    more to its end. *out* gets all output."""
     log = KillLog()
+    low, high = min_s, span_s
     with out.open("ab") as fh:
         for _ in range(3 * kills):
             if log.kills >= kills:
                 break
-            delay = rng.uniform(min_s, span_s)
+            delay = rng.uniform(low, high)
             proc = cli(args, log_file=fh)
+            t0 = time.monotonic()
             try:
                 proc.wait(timeout=delay)
             except subprocess.TimeoutExpired:
@@ -171,6 +173,11 @@ def run_killed(args: Sequence[str], *, kills: int, rng: random.Random, span_s: f
                 proc.wait()
                 log.kills += 1
                 log.at_s.append(round(delay, 2))
+            else:
+                # the run ended before its draw (a fast machine, little left to do): the
+                # next draws fall inside the time it took, so the kills asked for land
+                took = time.monotonic() - t0
+                low, high = min(low, 0.2 * took), max(min(high, 0.8 * took), 0.05)
             log.restarts += 1
         proc = cli(args, log_file=fh)
         log.last_rc = proc.wait(timeout=timeout_s)
