@@ -54,6 +54,8 @@ from typing import Any, ClassVar
 import numpy as np
 import pandas as pd
 
+from adapters.fit_record import WindowFit
+
 __all__ = [
     "ALARM_STATES",
     "CORRECTION_ATOL",
@@ -406,7 +408,7 @@ class ResultsStore(abc.ABC):
 
     # fits and findings ---------------------------------------------------------------
     @abc.abstractmethod
-    def upsert_fits(self, rows: Iterable[Mapping[str, Any]]) -> int:
+    def upsert_fits(self, fits: Iterable[WindowFit]) -> int:
         """Store fit results keyed on (branch, window_start, window_end), replacing any."""
 
     @abc.abstractmethod
@@ -422,7 +424,7 @@ class ResultsStore(abc.ABC):
     def store_window(
         self,
         *,
-        fits: Iterable[Mapping[str, Any]],
+        fits: Iterable[WindowFit],
         screening: pd.DataFrame,
         balance: Mapping[str, Any] | None,
         health: pd.DataFrame,

@@ -13,11 +13,10 @@ from typing import Any
 import pandas as pd
 import sqlalchemy as sa
 
+from adapters.fit_record import FIT_COLUMNS, FIT_FLOATS, WindowFit
 from adapters.migrations.dialects import num, upsert
 from adapters.migrations.tables import (
     FINDING_COLUMNS,
-    FIT_COLUMNS,
-    FIT_FLOATS,
     data_health_t,
     findings_t,
     fits_t,
@@ -33,13 +32,13 @@ class AnalysisTables(StoreTransactions):
     data health and findings."""
 
     # fits and findings ---------------------------------------------------------------
-    def upsert_fits(self, rows: Iterable[Mapping[str, Any]]) -> int:
+    def upsert_fits(self, fits: Iterable[WindowFit]) -> int:
         """Store fit results, one per (branch, window_start, window_end), replacing any.
 
-        Each row has the keys of `FIT_COLUMNS` (``computed_at`` defaults to now; the
-        optional numbers may be missing or NaN, stored as NULL). Returns the rows written.
+        ``computed_at`` defaults to now; NaN numbers are stored as NULL. Returns the rows
+        written.
         """
-        out = _fit_records(rows)
+        out = _fit_records(fits)
         with self._write() as conn:
             upsert(conn, fits_t, out, ("branch", "window_start", "window_end"), replace=True)
         return len(out)
@@ -47,7 +46,7 @@ class AnalysisTables(StoreTransactions):
     def store_window(
         self,
         *,
-        fits: Iterable[Mapping[str, Any]],
+        fits: Iterable[WindowFit],
         screening: pd.DataFrame,
         balance: Mapping[str, Any] | None,
         health: pd.DataFrame,
@@ -206,13 +205,16 @@ def _ceil_day(t: datetime) -> date:
     return pd.Timestamp(t).ceil("D").date()
 
 
-def _fit_records(rows: Iterable[Mapping[str, Any]]) -> list[dict[str, Any]]:
+def _fit_records(fits: Iterable[WindowFit]) -> list[dict[str, Any]]:
     now = datetime.now(UTC)
     out = []
-    for row in rows:
+    for fit in fits:
+        if not isinstance(fit, WindowFit):
+            raise TypeError(f"a fit must be an adapters.fit_record.WindowFit, got "
+                            f"{type(fit).__name__}")
         rec = _record(
-            row, FIT_COLUMNS, ("branch", "window_start", "window_end", "samples", "status"),
-            "fit",
+            fit.to_row(), FIT_COLUMNS,
+            ("branch", "window_start", "window_end", "samples", "status"), "fit",
         )
         rec["computed_at"] = rec.get("computed_at") or now
         for col in FIT_FLOATS:

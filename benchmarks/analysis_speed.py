@@ -46,7 +46,7 @@ import numpy as np
 import pandas as pd
 
 from adapters.base import Batch, ReadingsSource, empty_quarantine
-from adapters.migrations.tables import FIT_COLUMNS
+from adapters.fit_record import fits_of
 from adapters.store import SqlStore
 from model.simulate import Simulation
 from monitor.analysis import analyze_window
@@ -177,7 +177,7 @@ def run(site: Site, store: SqlStore, days: int) -> Timing:
         timing.cpu_read += c1 - c0
         timing.wall_compute += w2 - w1
         timing.cpu_compute += c2 - c1
-        fits += [{k: f.get(k) for k in FIT_COLUMNS if k in f} for f in result.fits]
+        fits += [f.to_row() for f in result.fits]
         screening.append(result.screening)
         if result.balance is not None:
             balance.append(result.balance)
@@ -300,7 +300,7 @@ def year_history(store: SqlStore, days: int, target: int) -> None:
                 row = b.iloc[0].to_dict()
                 row["window_start"] += shift
                 row["window_end"] += shift
-            store.store_window(fits=f.drop(columns="computed_at").to_dict(orient="records"),
+            store.store_window(fits=fits_of(f.drop(columns="computed_at")),
                                screening=sc, balance=row, health=no_health)
 
 

@@ -54,7 +54,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from adapters.migrations.tables import FIT_COLUMNS, header_balance_t, window_checks_t
+from adapters.fit_record import WindowFit
+from adapters.migrations.tables import header_balance_t, window_checks_t
 from model.simulate import (
     BackPressureStep,
     Fault,
@@ -239,7 +240,7 @@ def analyse_site(seed: int, step_s: float) -> Analysed:
         i0, i1 = np.searchsorted(t_ns, [np.datetime64(ws.replace(tzinfo=None), "ns"),
                                         np.datetime64(we.replace(tzinfo=None), "ns")])
         result = analyze_window(site, _window_frame(site, sim, int(i0), int(i1)), ws, we)
-        fits += [{k: f.get(k) for k in FIT_COLUMNS if k in f} for f in result.fits]
+        fits += [f.to_row() for f in result.fits]
         screening.append(result.screening[[c for c in SCREENING_KEEP
                                            if c in result.screening.columns]])
         if result.balance is not None:
@@ -317,12 +318,12 @@ def alarm_journal(site: Site, sim: Simulation) -> list[AlarmEvent]:
     return sorted(out, key=lambda e: e.time)
 
 
-def _r_error(site: Site, sim: Simulation, fit: dict[str, Any], i0: int, i1: int,
+def _r_error(site: Site, sim: Simulation, fit: WindowFit, i0: int, i1: int,
              faulted_tags: set[str]) -> list[float]:
     """|r − r_true| / r_true of a usable fit where r_true is constant in the window."""
-    if fit.get("status") not in ("ok", "not_identifiable") or not math.isfinite(fit["r"]):
+    if not fit.counts or not math.isfinite(fit.r):
         return []
-    branch = site.branch(fit["branch"])
+    branch = site.branch(fit.branch)
     tags = {branch.flow_tag, *branch.logged_conditions.values(), site.header_pressure_tag}
     if any(tag in faulted_tags and sim.truth.instrument_fault[tag][i0:i1].any()
            for tag in tags if tag):
@@ -331,7 +332,7 @@ def _r_error(site: Site, sim: Simulation, fit: dict[str, Any], i0: int, i1: int,
     if len(true) == 0 or float(np.ptp(true)) > 1e-3:
         return []
     r_true = float(np.mean(true))
-    return [abs(float(fit["r"]) - r_true) / r_true]
+    return [abs(fit.r - r_true) / r_true]
 
 
 def _false_findings(site: Site, res: SiteResult, end: datetime) -> None:

@@ -56,6 +56,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from analysis_speed import readings_frame, synthetic_site
 
 from adapters.base import Batch, empty_quarantine
+from adapters.fit_record import fits_of
 from adapters.migrations.tables import (
     data_health_t,
     findings_t,
@@ -132,7 +133,7 @@ def write_rate(store: SqlStore) -> tuple[float, int]:
     groups = list(fits.groupby("window_start"))
     t0 = time.perf_counter()
     for ws, rows in groups:
-        store.store_window(fits=rows.to_dict(orient="records"),
+        store.store_window(fits=fits_of(rows),
                            screening=screening[screening["window_start"] == ws],
                            balance=None, health=pd.DataFrame())
     return len(fits) / (time.perf_counter() - t0), len(fits)

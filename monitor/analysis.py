@@ -13,13 +13,14 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Collection
-from dataclasses import dataclass, fields, replace
+from dataclasses import dataclass, replace
 from datetime import datetime
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
+from adapters.fit_record import AfterStep, FitSums, WindowFit
 from adapters.units import from_si
 from model.fit import (
     ChangePoint,
@@ -64,14 +65,14 @@ def tail_rule(window_s: float, grid_s: float) -> StepRule:
 #: Samples at or below a quarter of the branch's minimum flow, and never less than this,
 #: carry too little dynamic drop to fit [m^3/s] (0.36 m3/h).
 MIN_FIT_FLOW_M3S = 1e-4
-TAIL_SUMS = ("sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy")
 
 
 @dataclass(frozen=True)
 class WindowAnalysis:
-    """What one window gave: fit rows, screening counts, the balance, data health."""
+    """What one window gave: one fit per branch, screening counts, the balance, data
+    health."""
 
-    fits: list[dict[str, Any]]
+    fits: list[WindowFit]
     screening: pd.DataFrame
     balance: dict[str, Any] | None
     health: pd.DataFrame
@@ -280,14 +281,14 @@ def _fit_row(
     site: Site, branch: BranchConfig, grid: _Grid, keep: np.ndarray,
     start: pd.Timestamp, end: pd.Timestamp, running: np.ndarray, why: _Verdicts,
     rule: StepRule, flow: np.ndarray | None = None,
-) -> dict[str, Any]:
-    """The fit row of one branch; *flow* [m^3/s] stands in for a branch without a meter."""
-    row: dict[str, Any] = {"branch": branch.name, "window_start": start, "window_end": end}
+) -> WindowFit:
+    """The fit of one branch; *flow* [m^3/s] stands in for a branch without a meter."""
+    window: dict[str, Any] = {"branch": branch.name, "window_start": start, "window_end": end}
     if (branch.flow_tag is None and flow is None) or grid.empty:
-        return {**row, **_empty(why.empty_grid if grid.empty else
-                                "no flow meter on this branch, and its flow cannot be had "
-                                "from the header balance (it needs the total flow meter and "
-                                "every other branch metered)")}
+        return WindowFit(**window, status="no_data", message=(
+            why.empty_grid if grid.empty else
+            "no flow meter on this branch, and its flow cannot be had from the header "
+            "balance (it needs the total flow meter and every other branch metered)"))
     p = grid.column(site.header_pressure_tag)
     q = flow if flow is not None else grid.column(branch.flow_tag or "")
     if site.header_temperature_tag is not None:
@@ -306,22 +307,24 @@ def _fit_row(
     coarse = None if flowing.sum() < site.analysis.min_samples else why.too_coarse(
         branch, q[flowing], t[flowing])
     if coarse is not None:
-        row.update(_empty(coarse, status="not_identifiable"))
-        row["mean_flow_m3s"] = float(np.mean(q[flowing]))
-        return row
+        return WindowFit(**window, status="not_identifiable", message=coarse,
+                         mean_flow_m3s=float(np.mean(q[flowing])))
     if mask.sum() < site.analysis.min_samples:
-        row.update(_empty(
-            why.too_few(branch, grid, keep, running, mask, floor, q),
-            status="too_few_samples"))
-        row["mean_flow_m3s"] = float(np.nanmean(q)) if np.isfinite(q).any() else math.nan
+        ends_pa = math.nan
+        after_step = None
         if branch.end_pressure_tag is not None:
             # the logged back-pressure still tells its story when r cannot be fitted
             ends = grid.column(branch.end_pressure_tag)
             if np.isfinite(ends).any():
-                row["end_pressure_pa"] = float(np.nanmedian(ends))
-            row.update(_tail(branch, grid, mask, running, seconds, None, floor, p, q, t,
-                             conditions, rule))
-        return row
+                ends_pa = float(np.nanmedian(ends))
+            after_step = _tail(branch, grid, mask, running, seconds, None, floor, p, q, t,
+                               conditions, rule)
+        return WindowFit(
+            **window, status="too_few_samples",
+            message=why.too_few(branch, grid, keep, running, mask, floor, q),
+            mean_flow_m3s=float(np.nanmean(q)) if np.isfinite(q).any() else math.nan,
+            end_pressure_pa=ends_pa, after_step=after_step,
+        )
     kwargs = {k: v[mask] for k, v in conditions.items()}
     # the whole window's fit, and a step part-way through it (a window a step came in is
     # also where the robust fit of the whole of it may not converge: looked for anyway)
@@ -330,30 +333,31 @@ def _fit_row(
         temperature_c=t[mask], min_flow_m3s=floor, rule=rule,
         min_samples=site.analysis.min_samples, **kwargs,
     )
-    row.update(_fit_fields(fit))
+    message = fit.message
     if flow is not None:
         # r ∝ 1/Q²: a flow off by δQ reads as r off by about 2·δQ/Q, the same every day
         # (changes of r still show; its level is this uncertain)
         u_m3h = _balance_u(site, grid, mask)
         rel = 2.0 * u_m3h / (3600.0 * float(np.mean(q[mask])))
-        row["message"] = (f"{row['message']}; flow from the header balance (total meter "
-                          f"minus the metered branches, ±{u_m3h:.1f} m3/h at 95 %, so the "
-                          f"level of r is uncertain by about ±{100 * rel:.0f} %)")
-    row["temperature_c"] = float(np.mean(t[mask]))
-    row["header_pressure_pa"] = float(np.mean(p[mask]))
+        message = (f"{message}; flow from the header balance (total meter minus the "
+                   f"metered branches, ±{u_m3h:.1f} m3/h at 95 %, so the level of r is "
+                   f"uncertain by about ±{100 * rel:.0f} %)")
     end_tag = branch.end_pressure_tag
-    if end_tag is not None:
-        row["end_pressure_pa"] = float(np.median(grid.column(end_tag)[mask]))
-    row.update(_tail(branch, grid, mask, running, seconds, change, floor, p, q, t, conditions,
-                     rule))
-    return row
+    return WindowFit(
+        **window, **_fit_fields(fit), message=message,
+        temperature_c=float(np.mean(t[mask])), header_pressure_pa=float(np.mean(p[mask])),
+        end_pressure_pa=(math.nan if end_tag is None
+                         else float(np.median(grid.column(end_tag)[mask]))),
+        after_step=_tail(branch, grid, mask, running, seconds, change, floor, p, q, t,
+                         conditions, rule),
+    )  # fmt: skip
 
 
 def _tail(
     branch: BranchConfig, grid: _Grid, mask: np.ndarray, running: np.ndarray,
     seconds: np.ndarray, change: ChangePoint | None, floor: float, p: np.ndarray,
     q: np.ndarray, t: np.ndarray, conditions: dict[str, np.ndarray], rule: StepRule,
-) -> dict[str, Any]:
+) -> AfterStep | None:
     """Where a step part-way through the window came, and the state after it.
 
     *change* is what `model.fit.fit_with_change` found on the fit's samples (resistance
@@ -377,12 +381,12 @@ def _tail(
         )
         change = step or change
     if change is None:
-        return {}
-    out: dict[str, Any] = {"tail_offset_s": change.time_s, "tail_change": change.change}
+        return None
+    end_after = math.nan
     if ends is not None:
         after = running & np.isfinite(ends) & (seconds >= change.time_s)
         if after.any():
-            out["tail_end_pressure_pa"] = float(np.median(ends[after]))
+            end_after = float(np.median(ends[after]))
     tail = mask & (seconds >= change.time_s)
     fit = None
     if int(tail.sum()) >= rule.min_samples:
@@ -392,32 +396,33 @@ def _tail(
             min_flow_m3s=floor, min_samples=rule.min_samples, **logged_tail,
         )
     if fit is not None and fit.usable:
-        out.update({
-            "tail_r": fit.r, "tail_r_low": fit.r_low, "tail_r_high": fit.r_high,
-            "tail_samples": fit.samples,
-            "tail_s_pa": fit.s_pa if fit.identifiable and fit.fit_static else math.nan,
-            **{f"tail_{k}": getattr(fit, k) for k in TAIL_SUMS},
-        })  # fmt: skip
-    elif "tail_end_pressure_pa" not in out:
-        return {}  # a step in the relation, but nothing to say about the state after it
+        out = AfterStep(
+            offset_s=change.time_s, change=change.change, r=fit.r, r_low=fit.r_low,
+            r_high=fit.r_high, samples=fit.samples,
+            s_pa=fit.s_pa if fit.identifiable and fit.fit_static else math.nan,
+            end_pressure_pa=end_after, sums=FitSums.of(fit),
+        )
+    elif math.isfinite(end_after):
+        out = AfterStep(offset_s=change.time_s, change=change.change,
+                        end_pressure_pa=end_after)
+    else:
+        return None  # a step in the relation, but nothing to say about the state after it
     log.debug("%s: step inside the window %.0f s after its start (%s, %.3g)", branch.name,
               change.time_s, change.signal, change.change)
     return out
 
 
 def _fit_fields(fit: FitResult) -> dict[str, Any]:
-    # a flat record of plain numbers: no need for asdict's recursive deep copy
-    skip = {"iterations", "loss", "fit_static"}
-    return {f.name: getattr(fit, f.name) for f in fields(fit) if f.name not in skip}
-
-
-def _empty(message: str, *, status: str = "no_data") -> dict[str, Any]:
-    nan = math.nan
+    """`WindowFit`'s fields that the branch's fit gives."""
     return {
-        "r": nan, "r_low": nan, "r_high": nan, "s_pa": nan, "s_low_pa": nan,
-        "s_high_pa": nan, "identifiable": None, "samples": 0, "status": status,
-        "message": message,
-    }
+        "status": fit.status, "samples": fit.samples, "identifiable": fit.identifiable,
+        "r": fit.r, "r_low": fit.r_low, "r_high": fit.r_high, "s_pa": fit.s_pa,
+        "s_low_pa": fit.s_low_pa, "s_high_pa": fit.s_high_pa, "s_fixed_pa": fit.s_fixed_pa,
+        "flow_min_m3s": fit.flow_min_m3s, "flow_max_m3s": fit.flow_max_m3s,
+        "flow_span": fit.flow_span, "mean_flow_m3s": fit.mean_flow_m3s,
+        "residual_std_pa": fit.residual_std_pa, "residual_autocorr": fit.residual_autocorr,
+        "corr_rs": fit.corr_rs, "sums": FitSums.of(fit),
+    }  # fmt: skip
 
 
 def _screening_counts(

@@ -29,6 +29,7 @@ from adapters.base import (
     open_store,
 )
 from adapters.credentials import MaskingFormatter, mask_secrets
+from adapters.fit_record import fits_of
 from adapters.units import UnitError, parse_quantity
 from monitor.cli_parser import ALARM_OPTIONS, build_parser, default_jobs
 from monitor.cli_text import (
@@ -292,8 +293,8 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
         if args.fits:
             from monitor.windows import current_fits
 
-            write_fits_csv(current_fits(site, store.read_fits(start=start, end=end)),
-                            args.fits)
+            write_fits_csv(fits_of(current_fits(site, store.read_fits(start=start, end=end))),
+                           args.fits)
         replayed = None
         if args.alarms:
             from monitor.alarm_watch import replay_alarms
@@ -432,7 +433,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
         result = analyze_with_progress(site, store, source, start, end, quiet=args.quiet,
                                         jobs=default_jobs())
         fits = store.read_fits()
-        write_fits_csv(fits, folder / "fits.csv")
+        write_fits_csv(fits_of(fits), folder / "fits.csv")
         # the last whole month of the period, then the morning report that links to it
         monthly = write_monthly(site, store, month=previous_month(site, end),
                                 generated=datetime.now(UTC))

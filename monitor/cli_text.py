@@ -5,7 +5,7 @@ as lines for a person (times in site time) or as JSON-ready objects.
 from __future__ import annotations
 
 import sys
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from datetime import datetime
 from pathlib import Path
 from typing import Any
@@ -13,6 +13,7 @@ from typing import Any
 import pandas as pd
 
 from adapters.base import ReadingsSource, ResultsStore
+from adapters.fit_record import WindowFit
 from monitor.config import Site
 
 __all__ = [
@@ -208,24 +209,24 @@ FIT_CSV_COLUMNS = (
 )
 
 
-def write_fits_csv(fits: pd.DataFrame, path: Path) -> None:
+def write_fits_csv(fits: Iterable[WindowFit], path: Path) -> None:
     """One row per branch and window; where a step came part-way through a window,
     ``step_at`` says when (UTC) and ``r_after_step`` what the samples after it give."""
-    fits = fits.copy()
-    if "tail_offset_s" in fits.columns:
-        offset = pd.to_numeric(fits["tail_offset_s"], errors="coerce")
-        at = fits["window_start"] + pd.to_timedelta(offset, unit="s")
-        fits["step_at"] = [t.floor("s").isoformat() if pd.notna(t) else "" for t in at]
-        for src, dst in (("tail_r", "r_after_step"), ("tail_r_low", "r_after_step_low"),
-                         ("tail_r_high", "r_after_step_high")):
-            if src in fits.columns:
-                fits[dst] = fits[src]
-    cols = [c for c in FIT_CSV_COLUMNS if c in fits.columns]
-    out = fits[cols].copy()
-    for c in ("window_start", "window_end"):
-        out[c] = out[c].map(lambda t: t.isoformat())
+    rows = []
+    for fit in fits:
+        row = fit.to_row()
+        step = fit.after_step
+        at = pd.Timestamp(fit.window_start) + pd.Timedelta(seconds=step.offset_s) if step else None
+        row.update(
+            window_start=pd.Timestamp(fit.window_start).isoformat(),
+            window_end=pd.Timestamp(fit.window_end).isoformat(),
+            step_at="" if at is None else at.floor("s").isoformat(),
+            r_after_step=row["tail_r"], r_after_step_low=row["tail_r_low"],
+            r_after_step_high=row["tail_r_high"],
+        )  # fmt: skip
+        rows.append({c: row[c] for c in FIT_CSV_COLUMNS})
     path.parent.mkdir(parents=True, exist_ok=True)
-    out.to_csv(path, index=False)
+    pd.DataFrame(rows, columns=list(FIT_CSV_COLUMNS)).to_csv(path, index=False)
 
 
 def analyze_with_progress(

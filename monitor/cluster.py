@@ -255,7 +255,7 @@ def run_task(site: Site, shipped: bytes, own_source: bool, task: Task) -> TaskRe
                            balance=result.balance, health=result.health)
         n_read += result.samples
         n_fits += len(result.fits)
-        n_ok += sum(1 for f in result.fits if f.get("status") in ("ok", "not_identifiable"))
+        n_ok += sum(1 for f in result.fits if f.counts)
     return TaskResult(len(task.spans), n_fits, n_ok, n_read)
 
 

@@ -31,6 +31,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from adapters.fit_record import FitHistory
 from monitor.backflow import BackflowFindingSettings, backflow_findings
 from monitor.findings import (
     BALANCE_COLUMNS,
@@ -38,14 +39,13 @@ from monitor.findings import (
     HISTORY_COLUMNS,
     KINDS,
     SCREENING_COLUMNS,
-    TAIL_COLUMNS,
     BranchSettings,
     DiagnosisSettings,
     Episodes,
     Finding,
     flow_pair,
 )
-from monitor.replay import BranchReplay, numeric, read_tails
+from monitor.replay import BranchReplay
 
 __all__ = [
     "BALANCE_COLUMNS",
@@ -53,7 +53,6 @@ __all__ = [
     "HISTORY_COLUMNS",
     "KINDS",
     "SCREENING_COLUMNS",
-    "TAIL_COLUMNS",
     "BranchSettings",
     "DiagnosisSettings",
     "Finding",
@@ -142,19 +141,18 @@ def diagnose(
 
     findings: list[Finding] = []
     header = flags.get(cfg.header_name, pd.DataFrame({"window_start": []}))
-    hist = read_tails(hist.reset_index(drop=True))
+    series = FitHistory.of(hist.reset_index(drop=True))
     by_window = None
     if bal is not None and not bal.empty:
         by_window = bal.drop_duplicates("window_start").set_index("window_start")
-    # numbers once for the whole history, sliced per branch (not a conversion per branch)
-    numbers = {c: numeric(hist, c) for c in HISTORY_COLUMNS["optional"] if c != "identifiable"}
-    for name, pos in sorted(hist.groupby("branch", sort=True).indices.items()):
+    # the typed arrays once for the whole history, sliced per branch
+    for name, pos in sorted(pd.Series(series.branch).groupby(series.branch, sort=True)
+                            .indices.items()):
         branch = str(name)
         own = flags.get(branch, pd.DataFrame({"window_start": []}))
         excluded = set(own["window_start"]) | set(header["window_start"])
-        rows = hist.iloc[pos].reset_index(drop=True)
-        replay = BranchReplay(branch, rows, excluded, by_window, cfg.for_branch(branch), cfg,
-                         {c: v[pos] for c, v in numbers.items()})  # fmt: skip
+        replay = BranchReplay(branch, series.take(pos), excluded, by_window,
+                              cfg.for_branch(branch), cfg)
         findings.extend(replay.run(events[events["branch"] == branch]))
     for name, fl in flags.items():
         findings.extend(_instrument_findings(name, fl, last_screened[name], cfg))

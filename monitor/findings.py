@@ -22,6 +22,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 import pandas as pd
 
 from adapters.base import MaintenanceKind
+from adapters.fit_record import HISTORY_NUMBERS
 from adapters.units import from_si
 
 __all__ = [
@@ -33,7 +34,6 @@ __all__ = [
     "KINDS",
     "PRIORITIES",
     "SCREENING_COLUMNS",
-    "TAIL_COLUMNS",
     "BranchSettings",
     "DiagnosisSettings",
     "Episodes",
@@ -266,30 +266,14 @@ class DiagnosisSettings:
         return self.branches.get(name, self.default_branch)
 
 
-#: History columns: required first, then optional ones the diagnosis uses when present.
-#: ``sum_w, sum_x, sum_y, sum_xx, sum_xy, sum_yy`` are the weighted sums over the samples
-#: of the window's fit (``x`` = clean dynamic ΔP [Pa], ``y`` = P_s − P_static,known [Pa],
-#: weights [-]); from them the diagnosis compares "constant offset" with "offset ∝ Q²"
-#: against its own baseline. Without them it uses ``bp_sse_static`` and
-#: ``bp_sse_resistance`` (the same comparison made by the fit against its baseline).
+#: History columns: required first, then optional ones the diagnosis uses when present
+#: (`adapters.fit_record.HISTORY_NUMBERS` says what each number is; a store's history has
+#: all of `adapters.fit_record.FIT_COLUMNS`, whose ``tail_*`` columns — a step part-way
+#: through a window — the diagnosis reads too).
 HISTORY_COLUMNS: dict[str, tuple[str, ...]] = {
     "required": ("branch", "window_start", "window_end", "r"),
-    "optional": (
-        "r_low", "r_high", "s_pa", "s_fixed_pa", "identifiable", "samples",
-        "mean_flow_m3s", "end_pressure_pa", "residual_std_pa",
-        "sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy",
-        "bp_sse_static", "bp_sse_resistance",
-    ),
-}  # fmt: skip
-#: A window's tail (optional): where a step part-way through it came [s after the window
-#: start] and the fit of the samples after it (`monitor.analysis`). The diagnosis reads
-#: such a window as its tail — the new state — so the step is named in the window it came
-#: in, and dated to the step itself.
-TAIL_COLUMNS: dict[str, str] = {
-    "r": "tail_r", "r_low": "tail_r_low", "r_high": "tail_r_high",
-    "samples": "tail_samples", "s_pa": "tail_s_pa", "end_pressure_pa": "tail_end_pressure_pa",
-    **{c: f"tail_{c}" for c in ("sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy")},
-}  # fmt: skip
+    "optional": ("identifiable", *HISTORY_NUMBERS),
+}
 #: Screening counts per window and tag; ``branch`` names the branch the tag belongs to
 #: (the header's tags use `DiagnosisSettings.header_name`). ``first_flagged`` (optional)
 #: is the time of the first flagged sample.

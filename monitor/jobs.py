@@ -119,7 +119,7 @@ def analyze(
         n_refit += (ws, we) in corrected
         n_read += result.samples
         n_fits += len(result.fits)
-        n_ok += sum(1 for f in result.fits if f.get("status") in ("ok", "not_identifiable"))
+        n_ok += sum(1 for f in result.fits if f.counts)
         if progress is not None:
             progress(i + 1, len(todo))
     since = min([start, *(ws for ws, _ in corrected)])

@@ -9,8 +9,8 @@ restriction, back-pressure from the shape of r, instrument), `monitor.detect_fou
 (`monitor.replay_track`); their sentences are `monitor.replay_text`.
 `monitor.diagnose.diagnose` runs one replay per branch and adds the instrument and
 imbalance findings, which need no replay. A window in which the analysis
-found a step part-way through (its ``tail_*`` columns, see `read_tails`) is read as its
-tail: the state after the step, dated to the step.
+found a step part-way through (`adapters.fit_record.AfterStep`) is read as the state
+after the step, dated to the step (`adapters.fit_record.FitHistory`).
 
 Causes and how they are told apart (DESIGN §3)
 ----------------------------------------------
@@ -34,7 +34,8 @@ Causes and how they are told apart (DESIGN §3)
 * **back_pressure** — the logged termination pressure (``end_pressure_pa``) or the fitted
   static pressure (``s_pa`` on identifiable windows) steps; or an ``r`` step whose window
   says "constant offset" rather than "offset ∝ Q²" (the comparison of the two one-parameter
-  hypotheses against the baseline model; from per-window sums, see `HISTORY_COLUMNS`);
+  hypotheses against the baseline model; from per-window sums,
+  `adapters.fit_record.FitSums`);
   or a window whose departure from the baseline is a clear constant offset of at least
   ``min_bp_step_pa`` (a step too small against the scatter of r to show as a jump). A
   window that fits neither hypothesis (a step part-way through it: the comparison is then
@@ -77,10 +78,9 @@ from __future__ import annotations
 import logging
 from dataclasses import dataclass, field
 
-import numpy as np
 import pandas as pd
-from numpy.typing import NDArray
 
+from adapters.fit_record import FitHistory
 from monitor.detect_fouling import FoulingDetector
 from monitor.detect_low_flow import LowFlowDetector
 from monitor.detect_pressure import PressureDetector
@@ -89,7 +89,6 @@ from monitor.findings import (
     CHECKED_BY_FITS,
     END_BY_EVENT,
     EVENT_WORDS,
-    TAIL_COLUMNS,
     BranchSettings,
     DiagnosisSettings,
     Finding,
@@ -98,7 +97,7 @@ from monitor.replay_text import event_not_checked, event_not_effective
 from monitor.replay_track import BranchTrack
 from monitor.trend import median
 
-__all__ = ["BranchReplay", "numeric", "read_tails"]
+__all__ = ["BranchReplay"]
 
 logger = logging.getLogger(__name__)
 
@@ -116,59 +115,14 @@ class _Verify:
     usable: list[int] = field(default_factory=list)  # those of them with a usable r
 
 
-def read_tails(hist: pd.DataFrame) -> pd.DataFrame:
-    """Windows with a tail (`TAIL_COLUMNS`) read as their tail; ``change_at`` is when the
-    window's state began: the step inside it, else the window start. A tail may carry a
-    logged end pressure only (a back-pressure step too late for a fit after it)."""
-    hist = hist.copy()
-    hist["change_at"] = hist["window_start"]
-    if "tail_offset_s" not in hist.columns:
-        return hist
-    step = np.isfinite(numeric(hist, "tail_offset_s"))
-    if not step.any():
-        return hist
-    fitted = step & np.isfinite(numeric(hist, "tail_r"))
-    # the back-pressure was not fitted at all (a known termination) in the whole window:
-    # nor was it in the tail
-    known = np.zeros(len(hist), dtype=bool)
-    if "identifiable" in hist.columns:
-        known = (hist["identifiable"].astype("boolean").fillna(False).to_numpy(bool)
-                 & ~np.isfinite(numeric(hist, "s_pa")))
-    for col, src in TAIL_COLUMNS.items():
-        if src not in hist.columns:
-            continue
-        value = numeric(hist, src)
-        rows = step if col == "end_pressure_pa" else fitted
-        # a tail's s is NaN where it was not identifiable; other NaNs were not logged
-        rows = rows if col == "s_pa" else rows & np.isfinite(value)
-        if col not in hist.columns or hist[col].dtype == object:
-            hist[col] = numeric(hist, col)
-        hist.loc[rows, col] = value[rows]
-    if "identifiable" in hist.columns:
-        hist["identifiable"] = hist["identifiable"].astype(object)
-        hist.loc[fitted, "identifiable"] = (known | np.isfinite(numeric(hist, "s_pa")))[fitted]
-    offset = np.where(step, numeric(hist, "tail_offset_s"), 0.0)
-    hist["change_at"] = (hist["window_start"] + pd.to_timedelta(offset, unit="s")).dt.floor("s")
-    return hist
-
-
-def numeric(frame: pd.DataFrame, c: str) -> NDArray[np.float64]:
-    """Column *c* of *frame* as floats (NaN where missing or not a number)."""
-    if c in frame.columns:
-        return np.asarray(pd.to_numeric(frame[c], errors="coerce"), dtype=float)
-    return np.full(len(frame), np.nan)
-
-
 class BranchReplay:
     """Walks one branch's windows in time order; see the module docstring."""
 
     def __init__(
-        self, name: str, rows: pd.DataFrame, flagged: set[pd.Timestamp],
+        self, name: str, history: FitHistory, flagged: set[pd.Timestamp],
         balance: pd.DataFrame | None, bs: BranchSettings, cfg: DiagnosisSettings,
-        numbers: dict[str, NDArray[np.float64]],
     ) -> None:  # fmt: skip
-        self.rows = rows
-        self.t = BranchTrack(name, rows, flagged, balance, bs, cfg, numbers)
+        self.t = BranchTrack(name, history, flagged, balance, bs, cfg)
         self.pressure = PressureDetector(self.t)
         self.steps = StepDetector(self.t)
         self.fouling = FoulingDetector(self.t)
@@ -181,7 +135,7 @@ class BranchReplay:
         in time order): the findings, ended and still open."""
         ev = list(zip(events["time"], events["kind"], strict=True))
         k = 0
-        for i in range(len(self.rows)):
+        for i in range(len(self.t.ws)):
             while k < len(ev) and ev[k][0] <= self.t.ws[i]:
                 self._event(pd.Timestamp(ev[k][0]), str(ev[k][1]))
                 k += 1

@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
+from adapters.fit_record import FitHistory
 from monitor.baseline import Segment, baseline_of
 from monitor.findings import BranchSettings, DiagnosisSettings, Episodes, Finding
 from monitor.replay_text import on_day
@@ -74,27 +75,22 @@ class BranchTrack:
     """One branch's windows in row order and the findings on it (see the module doc)."""
 
     def __init__(
-        self, name: str, rows: pd.DataFrame, flagged: set[pd.Timestamp],
+        self, name: str, history: FitHistory, flagged: set[pd.Timestamp],
         balance: pd.DataFrame | None, bs: BranchSettings, cfg: DiagnosisSettings,
-        numbers: dict[str, NDArray[np.float64]],
     ) -> None:  # fmt: skip
-        self.name, self.rows, self.flagged, self.bs, self.cfg = name, rows, flagged, bs, cfg
+        self.name, self.flagged, self.bs, self.cfg = name, flagged, bs, cfg
         self.balance = balance  # indexed by window_start, or None
-        self.col = numbers  # the optional numeric columns of `HISTORY_COLUMNS`, row order
-        self.ident = (
-            rows["identifiable"].fillna(False).astype(bool).to_numpy()
-            if "identifiable" in rows.columns
-            else np.zeros(len(rows), dtype=bool)
-        )
+        self.col = history.numbers  # `adapters.fit_record.HISTORY_NUMBERS`, row order
+        self.ident = history.identifiable
         # a copy: back-pressure shifts edit it
-        self.r: NDArray[np.float64] = np.array(rows["r"], dtype=np.float64)
-        self.ws = list(rows["window_start"])
+        self.r: NDArray[np.float64] = np.array(history.r, dtype=np.float64)
+        self.ws = list(history.window_start)
         # when each window's state began: a step inside it, else its start
-        self.at = list(rows["change_at"]) if "change_at" in rows.columns else self.ws
-        self.we = list(rows["window_end"])
+        self.at = list(history.change_at)
+        self.we = list(history.window_end)
         self.t0 = self.ws[0] if self.ws else pd.Timestamp(0, tz="UTC")
         # window starts in days since the first window [d]
-        since = pd.DatetimeIndex(rows["window_start"]) - self.t0
+        since = history.window_start - self.t0
         self.day: NDArray[np.float64] = np.asarray(since / DAY, dtype=np.float64)
         self.open_findings: dict[str, OpenFinding] = {}
         self.done: list[Finding] = []

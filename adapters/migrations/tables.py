@@ -18,6 +18,8 @@ import pandas as pd
 import sqlalchemy as sa
 from sqlalchemy.dialects import mysql
 
+from adapters.fit_record import FIT_FLOATS
+
 
 class UTCDateTime(sa.types.TypeDecorator[datetime]):
     """Aware UTC datetimes in, aware UTC datetimes out, whatever the dialect stores."""
@@ -90,18 +92,7 @@ quarantine_t = sa.Table(
     sa.Column("stored_at", T(), nullable=False),
     sa.UniqueConstraint("source", "origin", "line", "reason", name="uq_quarantine_row"),
 )
-FIT_FLOATS = (
-    *("r", "r_low", "r_high", "s_pa", "s_low_pa", "s_high_pa"),
-    *("flow_min_m3s", "flow_max_m3s", "residual_std_pa", "corr_rs"),
-    *("temperature_c", "header_pressure_pa"),
-    # added by 0002_window_checks
-    *("s_fixed_pa", "flow_span", "mean_flow_m3s", "end_pressure_pa", "residual_autocorr"),
-    *("sum_w", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy"),
-    # added by 0004_window_tail: the part of a window after a step inside it
-    *("tail_offset_s", "tail_change", "tail_r", "tail_r_low", "tail_r_high", "tail_samples"),
-    *("tail_s_pa", "tail_end_pressure_pa"),
-    *("tail_sum_w", "tail_sum_x", "tail_sum_y", "tail_sum_xx", "tail_sum_xy", "tail_sum_yy"),
-)
+# the fits table's columns are `adapters.fit_record.WindowFit`'s (its `FIT_FLOATS` in order)
 fits_t = sa.Table(
     "fits",
     metadata,
@@ -272,7 +263,6 @@ readings_raw = sa.Table(
     sa.Column("good", sa.Boolean(), nullable=False),
 )
 
-FIT_COLUMNS: tuple[str, ...] = tuple(c.name for c in fits_t.columns)
 FINDING_COLUMNS: tuple[str, ...] = tuple(c.name for c in findings_t.columns)
 ALARM_COLUMNS: tuple[str, ...] = tuple(c.name for c in alarms_t.columns)
 
@@ -283,3 +273,4 @@ sa.Index("ix_findings_detected", findings_t.c.detected)
 sa.Index("ix_alarm_events_time", alarm_events_t.c.time)
 sa.Index("ix_job_runs_started", job_runs_t.c.started)
 sa.Index("ix_maintenance_branch_time", maintenance_t.c.branch, maintenance_t.c.time)
+

@@ -23,6 +23,7 @@ from alembic.migration import MigrationContext
 from adapters import store as store_module
 from adapters import store_readings
 from adapters.base import Batch, ResultsStore, StoreError
+from adapters.fit_record import WindowFit
 from adapters.migrations import tables
 from adapters.store import SqlStore
 from monitor.quality import TagLimits, screen
@@ -296,9 +297,9 @@ def test_naive_times_are_refused(store: SqlStore) -> None:
         store.read_readings(["FT-203"], datetime(2025, 3, 1), T0)
 
 
-def _fit(r: float, day: int, **extra: Any) -> dict[str, Any]:
+def _fit(r: float, day: int, **extra: Any) -> WindowFit:
     start = T0 + timedelta(days=day)
-    row = {
+    row: dict[str, Any] = {
         "branch": "CW-3",
         "window_start": start,
         "window_end": start + timedelta(days=1),
@@ -311,9 +312,10 @@ def _fit(r: float, day: int, **extra: Any) -> dict[str, Any]:
         "flow_min_m3s": 0.02,
         "flow_max_m3s": 0.04,
         "status": "ok",
+        "message": "",
     }
     row.update(extra)
-    return row
+    return WindowFit(**row)
 
 
 def test_upsert_fits_replaces_on_branch_and_window(store: SqlStore) -> None:
@@ -326,8 +328,8 @@ def test_upsert_fits_replaces_on_branch_and_window(store: SqlStore) -> None:
     assert math.isnan(fits["s_pa"].iloc[0])  # NaN stored as NULL, read back as NaN
     assert str(fits["window_start"].dtype) == "datetime64[ns, UTC]"
     assert len(store.read_fits(start=T0 + timedelta(days=1))) == 1
-    with pytest.raises(ValueError, match="unknown keys"):
-        store.upsert_fits([_fit(1.0, 2, colour="red")])
+    with pytest.raises(TypeError, match="WindowFit, got dict"):
+        store.upsert_fits([{"branch": "CW-3", "r": 1.0}])  # type: ignore[list-item]
 
 
 def test_findings_alarms_maintenance_jobs_health(store: SqlStore) -> None:

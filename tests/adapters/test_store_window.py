@@ -10,17 +10,18 @@ import pandas as pd
 import pytest
 
 from adapters.base import open_store
+from adapters.fit_record import FitSums, WindowFit
 
 W0 = datetime(2026, 6, 1, 22, tzinfo=UTC)
 W1 = W0 + timedelta(days=1)
 
 
 def _window(r: float) -> dict[str, object]:
-    fits = [{
-        "branch": "B1", "window_start": W0, "window_end": W1, "r": r, "r_low": r - 0.01,
-        "r_high": r + 0.01, "samples": 1200, "status": "ok", "sum_w": 1200.0,
-        "sum_xy": 3.5e12, "mean_flow_m3s": 0.04, "end_pressure_pa": 6.1e4,
-    }]
+    fits = [WindowFit(
+        branch="B1", window_start=W0, window_end=W1, r=r, r_low=r - 0.01,
+        r_high=r + 0.01, samples=1200, status="ok", sums=FitSums(w=1200.0, xy=3.5e12),
+        mean_flow_m3s=0.04, end_pressure_pa=6.1e4,
+    )]
     screening = pd.DataFrame({
         "branch": ["B1", "header"], "window_start": [W0, W0], "window_end": [W1, W1],
         "tag": ["FT-110", "PT-100"], "frozen": [12, 0], "out_of_range": [0, 1],

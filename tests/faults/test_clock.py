@@ -60,10 +60,10 @@ def test_clock_steps_neither_repeat_nor_skip_a_window(tmp_path: Path) -> None:
 
     def counting(**kw: Any) -> Any:
         for fit in kw["fits"]:
-            if fit["branch"] == site.branches[0].name:
-                key = pd.Timestamp(fit["window_start"])
+            if fit.branch == site.branches[0].name:
+                key = pd.Timestamp(fit.window_start)
                 writes[key] += 1
-                samples[key] = int(fit.get("samples") or 0)
+                samples[key] = fit.samples
         return real_store_window(**kw)
 
     store.store_window = counting  # type: ignore[method-assign]

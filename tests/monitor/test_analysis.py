@@ -109,13 +109,13 @@ def test_fits_and_balance_equal_the_plain_pandas_path(period: str, step_s: float
         got = analyze_window(site, part, a, b)
         want_r, want_bal = _reference(site, part, a, b)
         for row in got.fits:
-            want = want_r[row["branch"]]
+            want = want_r[row.branch]
             if math.isnan(want):
-                assert math.isnan(row["r"]), row["branch"]
+                assert math.isnan(row.r), row.branch
             else:
                 # same samples, same fit: equal up to the rounding of bin means
-                assert row["r"] == pytest.approx(want, rel=1e-9, abs=0), row["branch"]
-        assert sum(math.isfinite(row["r"]) for row in got.fits) >= 5  # the test has teeth
+                assert row.r == pytest.approx(want, rel=1e-9, abs=0), row.branch
+        assert sum(math.isfinite(row.r) for row in got.fits) >= 5  # the test has teeth
         assert got.balance is not None and want_bal is not None
         assert got.balance["samples"] == want_bal["samples"]
         assert got.balance["residual_m3s"] == pytest.approx(want_bal["residual_m3s"],
@@ -148,18 +148,19 @@ def test_step_inside_the_window_gives_its_time_and_the_state_after_it(
         a, b = START + timedelta(days=day), START + timedelta(days=day + 1)
         got = analyze_window(site, readings[(readings["time"] >= a) & (readings["time"] < b)],
                              a, b)
-        rows.update({(day, f["branch"]): f for f in got.fits})
-    split = {key for key, f in rows.items() if math.isfinite(f.get("tail_offset_s", math.nan))}
+        rows.update({(day, f.branch): f for f in got.fits})
+    split = {key for key, f in rows.items() if f.after_step is not None}
     assert split == {(1, "B2-compressor")}
     f = rows[(1, "B2-compressor")]
+    assert f.after_step is not None and f.after_step.samples is not None
     # the samples next to the step are not steady and left out: the tail starts at most
     # half a steady-state window (and a sample) from the step
     near = screen_settings(site, step_s).steady_window_s / 2 + step_s
-    assert abs(f["tail_offset_s"] - 6 * 3600.0) <= near
-    assert f["tail_r"] == pytest.approx(1.4, rel=0.02)
-    assert f["tail_r_low"] <= f["tail_r"] <= f["tail_r_high"]
-    assert f["tail_change"] == pytest.approx(0.4, abs=0.06)
-    assert f["tail_samples"] < f["samples"]
+    assert abs(f.after_step.offset_s - 6 * 3600.0) <= near
+    assert f.after_step.r == pytest.approx(1.4, rel=0.02)
+    assert f.after_step.r_low <= f.after_step.r <= f.after_step.r_high
+    assert f.after_step.change == pytest.approx(0.4, abs=0.06)
+    assert f.after_step.samples < f.samples
 
 
 def test_unmetered_branch_is_fitted_from_the_header_balance() -> None:
@@ -176,13 +177,13 @@ def test_unmetered_branch_is_fitted_from_the_header_balance() -> None:
     readings = _readings(metered, 60.0)
     a, b = START, START + timedelta(days=1)
     part = readings[(readings["time"] >= a) & (readings["time"] < b)]
-    with_meter = {f["branch"]: f for f in analyze_window(metered, part, a, b).fits}
-    without = {f["branch"]: f for f in analyze_window(site, part, a, b).fits}
+    with_meter = {f.branch: f for f in analyze_window(metered, part, a, b).fits}
+    without = {f.branch: f for f in analyze_window(site, part, a, b).fits}
     got, want = without["B6-chiller"], with_meter["B6-chiller"]
-    assert got["status"] == "ok" and "header balance" in got["message"], got["message"]
-    assert got["r"] == pytest.approx(want["r"], rel=0.03)
-    assert "uncertain by about" in got["message"]  # the meters set how well the level is known
-    assert without["B5-spray"]["r"] == pytest.approx(with_meter["B5-spray"]["r"], rel=1e-9)
+    assert got.status == "ok" and "header balance" in got.message, got.message
+    assert got.r == pytest.approx(want.r, rel=0.03)
+    assert "uncertain by about" in got.message  # the meters set how well the level is known
+    assert without["B5-spray"].r == pytest.approx(with_meter["B5-spray"].r, rel=1e-9)
 
 
 def test_min_samples_setting_is_the_fits_own_bound() -> None:
@@ -194,7 +195,7 @@ def test_min_samples_setting_is_the_fits_own_bound() -> None:
     readings = _readings(site, 600.0)
     result = analyze_window(site, readings, START, START + timedelta(hours=12))
     for fit in result.fits:
-        assert "10 needed" not in str(fit["message"]), fit["message"]
-        if fit["samples"] >= 5:
-            assert fit["status"] == "ok", fit["message"]
-    assert sum(5 <= fit["samples"] < 10 for fit in result.fits) >= 3
+        assert "10 needed" not in str(fit.message), fit.message
+        if fit.samples >= 5:
+            assert fit.status == "ok", fit.message
+    assert sum(5 <= fit.samples < 10 for fit in result.fits) >= 3

@@ -25,6 +25,7 @@ import pandas as pd
 import pytest
 import sqlalchemy as sa
 
+from adapters.fit_record import WindowFit, fits_frame
 from adapters.store import SqlStore
 from model.simulate import StepRestriction
 from monitor.analysis import analyze_window
@@ -268,7 +269,7 @@ def test_a_group_of_branches_gives_the_whole_sites_rows_for_them(
     ingest(site, store, open_source(site))
     ws, we = list(windows(START, END, site.window, site.timezone))[18]  # the step's day
     whole = analyze_window(site, store.read_readings(list(site.tags), ws, we), ws, we)
-    got: dict[str, dict[str, Any]] = {}
+    got: dict[str, WindowFit] = {}
     screening, health = [], []
     balance = None
     for i, group in enumerate(branch_groups(site, 4)):
@@ -279,13 +280,13 @@ def test_a_group_of_branches_gives_the_whole_sites_rows_for_them(
             balance = part.balance
         else:
             assert part.balance is None
-        got.update({f["branch"]: f for f in part.fits})
+        got.update({f.branch: f for f in part.fits})
         screening.append(part.screening)
         health.append(part.health)
     store.close()
     assert whole.balance is not None and balance == whole.balance
     pd.testing.assert_frame_equal(
-        pd.DataFrame([got[f["branch"]] for f in whole.fits]), pd.DataFrame(whole.fits))
+        fits_frame(got[f.branch] for f in whole.fits), fits_frame(whole.fits))
     key = ["branch", "tag"]
     pd.testing.assert_frame_equal(
         pd.concat(screening).sort_values(key).reset_index(drop=True),

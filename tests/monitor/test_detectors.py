@@ -12,10 +12,10 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from adapters.fit_record import FitHistory
 from monitor.detect_low_flow import LowFlowDetector
 from monitor.detect_pressure import PressureDetector
-from monitor.findings import HISTORY_COLUMNS, BranchSettings, DiagnosisSettings
-from monitor.replay import numeric
+from monitor.findings import BranchSettings, DiagnosisSettings
 from monitor.replay_text import on_day
 from monitor.replay_track import BranchTrack, Change
 
@@ -36,10 +36,8 @@ def _track(end_pa: list[float], flow_m3s: list[float], *, bs: BranchSettings | N
         "mean_flow_m3s": flow_m3s,
         "identifiable": True,
     })  # fmt: skip
-    rows["change_at"] = rows["window_start"]
-    numbers = {c: numeric(rows, c) for c in HISTORY_COLUMNS["optional"] if c != "identifiable"}
-    return BranchTrack("E4-condenser", rows, set(), None, bs or BranchSettings(),
-                       DiagnosisSettings(timezone=tz), numbers)  # fmt: skip
+    return BranchTrack("E4-condenser", FitHistory.of(rows), set(), None,
+                       bs or BranchSettings(), DiagnosisSettings(timezone=tz))
 
 
 def _baseline(track: BranchTrack) -> None:

@@ -17,6 +17,7 @@ import pandas as pd
 import pytest
 
 from adapters.base import open_store
+from adapters.fit_record import fits_of
 from monitor.cli import main
 from monitor.config import load_site
 from monitor.diagnose import BranchSettings, DiagnosisSettings, Finding, diagnose
@@ -202,7 +203,7 @@ def test_report_and_status_show_one_row_with_its_episodes(
     now = hist["window_end"].max().to_pydatetime()
     store = open_store(site.store_url)
     try:
-        store.upsert_fits(hist.assign(status="ok").to_dict(orient="records"))
+        store.upsert_fits(fits_of(hist.assign(status="ok")))
         found = diagnose_site(site, store, now=now)
         path = write_report(site, store, day=now - timedelta(hours=12), now=now)
     finally:
@@ -236,7 +237,7 @@ def test_rows_of_a_store_written_one_per_day_are_closed(tmp_path: Path) -> None:
     later = {**old[0], "start": T0 + timedelta(70), "detected": T0 + timedelta(71)}
     store = open_store(site.store_url)
     try:
-        store.upsert_fits(hist.assign(status="ok").to_dict(orient="records"))
+        store.upsert_fits(fits_of(hist.assign(status="ok")))
         store.upsert_findings([*old, later])
         diagnose_site(site, store, now=now)
         rows = store.read_findings(kind="low_flow")

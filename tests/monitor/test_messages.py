@@ -27,7 +27,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from adapters.migrations.tables import FIT_COLUMNS, window_checks_t
+from adapters.migrations.tables import window_checks_t
 from adapters.units import from_si
 from model.simulate import BackPressureStep, Cleaning, FoulingRamp, FrozenMeter, StepRestriction
 from monitor.analysis import analyze_window
@@ -335,7 +335,7 @@ def test_messages_agree_with_evidence_and_fits_on_the_simulated_site() -> None:
             "value": np.concatenate([sim.values[t][sel] for t in tags]), "good": True,
         })
         res = analyze_window(site, frame, ws, we)
-        fits += [{k: f.get(k) for k in FIT_COLUMNS if k in f} for f in res.fits]
+        fits += [f.to_row() for f in res.fits]
         screening.append(res.screening[[c for c in keep if c in res.screening.columns]])
     hist = pd.DataFrame(fits)
     settings = diagnosis_settings(site)

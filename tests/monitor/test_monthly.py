@@ -24,6 +24,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from adapters.fit_record import WindowFit
 from adapters.store import SqlStore
 from monitor import cli
 from monitor.analysis_sections import parse_energy_price
@@ -158,7 +159,7 @@ def finding_rows() -> list[dict[str, Any]]:
 
 def filled_store(site: Site) -> SqlStore:
     store = SqlStore(site.store_url)
-    store.upsert_fits(fit_rows(site))
+    store.upsert_fits(WindowFit(**row) for row in fit_rows(site))
     store.upsert_findings(finding_rows())
     store.add_maintenance("B2-compressor", "valve_set", T0 + timedelta(days=SET_DAY),
                           "reopened HV-210 fully", now=GENERATED)  # fmt: skip

@@ -20,6 +20,7 @@ from typing import Any
 import pandas as pd
 import pytest
 
+from adapters.fit_record import WindowFit
 from adapters.store import SqlStore
 from monitor.config import Site, load_site
 from monitor.morning_report import write_report
@@ -137,7 +138,7 @@ EXPECTED = [("B4-process", "low_flow"), ("B6-chiller", "restriction"),
 
 def _page(site: Site) -> tuple[str, _Page, SqlStore]:
     store = SqlStore(site.store_url)
-    store.upsert_fits(_fits(site))
+    store.upsert_fits(WindowFit(**row) for row in _fits(site))
     store.upsert_findings(FINDINGS)
     a = store.add_maintenance("B1-reactor", "cleaned", T0 + timedelta(days=3, hours=9),
                               "hydro-jetted E-110", now=NOW)  # fmt: skip

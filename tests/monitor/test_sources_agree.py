@@ -107,6 +107,6 @@ def test_csv_folder_and_postgresql_table_agree(
         pd.testing.assert_frame_equal(left, right, check_exact=False, rtol=1e-12)
         pd.testing.assert_frame_equal(a_csv.screening, a_sql.screening)
         for f_csv, f_sql in zip(a_csv.fits, a_sql.fits, strict=True):
-            assert f_csv["status"] == f_sql["status"]
-            if math.isfinite(f_csv["r"]):
-                assert f_csv["r"] == pytest.approx(f_sql["r"], rel=1e-12)
+            assert f_csv.status == f_sql.status
+            if math.isfinite(f_csv.r):
+                assert f_csv.r == pytest.approx(f_sql.r, rel=1e-12)

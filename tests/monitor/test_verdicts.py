@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from adapters.fit_record import WindowFit
 from monitor.analysis import analyze_window
 from monitor.config import Site, parse_site
 
@@ -59,7 +60,7 @@ def _flow(level_lpm: float = 30.0, n: int = 300) -> np.ndarray:
     return level_lpm * LPM * (1.0 + 0.002 * rng.standard_normal(n))
 
 
-def _verdict(site: Site, readings: pd.DataFrame) -> dict[str, Any]:
+def _verdict(site: Site, readings: pd.DataFrame) -> WindowFit:
     fits = analyze_window(site, readings, START, START + WINDOW).fits
     assert len(fits) == 1
     return fits[0]
@@ -69,15 +70,15 @@ def test_clean_second_data_fits_in_a_five_minute_window() -> None:
     site = _rig(running_pressure="0.02 bar")
     q = _flow()
     fit = _verdict(site, _readings(_clean(site, q), q))
-    assert fit["status"] == "ok", fit["message"]
-    assert fit["r"] == pytest.approx(1.0, abs=0.02)  # data made with r = 1
+    assert fit.status == "ok", fit.message
+    assert fit.r == pytest.approx(1.0, abs=0.02)  # data made with r = 1
 
 
 def test_a_pump_below_the_running_pressure_is_named_with_its_setting() -> None:
     site = _rig()  # default running pressure 0.5 bar; the rig works near 0.07 bar
     q = _flow()
     fit = _verdict(site, _readings(_clean(site, q), q))
-    text = fit["message"]
+    text = fit.message
     assert "pump counted as stopped" in text
     assert "[header] running_pressure" in text
     assert "0.5 bar" in text
@@ -91,9 +92,9 @@ def test_a_coarse_gauge_is_not_identifiable_and_says_by_how_much() -> None:
     p = step * np.round(_clean(site, q, noise_pa=800.0) / step)
     fit = _verdict(site, _readings(p, q))
     drop = float(site.branches[0].model.dp_dynamic(30 * LPM))
-    assert fit["status"] == "not_identifiable"
-    assert fit["message"].startswith("not identifiable: PT 1 resolves 0.05 bar")
-    assert f"dynamic drop is {drop / 1e5:.3g} bar" in fit["message"]
+    assert fit.status == "not_identifiable"
+    assert fit.message.startswith("not identifiable: PT 1 resolves 0.05 bar")
+    assert f"dynamic drop is {drop / 1e5:.3g} bar" in fit.message
 
 
 def test_unsteady_pressure_names_the_tag_the_band_and_its_setting() -> None:
@@ -101,8 +102,8 @@ def test_unsteady_pressure_names_the_tag_the_band_and_its_setting() -> None:
     q = _flow()
     p = _clean(site, q) * (1.0 + 0.15 * np.sin(np.arange(300) * 2 * np.pi / 40.0))
     fit = _verdict(site, _readings(p, q))
-    text = fit["message"]
-    assert fit["status"] == "too_few_samples"
+    text = fit.message
+    assert fit.status == "too_few_samples"
     assert "where PT 1 was not steady" in text
     assert "3.0 % allowed, [analysis] steady_pressure_band" in text
     assert "[analysis] min_samples" in text
@@ -112,9 +113,9 @@ def test_flow_below_the_fits_floor_is_named() -> None:
     site = _rig(running_pressure="0.02 bar")
     q = _flow(3.0)  # 3 L/min on a branch whose min_flow is 20 L/min
     fit = _verdict(site, _readings(_clean(site, q), q))
-    assert fit["status"] == "too_few_samples"
+    assert fit.status == "too_few_samples"
     # a quarter of min_flow is 5 L/min; the fit's floor for any branch, 1e-4 m3/s, is more
-    assert "with flow at or below 6 L/min (the fit's floor for any branch)" in fit["message"]
+    assert "with flow at or below 6 L/min (the fit's floor for any branch)" in fit.message
 
 
 def test_header_and_pump_running_pressures_must_agree() -> None:

@@ -17,6 +17,7 @@ from pathlib import Path
 
 import tomli_w
 
+from adapters.fit_record import WindowFit
 from adapters.store import SqlStore
 from monitor.config import load_site
 from monitor.morning_report import write_report
@@ -59,10 +60,10 @@ def test_markup_in_names_tags_and_notes_is_text_in_the_report(tmp_path: Path) ->
     b1, b2 = site.branches[0].name, site.branches[1].name
     store = SqlStore(site.store_url)
     try:
-        store.upsert_fits([{
-            "branch": b, "window_start": T0 + timedelta(days=d),
-            "window_end": T0 + timedelta(days=d + 1), "samples": 700, "status": "ok",
-            "r": 1.1 + 0.01 * d, "r_low": 1.0, "r_high": 1.2, "mean_flow_m3s": 0.03}
+        store.upsert_fits([WindowFit(
+            branch=b, window_start=T0 + timedelta(days=d),
+            window_end=T0 + timedelta(days=d + 1), samples=700, status="ok",
+            r=1.1 + 0.01 * d, r_low=1.0, r_high=1.2, mean_flow_m3s=0.03)
             for b in (b1, b2) for d in range(4)])
         store.upsert_findings([{
             "branch": b1, "kind": "restriction", "start": T0 + timedelta(days=2),
