@@ -10,41 +10,51 @@ window confirms is a step (one window out of line is an outlier fit); a slow ris
 passes the Mann–Kendall test is fouling, forecast to reach the cleaning limit at its
 Theil–Sen slope; a fall back to the baseline with no maintenance logged is an unlogged
 cleaning; a window mean flow below the branch minimum is low flow. No published
-reference applies. The whole replay is checked through `monitor.diagnose`
+reference applies to those rules; the unit factors of the messages' pressures are named
+where they are checked (the example site, `config/example-site.toml`, with its pressure
+tags in kPa or psi). The whole replay is checked through `monitor.diagnose`
 (tests/monitor/test_diagnose.py).
 """
 
 from __future__ import annotations
 
 import re
+import tomllib
 from collections.abc import Sequence
+from pathlib import Path
 from typing import Any, Protocol
 
 import numpy as np
 import pandas as pd
 import pytest
+from numpy.typing import NDArray
 
+from monitor.config import Site, parse_site
 from monitor.detect_fouling import FoulingDetector
 from monitor.detect_low_flow import LowFlowDetector
 from monitor.detect_pressure import PressureDetector
 from monitor.detect_steps import StepDetector
+from monitor.diagnose import diagnose
 from monitor.findings import HISTORY_COLUMNS, BranchSettings, DiagnosisSettings
 from monitor.replay import numeric
-from monitor.replay_text import on_day
+from monitor.replay_text import back_pressure_changed, back_pressure_moved, on_day
 from monitor.replay_track import BranchTrack, Change
+from monitor.site_diagnosis import diagnosis_settings
+from tests.monitor.test_diagnose import make_history
 
+EXAMPLE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"
 T0 = pd.Timestamp("2026-02-02", tz="UTC")
 N = 20
 DAY = pd.Timedelta(days=1)
 
 
-def _wiggle(n: int, size: float = 0.004) -> np.ndarray:
+def _wiggle(n: int, size: float = 0.004) -> NDArray[np.float64]:
     """±size alternating window by window: a scatter with no trend and no outlier."""
-    return size * (-1.0) ** np.arange(n)
+    return np.asarray(size * (-1.0) ** np.arange(n), dtype=np.float64)
 
 
 def _track(end_pa: Sequence[float] | None, flow_m3s: Sequence[float] | None = None, *,
-           r: Sequence[float] | None = None, bs: BranchSettings | None = None,
+           r: NDArray[np.float64] | None = None, bs: BranchSettings | None = None,
            tz: str = "UTC", **columns: Any) -> BranchTrack:  # fmt: skip
     n = len(r) if r is not None else len(end_pa or flow_m3s or [])
     start = T0 + pd.to_timedelta(np.arange(n), unit="D")
@@ -318,3 +328,68 @@ def test_a_fall_after_fouling_with_no_maintenance_ends_it_as_an_unlogged_cleanin
     assert ("on 2026-05-03 it fell back to 1.00 with no maintenance logged: an unlogged "
             "cleaning") in f.message  # fmt: skip
     assert "--cleaned 2026-05-03" in f.message
+
+
+# -- pressures in the site's units --------------------------------------------------------
+# 1 bar = 100 kPa exactly (SI Brochure, 9th ed., table 8); 1 psi = 6894.757 Pa and the
+# standard atmosphere 101 325 Pa (NIST SP 811, appendix B.8).
+
+
+def _example_site(units: dict[str, str]) -> Site:
+    """The example site with the pressure tags *units* names (tag → unit) in that unit
+    instead of bar: the tags' nominal values converted with them."""
+    text = EXAMPLE.read_text(encoding="utf-8")
+    per_bar = {"kPa": 100.0, "psi": 1.0e5 / 6894.757}
+    for tag, unit in units.items():
+        def swap(m: re.Match[str], unit: str = unit) -> str:
+            nominal = f", nominal = {float(m[2]) * per_bar[unit]:g}" if m[2] else ""
+            return f'tag = "{m[1]}", unit = "{unit}"{nominal}'
+        text = re.sub(rf'tag = "({re.escape(tag)})", unit = "bar"(?:, nominal = ([\d.]+))?',
+                      swap, text)
+    doc = tomllib.loads(text)
+    doc.pop("store", None)
+    doc.pop("source", None)
+    return parse_site(doc, path=EXAMPLE)
+
+
+def test_each_branch_states_pressures_in_its_end_pressure_tags_unit_else_the_headers() -> None:
+    units = {b: s.pressure_unit for b, s in diagnosis_settings(_example_site({})).branches.items()}
+    assert set(units.values()) == {"bar"}  # the example site's tags are all in bar
+    site = _example_site({"PT-100": "psi", "PT-150": "kPa", "PT-410": "kPa"})
+    units = {b: s.pressure_unit for b, s in diagnosis_settings(site).branches.items()}
+    assert units == {
+        "B1-reactor": "kPa", "B2-compressor": "kPa", "B6-chiller": "kPa",  # PT-150
+        "B4-process": "kPa",  # PT-410, its held header
+        "B3-quench": "psi", "B5-spray": "psi",  # a tank and an open end: the header's PT-100
+    }  # fmt: skip
+
+
+def test_a_site_with_pressure_tags_in_kpa_gets_its_back_pressure_finding_in_kpa() -> None:
+    site = _example_site({"PT-100": "kPa", "PT-150": "kPa", "PT-410": "kPa"})
+    # B4-process ends at the held header PT-410, logged: 2.20 bar gauge, 2.45 from day 60
+    hist = make_history(120, seed=5, branch="B4-process", logged_end_pressure=True)
+    hist["end_pressure_pa"] = np.where(np.arange(120) >= 60, 2.45e5, 2.2e5)
+    found = diagnose(hist, settings=diagnosis_settings(site), now=hist["window_end"].max())
+    (bp,) = [f for f in found if f.kind == "back_pressure"]
+    assert bp.evidence["step_pa"] == pytest.approx(0.25e5)
+    day = f"{pd.Timestamp(hist['window_start'][60]).tz_convert(site.timezone):%Y-%m-%d}"
+    # 0.25 bar = 25 kPa, 2.20 bar = 220 kPa: to 1 kPa, no decimals
+    assert (f"B4-process: the back-pressure at its end moved by +25 kPa on {day} "
+            "(from 220 to 245 kPa gauge).") == bp.message  # fmt: skip
+
+
+def test_pressures_in_psi_and_in_an_absolute_unit() -> None:
+    # 25 kPa = 3.626 psi, to 1 kPa = 0.145 psi: one decimal
+    assert "changed by about +3.6 psi on 2026-02-18;" in back_pressure_changed(
+        "E4-condenser", 2.5e4, "2026-02-18", 1.0, 1.1, unit="psi")
+    # 2.20 bar gauge = 2.20 + 1.01325 = 3.21 bara; a difference is in bar, neither
+    # gauge nor absolute, and bara says absolute itself
+    assert back_pressure_moved("E4-condenser", 0.25e5, "2026-02-18", 2.2e5, 2.45e5,
+                               unit="bara") == (
+        "E4-condenser: the back-pressure at its end moved by +0.25 bar on 2026-02-18 "
+        "(from 3.21 to 3.46 bara).")  # fmt: skip
+
+
+def test_a_branch_setting_refuses_a_pressure_unit_that_is_not_one() -> None:
+    with pytest.raises(ValueError, match="pressure_unit must be a pressure unit, got 'm3/h'"):
+        BranchSettings(pressure_unit="m3/h")
