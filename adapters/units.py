@@ -36,6 +36,7 @@ __all__ = [
     "converter",
     "from_si",
     "parse_quantity",
+    "pressure_labels",
     "to_si",
     "ureg",
 ]
@@ -77,6 +78,10 @@ SI_UNITS: dict[str, str] = {
 }
 
 _ABSOLUTE = {"bara", "psia", "kPaa"}
+#: Pressure units whose name says gauge or absolute, and the plain unit of a difference
+#: of two such pressures (a difference is neither gauge nor absolute).
+_MARKED = {"barg": "bar", "psig": "psi", "kPag": "kPa", "mbarg": "mbar",
+           "bara": "bar", "psia": "psi", "kPaa": "kPa"}  # fmt: skip
 
 
 class UnitError(ValueError):
@@ -131,6 +136,20 @@ def from_si(values: npt.ArrayLike, unit: str, kind_or_si: str) -> np.ndarray:
 def to_si(values: npt.ArrayLike, unit: str, kind_or_si: str) -> np.ndarray:
     """Convert *values* given in *unit* to the SI unit of *kind_or_si* (see `converter`)."""
     return converter(unit, kind_or_si)(values)
+
+
+def pressure_labels(unit: str) -> tuple[str, str]:
+    """How a text names pressures read in *unit*: the words after a pressure, and the
+    unit of a difference of two pressures. A unit whose name does not say absolute is
+    read as gauge (see the module docstring), and the text says so.
+
+    >>> pressure_labels("bar"), pressure_labels("barg"), pressure_labels("kPaa")
+    (('bar gauge', 'bar'), ('barg', 'bar'), ('kPaa', 'kPa'))
+    """
+    unit = unit.strip()
+    if unit in _MARKED:
+        return unit, _MARKED[unit]
+    return f"{unit} gauge", unit
 
 
 def parse_quantity(text: str | float | int, si_unit: str) -> float:

@@ -21,7 +21,7 @@ Terminations (P_e):
 * `HeldHeader` — a header held at a pressure by others: the ``end_pressure_pa``
   condition when logged, else the set point.
 * `ReturnHeader` — a common return: the ``end_pressure_pa`` condition when logged, else
-  the fixed pressure (or solved by `model.network.solve_nodal`).
+  the fixed pressure (or solved by `model.nodal.solve_nodal`).
 
 Tank, held header and return header add no loss of their own: count an ``exit`` in the
 fittings where the pipe discharges into a vessel.

@@ -13,8 +13,9 @@ first, so ``r`` describes the rest of the branch. Water density and viscosity fo
 logged temperature, so seasonal change is in ``x`` and does not show up in ``r``.
 
 The robust regression itself, its intervals and the identifiability verdict on ``s``
-are in `model.robust` (`fit_ratio`, `offset_hypotheses`); `FitResult`,
-`OffsetComparison` and those functions are importable from here too.
+are in `model.robust` (`fit_ratio`), the test of the two hypotheses below on arrays in
+`model.offset` (`offset_hypotheses`); `FitResult`, `OffsetComparison` and those
+functions are importable from here too.
 
 Windows
 -------
@@ -43,15 +44,8 @@ from numpy.typing import ArrayLike, NDArray
 
 from model import water
 from model.branch import Branch, HeldHeader, ReturnHeader, Tank
-from model.robust import (
-    LOSSES,
-    FitResult,
-    Loss,
-    OffsetComparison,
-    _as_1d,
-    fit_ratio,
-    offset_hypotheses,
-)
+from model.offset import OffsetComparison, offset_hypotheses
+from model.robust import LOSSES, FitResult, Loss, as_1d, fit_ratio
 
 __all__ = [
     "LOSSES",
@@ -112,14 +106,14 @@ def _window(
         raise TypeError(f"branch must be a model.branch.Branch, got {type(branch).__name__}")
     if not (math.isfinite(min_flow_m3s) and min_flow_m3s >= 0.0):
         raise ValueError(f"min_flow_m3s must be a finite number >= 0, got {min_flow_m3s!r}")
-    p = _as_1d("header_pressure_pa", header_pressure_pa)
+    p = as_1d("header_pressure_pa", header_pressure_pa)
     n = p.shape[0]
-    q = _as_1d("flow_m3s", flow_m3s, n)
-    t = _as_1d("temperature_c", temperature_c, n)
-    lvl = None if level_m is None else _as_1d("level_m", level_m, n)
-    pe = None if end_pressure_pa is None else _as_1d("end_pressure_pa", end_pressure_pa, n)
-    u = None if valve_position is None else _as_1d("valve_position", valve_position, n)
-    w = np.ones(n) if weights is None else _as_1d("weights", weights, n)
+    q = as_1d("flow_m3s", flow_m3s, n)
+    t = as_1d("temperature_c", temperature_c, n)
+    lvl = None if level_m is None else as_1d("level_m", level_m, n)
+    pe = None if end_pressure_pa is None else as_1d("end_pressure_pa", end_pressure_pa, n)
+    u = None if valve_position is None else as_1d("valve_position", valve_position, n)
+    w = np.ones(n) if weights is None else as_1d("weights", weights, n)
     ok = np.isfinite(p) & np.isfinite(q) & np.isfinite(t) & np.isfinite(w) & (w > 0.0)
     for arr in (lvl, pe, u):
         if arr is not None:
@@ -433,8 +427,8 @@ def find_level_step(
     >>> step.time_s / 3600, round(step.change)
     (15.0, 30000)
     """
-    t_all = _as_1d("time_s", time_s)
-    v_all = _as_1d("values", values, t_all.shape[0])
+    t_all = as_1d("time_s", time_s)
+    v_all = as_1d("values", values, t_all.shape[0])
     keep = np.isfinite(t_all) & np.isfinite(v_all)
     t, v = t_all[keep], v_all[keep]
     if t.size < 2 * min_samples or np.any(np.diff(t) <= 0):
@@ -487,7 +481,7 @@ class StepRule:
 def _change_in(
     win: _Window, time_s: ArrayLike, end_pressure_pa: ArrayLike | None, rule: StepRule
 ) -> ChangePoint | None:
-    t_all = _as_1d("time_s", time_s, win.keep.shape[0])
+    t_all = as_1d("time_s", time_s, win.keep.shape[0])
     keep = win.keep & np.isfinite(t_all)
     t = t_all[keep]
     if t.size < 2 * rule.min_samples or np.any(np.diff(t) <= 0):
@@ -500,7 +494,7 @@ def _change_in(
         rel = dataclasses.replace(rel, index=int(np.flatnonzero(keep)[rel.index]))
     lvl = None
     if end_pressure_pa is not None and rule.end_pressure:
-        pe = np.where(keep, _as_1d("end_pressure_pa", end_pressure_pa, keep.shape[0]), np.nan)
+        pe = np.where(keep, as_1d("end_pressure_pa", end_pressure_pa, keep.shape[0]), np.nan)
         lvl = find_level_step(t_all, pe, min_head_s=rule.min_head_s,
                               min_tail_s=rule.min_tail_s, min_samples=rule.min_samples,
                               min_gain=rule.min_gain, min_step=rule.min_pressure_step_pa)

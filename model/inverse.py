@@ -20,7 +20,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import numpy.typing as npt
 
-from model.elements import RE_LAMINAR, RE_TURBULENT, friction_factor_slope
+from model.friction import RE_LAMINAR, RE_TURBULENT, friction_factor_slope
 
 if TYPE_CHECKING:  # only for annotations: model.branch imports this module
     from model.branch import Branch

@@ -56,7 +56,8 @@ class PressureDetector:
                         "back_pressure", t.at[i], t.we[i], 0.95,
                         {"step_pa": delta, "step_sigma": delta / sigma, "before_pa": ref,
                          "after_pa": v},
-                        back_pressure_moved(t.name, delta, t.when(t.at[i], i), ref, v),
+                        back_pressure_moved(t.name, delta, t.when(t.at[i], i), ref, v,
+                                            unit=t.bs.pressure_unit),
                         ref=ref, step=delta,
                     ))  # fmt: skip
                     recent.clear()

@@ -335,7 +335,8 @@ class StepDetector:
         r_after = float(self.t.r[i])
         if kind == "back_pressure":
             c = extra.get("static_offset_pa", math.nan)
-            msg = back_pressure_changed(self.t.name, c, day, ref, r_after)
+            msg = back_pressure_changed(self.t.name, c, day, ref, r_after,
+                                        unit=self.t.bs.pressure_unit)
         else:
             msg = resistance_step(self.t.name, kind, ref, r_after, day)
         if j == i:  # reported in its own window: the next one confirms it

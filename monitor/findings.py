@@ -23,7 +23,7 @@ import pandas as pd
 
 from adapters.base import MaintenanceKind
 from adapters.fit_record import HISTORY_NUMBERS
-from adapters.units import from_si
+from adapters.units import UnitError, converter, from_si
 
 __all__ = [
     "BALANCE_COLUMNS",
@@ -126,14 +126,22 @@ class BranchSettings:
     commissioning : (start, end) UTC of the baseline period; None = the first
         ``baseline_windows`` good windows of the history
     flow_unit : the unit of the branch's flow tag, in which messages state flows
+    pressure_unit : the unit of the branch's end-pressure tag (else of the header
+        pressure tag), in which messages state pressures; must be a pressure unit
     """
 
     cleaning_limit_r: float = 1.5
     min_flow_m3s: float | None = None
     commissioning: tuple[datetime, datetime] | None = None
     flow_unit: str = "m3/h"
+    pressure_unit: str = "bar"
 
     def __post_init__(self) -> None:
+        try:
+            converter(self.pressure_unit, "pressure")
+        except UnitError as exc:
+            raise ValueError(f"pressure_unit must be a pressure unit, got "
+                             f"{self.pressure_unit!r}") from exc  # fmt: skip
         if not self.cleaning_limit_r > 1.0:
             raise ValueError(f"cleaning_limit_r must be > 1, got {self.cleaning_limit_r}")
         if self.min_flow_m3s is not None and not self.min_flow_m3s >= 0:

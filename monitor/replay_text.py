@@ -2,8 +2,10 @@
 
 Every message `monitor.replay` and its detectors put on a finding is built here, from
 numbers the detectors computed: dates in the site's time zone, flows in the branch's flow
-tag's unit (`monitor.findings.flow_pair`). Pressures are stated in bar gauge: the branch
-settings do not carry the pressure tags' units yet (the report states bar too).
+tag's unit (`monitor.findings.flow_pair`), pressures in the branch's pressure tag's unit
+(`monitor.findings.BranchSettings.pressure_unit`), said to be gauge unless the unit's
+name says gauge or absolute (`adapters.units.pressure_labels`), to the digits that
+resolve 1 kPa (`pressure_digits`).
 """
 
 from __future__ import annotations
@@ -12,12 +14,13 @@ import math
 
 import pandas as pd
 
+from adapters.units import from_si, pressure_labels
 from monitor.findings import Episodes, flow_pair
 
 __all__ = [
     "back_pressure_changed", "back_pressure_moved", "event_not_checked", "event_not_effective",
     "fouling_forecast", "fouling_levelled", "fouling_rising", "low_flow", "on_day",
-    "resistance_step", "unlogged_fall",
+    "pressure_digits", "resistance_step", "unlogged_fall",
 ]  # fmt: skip
 
 #: what a step of r most likely is, by kind of finding
@@ -37,20 +40,41 @@ def on_day(t: pd.Timestamp, timezone: str, window_start: pd.Timestamp | None = N
 
 
 # -- back-pressure ---------------------------------------------------------------------
+def pressure_digits(unit: str) -> int:
+    """Decimals that state pressures in *unit* to 1 kPa = 0.01 bar (a tenth of the
+    smallest back-pressure step reported, ``min_bp_step_pa``): 2 in bar, 0 in kPa, 1 in
+    psi.
+
+    >>> pressure_digits("bar"), pressure_digits("kPa"), pressure_digits("psig")
+    (2, 0, 1)
+    """
+    kpa = float(from_si(1.0e3, pressure_labels(unit)[1], "pressure"))
+    # rounded first: log10 of 0.01 is not exactly -2 in floating point
+    return max(0, math.ceil(round(-math.log10(kpa), 9)))
+
+
 def back_pressure_moved(name: str, delta_pa: float, day: str, before_pa: float,
-                        after_pa: float) -> str:  # fmt: skip
-    """A logged or fitted termination pressure stepped by *delta_pa* [Pa]."""
+                        after_pa: float, *, unit: str = "bar") -> str:  # fmt: skip
+    """A logged or fitted termination pressure stepped by *delta_pa* [Pa] from *before_pa*
+    to *after_pa* [Pa gauge], stated in the pressure tag's *unit*."""
+    label, plain = pressure_labels(unit)
+    d = pressure_digits(unit)
+    step = float(from_si(delta_pa, plain, "pressure"))
+    before, after = (float(v) for v in from_si([before_pa, after_pa], unit, "pressure"))
     return (
-        f"{name}: the back-pressure at its end moved by {delta_pa / 1e5:+.2f} bar on {day} "
-        f"(from {before_pa / 1e5:.2f} to {after_pa / 1e5:.2f} bar gauge)."
+        f"{name}: the back-pressure at its end moved by {step:+.{d}f} {plain} on {day} "
+        f"(from {before:.{d}f} to {after:.{d}f} {label})."
     )
 
 
 def back_pressure_changed(name: str, offset_pa: float, day: str, r_before: float,
-                          r_after: float) -> str:  # fmt: skip
+                          r_after: float, *, unit: str = "bar") -> str:  # fmt: skip
     """A step of r that the window reads as a constant offset *offset_pa* [Pa] (NaN:
-    size unknown)."""
-    size = f" by about {offset_pa / 1e5:+.2f} bar" if math.isfinite(offset_pa) else ""
+    size unknown), stated in the pressure tag's *unit*."""
+    plain = pressure_labels(unit)[1]
+    offset = float(from_si(offset_pa, plain, "pressure"))
+    d = pressure_digits(unit)
+    size = f" by about {offset:+.{d}f} {plain}" if math.isfinite(offset_pa) else ""
     return (
         f"{name}: the back-pressure at its end changed{size} on {day}; the offset is the "
         f"same at every flow (it reads as r {r_before:.2f} → {r_after:.2f})."

@@ -1,4 +1,5 @@
-"""Tests of model.fit: the array core (fit_ratio, offset_hypotheses)."""
+"""Tests of model.fit and its array core (model.robust's fit_ratio, model.offset's
+offset_hypotheses)."""
 
 from __future__ import annotations
 
@@ -17,8 +18,8 @@ from model.fit import (
     fit_ratio,
     fit_resistance,
     fit_with_change,
-    offset_hypotheses,
 )
+from model.offset import offset_hypotheses
 
 
 def _design(rng: np.random.Generator, n: int, q_lo: float, q_hi: float) -> tuple[np.ndarray, ...]:

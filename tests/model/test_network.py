@@ -1,29 +1,18 @@
-"""Parallel header, pump curves, operating point and the nodal solver."""
+"""Parallel header, pump curves and operating point."""
 
 from __future__ import annotations
 
-import itertools
 import math
 
 import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from scipy.optimize import brentq
 
 from model import water
 from model.branch import Branch, HeldHeader, OpenDischarge, ReturnHeader, Tank
 from model.elements import ControlValve, Equipment, Fittings, Pipe
-from model.network import (
-    BranchLink,
-    FixedPressure,
-    Junction,
-    ParallelHeader,
-    PumpCurve,
-    PumpLink,
-    operating_point,
-    solve_nodal,
-)
+from model.network import ParallelHeader, PumpCurve, operating_point
 
 D = 0.1023
 RHO20 = float(water.density(20.0))
@@ -40,7 +29,9 @@ def _c(k: float, d: float = D) -> float:
     return area * math.sqrt(2.0 / (k * RHO20))
 
 
-def _site() -> list[Branch]:
+def site_branches() -> list[Branch]:
+    """Four branches of one design, one per termination (the nodal tests use them too)."""
+
     def br(name: str, term: object, length: float = 80.0, pos: float = 0.8) -> Branch:
         return Branch(
             name,
@@ -157,7 +148,7 @@ def test_pump_validation() -> None:
 
 
 def test_operating_point_statuses() -> None:
-    hdr = ParallelHeader(_site())
+    hdr = ParallelHeader(site_branches())
     weak = PumpCurve([0.0, 0.1], [1.5, 1.0])  # 1.5 m shut-off: below every threshold
     op = operating_point(hdr, weak)
     assert op.status == "no_flow" and not op.ok and "threshold" in op.message
@@ -171,7 +162,7 @@ def test_operating_point_statuses() -> None:
 
 
 def test_conditions_are_passed_per_branch() -> None:
-    hdr = ParallelHeader(_site())
+    hdr = ParallelHeader(site_branches())
     base = operating_point(hdr, PUMP)
     fouled = operating_point(hdr, PUMP, conditions={"A": {"resistance_ratio": 2.0}})
     assert fouled.branch_flows_m3s["A"] < base.branch_flows_m3s["A"]
@@ -179,7 +170,7 @@ def test_conditions_are_passed_per_branch() -> None:
     with pytest.raises(ValueError, match="conditions"):
         operating_point(hdr, PUMP, conditions={"nope": {}})
     with pytest.raises(ValueError, match="unique"):
-        ParallelHeader([_site()[0], _site()[0]])
+        ParallelHeader([site_branches()[0], site_branches()[0]])
 
 
 branch_strategy = st.tuples(
@@ -219,147 +210,3 @@ def test_property_mass_conserved_at_operating_point(
     assert sum(op.branch_flows_m3s.values()) == pytest.approx(op.total_flow_m3s, rel=1e-12)
     rise = float(pump.pressure_rise(op.total_flow_m3s, speed_ratio=speed))
     assert op.header_pressure_pa == pytest.approx(rise, rel=1e-8, abs=1e-3)
-
-
-# ------------------------------------------------------------------ nodal solver
-
-
-def test_nodal_agrees_with_parallel_header_and_pump() -> None:
-    branches = _site()
-    op = operating_point(ParallelHeader(branches), PUMP)
-    nodes: list[FixedPressure | Junction] = [FixedPressure("basin", 0.0), Junction("supply")]
-    links = [PumpLink(PUMP, "basin", "supply")] + [BranchLink(b, "supply") for b in branches]
-    sol = solve_nodal(nodes, links)
-    assert sol.ok, sol.message
-    assert sol.pressures_pa["supply"] == pytest.approx(op.header_pressure_pa, rel=1e-9)
-    for name, q in op.branch_flows_m3s.items():
-        assert sol.flows_m3s[name] == pytest.approx(q, rel=1e-8)
-    assert sol.flows_m3s["pump"] == pytest.approx(op.total_flow_m3s, rel=1e-8)
-    assert sol.max_mass_error_m3s < 1e-10
-
-
-def test_nodal_fixed_header_and_closed_branch() -> None:
-    # fixed header pressure below one branch's threshold: that branch carries nothing
-    branches = _site()
-    p_s = 2.5e5
-    nodes = [FixedPressure("supply", p_s)]
-    sol = solve_nodal(nodes, [BranchLink(b, "supply") for b in branches])
-    expected = ParallelHeader(branches).branch_flows(p_s)
-    for name, q in expected.items():
-        assert sol.flows_m3s[name] == pytest.approx(float(q), rel=1e-9, abs=1e-9)
-
-
-def test_nodal_return_header_against_nested_root_finding() -> None:
-    # three branches converge on a return header that drains through a return line to
-    # an open basin; reference: the return pressure by brentq on its own mass balance
-    def supply(name: str, length: float, pos: float) -> Branch:
-        return Branch(
-            name,
-            [Pipe(length, D, 4.5e-5), ControlValve(120.0, position=pos), Equipment(3e4, 0.025)],
-            ReturnHeader(elevation_m=3.0),
-        )
-
-    branches = [supply("R1", 60.0, 0.9), supply("R2", 120.0, 0.7), supply("R3", 90.0, 0.5)]
-    d_ret = 0.2027  # 8" sch 40
-    ret_line = Branch(
-        "return line",
-        [Pipe(200.0, d_ret, 4.5e-5), Fittings(d_ret, {"elbow_90": 6})],
-        OpenDischarge(elevation_m=-2.0),
-    )
-    p_s = 3.0e5
-
-    def imbalance(p_ret: float) -> float:
-        into = sum(float(b.flow(p_s, end_pressure_pa=p_ret)) for b in branches)
-        return into - float(ret_line.flow(p_ret))
-
-    p_ret = brentq(imbalance, -1e5, p_s, xtol=1e-9)
-    nodes: list[FixedPressure | Junction] = [FixedPressure("supply", p_s), Junction("return")]
-    links = [BranchLink(b, "supply", "return") for b in branches] + [
-        BranchLink(ret_line, "return")
-    ]
-    sol = solve_nodal(nodes, links)
-    assert sol.ok, sol.message
-    assert sol.pressures_pa["return"] == pytest.approx(p_ret, rel=1e-8)
-    total = sum(sol.flows_m3s[b.name] for b in branches)
-    assert sol.flows_m3s["return line"] == pytest.approx(total, rel=1e-10)
-
-
-def test_nodal_validation() -> None:
-    b = _site()[0]
-    with pytest.raises(ValueError, match="unknown node"):
-        solve_nodal([FixedPressure("s", 1e5)], [BranchLink(b, "x")])
-    with pytest.raises(ValueError, match="ReturnHeader or HeldHeader"):
-        solve_nodal([FixedPressure("s", 1e5), Junction("r")], [BranchLink(b, "s", "r")])
-    with pytest.raises(ValueError, match="FixedPressure"):
-        solve_nodal([Junction("s")], [BranchLink(b, "s")])
-
-
-def test_nodal_newton_converges_quadratically() -> None:
-    # Newton's method converges quadratically near the root (Todini & Pilati 1988 build the
-    # global gradient algorithm on Newton–Raphson): e_{k+1} <= C·e_k², e_k the largest
-    # flow error after k steps relative to the largest solved flow. The iterates are the
-    # solver's own, stopped after k steps (max_iter=k; the warning it logs is expected).
-    branches = _site()
-    nodes: list[FixedPressure | Junction] = [FixedPressure("basin", 0.0), Junction("supply")]
-    links = [PumpLink(PUMP, "basin", "supply")] + [BranchLink(b, "supply") for b in branches]
-    sol = solve_nodal(nodes, links)
-    assert sol.ok, sol.message
-    q_star = np.array(list(sol.flows_m3s.values()))
-    scale = float(np.max(q_star))
-
-    def error(k: int) -> float:
-        q = np.array(list(solve_nodal(nodes, links, max_iter=k).flows_m3s.values()))
-        return float(np.max(np.abs(q - q_star))) / scale
-
-    errors = [error(k) for k in range(1, sol.iterations)]
-    # above the round-off floor (the slopes are finite differences of relative step
-    # 1e-7, and a double carries 16 digits), every step squares the error
-    pairs = [(a, b) for a, b in itertools.pairwise(errors) if a > 1e-9]
-    assert len(pairs) >= 3, errors
-    for a, b in pairs:
-        # measured: e_{k+1}/e_k² from 0.37 to 0.97; a wrong slope (linear convergence)
-        # makes the ratio grow without bound as e_k falls
-        assert b <= 3.0 * a * a, errors
-
-
-def test_nodal_pump_return_header_and_closed_branch() -> None:
-    # pump from the basin, branches to a return header that drains to the basin, one
-    # branch held shut by a high back-pressure: mass balances at every junction
-    def supply(name: str, pos: float) -> Branch:
-        return Branch(
-            name,
-            [Pipe(90.0, D, 4.5e-5), ControlValve(120.0, position=pos), Equipment(3e4, 0.025)],
-            ReturnHeader(),
-        )
-
-    d_ret = 0.2027
-    ret_line = Branch(
-        "return line", [Pipe(150.0, d_ret, 4.5e-5), Fittings(d_ret, {"exit": 1})], Tank(0.0, 2.0)
-    )
-    high = Branch("to 9 bar", [Pipe(30.0, D, 4.5e-5)], HeldHeader(set_pressure_pa=9e5))
-    nodes: list[FixedPressure | Junction] = [
-        FixedPressure("basin", 0.0),
-        Junction("supply"),
-        Junction("return"),
-    ]
-    s1 = supply("S1", 0.9)
-    links: list[BranchLink | PumpLink] = [
-        PumpLink(PUMP, "basin", "supply"),
-        BranchLink(s1, "supply", "return"),
-        BranchLink(supply("S2", 0.6), "supply", "return"),
-        BranchLink(high, "supply"),
-        BranchLink(ret_line, "return"),
-    ]
-    sol = solve_nodal(nodes, links)
-    assert sol.ok, sol.message
-    assert sol.flows_m3s["to 9 bar"] == 0.0  # the pump cannot reach 9 bar
-    assert sol.max_mass_error_m3s < 1e-9
-    q_in = sol.flows_m3s["S1"] + sol.flows_m3s["S2"]
-    assert sol.flows_m3s["pump"] == pytest.approx(q_in, rel=1e-9)
-    assert sol.flows_m3s["return line"] == pytest.approx(q_in, rel=1e-9)
-    # each link sits on its own curve at the solved pressures
-    p_sup, p_ret = sol.pressures_pa["supply"], sol.pressures_pa["return"]
-    assert float(s1.dp(sol.flows_m3s["S1"], end_pressure_pa=p_ret)) == pytest.approx(
-        p_sup, rel=1e-7
-    )
-    assert float(PUMP.pressure_rise(sol.flows_m3s["pump"])) == pytest.approx(p_sup, rel=1e-7)
