@@ -412,6 +412,10 @@ class ResultsStore(abc.ABC):
         """Store fit results keyed on (branch, window_start, window_end), replacing any."""
 
     @abc.abstractmethod
+    def newest_fit_end(self) -> datetime | None:
+        """The end of the newest analysed window of any branch (UTC), None when none."""
+
+    @abc.abstractmethod
     def read_fits(
         self,
         branch: str | None = None,

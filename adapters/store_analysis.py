@@ -14,7 +14,7 @@ import pandas as pd
 import sqlalchemy as sa
 
 from adapters.fit_record import FIT_COLUMNS, FIT_FLOATS, WindowFit
-from adapters.migrations.dialects import num, upsert
+from adapters.migrations.dialects import num, time_text, to_utc_index, upsert
 from adapters.migrations.tables import (
     FINDING_COLUMNS,
     data_health_t,
@@ -110,6 +110,17 @@ class AnalysisTables(StoreTransactions):
         if end is not None:
             query = query.where(t.c.window_start < utc_datetime(end, "end"))
         return self._frame(query, t)
+
+    def newest_fit_end(self) -> datetime | None:
+        """The end of the newest analysed window of any branch (UTC), None when none:
+        one aggregate on the fits' key, not a per-tag scan of the readings."""
+        with self._read() as conn:
+            raw = conn.execute(
+                sa.select(time_text(sa.func.max(fits_t.c.window_end), self.dialect))
+            ).scalar()
+        if raw is None:
+            return None
+        return pd.Timestamp(to_utc_index([raw])[0]).to_pydatetime()
 
     def read_fits(
         self,

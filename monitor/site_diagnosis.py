@@ -66,10 +66,8 @@ def diagnosis_time(store: ResultsStore, end: datetime) -> datetime:
     the newest analysed window where one later than *end* is stored. Analysing a past
     period again (a late file, a correction) must not wind the stored findings back to
     that period's end: they stay the diagnosis of the whole analysed history."""
-    ends = pd.to_datetime(store.watermarks().fits["last_window_end"], utc=True)
-    if ends.empty or pd.isna(ends.max()):
-        return end
-    return max(end, ends.max().to_pydatetime())
+    newest = store.newest_fit_end()
+    return end if newest is None else max(end, newest)
 
 
 def diagnose_site(

@@ -409,12 +409,17 @@ def test_findings_alarms_maintenance_jobs_health(store: SqlStore) -> None:
     assert out["day"].iloc[0] == pd.Timestamp("2025-03-01", tz="UTC")
 
     store.store_batch(_batch(_readings(5, ["FT-203"])), source="csv")
+    assert store.newest_fit_end() is None
     store.upsert_fits([_fit(1.0, 0)])
+    assert store.newest_fit_end() == T0 + timedelta(days=1)
     marks = store.watermarks()
     assert marks.readings["last"].iloc[0] == T0 + timedelta(minutes=4)
     assert marks.fits["last_window_end"].iloc[0] == T0 + timedelta(days=1)
     assert list(marks.jobs["status"]) == ["ok"]
     assert list(marks.cursors["key"]) == ["inbox/a.csv"]
+    store.upsert_fits([_fit(1.0, 3), _fit(1.0, 1)])
+    newest = store.newest_fit_end()
+    assert newest == T0 + timedelta(days=4) and newest.tzinfo is not None
 
 
 def test_bad_arguments_name_themselves(tmp_path: Any) -> None:
