@@ -157,6 +157,17 @@ class Site:
         known = ", ".join(b.name for b in self.branches)
         raise KeyError(f"no branch {name!r} at site {self.name!r}; branches: {known}")
 
+    def tag_unit(self, tag: str | None, default: str) -> str:
+        """The plant unit of *tag*; *default* when it is None or not a tag of the site."""
+        return self.tags[tag].unit if tag is not None and tag in self.tags else default
+
+    def pressure_unit(self, branch: str) -> str:
+        """The unit the texts state branch *branch*'s pressures in: its end-pressure tag's,
+        else the header pressure tag's (bar when neither is a tag of the site)."""
+        end_tag = next((b.end_pressure_tag for b in self.branches if b.name == branch), None)
+        return self.tag_unit(end_tag if end_tag in self.tags else self.header_pressure_tag,
+                             "bar")
+
     @property
     def window(self) -> timedelta:
         return timedelta(seconds=self.analysis.window)

@@ -31,10 +31,11 @@ import matplotlib.pyplot as plt
 import pandas as pd
 
 from adapters.base import AlarmStateName as State
-from adapters.units import from_si
+from adapters.units import from_si, pressure_labels
 from monitor.config import Site
-from monitor.findings import episode_text
+from monitor.findings import episode_text, flow_pair
 from monitor.plots import png_data_uri
+from monitor.replay_text import pressure_digits
 
 __all__ = ["ReportInputs", "attention_order", "build_report", "page_head"]
 
@@ -345,17 +346,20 @@ def _flow_unit(site: Site, kind: str, branch: str) -> str:
 
 def _evidence_text(site: Site, kind: str, ev: dict[str, Any], *, branch: str = "") -> str:
     bits = []
+    unit = _flow_unit(site, kind, branch)
     if (q := _num(ev, "lost_flow_m3h")) is not None:
-        bits.append(f"flow lost {q:.1f} m³/h")
+        (lost,), _ = flow_pair([q / 3600.0], 0.0, unit)
+        bits.append(f"flow lost {lost} {unit}")
     if (e := _num(ev, "extra_energy_kwh_per_day")) is not None:
         bits.append(f"extra pumping {e:.0f} kWh/day")
     if kind == "fouling" and (s := _num(ev, "slope_per_day")) is not None:
         bits.append(f"r rising {s * 30:.3f} per month")
     if kind == "back_pressure" and (s := _num(ev, "step_pa")) is not None:
-        bits.append(f"step {s / 1e5:+.2f} bar")
+        plain = pressure_labels(site.pressure_unit(branch))[1]
+        step = float(from_si(s, plain, "pressure"))
+        bits.append(f"step {step:+.{pressure_digits(plain)}f} {plain}")
     if ev.get("priority") == 3.0:  # `monitor.findings.PRIORITIES`
         bits.append("priority high")
-    unit = _flow_unit(site, kind, branch)
     if episodes := episode_text(ev, timezone=site.timezone, flow_unit=unit):
         bits.append(episodes)
     return (" · " + " · ".join(_e(b) for b in bits)) if bits else ""

@@ -36,11 +36,8 @@ def diagnosis_settings(site: Site) -> DiagnosisSettings:
     ``[diagnosis]`` converted to windows of ``[analysis] window``; messages state flows
     in each flow tag's own unit, pressures in the branch's end-pressure tag's (else the
     header pressure tag's)."""
-    def unit(tag: str | None, default: str = "m3/h") -> str:
-        return site.tags[tag].unit if tag is not None and tag in site.tags else default
-
-    def pressure_unit(end_tag: str | None) -> str:
-        return unit(end_tag if end_tag in site.tags else site.header_pressure_tag, "bar")
+    def unit(tag: str | None) -> str:
+        return site.tag_unit(tag, "m3/h")
 
     spans = site.diagnosis
     return DiagnosisSettings.for_window(
@@ -51,7 +48,7 @@ def diagnosis_settings(site: Site) -> DiagnosisSettings:
                 cleaning_limit_r=b.cleaning_limit,
                 min_flow_m3s=b.min_flow_m3s if b.min_flow_m3s > 0 else None,
                 flow_unit=unit(b.flow_tag),
-                pressure_unit=pressure_unit(b.end_pressure_tag),
+                pressure_unit=site.pressure_unit(b.name),
             )
             for b in site.branches
         },
