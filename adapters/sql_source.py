@@ -85,15 +85,7 @@ import numpy as np
 import pandas as pd
 import sqlalchemy as sa
 
-from adapters.base import (
-    Batch,
-    ReadingsSource,
-    SourceUnavailable,
-    TagSpec,
-    UnknownTagError,
-    empty_quarantine,
-    empty_readings,
-)
+from adapters.base import ReadingsSource, SourceUnavailable, UnknownTagError
 from adapters.credentials import (
     is_authentication_failure,
     mask_secrets,
@@ -102,6 +94,7 @@ from adapters.credentials import (
     remember_url,
     url_secrets,
 )
+from adapters.records import Batch, TagSpec, empty_quarantine, empty_readings
 from adapters.source_tools import (
     DEFAULT_QUALITY_MAP,
     TIME_REASONS,

@@ -17,7 +17,8 @@ from zoneinfo import ZoneInfo
 import pandas as pd
 import sqlalchemy as sa
 
-from adapters.base import BranchwatchAdapterError, TagSpec, UnknownTagError
+from adapters.base import BranchwatchAdapterError, UnknownTagError
+from adapters.records import TagSpec
 
 __all__ = ["LOCAL_PAD", "SourceSettingError", "SqlTable"]
 

@@ -21,7 +21,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import pandas as pd
 
-from adapters.base import MaintenanceKind
+from adapters.records import MaintenanceKind
 from adapters.units import from_si
 
 __all__ = [

@@ -33,7 +33,7 @@ import sqlalchemy as sa
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from adapters.base import TagSpec
+from adapters.records import TagSpec
 from adapters.sql_source import SqlSource
 from tests.adapters.ingest_helpers import ingest
 

@@ -21,7 +21,8 @@ from typing import Any
 import pytest
 import sqlalchemy as sa
 
-from adapters.base import SourceUnavailable, TagSpec, UnknownTagError
+from adapters.base import SourceUnavailable, UnknownTagError
+from adapters.records import TagSpec
 from adapters.sql_source import SqlSource
 from tests.adapters.ingest_helpers import ingest
 
