@@ -23,8 +23,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 
-from adapters.base import empty_quarantine, empty_readings
 from adapters.csv_layout import _Layout
+from adapters.records import empty_quarantine, empty_readings
 from adapters.source_tools import (
     NULL_TOKENS,
     RAW_MAX,

@@ -12,7 +12,7 @@ import csv
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from adapters.base import TagSpec
+from adapters.records import TagSpec
 from adapters.source_tools import name_list
 
 _TIME_NAMES = ("timestamp", "time", "datetime", "date_time", "ts")

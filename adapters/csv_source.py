@@ -88,14 +88,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 import pandas as pd
 import pyarrow as pa
 
-from adapters.base import (
-    Batch,
-    ReadingsSource,
-    SourceUnavailable,
-    TagSpec,
-    empty_quarantine,
-    empty_readings,
-)
+from adapters.base import ReadingsSource, SourceUnavailable
 from adapters.csv_chunks import _LONG_LINE, MAX_LINE_BYTES, CsvChunkParser
 from adapters.csv_layout import (
     CsvHeader,
@@ -104,6 +97,7 @@ from adapters.csv_layout import (
     _text_problem,
     _unknown_columns,
 )
+from adapters.records import Batch, TagSpec, empty_quarantine, empty_readings
 from adapters.source_tools import (
     DEFAULT_QUALITY_MAP,
     pattern_problem,

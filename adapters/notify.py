@@ -36,7 +36,8 @@ from email.message import EmailMessage
 from email.utils import formatdate, parseaddr
 from typing import Any, ClassVar, Literal
 
-from adapters.base import Message, Notifier, NotifyError, NotifyRejected
+from adapters.base import Notifier, NotifyError, NotifyRejected
+from adapters.records import Message
 
 log = logging.getLogger(__name__)
 

@@ -23,7 +23,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from adapters.base import TagSpec, empty_quarantine
+from adapters.records import TagSpec, empty_quarantine
 from adapters.units import UnitError, converter
 
 __all__ = [

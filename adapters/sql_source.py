@@ -1,5 +1,10 @@
 """Readings from a SQL table through SQLAlchemy 2.x (alias ``sql``), any dialect.
 
+This module keeps the source: its settings, the read-only connection with its retries,
+and the windowed reads (`SqlSource.read`, `SqlSource.batches`). The table is reflected,
+its settings checked and its time bounds worked out in `adapters.sql_table`; the rows a
+window fetched become readings and quarantine rows in `adapters.sql_rows`.
+
 Two table shapes, names from the config:
 
 * **long** — one row per reading: ``time_column``, ``tag_column``, ``value_column`` and,
@@ -68,30 +73,19 @@ from __future__ import annotations
 
 import functools
 import logging
-import math
 import time
 from collections import Counter
 from collections.abc import Callable, Iterable, Iterator, Mapping
-from datetime import UTC, datetime, timedelta
+from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Any, TypeVar
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import numpy as np
-import numpy.typing as npt
 import pandas as pd
 import sqlalchemy as sa
 
-from adapters.base import (
-    Batch,
-    BranchwatchAdapterError,
-    ReadingsSource,
-    SourceUnavailable,
-    TagSpec,
-    UnknownTagError,
-    empty_quarantine,
-    empty_readings,
-)
+from adapters.base import ReadingsSource, SourceUnavailable, UnknownTagError
 from adapters.credentials import (
     is_authentication_failure,
     mask_secrets,
@@ -100,18 +94,17 @@ from adapters.credentials import (
     remember_url,
     url_secrets,
 )
+from adapters.records import Batch, TagSpec, empty_quarantine, empty_readings
 from adapters.source_tools import (
     DEFAULT_QUALITY_MAP,
-    NONFINITE_REASON,
     TIME_REASONS,
-    parse_times,
-    quality_good,
     quarantine_frame,
-    readings_frame,
     si_scale_offset,
 )
+from adapters.sql_rows import SqlRows
+from adapters.sql_table import LOCAL_PAD
 
-__all__ = ["CredentialsRefused", "SourceSettingError", "SqlSource"]
+__all__ = ["CredentialsRefused", "SqlSource"]
 
 log = logging.getLogger(__name__)
 T = TypeVar("T")
@@ -122,28 +115,14 @@ _READ_ONLY = {
     "mariadb": "SET SESSION TRANSACTION READ ONLY",
     "sqlite": "PRAGMA query_only = ON",
 }
-# Padding of a window when the column holds local wall time: wider than any UTC offset
-# change (DST moves the clock by one hour, a few zones by two), then filtered exactly.
-_LOCAL_PAD = timedelta(hours=3)
 _AMBIGUOUS = "ambiguous local time"
-_PROBE = 100  # distinct text times looked at from each end for one that reads as a time
-_OVERFLOW = "value too large: it overflows when converted to SI units"
 
 
 class CredentialsRefused(SourceUnavailable):
     """The database refused the login: not retried (retries can lock the account)."""
 
 
-class SourceSettingError(BranchwatchAdapterError, ValueError):
-    """A [source] setting does not match the database (a table or column that does not
-    exist); *setting* is its key path in the site file, e.g. ``source.table``."""
-
-    def __init__(self, setting: str, message: str) -> None:
-        super().__init__(f"{setting}: {message}")
-        self.setting = setting
-
-
-class SqlSource(ReadingsSource):
+class SqlSource(SqlRows, ReadingsSource):
     """A long or wide historian table; see the module docstring for the rules.
 
     *window* [s, as timedelta] is the span of one incremental batch; *overlap* [s, as
@@ -221,11 +200,6 @@ class SqlSource(ReadingsSource):
         self._table: sa.Table | None = None
 
     # ----------------------------------------------------------------- public API
-    @property
-    def cursor_key(self) -> str:
-        """The key of this table's watermark in the store."""
-        return f"{self.schema}.{self.table_name}" if self.schema else self.table_name
-
     def read(self, tags: Iterable[str], start: datetime, end: datetime) -> pd.DataFrame:
         """Readings of *tags* with ``start <= time < end`` (UTC); bad rows are dropped
         with a logged count (use `batches` to see them in quarantine)."""
@@ -337,112 +311,6 @@ class SqlSource(ReadingsSource):
             f"that the server is running and reachable and that {self._hint} is right"
         )
 
-    def _reflect(self, conn: sa.Connection) -> sa.Table:
-        if self._table is not None:
-            return self._table
-        try:
-            table = sa.Table(self.table_name, sa.MetaData(), schema=self.schema, autoload_with=conn)
-        except sa.exc.NoSuchTableError:
-            raise SourceSettingError(
-                "source.table",
-                f"table {self.cursor_key!r} does not exist at {self.where}; check the spelling "
-                "(and [source] schema)",
-            ) from None
-        wanted = [("time_column", self.time_column)]
-        if self.layout == "long":
-            wanted += [("tag_column", self.tag_column), ("value_column", self.value_column)]
-            if self.quality_column:
-                wanted.append(("quality_column", self.quality_column))
-        for arg, col in wanted:
-            if col not in table.c:
-                raise SourceSettingError(
-                    f"source.{arg}",
-                    f"table {self.cursor_key!r} has no column {col!r}; "
-                    f"it has {sorted(table.c.keys())}",
-                )
-        if self.layout == "wide":
-            for tag in self.tags:
-                if tag not in table.c:
-                    raise UnknownTagError(tag, f"{self.name} ({self.cursor_key})")
-        self._table = table
-        return table
-
-    def _aware(self, table: sa.Table) -> bool:
-        return bool(getattr(table.c[self.time_column].type, "timezone", False))
-
-    def _to_db(self, table: sa.Table, when: datetime, pad: timedelta) -> datetime:
-        """A UTC instant as the column stores it (naive local wall time, padded)."""
-        when = when.astimezone(UTC)
-        if self._aware(table):
-            return when
-        if self.zone.key == "UTC":
-            return when.replace(tzinfo=None)
-        return (when + pad).astimezone(self.zone).replace(tzinfo=None)
-
-    def _span(
-        self, conn: sa.Connection
-    ) -> tuple[pd.Timestamp | None, pd.Timestamp | None, pd.Timestamp | None]:
-        """(oldest, newest) padded for local wall time, and the newest row's own time (a
-        repeated wall time read as daylight time: the earlier instant)."""
-        table = self._reflect(conn)
-        t = table.c[self.time_column]
-        query = sa.select(sa.func.min(t), sa.func.max(t))
-        if self.layout == "long":
-            query = query.where(table.c[self.tag_column].in_(list(self.tags)))
-        low, high = conn.execute(query).one()
-        if low is None:
-            return None, None, None
-        if isinstance(low, str) or isinstance(high, str):  # a text column may hold garbage
-            low, high = self._readable_end(conn, query, t, t.asc()), \
-                self._readable_end(conn, query, t, t.desc())
-            if low is None or high is None:
-                return None, None, None
-        pad = timedelta(0) if self._aware(table) or self.zone.key == "UTC" else _LOCAL_PAD
-        last = self._utc_bound(high, timedelta(0))
-        return self._utc_bound(low, -pad), self._utc_bound(high, pad), last
-
-    def _next(self, conn: sa.Connection, after: pd.Timestamp) -> pd.Timestamp | None:
-        table = self._reflect(conn)
-        t = table.c[self.time_column]
-        bound = self._to_db(table, after.to_pydatetime(), -_LOCAL_PAD)
-        query = sa.select(sa.func.min(t)).where(t >= bound)
-        if self.layout == "long":
-            query = query.where(table.c[self.tag_column].in_(list(self.tags)))
-        low = conn.execute(query).scalar()
-        if isinstance(low, str):
-            low = self._readable_end(conn, query, t, t.asc())
-        return None if low is None else self._utc_bound(low, -_LOCAL_PAD)
-
-    def _readable_end(
-        self, conn: sa.Connection, query: sa.Select[Any], t: Any, order: Any
-    ) -> Any:
-        """The first value of a text time column, in *order*, that reads as a time (a
-        text that is no time sorts anywhere and must not set the span); None if the
-        first `_PROBE` distinct values all fail."""
-        probe = sa.select(t).distinct()
-        if query.whereclause is not None:
-            probe = probe.where(query.whereclause)
-        for (value,) in conn.execute(probe.where(t.is_not(None)).order_by(order).limit(_PROBE)):
-            try:
-                pd.Timestamp(value)
-            except (ValueError, TypeError, OverflowError):
-                continue
-            return value
-        return None
-
-    def _utc_bound(self, value: Any, pad: timedelta) -> pd.Timestamp:
-        """A DB time as UTC, moved by *pad* when it is local wall time (may be ambiguous)."""
-        stamp = pd.Timestamp(value)
-        if stamp.tzinfo is not None:
-            return stamp.tz_convert("UTC")
-        if self.zone.key == "UTC":
-            return stamp.tz_localize("UTC")
-        return (
-            (stamp + pad)
-            .tz_localize(self.zone, ambiguous=True, nonexistent="shift_forward")
-            .tz_convert("UTC")
-        )
-
     def _window(
         self, tags: list[str], start: datetime, end: datetime
     ) -> tuple[pd.DataFrame, pd.DataFrame, dict[str, int]]:
@@ -451,7 +319,7 @@ class SqlSource(ReadingsSource):
         def fetch(conn: sa.Connection) -> tuple[sa.Table, list[Any]]:
             table = self._reflect(conn)
             t = table.c[self.time_column]
-            lo, hi = self._to_db(table, start, -_LOCAL_PAD), self._to_db(table, end, _LOCAL_PAD)
+            lo, hi = self._to_db(table, start, -LOCAL_PAD), self._to_db(table, end, LOCAL_PAD)
             if self.layout == "long":
                 cols = [t, table.c[self.tag_column], table.c[self.value_column]]
                 if self.quality_column:
@@ -489,155 +357,10 @@ class SqlSource(ReadingsSource):
         notes["quarantined"] += len(bad)
         return readings, quarantine_frame(bad), {k: v for k, v in notes.items() if v}
 
-    def _times(self, raw: tuple[Any, ...]) -> tuple[pd.DatetimeIndex, npt.NDArray[np.int8]]:
-        """UTC times and a status (0 ok, -1 ambiguous, else `TIME_REASONS` codes)."""
-        # A long table repeats each instant once per tag: convert each distinct value once
-        # (datetime objects convert one by one, in Python).
-        codes, uniques = pd.factorize(pd.Series(raw, dtype=object), use_na_sentinel=True)
-        utc, status = self._times_distinct(tuple(uniques))
-        utc_ns = np.append(utc.asi8, np.iinfo(np.int64).min)[codes]  # -1 (NULL) → NaT
-        status = np.append(status, np.int8(1))[codes]
-        return pd.DatetimeIndex(utc_ns.view("datetime64[ns]")).tz_localize("UTC"), status
-
-    def _times_distinct(
-        self, raw: tuple[Any, ...]
-    ) -> tuple[pd.DatetimeIndex, npt.NDArray[np.int8]]:
-        sample = next((v for v in raw if v is not None), None)
-        if isinstance(sample, str):  # a text column (SQLite without a declared type)
-            return parse_times(list(raw), self.zone)
-        status = np.zeros(len(raw), dtype=np.int8)
-        if sample is not None and getattr(sample, "tzinfo", None) is not None:
-            utc = pd.DatetimeIndex(pd.to_datetime(list(raw), utc=True)).as_unit("ns")
-            status[utc.isna()] = 1
-            return utc, status
-        wall = pd.DatetimeIndex(pd.to_datetime(list(raw))).as_unit("ns")
-        status[wall.isna()] = 1
-        if self.zone.key == "UTC":
-            return wall.tz_localize("UTC"), status
-        local = wall.tz_localize(self.zone, ambiguous="NaT", nonexistent="NaT")
-        as_dst = wall.tz_localize(self.zone, ambiguous=np.ones(len(wall), bool), nonexistent="NaT")
-        lost = local.isna() & (status == 0)
-        nonexistent = lost & as_dst.isna()
-        status[nonexistent] = 3
-        status[lost & ~nonexistent] = -1
-        return local.tz_convert("UTC"), status
-
-    def _long(
-        self,
-        columns: list[tuple[Any, ...]],
-        times: pd.DatetimeIndex,
-        keep: npt.NDArray[np.bool_],
-        bad: list[tuple[str, int, str, Any]],
-        notes: Counter[str],
-    ) -> pd.DataFrame:
-        tags = np.asarray(columns[1], dtype=object)
-        values = _floats(columns[2])
-        odd = keep & _nonfinite(columns[2], values)
-        if odd.any():
-            notes["nonfinite_values"] += int(odd.sum())
-            for i in np.flatnonzero(odd):
-                row = _row(columns, int(i))
-                bad.append((*self._place(columns, int(i)), NONFINITE_REASON, repr(row)))
-            keep = keep & ~odd
-        blank = keep & ~np.isfinite(values)
-        for i in np.flatnonzero(blank):
-            row = (columns[0][i], columns[1][i], columns[2][i])
-            reason = "blank value" if columns[2][i] is None else "value is not a number"
-            bad.append((*self._place(columns, int(i)), reason, repr(row)))
-        keep = keep & ~blank
-        good = np.ones(len(tags), dtype=bool)
-        if self.quality_column:
-            good, unmapped = quality_good(columns[3], self.quality_map)
-            notes["unmapped_quality"] += unmapped
-        ids, uniques = pd.factorize(tags)
-        scale = np.array([self._si[str(u)][0] for u in uniques])
-        offset = np.array([self._si[str(u)][1] for u in uniques])
-        with np.errstate(over="ignore", invalid="ignore"):
-            si = values * scale[ids] + offset[ids]
-        for i in np.flatnonzero(keep & ~np.isfinite(si)):
-            bad.append((*self._place(columns, int(i)), _OVERFLOW, repr(_row(columns, int(i)))))
-            keep = keep & (np.arange(len(keep)) != i)
-        return readings_frame(times.asi8[keep], tags[keep], si[keep], good[keep])
-
-    def _wide(
-        self,
-        columns: list[tuple[Any, ...]],
-        tags: list[str],
-        times: pd.DatetimeIndex,
-        keep: npt.NDArray[np.bool_],
-        bad: list[tuple[str, int, str, Any]],
-        notes: Counter[str],
-    ) -> pd.DataFrame:
-        parts_t, parts_v, counts = [], [], []
-        for j, tag in enumerate(tags, start=1):
-            values = _floats(columns[j])
-            odd = keep & _nonfinite(columns[j], values)
-            if odd.any():  # NULL is "not sampled"; NaN and infinity are values gone wrong
-                notes["nonfinite_values"] += int(odd.sum())
-                reason = f"{NONFINITE_REASON}: {tag}"
-                for i in np.flatnonzero(odd):
-                    row = _row(columns, int(i))
-                    bad.append((*self._place(columns, int(i)), reason, repr(row)))
-            ok = keep & np.isfinite(values)
-            scale, offset = self._si[tag]
-            with np.errstate(over="ignore", invalid="ignore"):
-                si = values * scale + offset
-            for i in np.flatnonzero(ok & ~np.isfinite(si)):
-                row = _row(columns, int(i))
-                bad.append((*self._place(columns, int(i)), f"{_OVERFLOW}: {tag}", repr(row)))
-            ok &= np.isfinite(si)
-            parts_t.append(times.asi8[ok])
-            parts_v.append(si[ok])
-            counts.append(int(ok.sum()))
-        names = np.repeat(np.array(tags, dtype=object), counts)
-        return readings_frame(np.concatenate(parts_t), names, np.concatenate(parts_v), None)
-
-    def _place(self, columns: list[tuple[Any, ...]], i: int) -> tuple[str, int]:
-        """Quarantine origin and "line" of row *i*: a table has no line numbers, so the
-        origin is the table (and tag, long layout) and the line the stored time as
-        digits (YYYYMMDDhhmmss) — stable, so a re-read quarantines the same row again."""
-        origin = f"{self.cursor_key}:{columns[1][i]}" if self.layout == "long" else self.cursor_key
-        stamp = columns[0][i]
-        line = int(stamp.strftime("%Y%m%d%H%M%S")) if isinstance(stamp, datetime) else 0
-        return origin, line
-
     def _mask(self, text: str) -> str:
         """*text* with every password masked (`adapters.credentials.mask_secrets`)."""
         return mask_secrets(text)
 
-
-def _nonfinite(raw: tuple[Any, ...], values: npt.NDArray[np.float64]) -> npt.NDArray[np.bool_]:
-    """Cells that hold NaN or infinity (a stored float, or text that spells one), not NULL."""
-    gone = ~np.isfinite(values)
-    if not gone.any():
-        return gone
-    return gone & np.array(
-        [v is not None and _spells_nonfinite(v) for v in raw], dtype=bool
-    )
-
-
-def _spells_nonfinite(value: Any) -> bool:
-    if isinstance(value, float):
-        return not math.isfinite(value)
-    if isinstance(value, str):
-        return value.strip().lower().lstrip("+-") in ("nan", "inf", "infinity")
-    try:
-        return not math.isfinite(float(value))  # Decimal('NaN') and the like
-    except (TypeError, ValueError):
-        return False
-
-
-def _row(columns: list[tuple[Any, ...]], i: int) -> tuple[Any, ...]:
-    """Row *i* of column tuples, for a quarantine row's raw text."""
-    return tuple(col[i] for col in columns)
-
-
-def _floats(values: tuple[Any, ...]) -> npt.NDArray[np.float64]:
-    try:
-        return np.asarray(values, dtype=np.float64)
-    except (TypeError, ValueError):  # text in a numeric column: what does not parse is NaN
-        series = pd.to_numeric(pd.Series(values, dtype=object), errors="coerce")
-        return series.to_numpy(dtype=np.float64, copy=True)
 
 
 def _read_only_hook(statement: str) -> Callable[[Any, Any], None]:

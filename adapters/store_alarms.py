@@ -12,7 +12,6 @@ from typing import Any, ClassVar
 import pandas as pd
 import sqlalchemy as sa
 
-from adapters.base import ALARM_STATES, AlarmStateName
 from adapters.credentials import mask_secrets
 from adapters.migrations.dialects import num, upsert
 from adapters.migrations.tables import (
@@ -22,6 +21,7 @@ from adapters.migrations.tables import (
     outbox_t,
     utc_datetime,
 )
+from adapters.records import ALARM_STATES, AlarmStateName
 from adapters.store_transactions import StoreTransactions, _name, _record
 
 

@@ -12,8 +12,9 @@ from typing import Any
 import pandas as pd
 import sqlalchemy as sa
 
-from adapters.base import MAINTENANCE_KINDS, StoreError
+from adapters.base import StoreError
 from adapters.migrations.tables import maintenance_t, utc_datetime
+from adapters.records import MAINTENANCE_KINDS
 from adapters.store_transactions import StoreTransactions, _name
 
 

@@ -15,13 +15,6 @@ import numpy as np
 import pandas as pd
 import sqlalchemy as sa
 
-from adapters.base import (
-    CORRECTION_POLICIES,
-    Batch,
-    BatchWrite,
-    empty_readings,
-    values_differ,
-)
 from adapters.migrations.dialects import (
     CHUNK,
     copy_readings_pg,
@@ -46,6 +39,7 @@ from adapters.migrations.tables import (
     readings_t,
     utc_datetime,
 )
+from adapters.records import CORRECTION_POLICIES, Batch, BatchWrite, empty_readings, values_differ
 from adapters.store_transactions import StoreTransactions, _name
 
 log = logging.getLogger(__name__)
@@ -69,7 +63,7 @@ class ReadingsTables(StoreTransactions):
         Parameters
         ----------
         batch
-            Readings frame (see `adapters.base`), quarantine frame and cursor.
+            Readings frame (see `adapters.records`), quarantine frame and cursor.
         source
             Name of the source the cursor belongs to [-].
         corrections

@@ -45,8 +45,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from adapters.base import Batch, ReadingsSource, empty_quarantine
+from adapters.base import ReadingsSource
 from adapters.fit_record import fits_of
+from adapters.records import Batch, empty_quarantine
 from adapters.store import SqlStore
 from model.simulate import Simulation
 from monitor.analysis import analyze_window

@@ -55,7 +55,6 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from analysis_speed import readings_frame, synthetic_site
 
-from adapters.base import Batch, empty_quarantine
 from adapters.fit_record import fits_of
 from adapters.migrations.tables import (
     data_health_t,
@@ -64,6 +63,7 @@ from adapters.migrations.tables import (
     header_balance_t,
     window_checks_t,
 )
+from adapters.records import Batch, empty_quarantine
 from adapters.store import SqlStore
 from monitor.cluster import SiteRun, analyze_on_cluster
 from monitor.config import Site

@@ -36,7 +36,7 @@ import pyarrow.csv as pacsv
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from adapters.base import TagSpec
+from adapters.records import TagSpec
 
 START = pd.Timestamp("2026-01-01", tz="UTC")
 

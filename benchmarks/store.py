@@ -26,7 +26,7 @@ import numpy as np
 import pandas as pd
 import sqlalchemy as sa
 
-from adapters.base import Batch, empty_quarantine
+from adapters.records import Batch, empty_quarantine
 from adapters.store import SqlStore
 from monitor.quality import TagLimits, screen
 

@@ -43,7 +43,7 @@ from typing import Literal
 
 import pandas as pd
 
-from adapters.base import AlarmStateName
+from adapters.records import AlarmStateName
 from adapters.units import from_si
 
 __all__ = [

@@ -21,15 +21,10 @@ from typing import Any
 
 import pandas as pd
 
-from adapters.base import (
-    BranchwatchAdapterError,
-    MaintenanceKind,
-    ReadingsSource,
-    ResultsStore,
-    open_store,
-)
+from adapters.base import BranchwatchAdapterError, ReadingsSource, ResultsStore, open_store
 from adapters.credentials import MaskingFormatter, mask_secrets
 from adapters.fit_record import fits_of
+from adapters.records import MaintenanceKind
 from adapters.units import UnitError, parse_quantity
 from monitor.cli_parser import ALARM_OPTIONS, build_parser, default_jobs
 from monitor.cli_text import (

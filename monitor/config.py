@@ -36,8 +36,8 @@ from pydantic import (
     model_validator,
 )
 
-from adapters.base import TagSpec
 from adapters.credentials import parse_url, read_url, url_secrets
+from adapters.records import TagSpec
 from model.network import ParallelHeader, PumpCurve
 from monitor.analysis_sections import (
     AnalysisSection,

@@ -21,8 +21,8 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import pandas as pd
 
-from adapters.base import MaintenanceKind
 from adapters.fit_record import HISTORY_NUMBERS
+from adapters.records import MaintenanceKind
 from adapters.units import UnitError, converter, from_si
 
 __all__ = [

@@ -17,7 +17,8 @@ from typing import Any
 
 import pandas as pd
 
-from adapters.base import BatchWrite, ReadingsSource, ResultsStore, source_class
+from adapters.base import ReadingsSource, ResultsStore, source_class
+from adapters.records import BatchWrite
 from monitor.config import Site
 
 log = logging.getLogger(__name__)

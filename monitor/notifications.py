@@ -37,15 +37,9 @@ from typing import Any
 
 import pandas as pd
 
-from adapters.base import (
-    Message,
-    Notifier,
-    NotifyError,
-    NotifyRejected,
-    ResultsStore,
-    notifier_class,
-)
+from adapters.base import Notifier, NotifyError, NotifyRejected, ResultsStore, notifier_class
 from adapters.credentials import read_secret, remember_secret
+from adapters.records import Message
 from monitor.alarms import State, describe_condition
 from monitor.analysis_sections import NotifySection
 from monitor.config import Site

@@ -1,7 +1,7 @@
 """Screening of historian readings: which samples a fit may trust.
 
 Pure pandas/numpy on a readings frame (``time`` UTC, ``tag``, ``value`` SI, ``good``; see
-`adapters.base`); no I/O. Per tag, each sample gets these flags:
+`adapters.records`); no I/O. Per tag, each sample gets these flags:
 
 ==============  ===============================================================  ========
 flag            meaning                                                          unusable
@@ -47,7 +47,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from adapters.base import READING_COLUMNS, TagSpec
+from adapters.records import READING_COLUMNS, TagSpec
 from monitor.sample_checks import _frozen, _gaps, _hampel, _too_fast
 
 __all__ = [

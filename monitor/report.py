@@ -30,7 +30,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt
 import pandas as pd
 
-from adapters.base import AlarmStateName as State
+from adapters.records import AlarmStateName as State
 from adapters.units import from_si, pressure_labels
 from monitor.config import Site
 from monitor.findings import episode_text, flow_pair

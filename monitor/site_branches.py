@@ -11,7 +11,7 @@ from typing import Any
 
 import numpy as np
 
-from adapters.base import TagSpec
+from adapters.records import TagSpec
 from adapters.units import UnitError, converter
 from model.branch import Branch, HeldHeader, OpenDischarge, ReturnHeader, Tank
 from model.elements import ControlValve, Elevation, Equipment, Fittings, Pipe

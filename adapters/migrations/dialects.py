@@ -22,7 +22,8 @@ from sqlalchemy.dialects.mysql import insert as mysql_insert
 from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 
-from adapters.base import QUARANTINE_COLUMNS, READING_COLUMNS, StoreError, empty_readings
+from adapters.base import StoreError
+from adapters.records import QUARANTINE_COLUMNS, READING_COLUMNS, empty_readings
 
 CHUNK = 20_000  # rows per executemany: bounds the parameter lists held in memory
 

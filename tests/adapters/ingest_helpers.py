@@ -12,7 +12,8 @@ from typing import Any
 
 import pandas as pd
 
-from adapters.base import Batch, ReadingsSource, empty_quarantine, empty_readings
+from adapters.base import ReadingsSource
+from adapters.records import Batch, empty_quarantine, empty_readings
 
 
 @dataclass

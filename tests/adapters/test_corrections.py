@@ -17,8 +17,8 @@ import sqlalchemy as sa
 from alembic import command
 from alembic.config import Config
 
-from adapters.base import Batch, empty_quarantine, values_differ
 from adapters.migrations.dialects import native_times
+from adapters.records import Batch, empty_quarantine, values_differ
 from adapters.store import SqlStore
 
 T0 = datetime(2026, 2, 9, 6, tzinfo=UTC)

@@ -16,8 +16,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from adapters.base import TagSpec
 from adapters.csv_source import CsvSource
+from adapters.records import TagSpec
 from adapters.units import UnitError
 from tests.adapters.ingest_helpers import canonical, ingest, reasons, write
 

@@ -14,8 +14,9 @@ from typing import Any
 import pandas as pd
 import pytest
 
-from adapters.base import SourceUnavailable, TagSpec, source_class
+from adapters.base import SourceUnavailable, source_class
 from adapters.csv_source import CsvSource
+from adapters.records import TagSpec
 from adapters.units import UnitError
 from tests.adapters.ingest_helpers import canonical, ingest, reasons, write
 

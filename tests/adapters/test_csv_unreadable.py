@@ -21,9 +21,10 @@ import pytest
 import sqlalchemy as sa
 
 from adapters import csv_source
-from adapters.base import ResultsStore, TagSpec, open_store
+from adapters.base import ResultsStore, open_store
 from adapters.csv_chunks import MAX_LINE_BYTES
 from adapters.csv_source import CsvSource
+from adapters.records import TagSpec
 from monitor.config import ConfigError, Site, parse_site
 from monitor.demo import EXAMPLE_SITE
 from monitor.ingest import IngestSummary, ingest, open_source

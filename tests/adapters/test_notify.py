@@ -13,8 +13,9 @@ from pathlib import Path
 
 import pytest
 
-from adapters.base import Message, NotifyError, NotifyRejected, notifier_class
+from adapters.base import NotifyError, NotifyRejected, notifier_class
 from adapters.notify import SmtpNotifier, WebhookNotifier
+from adapters.records import Message
 from tests.servers import HookServer, MailServer, free_port, silent_server
 
 MSG = Message(key="alarm:B2-compressor:low_flow:2026-06-10T09:50:00Z",

@@ -22,8 +22,9 @@ import pandas as pd
 import pytest
 import sqlalchemy as sa
 
-from adapters.base import ReadingsSource, TagSpec, UnknownTagError
+from adapters.base import ReadingsSource, UnknownTagError
 from adapters.csv_source import CsvSource
+from adapters.records import TagSpec
 from adapters.sql_source import SqlSource
 from tests.adapters.ingest_helpers import canonical, ingest, write
 

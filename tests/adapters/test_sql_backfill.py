@@ -21,7 +21,8 @@ import pandas as pd
 import pytest
 import sqlalchemy as sa
 
-from adapters.base import ResultsStore, TagSpec, open_store
+from adapters.base import ResultsStore, open_store
+from adapters.records import TagSpec
 from adapters.sql_source import SqlSource
 from monitor.config import ConfigError, Site, parse_site
 from monitor.demo import EXAMPLE_SITE

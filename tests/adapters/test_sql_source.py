@@ -15,7 +15,8 @@ import pandas as pd
 import pytest
 import sqlalchemy as sa
 
-from adapters.base import SourceUnavailable, TagSpec, UnknownTagError, source_class
+from adapters.base import SourceUnavailable, UnknownTagError, source_class
+from adapters.records import TagSpec
 from adapters.sql_source import SqlSource
 from tests.adapters.ingest_helpers import canonical, ingest, store
 

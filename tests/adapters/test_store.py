@@ -22,9 +22,10 @@ from alembic.migration import MigrationContext
 
 from adapters import store as store_module
 from adapters import store_readings
-from adapters.base import Batch, ResultsStore, StoreError
+from adapters.base import ResultsStore, StoreError
 from adapters.fit_record import WindowFit
 from adapters.migrations import tables
+from adapters.records import Batch
 from adapters.store import SqlStore
 from monitor.quality import TagLimits, screen
 

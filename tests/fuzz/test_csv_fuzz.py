@@ -33,8 +33,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from adapters.base import TagSpec
 from adapters.csv_source import CsvSource
+from adapters.records import TagSpec
 from tests.adapters.ingest_helpers import ingest, write
 
 TAGS = [TagSpec("PT-100", "bar", "pressure"), TagSpec("FT-203", "m3/h", "flow")]

@@ -1,13 +1,14 @@
 """Fuzzing the SQL source's row handling: generated fetched rows, long and wide.
 
 `SqlSource._window` turns the rows a query fetched into readings and quarantine rows
-(times through `_times`, values through `_floats` / `_long` / `_wide`). The bulk (10,000
-cases, ``slow``) feeds it generated row tuples directly, with the database query replaced
-by the generated rows; a smaller run writes generated rows to a real SQLite table and
-reads them through `SqlSource.batches`. Column types are one per case, as a database
-column has one: naive or aware datetimes, text (SQLite without a declared type), floats,
-Decimals, integers or text values; NULL, NaN and infinity, text that is not a number and
-numbers that overflow in SI units are mixed in.
+(times through `_times`, values through `_floats` / `_long` / `_wide`, all four in
+`adapters/sql_rows.py`). The bulk (10,000 cases, ``slow``) feeds it generated row tuples
+directly, with the database query replaced by the generated rows; a smaller run writes
+generated rows to a real SQLite table and reads them through `SqlSource.batches`. Column
+types are one per case, as a database column has one: naive or aware datetimes, text
+(SQLite without a declared type), floats, Decimals, integers or text values; NULL, NaN
+and infinity, text that is not a number and numbers that overflow in SI units are mixed
+in.
 
 Checks: nothing raises; every good row is a reading, value for value; every bad row is
 one quarantine row naming the table (and tag), with a reason; nothing else is. The rules
@@ -32,7 +33,7 @@ import sqlalchemy as sa
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from adapters.base import TagSpec
+from adapters.records import TagSpec
 from adapters.sql_source import SqlSource
 from tests.adapters.ingest_helpers import ingest
 

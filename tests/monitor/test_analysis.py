@@ -20,7 +20,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from adapters.base import READING_COLUMNS
+from adapters.records import READING_COLUMNS
 from model.fit import fit_resistance
 from model.simulate import Fault, FrozenMeter, StepRestriction
 from monitor.analysis import analyze_window, screen_settings

@@ -30,7 +30,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from adapters.base import Batch, ReadingsSource, open_store
+from adapters.base import ReadingsSource, open_store
+from adapters.records import Batch
 from model.simulate import Fault, NoiseSpec, OperatingSpec, StepRestriction
 from monitor.config import Site, parse_site
 from monitor.demo import DEMO_OPERATION, simulate_site

@@ -21,7 +21,8 @@ from zoneinfo import ZoneInfo
 import pandas as pd
 import pytest
 
-from adapters.base import Batch, empty_quarantine, open_store
+from adapters.base import open_store
+from adapters.records import Batch, empty_quarantine
 from monitor.alarm_instruments import StaleSettings, evaluate_stale
 from monitor.alarm_points import stale_after
 from monitor.alarm_watch import evaluate_alarms, ingest_and_watch, newest_readings

@@ -29,12 +29,13 @@ import sqlalchemy as sa
 import tomli_w
 
 from adapters import credentials
-from adapters.base import StoreError, TagSpec, open_store
+from adapters.base import StoreError, open_store
 from adapters.credentials import (
     is_authentication_failure,
     mask_secrets,
     remember_secret,
 )
+from adapters.records import TagSpec
 from adapters.sql_source import CredentialsRefused, SqlSource
 from adapters.store import SqlStore
 from monitor.cli import FILE_UMASK, main

@@ -2,13 +2,14 @@
 
 The SQL source reflects the named table and uses SQLAlchemy Column objects (every name
 quoted by the dialect) and bound parameters for tags (module doc of
-`adapters/sql_source.py`). Each probe below puts an injection into one identifier — the
-table, the schema, a column, a tag — against SQLite and the loopback PostgreSQL and
-MariaDB servers, and checks that nothing was executed (a guard table and the readings
-table are intact, rows counted before and after), that the source either reads the real
-table under that quoted name or refuses with one clear line, and that an injected tag
-matches no row. The probes are classic forms of SQL injection (common practice: the
-statement terminator, a closed quote with a tautology, a comment).
+`adapters/sql_source.py`; the reflection and its checks: `adapters/sql_table.py`). Each
+probe below puts an injection into one identifier — the table, the schema, a column, a
+tag — against SQLite and the loopback PostgreSQL and MariaDB servers, and checks that
+nothing was executed (a guard table and the readings table are intact, rows counted
+before and after), that the source either reads the real table under that quoted name or
+refuses with one clear line, and that an injected tag matches no row. The probes are
+classic forms of SQL injection (common practice: the statement terminator, a closed
+quote with a tautology, a comment).
 """
 
 from __future__ import annotations
@@ -20,7 +21,8 @@ from typing import Any
 import pytest
 import sqlalchemy as sa
 
-from adapters.base import SourceUnavailable, TagSpec, UnknownTagError
+from adapters.base import SourceUnavailable, UnknownTagError
+from adapters.records import TagSpec
 from adapters.sql_source import SqlSource
 from tests.adapters.ingest_helpers import ingest
 

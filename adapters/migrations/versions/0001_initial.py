@@ -16,7 +16,7 @@ import sqlalchemy as sa
 from alembic import op
 from sqlalchemy.dialects import mysql
 
-from adapters.base import ALARM_STATES  # the one list of alarm states
+from adapters.records import ALARM_STATES  # the one list of alarm states
 
 revision = "0001_initial"
 down_revision = None
