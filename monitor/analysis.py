@@ -4,8 +4,9 @@
 screens every tag (`monitor.quality`), puts the usable samples on a regular grid, keeps
 the samples where the pump runs and flows and pressures are steady, fits each branch's
 resistance ratio (`model.fit.fit_resistance`), and counts what screening flagged per tag
-and the header mass balance, which the diagnosis needs. Nothing here reads or writes a
-store; `monitor.jobs` does that.
+and the header mass balance, which the diagnosis needs. The grid is
+`monitor.sample_grid`'s; the words for a window without a fit are
+`monitor.fit_verdicts`'. Nothing here reads or writes a store; `monitor.jobs` does that.
 """
 
 from __future__ import annotations
@@ -21,7 +22,6 @@ import numpy as np
 import pandas as pd
 
 from adapters.fit_record import AfterStep, FitSums, WindowFit
-from adapters.units import from_si
 from model.fit import (
     ChangePoint,
     FitResult,
@@ -32,6 +32,7 @@ from model.fit import (
 )
 from monitor.backflow import resting_samples
 from monitor.config import BranchConfig, Site
+from monitor.fit_verdicts import MIN_FIT_FLOW_M3S, Verdicts, empty_grid_cause
 from monitor.quality import (
     ScreenSettings,
     TagLimits,
@@ -39,6 +40,7 @@ from monitor.quality import (
     screen,
 )
 from monitor.sample_checks import resolution_by_tag
+from monitor.sample_grid import SampleGrid, steady_by_tag
 
 log = logging.getLogger(__name__)
 
@@ -62,9 +64,6 @@ def tail_rule(window_s: float, grid_s: float) -> StepRule:
     half an hour, at least an eighth of the window and 6 grid steps."""
     side = min(TAIL_RULE.min_head_s, max(window_s / 8.0, 6.0 * grid_s))
     return replace(TAIL_RULE, min_head_s=side, min_tail_s=side)
-#: Samples at or below a quarter of the branch's minimum flow, and never less than this,
-#: carry too little dynamic drop to fit [m^3/s] (0.36 m3/h).
-MIN_FIT_FLOW_M3S = 1e-4
 
 
 @dataclass(frozen=True)
@@ -144,7 +143,7 @@ def analyze_window(
     health = result.health_counts()
     screening = _screening_counts(site, result.flags, t0, t1)
     freq = pd.Timedelta(seconds=max(site.analysis.sample_period, interval or 0.0))
-    grid = _Grid.of(result.flags, list(site.tags), freq, t0, t1)
+    grid = SampleGrid.of(result.flags, list(site.tags), freq, t0, t1)
     # Grid bins without a header pressure say nothing about the pump (the historian may
     # log less often than the grid): drop them, or each would count as a stop and a start.
     grid = grid.rows(np.isfinite(grid.column(site.header_pressure_tag)))
@@ -157,10 +156,10 @@ def analyze_window(
         running = running_mask(
             grid.frame([site.header_pressure_tag]), site.header_pressure_tag, None, settings
         ).to_numpy(bool)
-        steady, variation = _steady_by_tag(
+        steady, variation = steady_by_tag(
             grid, flow_tags, [site.header_pressure_tag], settings)
-    why = _Verdicts(site, settings, variation, resolution_by_tag(result.flags),
-                    _empty_grid_cause(site, result.flags, settings))
+    why = Verdicts(site, settings, variation, resolution_by_tag(result.flags),
+                    empty_grid_cause(site, result.flags, settings))
     rule = tail_rule((t1 - t0).total_seconds(), freq.total_seconds())
     base = running & steady.get(site.header_pressure_tag, np.zeros(len(running), bool))
     keep_all = base.copy()
@@ -189,97 +188,9 @@ def analyze_window(
     )
 
 
-@dataclass(frozen=True)
-class _Grid:
-    """Usable readings on a regular UTC grid: one row per bin, one column per tag.
-
-    The values are the means of the usable samples in each bin ``[t, t + freq)`` (NaN
-    where none), as `monitor.quality.to_wide` gives them; held as one numpy matrix so
-    that hundreds of branches cost one pass over the samples, not one per tag.
-    """
-
-    index: pd.DatetimeIndex
-    values: np.ndarray  # bins × tags [SI]
-    columns: dict[str, int]
-    seconds: np.ndarray  # bin times from the window start [s]
-
-    @classmethod
-    def of(
-        cls, flags: pd.DataFrame, tags: list[str], freq: pd.Timedelta,
-        start: pd.Timestamp, end: pd.Timestamp,
-    ) -> _Grid:
-        grid = pd.date_range(
-            start.tz_convert("UTC").floor(freq), end.tz_convert("UTC"), freq=freq,
-            inclusive="left", name="time",
-        )
-        columns = {tag: j for j, tag in enumerate(tags)}
-        value = flags["value"].to_numpy("float64")
-        use = flags["usable"].to_numpy(bool) & flags["good"].to_numpy(bool) & np.isfinite(value)
-        col = pd.Index(tags).get_indexer(pd.Index(flags["tag"]))
-        ns = flags["time"].dt.tz_convert("UTC").to_numpy("datetime64[ns]").view("int64")
-        step = int(freq.value)
-        row = (ns - (int(grid[0].value) if len(grid) else 0)) // step
-        use &= (col >= 0) & (row >= 0) & (row < len(grid))
-        cells = row[use] * len(tags) + col[use]
-        size = len(grid) * len(tags)
-        sums = np.bincount(cells, weights=value[use], minlength=size)
-        counts = np.bincount(cells, minlength=size)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            mean = np.where(counts > 0, sums / counts, np.nan)
-        seconds = ((grid - start) / pd.Timedelta(seconds=1)).to_numpy(float)
-        return cls(grid, mean.reshape(len(grid), len(tags)), columns, seconds)
-
-    @property
-    def empty(self) -> bool:
-        return len(self.index) == 0
-
-    def rows(self, keep: np.ndarray) -> _Grid:
-        return _Grid(self.index[keep], self.values[keep], self.columns, self.seconds[keep])
-
-    def column(self, tag: str) -> np.ndarray:
-        return self.values[:, self.columns[tag]]
-
-    def frame(self, tags: list[str]) -> pd.DataFrame:
-        cols = [self.columns[t] for t in tags]
-        return pd.DataFrame(self.values[:, cols], index=self.index, columns=tags)
-
-
-def _steady_by_tag(
-    grid: _Grid, flow_tags: list[str], pressure_tags: list[str], settings: ScreenSettings
-) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
-    """Per tag, True where it is steady by `monitor.quality.steady_mask`'s rule, and the
-    rolling variation (std / mean) that the rule compares with its limit [-].
-
-    One rolling pass over all the tags at once (the rule is per column); `steady_mask`
-    is the AND of these over its tags.
-    """
-    window = pd.Timedelta(seconds=settings.steady_window_s)
-    index = grid.index
-    step = index.to_series().diff().median() if len(index) > 1 else window
-    need = max(2, int(0.5 * window / step)) if pd.notna(step) and step > pd.Timedelta(0) else 2
-    out: dict[str, np.ndarray] = {}
-    variation: dict[str, np.ndarray] = {}
-    groups = (
-        (flow_tags, settings.steady_flow_rel, settings.steady_flow_floor_m3s),
-        (pressure_tags, settings.steady_pressure_rel, settings.steady_pressure_floor_pa),
-    )
-    for tags, limit, floor in groups:
-        if not tags:
-            continue
-        roll = grid.frame(list(tags)).rolling(window, center=True, min_periods=need)
-        std = roll.std().to_numpy()
-        mean = roll.mean().to_numpy()
-        cv = std / np.maximum(np.abs(mean), floor)
-        with np.errstate(invalid="ignore"):
-            ok = cv <= limit  # NaN compares False
-        out.update({tag: ok[:, j] for j, tag in enumerate(tags)})
-        variation.update({tag: cv[:, j] for j, tag in enumerate(tags)})
-    return out, variation
-
-
 def _fit_row(
-    site: Site, branch: BranchConfig, grid: _Grid, keep: np.ndarray,
-    start: pd.Timestamp, end: pd.Timestamp, running: np.ndarray, why: _Verdicts,
+    site: Site, branch: BranchConfig, grid: SampleGrid, keep: np.ndarray,
+    start: pd.Timestamp, end: pd.Timestamp, running: np.ndarray, why: Verdicts,
     rule: StepRule, flow: np.ndarray | None = None,
 ) -> WindowFit:
     """The fit of one branch; *flow* [m^3/s] stands in for a branch without a meter."""
@@ -354,7 +265,7 @@ def _fit_row(
 
 
 def _tail(
-    branch: BranchConfig, grid: _Grid, mask: np.ndarray, running: np.ndarray,
+    branch: BranchConfig, grid: SampleGrid, mask: np.ndarray, running: np.ndarray,
     seconds: np.ndarray, change: ChangePoint | None, floor: float, p: np.ndarray,
     q: np.ndarray, t: np.ndarray, conditions: dict[str, np.ndarray], rule: StepRule,
 ) -> AfterStep | None:
@@ -463,7 +374,7 @@ def _screening_counts(
     return pd.DataFrame(out)
 
 
-def _inferred_flow(site: Site, grid: _Grid) -> tuple[str, np.ndarray] | None:
+def _inferred_flow(site: Site, grid: SampleGrid) -> tuple[str, np.ndarray] | None:
     """(name, flow per bin [m^3/s]) of the one branch without a flow meter, from the header
     balance: total meter − Σ metered branches (NaN where any is missing); None unless the
     site has a total meter and exactly one unmetered branch."""
@@ -475,7 +386,7 @@ def _inferred_flow(site: Site, grid: _Grid) -> tuple[str, np.ndarray] | None:
     return unmetered[0].name, flow
 
 
-def _balance_u(site: Site, grid: _Grid, mask: np.ndarray) -> float:
+def _balance_u(site: Site, grid: SampleGrid, mask: np.ndarray) -> float:
     """Expanded (95 %) uncertainty of the balance's flow over the *mask* samples [m3/h]:
     each meter's ±``[analysis] meter_uncertainty`` of its mean reading, combined."""
     tags = [site.total_flow_tag, *(b.flow_tag for b in site.branches)]
@@ -485,7 +396,7 @@ def _balance_u(site: Site, grid: _Grid, mask: np.ndarray) -> float:
 
 
 def _balance(
-    site: Site, grid: _Grid, keep: np.ndarray, start: pd.Timestamp, end: pd.Timestamp
+    site: Site, grid: SampleGrid, keep: np.ndarray, start: pd.Timestamp, end: pd.Timestamp
 ) -> dict[str, Any] | None:
     """Σ branch meters − total meter over the steady samples, with its uncertainty."""
     tags = [b.flow_tag for b in site.branches]
@@ -507,118 +418,3 @@ def _balance(
     }
 
 
-#: A signal whose resolution is more than this share of what it must measure (the
-#: branch's clean dynamic drop; for a flow meter, its flow) gives no fit: each sample
-#: then fixes r no better than ±this share, and a signal stepping between a few levels
-#: does not average down. A rule of this project, not a published figure.
-COARSE_SHARE = 0.2
-
-
-def _in_unit(site: Site, tag: str, value_si: float) -> str:
-    """*value_si* in *tag*'s own plant unit, with three significant digits."""
-    spec = site.tags[tag]
-    return f"{float(from_si([value_si], spec.unit, spec.kind)[0]):.3g} {spec.unit}"
-
-
-def _duration(seconds: float) -> str:
-    return f"{seconds / 60:.0f} min" if seconds >= 60 else f"{seconds:.0f} s"
-
-
-def _empty_grid_cause(site: Site, flags: pd.DataFrame, settings: ScreenSettings) -> str:
-    """Why a window has no usable header pressure sample, naming the setting to change."""
-    tag = site.header_pressure_tag
-    own = flags[flags["tag"] == tag] if len(flags) else flags
-    if own.empty:
-        return f"no readings of the header pressure {tag} in this window"
-    n = len(own)
-    off = int(own["pump_off"].sum())
-    if off == n:
-        median = float(np.nanmedian(own["value"].to_numpy(float)))
-        return (f"the pump counted as stopped all window: {tag} read a median "
-                f"{_in_unit(site, tag, median)}, below the running pressure "
-                f"{_in_unit(site, tag, settings.running_pressure_pa)} "
-                "([header] running_pressure: set it below the pressure the pumps run at)")
-    counts = {f: int(own[f].sum()) for f in ("bad_quality", "no_value", "out_of_range",
-                                              "frozen", "spike", "rate", "pump_off",
-                                              "startup")}
-    parts = ", ".join(f"{c} {f.replace('_', ' ')}" for f, c in counts.items() if c)
-    return f"no usable sample of the header pressure {tag}: of {n}, {parts or 'none usable'}"
-
-
-@dataclass(frozen=True)
-class _Verdicts:
-    """Why a branch-window gave no fit, in words that name the cause and its setting."""
-
-    site: Site
-    settings: ScreenSettings
-    variation: dict[str, np.ndarray]  # rolling std/mean per tag on the grid [-]
-    resolution: dict[str, float]  # per tag, from the data [SI]
-    empty_grid: str
-
-    def too_few(self, branch: BranchConfig, grid: _Grid, keep: np.ndarray,
-                running: np.ndarray, mask: np.ndarray, floor: float, q: np.ndarray) -> str:
-        """The shortfall of steady samples, each bin counted under its first cause."""
-        site, st = self.site, self.settings
-        need = site.analysis.min_samples
-        left = np.ones(len(running), dtype=bool)
-        parts: list[str] = []
-
-        def take(bad: np.ndarray, text: str) -> None:
-            hit = left & bad
-            if hit.any():
-                parts.append(f"{int(hit.sum())} {text}")
-                left[hit] = False
-
-        pt = site.header_pressure_tag
-        take(~running, f"with the pump counted as stopped ({pt} below "
-                       f"{_in_unit(site, pt, st.running_pressure_pa)}, "
-                       "[header] running_pressure)")
-        window = _duration(st.steady_window_s)
-        for tag, limit, key in ((pt, st.steady_pressure_rel, "steady_pressure_band"),
-                                (branch.flow_tag, st.steady_flow_rel, "steady_flow_band")):
-            cv = self.variation.get(tag or "")
-            if cv is None:
-                continue
-            with np.errstate(invalid="ignore"):
-                bad = ~(cv <= limit)
-            moved = cv[left & bad & np.isfinite(cv)]
-            most = f" up to {100 * float(moved.max()):.1f} %" if moved.size else ""
-            take(bad, f"where {tag} was not steady (it varied{most} over {window}; "
-                      f"{100 * limit:.1f} % allowed, [analysis] {key})")
-        whose = ("a quarter of the branch's min_flow" if floor > MIN_FIT_FLOW_M3S
-                 else "the fit's floor for any branch")
-        take(~(q > floor), f"with flow at or below {_in_unit(site, branch.flow_tag, floor)}"
-                           f" ({whose})" if branch.flow_tag else
-             "with flow at or below the fit's floor")
-        take(~mask, "with a condition tag (level, end pressure, valve position, "
-                    "temperature) missing or unusable")
-        why = "; ".join(parts) if parts else "no sample in the window"
-        return (f"{int(mask.sum())} steady samples, {need} needed ([analysis] min_samples) "
-                f"of {len(running)} on the {_duration(grid_step(grid, st))} grid: {why}")
-
-    def too_coarse(self, branch: BranchConfig, q: np.ndarray, t: np.ndarray) -> str | None:
-        """'not identifiable: …' when a signal resolves too little of what it measures."""
-        site = self.site
-        q_med = float(np.median(q))
-        t_med = float(np.nanmedian(t)) if np.isfinite(t).any() else 20.0
-        drop = float(branch.model.dp_dynamic(q_med, temperature_c=t_med))
-        pt = site.header_pressure_tag
-        p_res = self.resolution.get(pt, 0.0)
-        if drop > 0 and p_res > COARSE_SHARE * drop:
-            return (f"not identifiable: {pt} resolves {_in_unit(site, pt, p_res)}, the "
-                    f"branch's dynamic drop is {_in_unit(site, pt, drop)} (a fit needs a "
-                    f"resolution finer than {100 * COARSE_SHARE:.0f} % of the drop)")
-        ft = branch.flow_tag
-        q_res = self.resolution.get(ft or "", 0.0)
-        if ft and q_med > 0 and 2.0 * q_res > COARSE_SHARE * q_med:
-            return (f"not identifiable: {ft} resolves {_in_unit(site, ft, q_res)} at a flow "
-                    f"of {_in_unit(site, ft, q_med)} (r goes with 1/Q², so each step moves "
-                    f"it by {200 * q_res / q_med:.0f} %)")
-        return None
-
-
-def grid_step(grid: _Grid, settings: ScreenSettings) -> float:
-    """The grid's bin width [s] (the steady-state window when the grid has one row)."""
-    if len(grid.seconds) > 1:
-        return float(np.min(np.diff(grid.seconds)))
-    return settings.steady_window_s

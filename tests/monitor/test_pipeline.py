@@ -251,7 +251,7 @@ def test_morning_report_states_each_fault_with_its_numbers(demo: dict[str, Any])
     assert "priority high" in fouling
     # B2: a valve left throttled, r ×1.5 on day 70 at 09:30 UTC (11:30 site time)
     assert "resistance ratio stepped from 1.00 to 1.50 (+50 %) on 2026-06-10 11:" in restriction
-    lost = re.search(r"flow lost (\d+\.\d) m³/h", restriction)
+    lost = re.search(r"flow lost (\d+\.\d) m3/h", restriction)
     assert lost and float(lost.group(1)) > 0
     # B4: the set point raised 0.3 bar on day 95 at 14:00 UTC (16:00 site time)
     assert "moved by +0.30 bar on 2026-07-05 16:00" in back_pressure

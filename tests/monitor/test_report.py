@@ -170,8 +170,8 @@ def test_values_in_the_findings_are_those_of_the_evidence(site: Site) -> None:
     _, page, store = _page(site)
     store.close()
     boxes = {b: box for box in page.findings for b, _ in EXPECTED if f"{b}:" in box}
-    assert "flow lost 9.0 m³/h · extra pumping 120 kWh/day" in boxes["B6-chiller"]
-    assert "flow lost 4.0 m³/h · extra pumping 40 kWh/day" in boxes["B1-reactor"]
+    assert "flow lost 9.0 m3/h · extra pumping 120 kWh/day" in boxes["B6-chiller"]
+    assert "flow lost 4.0 m3/h · extra pumping 40 kWh/day" in boxes["B1-reactor"]
     assert "confidence 95%" in boxes["B2-compressor"]
     # the forecast date, site time (Europe/Berlin), with its interval
     assert ("Forecast: r reaches the cleaning limit 1.50 about 2026-04-20 (between "
