@@ -46,7 +46,7 @@ from adapters.migrations.tables import (
     readings_t,
     utc_datetime,
 )
-from adapters.store_transactions import StoreTransactions, _name
+from adapters.store_transactions import StoreTransactions, checked_name
 
 log = logging.getLogger(__name__)
 
@@ -80,8 +80,8 @@ class ReadingsTables(StoreTransactions):
         BatchWrite
             Readings newly stored, corrections applied and newly refused [-].
         """
-        _name(source, "source", 100)
-        _name(batch.cursor_key, "batch.cursor_key", 400)
+        checked_name(source, "source", 100)
+        checked_name(batch.cursor_key, "batch.cursor_key", 400)
         if corrections not in CORRECTION_POLICIES:
             raise ValueError(f"corrections must be one of {CORRECTION_POLICIES}, "
                              f"got {corrections!r}")
