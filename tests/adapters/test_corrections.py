@@ -5,10 +5,9 @@ the same suite on SQLite, PostgreSQL and MariaDB; and the migration that adds th
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -23,50 +22,6 @@ from adapters.store import SqlStore
 
 T0 = datetime(2026, 2, 9, 6, tzinfo=UTC)
 TAGS = ["FT-311", "PT-301"]
-
-
-def _drop(url: str, schema: str) -> None:
-    engine = sa.create_engine(url)
-    quoted = engine.dialect.identifier_preparer.quote_identifier(schema)
-    with engine.begin() as conn:
-        if engine.dialect.name == "postgresql":
-            conn.exec_driver_sql(f"DROP SCHEMA IF EXISTS {quoted} CASCADE")
-        else:
-            conn.exec_driver_sql(f"DROP DATABASE IF EXISTS {quoted}")
-    engine.dispose()
-
-
-@pytest.fixture(
-    params=[
-        "sqlite",
-        pytest.param("postgresql", marks=pytest.mark.server),
-        pytest.param("mariadb", marks=pytest.mark.server),
-    ]
-)
-def opener(request: pytest.FixtureRequest, tmp_path: Path, unique_name: str) -> Iterator[Any]:
-    """Opens (another) store on this test's own database."""
-    opened: list[SqlStore] = []
-    if request.param == "sqlite":
-        url, schema = f"sqlite:///{tmp_path / 'branchwatch.db'}", None
-    else:
-        fixture = "postgres_url" if request.param == "postgresql" else "mariadb_url"
-        url, schema = request.getfixturevalue(fixture), unique_name
-
-    def open_store(migrate: bool = True) -> SqlStore:
-        opened.append(SqlStore(url, schema=schema, migrate=migrate))
-        return opened[-1]
-
-    yield open_store
-    for s in opened:
-        s.close()
-    if schema is not None:
-        _drop(url, schema)
-
-
-@pytest.fixture
-def store(opener: Any) -> SqlStore:
-    opened: SqlStore = opener()
-    return opened
 
 
 def _readings(minutes: int = 30) -> pd.DataFrame:
@@ -208,8 +163,10 @@ def _alembic(store: SqlStore, action: str, target: str) -> None:
         getattr(command, action)(cfg, target)
 
 
-def test_migration_0008_up_down_and_up_keeps_readings(opener: Any) -> None:
-    store = opener(migrate=False)
+def test_migration_0008_up_down_and_up_keeps_readings(
+    store_opener: Callable[..., SqlStore],
+) -> None:
+    store = store_opener(migrate=False)
     _alembic(store, "upgrade", "0007_outbox")
     assert "corrections" not in sa.inspect(store.engine).get_table_names()
     with store.engine.begin() as conn:  # a reading stored under the old schema
