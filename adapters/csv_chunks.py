@@ -164,7 +164,8 @@ class CsvChunkParser:
         self, data: bytes, first_line: int, key: str, layout: HeaderLayout,
         fold: dict[str, list[Any]],
     ) -> tuple[pd.DataFrame, pd.DataFrame, Counter[str]]:
-        """Readings, quarantine and notes of one chunk of whole lines."""
+        """Readings, quarantine and notes of one chunk of whole lines; the readings carry
+        the file line of each in a ``line`` column."""
         chunk = self._split(data, first_line, layout)
         notes: Counter[str] = Counter(blank_lines=chunk.blank)
         notes["long_lines"] += sum(reason == LONG_LINE_REASON for _, reason, _ in chunk.bad_rows)
@@ -213,7 +214,7 @@ class CsvChunkParser:
         notes: Counter[str],
     ) -> pd.DataFrame:
         if not layout.tag_cols:
-            return empty_readings()
+            return empty_readings().assign(line=np.zeros(0, dtype=np.int64))
         columns = []
         for col, tag in layout.tag_cols:
             values = chunk.cols[col]
@@ -240,7 +241,8 @@ class CsvChunkParser:
         names = np.array([tag for _, tag in layout.tag_cols], dtype=object)
         tag_col = np.repeat(names, ok.sum(axis=1))
         time_ns = np.broadcast_to(times.asi8, matrix.shape)[ok]
-        return readings_frame(time_ns, tag_col, matrix[ok], None)
+        lines = np.broadcast_to(chunk.lines, matrix.shape)[ok]
+        return readings_frame(time_ns, tag_col, matrix[ok], None).assign(line=lines)
 
     def _long(
         self,
@@ -304,7 +306,8 @@ class CsvChunkParser:
         bad += [(int(chunk.lines[i]), _overflow_reason(str(uniques[ids[i]])))
                 for i in np.flatnonzero(overflow)]
         keep &= ~overflow
-        return readings_frame(times.asi8[keep], uniques[ids[keep]], si[keep], good[keep])
+        return readings_frame(times.asi8[keep], uniques[ids[keep]], si[keep],
+                              good[keep]).assign(line=chunk.lines[keep])
 
     @staticmethod
     def _quarantine_rows(

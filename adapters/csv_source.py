@@ -85,6 +85,7 @@ from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 
@@ -106,6 +107,7 @@ from adapters.csv_layout import (
 )
 from adapters.source_tools import (
     DEFAULT_QUALITY_MAP,
+    FileBatch,
     pattern_problem,
     quarantine_frame,
     si_scale_offset,
@@ -520,12 +522,17 @@ class CsvSource(CsvHeader, CsvChunkParser, ReadingsSource):
         quarantine: pd.DataFrame | None = None,
         readings: pd.DataFrame | None = None,
     ) -> Batch:
-        return Batch(
-            readings=empty_readings() if readings is None else readings,
+        """The batch of file *key*; *readings* carry their file lines in a ``line``
+        column, which becomes the batch's ``lines``."""
+        if readings is None:
+            readings = empty_readings().assign(line=np.zeros(0, dtype=np.int64))
+        return FileBatch(
+            readings=readings.drop(columns="line"),
             quarantined=empty_quarantine() if quarantine is None else quarantine,
             cursor_key=key,
             cursor=cursor,
             notes={k: int(v) for k, v in notes.items() if v},
+            lines=readings["line"].to_numpy(dtype=np.int64),
         )
 
 
