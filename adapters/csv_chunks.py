@@ -23,7 +23,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 
-from adapters.csv_layout import _Layout
+from adapters.csv_layout import HeaderLayout
 from adapters.records import empty_quarantine, empty_readings
 from adapters.source_tools import (
     NULL_TOKENS,
@@ -40,14 +40,15 @@ from adapters.source_tools import (
     to_float,
 )
 
-__all__ = ["GROUP_AT", "MAX_LINE_BYTES", "CsvChunkParser"]
+__all__ = ["GROUP_AT", "LONG_LINE_REASON", "MAX_LINE_BYTES", "CsvChunkParser"]
 
 #: A line longer than this [bytes] is not a CSV record of a historian export; the same
 #: as Arrow's default block size, so a line up to this length is still parsed fast.
 MAX_LINE_BYTES = 1 << 20
 #: More unknown tags than this in one chunk give one grouped quarantine row.
 GROUP_AT = 10
-_LONG_LINE = f"line longer than {MAX_LINE_BYTES:,} bytes: not a CSV record"
+#: The quarantine reason of a line longer than `MAX_LINE_BYTES`.
+LONG_LINE_REASON = f"line longer than {MAX_LINE_BYTES:,} bytes: not a CSV record"
 
 
 @dataclass
@@ -71,7 +72,7 @@ class CsvChunkParser:
     quality_map: Mapping[str, bool]
     _si: dict[str, tuple[float, float]]
 
-    def _split(self, data: bytes, first_line: int, layout: _Layout) -> _Chunk:
+    def _split(self, data: bytes, first_line: int, layout: HeaderLayout) -> _Chunk:
         """Columns of a chunk: pyarrow when every line is a row, else line by line."""
         wanted = [layout.time_col]
         types: dict[str, pa.DataType] = {f"c{layout.time_col}": pa.string()}
@@ -128,7 +129,7 @@ class CsvChunkParser:
         return self._split_slowly(data, first_line, layout, wanted)
 
     def _split_slowly(
-        self, data: bytes, first_line: int, layout: _Layout, wanted: list[int]
+        self, data: bytes, first_line: int, layout: HeaderLayout, wanted: list[int]
     ) -> _Chunk:
         """Line by line, for chunks with lines pyarrow cannot place (wrong field count)."""
         text = data.decode("utf-8", errors="replace").split("\n")[:-1]
@@ -141,7 +142,7 @@ class CsvChunkParser:
             # One reader per line: an unclosed quote must not swallow the good lines after it.
             number = first_line + i
             if len(text_line) > MAX_LINE_BYTES:
-                bad.append((number, _LONG_LINE, text_line[:RAW_MAX]))
+                bad.append((number, LONG_LINE_REASON, text_line[:RAW_MAX]))
                 continue
             try:
                 fields = next(csv.reader([text_line], delimiter=self.delimiter, strict=False), [])
@@ -160,12 +161,14 @@ class CsvChunkParser:
         return _Chunk(np.asarray(lines, dtype=np.int64), cols, bad, blank)
 
     def _parse(
-        self, data: bytes, first_line: int, key: str, layout: _Layout, fold: dict[str, list[Any]]
+        self, data: bytes, first_line: int, key: str, layout: HeaderLayout,
+        fold: dict[str, list[Any]],
     ) -> tuple[pd.DataFrame, pd.DataFrame, Counter[str]]:
-        """Readings, quarantine and notes of one chunk of whole lines."""
+        """Readings, quarantine and notes of one chunk of whole lines; the readings carry
+        the file line of each in a ``line`` column."""
         chunk = self._split(data, first_line, layout)
         notes: Counter[str] = Counter(blank_lines=chunk.blank)
-        notes["long_lines"] += sum(reason == _LONG_LINE for _, reason, _ in chunk.bad_rows)
+        notes["long_lines"] += sum(reason == LONG_LINE_REASON for _, reason, _ in chunk.bad_rows)
         bad: list[tuple[int, str]] = [(ln, r) for ln, r, _ in chunk.bad_rows]
         known_raw = {ln: raw for ln, _, raw in chunk.bad_rows}
         tcol = chunk.cols[layout.time_col]
@@ -204,14 +207,14 @@ class CsvChunkParser:
     def _wide(
         self,
         chunk: _Chunk,
-        layout: _Layout,
+        layout: HeaderLayout,
         times: pd.DatetimeIndex,
         keep: npt.NDArray[np.bool_],
         bad: list[tuple[int, str]],
         notes: Counter[str],
     ) -> pd.DataFrame:
         if not layout.tag_cols:
-            return empty_readings()
+            return empty_readings().assign(line=np.zeros(0, dtype=np.int64))
         columns = []
         for col, tag in layout.tag_cols:
             values = chunk.cols[col]
@@ -238,12 +241,13 @@ class CsvChunkParser:
         names = np.array([tag for _, tag in layout.tag_cols], dtype=object)
         tag_col = np.repeat(names, ok.sum(axis=1))
         time_ns = np.broadcast_to(times.asi8, matrix.shape)[ok]
-        return readings_frame(time_ns, tag_col, matrix[ok], None)
+        lines = np.broadcast_to(chunk.lines, matrix.shape)[ok]
+        return readings_frame(time_ns, tag_col, matrix[ok], None).assign(line=lines)
 
     def _long(
         self,
         chunk: _Chunk,
-        layout: _Layout,
+        layout: HeaderLayout,
         times: pd.DatetimeIndex,
         tags: tuple[npt.NDArray[np.intp], npt.NDArray[Any]],
         keep: npt.NDArray[np.bool_],
@@ -302,7 +306,8 @@ class CsvChunkParser:
         bad += [(int(chunk.lines[i]), _overflow_reason(str(uniques[ids[i]])))
                 for i in np.flatnonzero(overflow)]
         keep &= ~overflow
-        return readings_frame(times.asi8[keep], uniques[ids[keep]], si[keep], good[keep])
+        return readings_frame(times.asi8[keep], uniques[ids[keep]], si[keep],
+                              good[keep]).assign(line=chunk.lines[keep])
 
     @staticmethod
     def _quarantine_rows(

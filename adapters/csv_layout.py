@@ -1,8 +1,8 @@
 """The header line of a CSV export: which layout, which column holds what.
 
-`CsvHeader._layout` reads the header line into a `_Layout` (wide or long, the time
-column, the columns of known tags) or the reason it cannot be used; `_text_problem` and
-`_header_not_utf8` tell a text export from a binary or UTF-16 file before that. The
+`CsvHeader._layout` reads the header line into a `HeaderLayout` (wide or long, the time
+column, the columns of known tags) or the reason it cannot be used; `not_text_reason` and
+`header_not_utf8` tell a text export from a binary or UTF-16 file before that. The
 layouts and their rules are described in `adapters.csv_source`.
 """
 
@@ -21,7 +21,7 @@ _VALUE_NAMES = ("value", "val", "reading")
 _QUALITY_NAMES = ("quality", "q", "status")
 
 @dataclass(frozen=True)
-class _Layout:
+class HeaderLayout:
     """What the header line of one file says."""
 
     kind: str  # "wide" | "long"
@@ -47,7 +47,7 @@ class CsvHeader:
     delimiter: str
     tags: dict[str, TagSpec]
 
-    def _layout(self, header: bytes) -> _Layout | str:
+    def _layout(self, header: bytes) -> HeaderLayout | str:
         """Read the header line; a string is the reason it cannot be used."""
         text = header.decode("utf-8", errors="replace").lstrip("\ufeff").rstrip("\r\n")
         names = [n.strip() for n in next(csv.reader([text], delimiter=self.delimiter), [])]
@@ -67,13 +67,13 @@ class CsvHeader:
                     return "long layout needs timestamp, tag and value columns"
                 time_col, tag_col, value_col = 0, 1, 2
             q = _find(names, _QUALITY_NAMES)
-            return _Layout("long", len(names), time_col, (), (), tag_col, value_col, q)
+            return HeaderLayout("long", len(names), time_col, (), (), tag_col, value_col, q)
         known = tuple((i, n) for i, n in enumerate(names) if i != time_col and n in self.tags)
         unknown = tuple(n for i, n in enumerate(names) if i != time_col and n not in self.tags)
-        return _Layout("wide", len(names), time_col, known, unknown)
+        return HeaderLayout("wide", len(names), time_col, known, unknown)
 
 
-def _text_problem(head: bytes) -> str | None:
+def not_text_reason(head: bytes) -> str | None:
     """Why the first bytes of a file are not a text CSV export, or None."""
     if head.startswith((b"\xff\xfe", b"\xfe\xff")):
         return "not a text CSV file: it is UTF-16 text (export the file as UTF-8)"
@@ -82,7 +82,8 @@ def _text_problem(head: bytes) -> str | None:
     return None
 
 
-def _header_not_utf8(header: bytes) -> bool:
+def header_not_utf8(header: bytes) -> bool:
+    """Whether the header line *header* is not valid UTF-8."""
     try:
         header.decode("utf-8")
     except UnicodeDecodeError:
@@ -91,7 +92,7 @@ def _header_not_utf8(header: bytes) -> bool:
 
 
 
-def _unknown_columns(names: Sequence[str]) -> str:
+def unknown_columns_reason(names: Sequence[str]) -> str:
     """One quarantine reason for all the columns of unknown tags of a file."""
     if len(names) == 1:
         return f"1 column is not a configured tag: {name_list(names)}"

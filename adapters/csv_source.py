@@ -85,21 +85,23 @@ from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 
 from adapters.base import ReadingsSource, SourceUnavailable
-from adapters.csv_chunks import _LONG_LINE, MAX_LINE_BYTES, CsvChunkParser
+from adapters.csv_chunks import LONG_LINE_REASON, MAX_LINE_BYTES, CsvChunkParser
 from adapters.csv_layout import (
     CsvHeader,
-    _header_not_utf8,
-    _Layout,
-    _text_problem,
-    _unknown_columns,
+    HeaderLayout,
+    header_not_utf8,
+    not_text_reason,
+    unknown_columns_reason,
 )
 from adapters.records import Batch, TagSpec, empty_quarantine, empty_readings
 from adapters.source_tools import (
     DEFAULT_QUALITY_MAP,
+    FileBatch,
     pattern_problem,
     quarantine_frame,
     si_scale_offset,
@@ -203,7 +205,7 @@ class CsvSource(CsvHeader, CsvChunkParser, ReadingsSource):
                 head = fh.read(MAX_LINE_BYTES)
         except OSError as exc:
             return [*problems, f"cannot read the newest export: {_plain(exc)}"]
-        text_problem = _text_problem(head)
+        text_problem = not_text_reason(head)
         if text_problem:
             return [*problems, f"{newest.name}: {text_problem}"]
         header, _, body = head.partition(b"\n")
@@ -335,14 +337,14 @@ class CsvSource(CsvHeader, CsvChunkParser, ReadingsSource):
             fh.seek(0)
             if offset == 0:
                 head = fh.read(_SNIFF_BYTES)
-                problem = _text_problem(head)
+                problem = not_text_reason(head)
                 if problem:
                     raise _Unreadable(problem, 0, _preview(head))
                 fh.seek(0)
             header = fh.readline(MAX_LINE_BYTES + 1)
             if len(header) > MAX_LINE_BYTES:
                 raise _Unreadable(_too_long(1), 1, _preview(header))
-            if offset == 0 and _header_not_utf8(header):
+            if offset == 0 and header_not_utf8(header):
                 raise _Unreadable(
                     "not a text CSV file: its header line is not UTF-8 text "
                     "(export the file as UTF-8)",
@@ -370,7 +372,7 @@ class CsvSource(CsvHeader, CsvChunkParser, ReadingsSource):
                 digest.update(header)
                 offset, line = len(header), 1
                 if layout.unknown:
-                    reason = _unknown_columns(layout.unknown)
+                    reason = unknown_columns_reason(layout.unknown)
                     log.info("%s: %s", key, reason)
                     notes["unknown_tag_columns"] += len(layout.unknown)
                     first = quarantine_frame([(key, 1, reason, header)])
@@ -424,7 +426,7 @@ class CsvSource(CsvHeader, CsvChunkParser, ReadingsSource):
         self,
         fh: io.BufferedReader,
         key: str,
-        layout: _Layout,
+        layout: HeaderLayout,
         start: tuple[int, int],
         digest: Any,
         fold: dict[str, list[Any]],
@@ -456,9 +458,9 @@ class CsvSource(CsvHeader, CsvChunkParser, ReadingsSource):
                         raise _Unreadable(_too_long(line + 1), line + 1, _preview(data))
                     digest, length, rest = skipped
                     offset, line = offset + length, line + 1
-                    log.warning("%s: line %d: %s", key, line, _LONG_LINE)
+                    log.warning("%s: line %d: %s", key, line, LONG_LINE_REASON)
                     notes.update(quarantined=1, long_lines=1)
-                    quarantine = quarantine_frame([(key, line, _LONG_LINE, _preview(data))])
+                    quarantine = quarantine_frame([(key, line, LONG_LINE_REASON, _preview(data))])
                     if header_quarantine is not None:
                         quarantine = pd.concat([header_quarantine, quarantine], ignore_index=True)
                         header_quarantine = None
@@ -514,12 +516,17 @@ class CsvSource(CsvHeader, CsvChunkParser, ReadingsSource):
         quarantine: pd.DataFrame | None = None,
         readings: pd.DataFrame | None = None,
     ) -> Batch:
-        return Batch(
-            readings=empty_readings() if readings is None else readings,
+        """The batch of file *key*; *readings* carry their file lines in a ``line``
+        column, which becomes the batch's ``lines``."""
+        if readings is None:
+            readings = empty_readings().assign(line=np.zeros(0, dtype=np.int64))
+        return FileBatch(
+            readings=readings.drop(columns="line"),
             quarantined=empty_quarantine() if quarantine is None else quarantine,
             cursor_key=key,
             cursor=cursor,
             notes={k: int(v) for k, v in notes.items() if v},
+            lines=readings["line"].to_numpy(dtype=np.int64),
         )
 
 

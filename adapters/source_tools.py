@@ -14,6 +14,7 @@ rules. Time rule for naive wall-clock text in the site zone (see `parse_times`):
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from typing import Any
 from zoneinfo import ZoneInfo
 
@@ -23,7 +24,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from adapters.records import TagSpec, empty_quarantine
+from adapters.records import Batch, TagSpec, empty_quarantine
 from adapters.units import UnitError, converter
 
 __all__ = [
@@ -31,6 +32,7 @@ __all__ = [
     "NONFINITE_REASON",
     "NULL_TOKENS",
     "TIME_REASONS",
+    "FileBatch",
     "arrow_text",
     "encode_text",
     "name_list",
@@ -322,6 +324,21 @@ def arrow_text(values: Any) -> pa.Array:
             texts = ["" if v is None or v != v else str(v) for v in values]
             arr = pa.array(texts, type=pa.string())
     return pc.utf8_trim_whitespace(pc.fill_null(arr, ""))
+
+
+@dataclass(frozen=True)
+class FileBatch(Batch):
+    """A `Batch` of a file source that says where each reading came from: ``lines`` is
+    the file line of each row of ``readings`` (numbered as the quarantine numbers them;
+    the file is the batch's ``cursor_key``), so that the store can journal a correction
+    with the line of the export that brought it."""
+
+    lines: npt.NDArray[np.int64] | None = None
+
+    def __post_init__(self) -> None:
+        if self.lines is not None and len(self.lines) != len(self.readings):
+            raise ValueError(f"lines has {len(self.lines)} entries for "
+                             f"{len(self.readings)} readings; one per reading is needed")
 
 
 def readings_frame(

@@ -22,7 +22,7 @@ from adapters.migrations.tables import (
     utc_datetime,
 )
 from adapters.records import ALARM_STATES, AlarmStateName
-from adapters.store_transactions import StoreTransactions, _name, _record
+from adapters.store_transactions import StoreTransactions, checked_name, full_record
 
 
 class AlarmTables(StoreTransactions):
@@ -39,7 +39,7 @@ class AlarmTables(StoreTransactions):
         now = datetime.now(UTC)
         recs = []
         for row in rows:
-            rec = _record(row, ALARM_COLUMNS, ("branch", "condition", "state"), "alarm")
+            rec = full_record(row, ALARM_COLUMNS, ("branch", "condition", "state"), "alarm")
             if rec["state"] not in ALARM_STATES:
                 raise ValueError(f"alarm state must be one of {ALARM_STATES}, got {rec['state']!r}")
             rec["updated"] = rec.get("updated") or now
@@ -104,7 +104,7 @@ class AlarmTables(StoreTransactions):
             for k in ("key", "channel"):
                 if not isinstance(rec[k], str) or not rec[k]:
                     raise ValueError(f"message {k} must be a non-empty string, got {rec[k]!r}")
-            rec["key"] = _name(rec["key"], "message key", 200)
+            rec["key"] = checked_name(rec["key"], "message key", 200)
             rec["created"] = utc_datetime(row.get("created") or datetime.now(UTC), "created")
             rec.update(status="pending", attempts=0, next_try=rec["created"], sent_at=None,
                        last_error=None)

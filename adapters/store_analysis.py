@@ -24,7 +24,7 @@ from adapters.migrations.tables import (
     utc_datetime,
     window_checks_t,
 )
-from adapters.store_transactions import StoreTransactions, _record
+from adapters.store_transactions import StoreTransactions, full_record
 
 
 class AnalysisTables(StoreTransactions):
@@ -80,7 +80,7 @@ class AnalysisTables(StoreTransactions):
                 upsert(conn, window_checks_t, checks,
                        ("branch", "window_start", "window_end", "tag"), replace=True)
             if balance is not None:
-                row = _record(balance, tuple(c.name for c in header_balance_t.columns),
+                row = full_record(balance, tuple(c.name for c in header_balance_t.columns),
                               ("window_start", "window_end"), "balance")
                 upsert(conn, header_balance_t, [row], ("window_start", "window_end"),
                        replace=True)
@@ -147,7 +147,7 @@ class AnalysisTables(StoreTransactions):
         now = datetime.now(UTC)
         out = []
         for row in rows:
-            rec = _record(
+            rec = full_record(
                 row,
                 FINDING_COLUMNS,
                 ("branch", "kind", "start", "detected", "confidence", "message"),
@@ -223,7 +223,7 @@ def _fit_records(fits: Iterable[WindowFit]) -> list[dict[str, Any]]:
         if not isinstance(fit, WindowFit):
             raise TypeError(f"a fit must be an adapters.fit_record.WindowFit, got "
                             f"{type(fit).__name__}")
-        rec = _record(
+        rec = full_record(
             fit.to_row(), FIT_COLUMNS,
             ("branch", "window_start", "window_end", "samples", "status"), "fit",
         )

@@ -15,7 +15,7 @@ import sqlalchemy as sa
 from adapters.base import StoreError
 from adapters.migrations.tables import maintenance_t, utc_datetime
 from adapters.records import MAINTENANCE_KINDS
-from adapters.store_transactions import StoreTransactions, _name
+from adapters.store_transactions import StoreTransactions, checked_name
 
 
 class MaintenanceTables(StoreTransactions):
@@ -33,7 +33,7 @@ class MaintenanceTables(StoreTransactions):
         """
         if kind not in MAINTENANCE_KINDS:
             raise ValueError(f"kind must be one of {MAINTENANCE_KINDS}, got {kind!r}")
-        branch = _name(branch, "branch", 100)
+        branch = checked_name(branch, "branch", 100)
         when = utc_datetime(time, "time")
         logged = utc_datetime(now, "now") if now is not None else datetime.now(UTC)
         _refuse_future(when, logged)
@@ -97,7 +97,7 @@ class MaintenanceTables(StoreTransactions):
                   when: datetime) -> None:  # fmt: skip
         t = maintenance_t
         conn.execute(t.update().where(t.c.id == int(entry_id)).values(
-            withdrawn_at=when, withdrawn_by=_name(by, "by", 100), withdrawn_note=note))
+            withdrawn_at=when, withdrawn_by=checked_name(by, "by", 100), withdrawn_note=note))
 
     def maintenance(
         self, branch: str | None = None, *, include_withdrawn: bool = False

@@ -40,7 +40,8 @@ from adapters.migrations.tables import (
     utc_datetime,
 )
 from adapters.records import CORRECTION_POLICIES, Batch, BatchWrite, empty_readings, values_differ
-from adapters.store_transactions import StoreTransactions, _name
+from adapters.source_tools import FileBatch
+from adapters.store_transactions import StoreTransactions, checked_name
 
 log = logging.getLogger(__name__)
 
@@ -58,7 +59,8 @@ class ReadingsTables(StoreTransactions):
         repeated (tag, time) keeps its last row. A stored reading the batch brings again
         with an equal value (`values_differ`) and quality is skipped; with another value
         or quality it is a correction, handled by *corrections* (see
-        `ResultsStore.write_batch`) and journalled in ``corrections``.
+        `ResultsStore.write_batch`) and journalled in ``corrections`` — with the file line
+        that brought it when the batch says (`adapters.source_tools.FileBatch`).
 
         Parameters
         ----------
@@ -74,8 +76,8 @@ class ReadingsTables(StoreTransactions):
         BatchWrite
             Readings newly stored, corrections applied and newly refused [-].
         """
-        _name(source, "source", 100)
-        _name(batch.cursor_key, "batch.cursor_key", 400)
+        checked_name(source, "source", 100)
+        checked_name(batch.cursor_key, "batch.cursor_key", 400)
         if corrections not in CORRECTION_POLICIES:
             raise ValueError(f"corrections must be one of {CORRECTION_POLICIES}, "
                              f"got {corrections!r}")
@@ -89,7 +91,7 @@ class ReadingsTables(StoreTransactions):
             if not changed.empty:
                 applied, refused, example = _journal(
                     conn, changed, corrections, source=source, origin=batch.cursor_key,
-                    now=now)
+                    lines=_source_lines(batch, changed), now=now)
             upsert(
                 conn,
                 quarantine_t,
@@ -312,22 +314,37 @@ def _changes(
     return out
 
 
+def _source_lines(batch: Batch, changed: pd.DataFrame) -> list[int | None]:
+    """The source line of each row of *changed* (prepared readings of *batch*): the line
+    of the batch's last row of that (tag, time), as `prepare_readings` keeps the last;
+    None for all where the batch does not say."""
+    lines = batch.lines if isinstance(batch, FileBatch) else None
+    if lines is None or changed.empty:
+        return [None] * len(changed)
+    given = batch.readings
+    by_reading = pd.Series(np.asarray(lines, dtype=np.int64), index=pd.MultiIndex.from_arrays(
+        [given["tag"].astype(str), given["time"].dt.tz_convert("UTC").dt.floor("us")]))
+    by_reading = by_reading[~by_reading.index.duplicated(keep="last")]
+    found = by_reading.reindex(pd.MultiIndex.from_arrays([changed["tag"], changed["time"]]))
+    return [None if pd.isna(v) else int(v) for v in found]
+
+
 def _journal(
     conn: sa.Connection, changed: pd.DataFrame, policy: str, *, source: str, origin: str,
-    now: datetime,
+    lines: list[int | None], now: datetime,
 ) -> tuple[int, int, str | None]:
     """Handle the corrections *changed* under *policy* inside the batch's transaction:
-    ``apply`` writes the new values into ``readings``; both journal them, a refused one
-    only when the same reading was not refused with the same new value before. Returns
-    (applied, refused, an example for the log)."""
+    ``apply`` writes the new values into ``readings``; both journal them (with the source
+    *lines*, row for row), a refused one only when the same reading was not refused with
+    the same new value before. Returns (applied, refused, an example for the log)."""
     action = "applied" if policy == "apply" else "refused"
     rows = [
         {"tag": tag, "time": time.to_pydatetime(), "old_value": num(ov), "new_value": num(nv),
          "old_good": bool(og), "new_good": bool(ng), "source": source, "origin": origin[:400],
-         "line": None, "recorded_at": now, "action": action, "reanalysed_at": None}
-        for tag, time, ov, nv, og, ng in zip(
+         "line": line, "recorded_at": now, "action": action, "reanalysed_at": None}
+        for tag, time, ov, nv, og, ng, line in zip(
             changed["tag"], changed["time"], changed["old_value"], changed["value"],
-            changed["old_good"], changed["good"], strict=True)
+            changed["old_good"], changed["good"], lines, strict=True)
     ]
     t = corrections_t
     if action == "refused":

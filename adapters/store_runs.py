@@ -23,7 +23,7 @@ from adapters.migrations.tables import (
     readings_t,
     utc_datetime,
 )
-from adapters.store_transactions import StoreTransactions, _name
+from adapters.store_transactions import StoreTransactions, checked_name
 
 #: What `SqlStore.watermarks` returns (defined with the interface).
 Watermarks = ResultsStore.Watermarks
@@ -46,10 +46,10 @@ class RunTables(StoreTransactions):
         must not leave a password in the table.
         """
         row = {
-            "job": _name(job, "job", 100),
+            "job": checked_name(job, "job", 100),
             "started": utc_datetime(started, "started"),
             "finished": None if finished is None else utc_datetime(finished, "finished"),
-            "status": _name(status, "status", 20),
+            "status": checked_name(status, "status", 20),
             "detail": _masked(dict(detail or {})),
         }
         with self._write() as conn:

@@ -4,7 +4,7 @@
 module per group of tables: `adapters.store_readings`, `adapters.store_analysis`,
 `adapters.store_alarms`, `adapters.store_maintenance`, `adapters.store_runs`): one write
 or read transaction with database errors as masked `StoreError`, and a query's rows as a
-frame with UTC times. `_name` and `_record` check the rows every part writes.
+frame with UTC times. `checked_name` and `full_record` check the rows every part writes.
 """
 
 from __future__ import annotations
@@ -52,7 +52,9 @@ def _interrupt_deferred() -> Iterator[None]:
             raise KeyboardInterrupt
 
 
-def _name(value: Any, name: str, limit: int) -> str:
+def checked_name(value: Any, name: str, limit: int) -> str:
+    """*value* when it is a non-empty string of at most *limit* characters (the width of
+    its column); else a `ValueError` naming the field *name*."""
     if not isinstance(value, str) or not value or len(value) > limit:
         raise ValueError(f"{name} must be a non-empty string of at most {limit} characters")
     return value
@@ -120,7 +122,7 @@ class StoreTransactions:
         return frame
 
 
-def _record(
+def full_record(
     row: Mapping[str, Any], columns: Sequence[str], required: Sequence[str], what: str
 ) -> dict[str, Any]:
     """*row* with every column present (None where absent); unknown keys are refused."""

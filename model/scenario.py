@@ -3,7 +3,7 @@ logged, and the ground truth.
 
 Faults (`Fault`): fouling ramps, step restrictions, back-pressure steps, frozen and
 drifting meters, cleanings, with the time profile each one gives r, the termination
-pressure or a meter reading (`_ratio_truth`, `_back_pressure_delta`, `_meter_faults`).
+pressure or a meter reading (`ratio_truth`, `back_pressure_delta`, `apply_meter_faults`).
 Specs: the tags a historian logs (`SiteTags`, `BranchTags`), how the site is operated
 (`OperatingSpec`) and the instruments' noise and defects (`NoiseSpec`). `Truth` is what
 really happened. `model.simulate` turns these into historian data.
@@ -41,7 +41,7 @@ __all__ = [
 
 TimeLike = datetime | np.datetime64 | str
 F64 = NDArray[np.float64]
-_NS_PER_DAY = 86_400 * 10**9
+NS_PER_DAY = 86_400 * 10**9
 
 
 def to_datetime64(value: TimeLike, name: str = "time") -> np.datetime64:
@@ -304,9 +304,10 @@ class Truth:
 # --------------------------------------------------------------------------- fault effects
 
 
-def _active(
+def active_between(
     times: NDArray[np.datetime64], start: TimeLike, end: TimeLike | None
 ) -> NDArray[np.bool_]:
+    """Which *times* fall in [*start*, *end*) (no *end*: from *start* on)."""
     t0 = to_datetime64(start, "start")
     on = times >= t0
     if end is not None:
@@ -314,7 +315,7 @@ def _active(
     return np.asarray(on)
 
 
-def _ratio_truth(name: str, faults: Sequence[Fault], times: NDArray[np.datetime64]) -> F64:
+def ratio_truth(name: str, faults: Sequence[Fault], times: NDArray[np.datetime64]) -> F64:
     """True r(t) of one branch: (1 + Σ fouling excess)·Π restriction ratios."""
     n = times.size
     cleanings = sorted(
@@ -328,27 +329,29 @@ def _ratio_truth(name: str, faults: Sequence[Fault], times: NDArray[np.datetime6
         if isinstance(f, FoulingRamp) and f.branch == name:
             t0 = to_datetime64(f.start, "start")
             stop = next((c for c in cleanings if c > t0), None)
-            on = _active(times, t0, stop)
-            d = (times - t0).astype("timedelta64[ns]").astype(np.int64) / _NS_PER_DAY
+            on = active_between(times, t0, stop)
+            d = (times - t0).astype("timedelta64[ns]").astype(np.int64) / NS_PER_DAY
             if f.shape == "linear":
                 grow = np.clip(d / f.days, 0.0, 1.0)
             else:
                 grow = 1.0 - np.exp(-3.0 * np.clip(d, 0.0, None) / f.days)
             excess += np.where(on, (f.r_end - 1.0) * grow, 0.0)
         elif isinstance(f, StepRestriction) and f.branch == name:
-            factor *= np.where(_active(times, f.time, f.end), f.ratio, 1.0)
+            factor *= np.where(active_between(times, f.time, f.end), f.ratio, 1.0)
     return np.asarray((1.0 + excess) * factor)
 
 
-def _back_pressure_delta(name: str, faults: Sequence[Fault], times: NDArray[np.datetime64]) -> F64:
+def back_pressure_delta(name: str, faults: Sequence[Fault], times: NDArray[np.datetime64]) -> F64:
+    """The termination-pressure offset of branch *name* at *times* from its
+    back-pressure steps [Pa]."""
     delta = np.zeros(times.size)
     for f in faults:
         if isinstance(f, BackPressureStep) and f.branch == name:
-            delta += np.where(_active(times, f.time, f.end), f.delta_pa, 0.0)
+            delta += np.where(active_between(times, f.time, f.end), f.delta_pa, 0.0)
     return delta
 
 
-def _meter_faults(
+def apply_meter_faults(
     tag: str, faults: Sequence[Fault], times: NDArray[np.datetime64], clean: F64, reading: F64
 ) -> tuple[F64, NDArray[np.bool_]]:
     """Apply drifts (to the clean value, before noise is added in *reading*) and freezes."""
@@ -357,18 +360,18 @@ def _meter_faults(
     for f in faults:
         if isinstance(f, DriftingMeter) and f.tag == tag:
             t0 = to_datetime64(f.start, "start")
-            d = (times - t0).astype("timedelta64[ns]").astype(np.int64) / _NS_PER_DAY
+            d = (times - t0).astype("timedelta64[ns]").astype(np.int64) / NS_PER_DAY
             if f.end is not None:
                 d_end = (to_datetime64(f.end, "end") - t0).astype("timedelta64[ns]").astype(
                     np.int64
-                ) / _NS_PER_DAY
+                ) / NS_PER_DAY
                 d = np.minimum(d, d_end)
             d = np.clip(d, 0.0, None)
             out = out + clean * f.gain_per_day * d + f.offset_per_day * d
             bad |= d > 0
     for f in faults:
         if isinstance(f, FrozenMeter) and f.tag == tag:
-            on = _active(times, f.start, f.end)
+            on = active_between(times, f.start, f.end)
             idx = np.flatnonzero(on)
             if idx.size:
                 held = out[idx[0] - 1] if idx[0] > 0 else out[idx[0]]

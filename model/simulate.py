@@ -42,8 +42,8 @@ from model import water
 from model.branch import Branch, HeldHeader, OpenDischarge, ReturnHeader, Tank
 from model.network import ParallelHeader, PumpCurve
 from model.scenario import (
-    _NS_PER_DAY,
     F64,
+    NS_PER_DAY,
     BackPressureStep,
     BranchTags,
     Cleaning,
@@ -57,10 +57,10 @@ from model.scenario import (
     StepRestriction,
     TimeLike,
     Truth,
-    _active,
-    _back_pressure_delta,
-    _meter_faults,
-    _ratio_truth,
+    active_between,
+    apply_meter_faults,
+    back_pressure_delta,
+    ratio_truth,
     to_datetime64,
 )
 
@@ -135,11 +135,11 @@ class _Clock:
 
 def _clock(times: NDArray[np.datetime64], step_s: float) -> _Clock:
     ns = times.astype("datetime64[ns]").astype(np.int64)
-    days = (ns - ns[0]) / _NS_PER_DAY if ns.size else np.zeros(0)
+    days = (ns - ns[0]) / NS_PER_DAY if ns.size else np.zeros(0)
     day_ns = times.astype("datetime64[D]").astype("datetime64[ns]").astype(np.int64)
     hour = (ns - day_ns) / 3.6e12
     year_start = times.astype("datetime64[Y]").astype("datetime64[ns]").astype(np.int64)
-    doy = (ns - year_start) / _NS_PER_DAY
+    doy = (ns - year_start) / NS_PER_DAY
     weekday = (times.astype("datetime64[D]").astype(np.int64) + 3) % 7  # 1970-01-01: Thu
     return _Clock(np.asarray(days, float), hour, doy, weekday >= 5, step_s)
 
@@ -456,7 +456,7 @@ def simulate(
     for b in branches:
         bt = tags.branches.get(b.name, BranchTags())
         term = b.termination
-        delta = _back_pressure_delta(b.name, checked, times)
+        delta = back_pressure_delta(b.name, checked, times)
         if isinstance(term, Tank):
             lvl = (
                 _level(operation, clock, seed, b.name)
@@ -483,7 +483,7 @@ def simulate(
         if bt.valve_position is not None and b.has_control_valve:
             u = _valve(operation, clock, seed, b.name)
             positions[b.name] = u
-        r = _ratio_truth(b.name, checked, times)
+        r = ratio_truth(b.name, checked, times)
         r_true[b.name] = r
         static_true[b.name] = np.asarray(static, float)
         end_true[b.name] = np.asarray(p_end, float)
@@ -539,13 +539,13 @@ def simulate(
     for tag, (v, sd, rel, step) in clean.items():
         rng = _rng(seed, f"noise:{tag}")
         noisy = _measure(rng, v, sd, rel)
-        faulted, bad = _meter_faults(tag, checked, times, v, noisy)
+        faulted, bad = apply_meter_faults(tag, checked, times, v, noisy)
         if bad.any():
             instrument[tag] = bad
         frozen = np.zeros(n, dtype=bool)
         for f in checked:
             if isinstance(f, FrozenMeter) and f.tag == tag:
-                frozen |= _active(times, f.start, f.end)
+                frozen |= active_between(times, f.start, f.end)
         out = _defects(rng, faulted, frozen, noise, step)
         if tag in {bt.valve_position for bt in tags.branches.values()}:
             out = np.clip(out, 0.0, 1.0)

@@ -21,14 +21,14 @@ from monitor.alarms import (
     AlarmEvent,
     AlarmState,
     State,
-    _annunciate_off,
-    _annunciate_on,
-    _aware,
-    _expire_shelf,
-    _in_unit,
-    _judge_samples,
-    _site_time,
+    annunciate_off,
+    annunciate_on,
+    expire_shelf,
     format_age,
+    in_unit,
+    judge_samples,
+    require_aware,
+    site_time,
 )
 
 __all__ = [
@@ -92,7 +92,7 @@ def evaluate_frozen(
     lengthening it, as a moving reading would.
     """
     def shown(v: float) -> str:
-        shown_v = _in_unit(v, unit_label, kind) if kind is not None else v * scale
+        shown_v = in_unit(v, unit_label, kind) if kind is not None else v * scale
         return f"{shown_v:.4g}"
 
     def step(s: AlarmState, t: datetime, v: float, resting: bool
@@ -111,18 +111,18 @@ def evaluate_frozen(
                 return s, []
             why = ("the branch cannot flow now and the meter rests near zero" if rest
                    else f"it reads {shown(v)} {unit_label}".replace("  ", " "))
-            return _annunciate_off(s, t, False, f"{tag} on {s.branch} is no longer held at "
-                                   f"{_site_time(t, timezone)}: {why}")
+            return annunciate_off(s, t, False, f"{tag} on {s.branch} is no longer held at "
+                                   f"{site_time(t, timezone)}: {why}")
         since = s.pending_since or s.last_sample
         s = dataclasses.replace(s, last_sample=t, pending_since=since)
         if s.active or since is None or t - since < settings.hold:
             return s, []
-        return _annunciate_on(s, t, (
+        return annunciate_on(s, t, (
             f"{tag} on {s.branch} has read exactly {shown(v)} {unit_label} since "
-            f"{_site_time(since, timezone)}: the transmitter looks frozen; check it "
+            f"{site_time(since, timezone)}: the transmitter looks frozen; check it "
             "before trusting this reading").replace("  ", " "))
 
-    return _judge_samples(series, state, now, step, out_of_service_clears_pending=True,
+    return judge_samples(series, state, now, step, out_of_service_clears_pending=True,
                           flags=no_flow)
 
 
@@ -171,13 +171,13 @@ def evaluate_stale(
     once (no on-delay: the age limit is the delay) and clears after ``off_delay`` of fresh
     data. ``last_value`` holds the age [s] (NaN when nothing was ever read).
     """
-    t_now = _aware(now, "now").to_pydatetime()
+    t_now = require_aware(now, "now").to_pydatetime()
     known = state.last_sample
     if newest is not None:
-        t_new = _aware(newest, "newest").to_pydatetime()
+        t_new = require_aware(newest, "newest").to_pydatetime()
         known = t_new if known is None else max(known, t_new)
     age = (t_now - known) if known is not None else None
-    s, events = _expire_shelf(state, t_now)
+    s, events = expire_shelf(state, t_now)
     s = dataclasses.replace(
         s, last_sample=known, last_value=math.nan if age is None else age.total_seconds()
     )
@@ -187,7 +187,7 @@ def evaluate_stale(
     if stale:
         s = dataclasses.replace(s, clear_since=None)
         if not s.active:
-            s, ev = _annunciate_on(s, t_now, _stale_message(subject, known, age, settings,
+            s, ev = annunciate_on(s, t_now, _stale_message(subject, known, age, settings,
                                                             timezone))
             events += ev
         return s, events
@@ -196,10 +196,10 @@ def evaluate_stale(
         s = dataclasses.replace(s, clear_since=since)
         if t_now - since >= settings.off_delay:
             assert known is not None and age is not None  # not stale: data is known
-            msg = (f"Data from {subject} fresh again at {_site_time(t_now, timezone)}: the "
+            msg = (f"Data from {subject} fresh again at {site_time(t_now, timezone)}: the "
                    f"newest reading is {format_age(age.total_seconds())} old, within the "
                    f"{format_age(settings.stale_after.total_seconds())} allowed")
-            s, ev = _annunciate_off(s, t_now, False, msg)
+            s, ev = annunciate_off(s, t_now, False, msg)
             events += ev
     return s, events
 

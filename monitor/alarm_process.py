@@ -27,14 +27,14 @@ import pandas as pd
 from monitor.alarms import (
     AlarmEvent,
     AlarmState,
-    _annunciate_off,
-    _annunciate_on,
-    _at_times,
-    _held,
-    _in_unit,
-    _judge_samples,
-    _site_time,
+    annunciate_off,
+    annunciate_on,
+    at_times,
+    delay_held,
     format_pair,
+    in_unit,
+    judge_samples,
+    site_time,
 )
 from monitor.diagnose import Finding
 
@@ -141,26 +141,26 @@ def evaluate_low_flow(
         if not s.active:
             if q >= settings.min_flow_m3s:
                 return dataclasses.replace(s, pending_since=None), []
-            s, since, due = _held(s, t, "pending_since", settings.on_delay)
+            s, since, due = delay_held(s, t, "pending_since", settings.on_delay)
             if not due:
                 return s, []
-            v, lim = format_pair(_in_unit(q, unit, "flow"),
-                                 _in_unit(settings.min_flow_m3s, unit, "flow"))
-            return _annunciate_on(s, t, (
+            v, lim = format_pair(in_unit(q, unit, "flow"),
+                                 in_unit(settings.min_flow_m3s, unit, "flow"))
+            return annunciate_on(s, t, (
                 f"Low flow on {s.branch}: {v} {unit}, below its minimum {lim} {unit} "
-                f"since {_site_time(since, timezone)}{_cause(s.branch, diagnosis)}."))
+                f"since {site_time(since, timezone)}{_cause(s.branch, diagnosis)}."))
         if q < settings.clear_level_m3s:
             return dataclasses.replace(s, clear_since=None), []
-        s, since, due = _held(s, t, "clear_since", settings.off_delay)
+        s, since, due = delay_held(s, t, "clear_since", settings.off_delay)
         if not due:
             return s, []
-        v, lim = format_pair(_in_unit(q, unit, "flow"),
-                             _in_unit(settings.clear_level_m3s, unit, "flow"))
-        return _annunciate_off(s, t, settings.latching, (
-            f"Low flow on {s.branch} cleared at {_site_time(t, timezone)}: {v} {unit}, back "
+        v, lim = format_pair(in_unit(q, unit, "flow"),
+                             in_unit(settings.clear_level_m3s, unit, "flow"))
+        return annunciate_off(s, t, settings.latching, (
+            f"Low flow on {s.branch} cleared at {site_time(t, timezone)}: {v} {unit}, back "
             f"at or above {lim} {unit} (its minimum plus the deadband)"))
 
-    return _judge_samples(series, state, now, step, max_gap=settings.max_gap)
+    return judge_samples(series, state, now, step, max_gap=settings.max_gap)
 
 
 @dataclass(frozen=True)
@@ -229,7 +229,7 @@ def _trailing_median(series: pd.Series, span: pd.Timedelta, coverage: float, *,
                      index=pd.DatetimeIndex(series.index).tz_convert("UTC")).sort_index()
     data = data[~data.index.duplicated(keep="last")]
     if resting is not None:
-        data = data.mask(np.asarray(_at_times(resting, pd.DatetimeIndex(data.index)), bool))
+        data = data.mask(np.asarray(at_times(resting, pd.DatetimeIndex(data.index)), bool))
     data = data.dropna()
     if data.empty:
         return data
@@ -317,7 +317,7 @@ def evaluate_flow_drop(
         return ref * math.sqrt(now_ / was)
 
     def shown(v: float) -> float:
-        return _in_unit(v, unit, "flow")
+        return in_unit(v, unit, "flow")
 
     def step(s: AlarmState, t: datetime, q: float, rest: bool
              ) -> tuple[AlarmState, list[AlarmEvent]]:
@@ -329,32 +329,32 @@ def evaluate_flow_drop(
             ref = expected(since, t)
             if not (math.isfinite(ref) and ref > 0 and q <= (1 - settings.fraction) * ref):
                 return dataclasses.replace(s, pending_since=None), []
-            s, since, due = _held(s, t, "pending_since", hold)
+            s, since, due = delay_held(s, t, "pending_since", hold)
             if not due:
                 return s, []
             v, lim = format_pair(shown(q), shown((1 - settings.fraction) * ref))
             at_header = " (scaled to the header pressure now)" if d_ref is not None else ""
-            return _annunciate_on(s, t, (
+            return annunciate_on(s, t, (
                 f"Flow drop on {s.branch}: {v} {unit}, {1 - q / ref:.0%} below its recent "
                 f"level {shown(ref):.4g} {unit}{at_header} (alarm at "
                 f"{settings.fraction:.0%} below: {lim} {unit}) since "
-                f"{_site_time(since, timezone)}; check valves and strainers on the branch"))
+                f"{site_time(since, timezone)}; check valves and strainers on the branch"))
         start = (s.activated_at or t) - hold
         ref = expected(start, t)
         back = (1 - settings.fraction + settings.deadband) * ref
         if not (math.isfinite(ref) and q >= back):
             return dataclasses.replace(s, clear_since=None), []
-        s, since, due = _held(s, t, "clear_since", settings.off_delay)
+        s, since, due = delay_held(s, t, "clear_since", settings.off_delay)
         if not due:
             return s, []
         v, lim = format_pair(shown(q), shown(back))
-        return _annunciate_off(s, t, False, (
-            f"Flow drop on {s.branch} cleared at {_site_time(t, timezone)}: {v} {unit}, "
+        return annunciate_off(s, t, False, (
+            f"Flow drop on {s.branch} cleared at {site_time(t, timezone)}: {v} {unit}, "
             f"back at or above {lim} {unit} (within "
             f"{settings.fraction - settings.deadband:.0%} of its level before the drop, "
             f"{shown(ref):.4g} {unit})"))
 
-    return _judge_samples(series, state, now, step, max_gap=settings.max_gap, flags=resting)
+    return judge_samples(series, state, now, step, max_gap=settings.max_gap, flags=resting)
 
 
 @dataclass(frozen=True)
@@ -422,7 +422,7 @@ def evaluate_backflow(
     unit, tz = settings.unit, settings.timezone
 
     def bar(v: float) -> float:
-        return _in_unit(v, unit, "pressure")
+        return in_unit(v, unit, "pressure")
 
     def step(s: AlarmState, t: datetime, m: float, _flag: bool
              ) -> tuple[AlarmState, list[AlarmEvent]]:
@@ -433,27 +433,27 @@ def evaluate_backflow(
         if not s.active:
             if m >= 0:
                 return dataclasses.replace(s, pending_since=None), []
-            s, since, due = _held(s, t, "pending_since", settings.on_delay)
+            s, since, due = delay_held(s, t, "pending_since", settings.on_delay)
             if first or not due:
                 return s, []
             hp, st = format_pair(bar(p_s), bar(static), digits=2)
-            return _annunciate_on(s, t, (
+            return annunciate_on(s, t, (
                 f"Back-flow hazard on {s.branch}: header {hp} {unit}, below the "
                 f"branch's static back-pressure {st} {unit} (by "
                 f"{abs(bar(p_s) - bar(static)):.2f} {unit}) since "
-                f"{_site_time(since, tz)}, and no check valve: water can run back "
+                f"{site_time(since, tz)}, and no check valve: water can run back "
                 f"from {settings.termination} into the supply. Raise the header "
                 "pressure or isolate the branch as site procedures say"))
         if m < settings.deadband_pa:
             return dataclasses.replace(s, clear_since=None), []
-        s, since, due = _held(s, t, "clear_since", settings.off_delay)
+        s, since, due = delay_held(s, t, "clear_since", settings.off_delay)
         if not due:
             return s, []
         hp, st = format_pair(bar(p_s), bar(static), digits=2)
-        return _annunciate_off(s, t, False, (
-            f"Back-flow hazard on {s.branch} cleared at {_site_time(t, tz)}: "
+        return annunciate_off(s, t, False, (
+            f"Back-flow hazard on {s.branch} cleared at {site_time(t, tz)}: "
             f"header {hp} {unit}, back above the static back-pressure {st} "
             f"{unit} by more than the deadband "
             f"{bar(settings.deadband_pa) - bar(0.0):.2f} {unit}"))
 
-    return _judge_samples(margin, state, now, step, max_gap=settings.max_gap)
+    return judge_samples(margin, state, now, step, max_gap=settings.max_gap)

@@ -128,12 +128,12 @@ def format_pair(value: float, limit: float, *, digits: int = 1, most: int = 6) -
     return f"{value:.{most}f}", f"{limit:.{most}f}"
 
 
-def _in_unit(value_si: float, unit: str, kind: str) -> float:
+def in_unit(value_si: float, unit: str, kind: str) -> float:
     """An SI value in the tag's own unit (the identity when the unit is SI already)."""
     return float(from_si(value_si, unit, kind))
 
 
-def _site_time(t: datetime, timezone: str) -> str:
+def site_time(t: datetime, timezone: str) -> str:
     """A time as the site reads it: '2026-03-04 02:40 site time' in the site's zone."""
     return f"{pd.Timestamp(t).tz_convert(timezone):%Y-%m-%d %H:%M} site time"
 
@@ -151,7 +151,9 @@ def priority_of(condition: str) -> str:
     return PRIORITIES.get(condition, "low")
 
 
-def _annunciate_on(s: AlarmState, t: datetime, message: str) -> tuple[AlarmState, list[AlarmEvent]]:
+def annunciate_on(s: AlarmState, t: datetime, message: str) -> tuple[AlarmState, list[AlarmEvent]]:
+    """The condition became active at *t*: annunciated (unacknowledged, with an
+    "activated" journal entry) unless the alarm is shelved."""
     s = dataclasses.replace(s, active=True, pending_since=None, activated_at=t, message=message)
     if s.state in (State.NORMAL, State.RTN_UNACK):
         s = dataclasses.replace(s, state=State.UNACK, acknowledged_at=None, acknowledged_by="")
@@ -159,7 +161,7 @@ def _annunciate_on(s: AlarmState, t: datetime, message: str) -> tuple[AlarmState
     return s, []  # shelved: tracked, not annunciated
 
 
-def _annunciate_off(
+def annunciate_off(
     s: AlarmState, t: datetime, latching: bool, message: str = ""
 ) -> tuple[AlarmState, list[AlarmEvent]]:
     """The condition cleared: *message* says so (it replaces the activation text, which
@@ -176,7 +178,8 @@ def _annunciate_off(
     return s, []
 
 
-def _expire_shelf(s: AlarmState, t: datetime) -> tuple[AlarmState, list[AlarmEvent]]:
+def expire_shelf(s: AlarmState, t: datetime) -> tuple[AlarmState, list[AlarmEvent]]:
+    """A shelved alarm whose shelf time has run out by *t*, unshelved at that time."""
     if s.state == State.SHELVED and s.shelved_until is not None and t >= s.shelved_until:
         return unshelve(s, now=s.shelved_until)
     return s, []
@@ -196,14 +199,14 @@ def _new_samples(
     index = pd.DatetimeIndex(series.index)
     if index.tz is None:
         raise ValueError("series must be indexed by timezone-aware (UTC) times")
-    t_now = _aware(now, "now")
+    t_now = require_aware(now, "now")
     data = pd.Series(series.to_numpy(dtype=float), index=index.tz_convert("UTC")).sort_index()
     if state.last_sample is not None:
         data = data[data.index > pd.Timestamp(state.last_sample)]
     return data[(data.index <= t_now) & data.notna()], t_now
 
 
-def _at_times(mask: pd.Series | None, index: pd.DatetimeIndex) -> list[bool]:
+def at_times(mask: pd.Series | None, index: pd.DatetimeIndex) -> list[bool]:
     """*mask* (bool, on UTC times) looked up at *index*: the newest mask value at or
     before each time; False where there is none (or no mask)."""
     if mask is None or mask.empty or len(index) == 0:
@@ -213,14 +216,15 @@ def _at_times(mask: pd.Series | None, index: pd.DatetimeIndex) -> list[bool]:
     return [bool(x) for x in m.reindex(index, method="ffill").fillna(False).to_numpy(dtype=bool)]
 
 
-def _aware(when: datetime, name: str) -> pd.Timestamp:
+def require_aware(when: datetime, name: str) -> pd.Timestamp:
+    """*when* as a timestamp; a naive time is a `ValueError` naming the argument *name*."""
     t = pd.Timestamp(when)
     if t.tzinfo is None:
         raise ValueError(f"{name} must be timezone-aware (UTC), got {when!r}")
     return t
 
 
-def _held(s: AlarmState, t: datetime, mark: Literal["pending_since", "clear_since"],
+def delay_held(s: AlarmState, t: datetime, mark: Literal["pending_since", "clear_since"],
           delay: timedelta) -> tuple[AlarmState, datetime, bool]:
     """An on- or off-delay at sample time *t*: the state with *mark* set (kept when it
     was), since when the condition has held, and whether *delay* has passed."""
@@ -234,11 +238,11 @@ def _held(s: AlarmState, t: datetime, mark: Literal["pending_since", "clear_sinc
 
 
 #: One judged sample: the state before it, its time, its value and its flag (see
-#: `_judge_samples`); returns the state after it and the events it caused.
+#: `judge_samples`); returns the state after it and the events it caused.
 SampleStep = Callable[[AlarmState, datetime, float, bool], tuple[AlarmState, list[AlarmEvent]]]
 
 
-def _judge_samples(
+def judge_samples(
     series: pd.Series, state: AlarmState, now: datetime, step: SampleStep, *,
     max_gap: timedelta | None = None, out_of_service_clears_pending: bool = False,
     flags: pd.Series | None = None,
@@ -249,16 +253,16 @@ def _judge_samples(
     ends an expired shelf; out of service, only notes the sample (and forgets a pending
     run with *out_of_service_clears_pending*); after a gap longer than *max_gap* restarts
     the delays; then calls *step* with the sample's flag: *flags* (bool, on UTC times,
-    e.g. "the branch cannot flow") at the sample's time (`_at_times`). A shelf that
+    e.g. "the branch cannot flow") at the sample's time (`at_times`). A shelf that
     expires by *now* ends too. Returns the state and the events in time order.
     """
     data, t_now = _new_samples(series, state, now)
-    marks = _at_times(flags, pd.DatetimeIndex(data.index))
+    marks = at_times(flags, pd.DatetimeIndex(data.index))
     s, events = state, []
     for ts, v, flag in zip(data.index, data.to_numpy(), marks, strict=True):
         t = ts.to_pydatetime()
         value = float(v)
-        s, ev = _expire_shelf(s, t)
+        s, ev = expire_shelf(s, t)
         events += ev
         if s.state == State.OUT_OF_SERVICE:
             s = dataclasses.replace(s, last_sample=t, last_value=value)
@@ -269,7 +273,7 @@ def _judge_samples(
             s = dataclasses.replace(s, pending_since=None, clear_since=None)
         s, ev = step(s, t, value, flag)
         events += ev
-    s, ev = _expire_shelf(s, t_now.to_pydatetime())
+    s, ev = expire_shelf(s, t_now.to_pydatetime())
     return s, events + ev
 
 

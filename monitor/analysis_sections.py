@@ -15,10 +15,10 @@ from pydantic import (
     model_validator,
 )
 
-from monitor.site_sections import Delay, Duration, Period, _Strict, window_problem
+from monitor.site_sections import Delay, Duration, Period, StrictSection, window_problem
 
 
-class AnalysisSection(_Strict):
+class AnalysisSection(StrictSection):
     window: Period = 86_400.0
     #: samples are averaged onto a grid of this period before fitting
     sample_period: Period = 60.0
@@ -69,7 +69,7 @@ class AnalysisSection(_Strict):
         return value
 
 
-class DiagnosisSection(_Strict):
+class DiagnosisSection(StrictSection):
     """[diagnosis]: the spans of the diagnosis as times of the plant, converted to
     windows of ``[analysis] window`` (`monitor.findings.DiagnosisSettings.for_window`).
     The defaults are those of daily windows: a baseline of 14 days, the level over 14
@@ -93,7 +93,7 @@ class DiagnosisSection(_Strict):
         return self
 
 
-class ScheduleSection(_Strict):
+class ScheduleSection(StrictSection):
     """When the daemon works, in the site's local time.
 
     The daily jobs default to early morning but outside 01:00–04:00, where daylight-saving
@@ -121,11 +121,11 @@ class ScheduleSection(_Strict):
         return value
 
 
-class ReportSection(_Strict):
+class ReportSection(StrictSection):
     folder: str = "reports"
 
 
-class EmailSection(_Strict):
+class EmailSection(StrictSection):
     """[notify.email]: alarms and the morning digest by e-mail (SMTP)."""
 
     host: str = Field(min_length=1)
@@ -158,7 +158,7 @@ class EmailSection(_Strict):
         return self
 
 
-class WebhookSection(_Strict):
+class WebhookSection(StrictSection):
     """[notify.webhook]: alarms and the digest as JSON posted to a URL."""
 
     #: the URL, when it carries no token; else ``url_env`` or ``secrets_file``
@@ -176,7 +176,7 @@ class WebhookSection(_Strict):
         return self
 
 
-class NotifySection(_Strict):
+class NotifySection(StrictSection):
     """[notify]: who is told what, and how hard branchwatch tries."""
 
     #: alarms of this priority or higher are sent as soon as they activate
@@ -216,7 +216,7 @@ def parse_energy_price(value: Any) -> EnergyPrice:
     return EnergyPrice(per_kwh=round(per_kwh, 12), currency=currency)
 
 
-class CostSection(_Strict):
+class CostSection(StrictSection):
     """What the extra pump energy costs: ``energy_price = "0.14 EUR/kWh"``."""
 
     energy_price: Annotated[EnergyPrice, BeforeValidator(parse_energy_price)]

@@ -48,7 +48,7 @@ from monitor.analysis_sections import (
     ReportSection,
     ScheduleSection,
 )
-from monitor.site_branches import BranchConfig, _build_branch, _flow_drop, _tag
+from monitor.site_branches import BranchConfig, build_branch, checked_tag, flow_drop_alarm
 from monitor.site_sections import (
     BranchSection,
     ConfigError,
@@ -58,7 +58,7 @@ from monitor.site_sections import (
     SiteSection,
     SourceSection,
     StoreSection,
-    _Strict,
+    StrictSection,
     site_key_problem,
 )
 
@@ -73,7 +73,7 @@ __all__ = [
 ]
 
 
-class SiteFile(_Strict):
+class SiteFile(StrictSection):
     site: SiteSection
     store: StoreSection = StoreSection()
     source: SourceSection | None = None
@@ -229,9 +229,10 @@ def _loc_text(loc: Sequence[int | str]) -> str:
 
 def _build(doc: SiteFile, path: Path) -> Site:
     tags: dict[str, TagSpec] = {}
-    header_p = _tag(doc.header.pressure, "pressure", tags)
-    header_t = _tag(doc.header.temperature, "temperature", tags) if doc.header.temperature else None
-    total_q = _tag(doc.header.total_flow, "flow", tags) if doc.header.total_flow else None
+    header_p = checked_tag(doc.header.pressure, "pressure", tags)
+    header_t = (checked_tag(doc.header.temperature, "temperature", tags)
+                if doc.header.temperature else None)
+    total_q = checked_tag(doc.header.total_flow, "flow", tags) if doc.header.total_flow else None
 
     pump = None
     speed_tag = None
@@ -247,14 +248,14 @@ def _build(doc: SiteFile, path: Path) -> Site:
         except (ValueError, ArithmeticError) as exc:
             raise ValueError(f"pump (curve, design_speed, count): {exc}") from None
         if doc.pump.speed is not None:
-            speed_tag = _tag(doc.pump.speed, "speed", tags)
+            speed_tag = checked_tag(doc.pump.speed, "speed", tags)
 
     branches = []
     for i, sec in enumerate(doc.branch):
         where = f"branch[{i}] ({sec.name})"
         try:
-            branch = _build_branch(sec, tags, doc.analysis.cleaning_limit)
-            branches.append(replace(branch, flow_drop=_flow_drop(
+            branch = build_branch(sec, tags, doc.analysis.cleaning_limit)
+            branches.append(replace(branch, flow_drop=flow_drop_alarm(
                 doc.flow_drop, sec.flow_drop, branch.flow_tag is not None,
                 branch.valve_position_tag is not None)))
         except (ValueError, KeyError) as exc:

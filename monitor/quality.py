@@ -48,7 +48,7 @@ import numpy as np
 import pandas as pd
 
 from adapters.records import READING_COLUMNS, TagSpec
-from monitor.sample_checks import _frozen, _gaps, _hampel, _too_fast
+from monitor.sample_checks import find_gaps, frozen_runs, hampel_outliers, too_fast
 
 __all__ = [
     "FLAGS",
@@ -369,19 +369,19 @@ def screen(
     flags["no_value"] = ~np.isfinite(value)
     flags["out_of_range"] = np.isfinite(value) & ((value < low) | (value > high))
     valid = ~(flags["bad_quality"] | flags["no_value"] | flags["out_of_range"])
-    flags["frozen"] = _frozen(value, t_s, codes, valid, tol, noise, is_flow, settings.frozen_s)
-    flags["spike"] = valid & _hampel(
+    flags["frozen"] = frozen_runs(value, t_s, codes, valid, tol, noise, is_flow, settings.frozen_s)
+    flags["spike"] = valid & hampel_outliers(
         np.where(valid, value, np.nan), codes, noise, noise_rel, settings.hampel_k
     )
     if rest is not None:
         flags["frozen"] &= ~rest
         flags["spike"] &= ~rest
     accepted = valid & ~flags["spike"]
-    flags["rate"] = accepted & _too_fast(value, t_s, codes, accepted, rate)
+    flags["rate"] = accepted & too_fast(value, t_s, codes, accepted, rate)
     new_run = np.r_[True, codes[1:] != codes[:-1]] if n else np.zeros(0, bool)
     dt_prev = np.r_[np.inf, np.diff(t_s)] if n else np.zeros(0)
     flags["gap"] = ~new_run & (dt_prev > settings.max_gap_s)
-    gaps = _gaps(frame, codes, tags, t_s, new_run, settings.max_gap_s, start, end, specs)
+    gaps = find_gaps(frame, codes, tags, t_s, new_run, settings.max_gap_s, start, end, specs)
     if header_pressure_tag is not None:
         off, settling = _pump_state(frame, flags, header_pressure_tag, total_flow_tag, settings)
         flags["pump_off"], flags["startup"] = off, settling

@@ -34,7 +34,7 @@ def _rolling_median(windows: np.ndarray) -> np.ndarray:
     return np.where(count > 0, med, np.nan)
 
 
-def _hampel(
+def hampel_outliers(
     values: np.ndarray, codes: np.ndarray, noise: np.ndarray, noise_rel: np.ndarray, k: float
 ) -> np.ndarray:
     """Hampel identifier over each tag's samples; windows never cross tags."""
@@ -146,7 +146,7 @@ def resolution_by_tag(flags: pd.DataFrame) -> dict[str, float]:
     return {str(tags[c]): float(res[i]) for c, i in zip(codes[first], first, strict=True)}
 
 
-def _too_fast(
+def too_fast(
     values: np.ndarray,
     t_s: np.ndarray,
     codes: np.ndarray,
@@ -167,7 +167,7 @@ def _too_fast(
     return out
 
 
-def _frozen(
+def frozen_runs(
     values: np.ndarray,
     t_s: np.ndarray,
     codes: np.ndarray,
@@ -198,7 +198,7 @@ def _frozen(
     return out
 
 
-def _gaps(
+def find_gaps(
     frame: pd.DataFrame,
     codes: np.ndarray,
     tags: pd.Index,

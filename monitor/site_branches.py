@@ -35,7 +35,7 @@ class FlowDrop:
     follow_header: bool = True
 
 
-def _flow_drop(site: FlowDropSection, branch: FlowDropSection | None, has_meter: bool,
+def flow_drop_alarm(site: FlowDropSection, branch: FlowDropSection | None, has_meter: bool,
                modulated: bool) -> FlowDrop | None:
     """The branch's flow-drop alarm from the site's and the branch's keys (None: off).
 
@@ -101,7 +101,9 @@ class BranchConfig:
         return {k: v for k, v in pairs.items() if v is not None}
 
 
-def _tag(ref: TagRef, kind: str, tags: dict[str, TagSpec]) -> str:
+def checked_tag(ref: TagRef, kind: str, tags: dict[str, TagSpec]) -> str:
+    """The tag of *ref*, registered in *tags* with its unit converter for a quantity of
+    *kind*; a unit that is not one of *kind* is a `ValueError`."""
     try:
         convert = converter(ref.unit, kind)
     except UnitError:
@@ -146,9 +148,11 @@ def _finite(convert: Any, value: float | None, ref: TagRef, key: str) -> float |
     return si
 
 
-def _build_branch(
+def build_branch(
     sec: BranchSection, tags: dict[str, TagSpec], site_cleaning_limit: float
 ) -> BranchConfig:
+    """The model, tags and settings of one ``[[branch]]`` section (its tags registered
+    in *tags*); *site_cleaning_limit* [-] is the default of its cleaning limit."""
     elements: list[Any] = []
     pipe_d: float | None = None
     valve_tag = None
@@ -174,7 +178,7 @@ def _build_branch(
     elif t.kind == "tank":
         base = t.base_elevation if t.base_elevation is not None else t.elevation
         if isinstance(t.level, TagRef):
-            level_tag = _tag(t.level, "level", tags)
+            level_tag = checked_tag(t.level, "level", tags)
             nominal["level_m"] = _required_nominal(t.level, "level")
             termination = Tank(base_elevation_m=base, level_m=None, gas_pressure_pa=t.gas_pressure)
         else:
@@ -184,7 +188,7 @@ def _build_branch(
     else:
         cls = HeldHeader if t.kind == "held_header" else ReturnHeader
         if isinstance(t.pressure, TagRef):
-            end_tag = _tag(t.pressure, "pressure", tags)
+            end_tag = checked_tag(t.pressure, "pressure", tags)
             nominal["end_pressure_pa"] = _required_nominal(t.pressure, "pressure")
             value = None
         else:
@@ -194,7 +198,7 @@ def _build_branch(
             if cls is HeldHeader
             else ReturnHeader(pressure_pa=value, elevation_m=t.elevation)
         )
-    flow_tag = _tag(sec.flow, "flow", tags) if sec.flow else None
+    flow_tag = checked_tag(sec.flow, "flow", tags) if sec.flow else None
     model = Branch(sec.name, elements, termination, check_valve=sec.check_valve)
     return BranchConfig(
         name=sec.name,
@@ -244,7 +248,7 @@ def _build_element(
         return Fittings(pipe_d, el.fittings or {}, extra_k=el.loss_coefficient or 0.0), None, None
     if el.valve is not None:
         v = el.valve
-        tag = _tag(v.position_tag, "position", tags) if v.position_tag else None
+        tag = checked_tag(v.position_tag, "position", tags) if v.position_tag else None
         if v.kvs is not None:
             valve = ControlValve(
                 v.kvs, characteristic=v.characteristic, rangeability=v.rangeability,

@@ -80,11 +80,14 @@ def window_problem(seconds: float) -> str | None:
     return None
 
 
-class _Strict(BaseModel):
+class StrictSection(BaseModel):
+    """The base of every section of the site file: unknown keys are refused, and a
+    parsed section cannot be changed."""
+
     model_config = ConfigDict(extra="forbid", frozen=True)
 
 
-class TagRef(_Strict):
+class TagRef(StrictSection):
     """A historian tag and the unit it is logged in."""
 
     tag: str = Field(min_length=1)
@@ -95,7 +98,7 @@ class TagRef(_Strict):
     nominal: float | None = None
 
 
-class SiteSection(_Strict):
+class SiteSection(StrictSection):
     name: str
     timezone: str = "UTC"
     #: let ``[report] folder`` and the SQLite store file lie outside the site file's
@@ -135,7 +138,7 @@ def site_key_problem(key: object) -> str | None:
     return f"{key!r} is not a site key ({SITE_KEY_RULE})"
 
 
-class StoreSection(_Strict):
+class StoreSection(StrictSection):
     """Where results go: ``url`` (no password), or ``url_env`` / ``secrets_file`` for a
     URL with credentials, read at load (see `adapters.credentials`); ``schema``: the
     PostgreSQL schema the site's tables are kept in (a fleet's shared store)."""
@@ -163,7 +166,7 @@ class StoreSection(_Strict):
         return self
 
 
-class SourceSection(_Strict):
+class SourceSection(StrictSection):
     kind: Literal["csv", "sql"] = "csv"
     # csv
     path: str | None = None
@@ -223,7 +226,7 @@ class SourceSection(_Strict):
         return self
 
 
-class HeaderSection(_Strict):
+class HeaderSection(StrictSection):
     pressure: TagRef
     temperature: TagRef | None = None
     total_flow: TagRef | None = None
@@ -232,12 +235,12 @@ class HeaderSection(_Strict):
     running_pressure: Pressure | None = None
 
 
-class PumpPoint(_Strict):
+class PumpPoint(StrictSection):
     flow: Flow
     head: Length
 
 
-class PumpSection(_Strict):
+class PumpSection(StrictSection):
     curve: list[PumpPoint] = Field(min_length=3)
     count: int = Field(default=1, ge=1, le=8)
     speed: TagRef | None = None
@@ -257,7 +260,7 @@ class PumpSection(_Strict):
         return value
 
 
-class PipeSpec(_Strict):
+class PipeSpec(StrictSection):
     length: Length
     inner_diameter: Length | None = None
     nps: float | None = None
@@ -272,7 +275,7 @@ class PipeSpec(_Strict):
         return self
 
 
-class ValveSpec(_Strict):
+class ValveSpec(StrictSection):
     kvs: float | None = Field(default=None, gt=0, description="Kvs in m3/h at 1 bar")
     cv: float | None = Field(default=None, gt=0, description="Cv in US gpm at 1 psi")
     characteristic: Literal["linear", "equal_percentage", "quick_opening"] = "equal_percentage"
@@ -287,14 +290,14 @@ class ValveSpec(_Strict):
         return self
 
 
-class EquipmentSpec(_Strict):
+class EquipmentSpec(StrictSection):
     rated_dp: Pressure
     rated_flow: Flow
     exponent: float = Field(default=1.9, ge=1.0, le=2.2)
     name: str = ""
 
 
-class ElementSpec(_Strict):
+class ElementSpec(StrictSection):
     """One entry of a branch's ``elements`` list: exactly one key."""
 
     pipe: PipeSpec | None = None
@@ -315,7 +318,7 @@ class ElementSpec(_Strict):
         return self
 
 
-class TerminationSpec(_Strict):
+class TerminationSpec(StrictSection):
     kind: Literal["open", "tank", "held_header", "return_header"]
     elevation: Length = 0.0
     base_elevation: Length | None = None
@@ -332,7 +335,7 @@ class TerminationSpec(_Strict):
         return self
 
 
-class FlowDropSection(_Strict):
+class FlowDropSection(StrictSection):
     """[flow_drop] (site-wide) or a branch's ``flow_drop = {…}``: the relative flow-drop
     alarm, off unless ``enabled``. A branch's keys override the site's; a branch that
     says ``enabled = false`` is left out of a site-wide alarm. Flow only (no pump curve,
@@ -371,7 +374,7 @@ class FlowDropSection(_Strict):
         return value
 
 
-class BranchSection(_Strict):
+class BranchSection(StrictSection):
     name: str = Field(min_length=1)
     description: str = ""
     flow: TagRef | None = None

@@ -1,4 +1,5 @@
-"""Real servers on loopback for the notification tests: SMTP (aiosmtpd) and HTTP.
+"""Real servers on loopback for the notification tests: SMTP (aiosmtpd) and HTTP; and
+`drop_schemas`, which clears away what a test made on the database servers.
 
 `MailServer` runs aiosmtpd's controller on 127.0.0.1 with an optional STARTTLS
 certificate (made with the openssl command line) and an optional login; every message it
@@ -16,7 +17,7 @@ import ssl
 import subprocess
 import threading
 import time
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from email.message import EmailMessage
@@ -26,6 +27,22 @@ from typing import Any
 
 from aiosmtpd.controller import Controller
 from aiosmtpd.smtp import AuthResult, LoginPassword
+
+
+def drop_schemas(url: str, names: Iterable[str]) -> None:
+    """Drop the schemas (PostgreSQL) or databases (MariaDB) *names* on the server at
+    *url*, with everything in them; a name that does not exist is passed over."""
+    import sqlalchemy as sa
+
+    engine = sa.create_engine(url)
+    quote = engine.dialect.identifier_preparer.quote_identifier
+    with engine.begin() as conn:
+        for name in names:
+            if engine.dialect.name == "postgresql":
+                conn.exec_driver_sql(f"DROP SCHEMA IF EXISTS {quote(name)} CASCADE")
+            else:
+                conn.exec_driver_sql(f"DROP DATABASE IF EXISTS {quote(name)}")
+    engine.dispose()
 
 
 def free_port() -> int:

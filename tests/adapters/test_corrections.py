@@ -1,14 +1,15 @@
 """Historian corrections in the results store: a stored reading that a later export brings
 with another value is refused (first value kept) or applied, and journalled either way —
 the same suite on SQLite, PostgreSQL and MariaDB; and the migration that adds the journal.
+A correction from a CSV export is journalled with the file line that brought it, numbered
+as the quarantine numbers lines (the header is line 1).
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -17,56 +18,14 @@ import sqlalchemy as sa
 from alembic import command
 from alembic.config import Config
 
+from adapters.csv_source import CsvSource
 from adapters.migrations.dialects import native_times
-from adapters.records import Batch, empty_quarantine, values_differ
+from adapters.records import Batch, TagSpec, empty_quarantine, values_differ
 from adapters.store import SqlStore
+from tests.adapters.ingest_helpers import write
 
 T0 = datetime(2026, 2, 9, 6, tzinfo=UTC)
 TAGS = ["FT-311", "PT-301"]
-
-
-def _drop(url: str, schema: str) -> None:
-    engine = sa.create_engine(url)
-    quoted = engine.dialect.identifier_preparer.quote_identifier(schema)
-    with engine.begin() as conn:
-        if engine.dialect.name == "postgresql":
-            conn.exec_driver_sql(f"DROP SCHEMA IF EXISTS {quoted} CASCADE")
-        else:
-            conn.exec_driver_sql(f"DROP DATABASE IF EXISTS {quoted}")
-    engine.dispose()
-
-
-@pytest.fixture(
-    params=[
-        "sqlite",
-        pytest.param("postgresql", marks=pytest.mark.server),
-        pytest.param("mariadb", marks=pytest.mark.server),
-    ]
-)
-def opener(request: pytest.FixtureRequest, tmp_path: Path, unique_name: str) -> Iterator[Any]:
-    """Opens (another) store on this test's own database."""
-    opened: list[SqlStore] = []
-    if request.param == "sqlite":
-        url, schema = f"sqlite:///{tmp_path / 'branchwatch.db'}", None
-    else:
-        fixture = "postgres_url" if request.param == "postgresql" else "mariadb_url"
-        url, schema = request.getfixturevalue(fixture), unique_name
-
-    def open_store(migrate: bool = True) -> SqlStore:
-        opened.append(SqlStore(url, schema=schema, migrate=migrate))
-        return opened[-1]
-
-    yield open_store
-    for s in opened:
-        s.close()
-    if schema is not None:
-        _drop(url, schema)
-
-
-@pytest.fixture
-def store(opener: Any) -> SqlStore:
-    opened: SqlStore = opener()
-    return opened
 
 
 def _readings(minutes: int = 30) -> pd.DataFrame:
@@ -208,8 +167,10 @@ def _alembic(store: SqlStore, action: str, target: str) -> None:
         getattr(command, action)(cfg, target)
 
 
-def test_migration_0008_up_down_and_up_keeps_readings(opener: Any) -> None:
-    store = opener(migrate=False)
+def test_migration_0008_up_down_and_up_keeps_readings(
+    store_opener: Callable[..., SqlStore],
+) -> None:
+    store = store_opener(migrate=False)
     _alembic(store, "upgrade", "0007_outbox")
     assert "corrections" not in sa.inspect(store.engine).get_table_names()
     with store.engine.begin() as conn:  # a reading stored under the old schema
@@ -244,3 +205,59 @@ def test_one_instant_stored_as_two_texts_does_not_stop_ingest(tmp_path: Path) ->
         assert (out.stored, out.refused) == (0, 0)
     finally:
         store.close()
+
+
+def _ingest_csv(store: SqlStore, inbox: Path, corrections: str) -> int:
+    """Every batch of the CSV exports in *inbox* into *store*; returns the corrections."""
+    source = CsvSource([TagSpec("FT-311", "m3/h", "flow"), TagSpec("PT-301", "bar", "pressure")],
+                       path=inbox, settle_seconds=0)
+    met = 0
+    for batch in source.batches(store.cursors(source.name)):
+        out = store.write_batch(batch, source=source.name, corrections=corrections)
+        met += out.applied + out.refused
+    return met
+
+
+@pytest.mark.parametrize("corrections", ["refuse", "apply"])
+def test_a_csv_correction_is_journalled_with_its_file_line(
+    store: SqlStore, tmp_path: Path, corrections: str
+) -> None:
+    inbox = tmp_path / "inbox"
+    inbox.mkdir()
+    write(inbox / "feb-09.csv", "timestamp,FT-311,PT-301\n"
+          "2026-02-09T06:00:00Z,42.0,3.10\n"
+          "2026-02-09T06:01:00Z,42.1,3.11\n"
+          "2026-02-09T06:02:00Z,42.2,3.12\n")
+    assert _ingest_csv(store, inbox, corrections) == 0
+    # the reissue starts a minute earlier, so each reading sits one line lower than before
+    write(inbox / "feb-09-reissued.csv", "timestamp,FT-311,PT-301\n"
+          "2026-02-09T05:59:00Z,41.9,3.09\n"
+          "2026-02-09T06:00:00Z,42.0,3.10\n"
+          "2026-02-09T06:01:00Z,40.0,3.11\n"
+          "2026-02-09T06:02:00Z,42.2,3.20\n")
+    assert _ingest_csv(store, inbox, corrections) == 2
+    journal = store.read_corrections()
+    assert journal["tag"].tolist() == ["FT-311", "PT-301"]
+    assert journal["line"].tolist() == [4, 5]
+    assert journal["origin"].str.endswith("feb-09-reissued.csv").all()
+
+
+def test_a_long_csv_correction_names_the_last_line_of_its_reading(
+    store: SqlStore, tmp_path: Path
+) -> None:
+    inbox = tmp_path / "inbox"
+    inbox.mkdir()
+    write(inbox / "a.csv", "timestamp,tag,value\n"
+          "2026-02-09T06:00:00Z,FT-311,42.0\n"
+          "2026-02-09T06:00:00Z,PT-301,3.10\n")
+    assert _ingest_csv(store, inbox, "apply") == 0
+    # a reading given twice in one file: the last row is the one stored, and named
+    write(inbox / "b.csv", "timestamp,tag,value\n"
+          "2026-02-09T06:00:00Z,PT-301,3.10\n"
+          "2026-02-09T06:00:00Z,FT-311,41.0\n"
+          "2026-02-09T06:01:00Z,FT-311,42.5\n"
+          "2026-02-09T06:00:00Z,FT-311,40.0\n")
+    assert _ingest_csv(store, inbox, "apply") == 1
+    journal = store.read_corrections()
+    assert journal["line"].tolist() == [5]
+    assert journal["new_value"].tolist() == pytest.approx([40.0 / 3600])  # 1 m3/h = 1/3600 m3/s

@@ -1,7 +1,8 @@
 """Results store: the same suite on SQLite, PostgreSQL and MariaDB.
 
 Every server test works in a schema (PostgreSQL) or database (MariaDB) of its own, named
-by `unique_name` and dropped afterwards, so runs never see each other's rows.
+by `unique_name` and dropped afterwards (the `store_opener` and `store` fixtures of
+tests/conftest.py), so runs never see each other's rows.
 """
 
 from __future__ import annotations
@@ -9,7 +10,7 @@ from __future__ import annotations
 import math
 import pickle
 import signal
-from collections.abc import Iterator
+from collections.abc import Callable
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
@@ -48,50 +49,6 @@ ALL_TABLES = {
 }
 
 
-def _drop(url: str, schema: str) -> None:
-    engine = sa.create_engine(url)
-    quoted = engine.dialect.identifier_preparer.quote_identifier(schema)
-    with engine.begin() as conn:
-        if engine.dialect.name == "postgresql":
-            conn.exec_driver_sql(f"DROP SCHEMA IF EXISTS {quoted} CASCADE")
-        else:
-            conn.exec_driver_sql(f"DROP DATABASE IF EXISTS {quoted}")
-    engine.dispose()
-
-
-@pytest.fixture(
-    params=[
-        "sqlite",
-        pytest.param("postgresql", marks=pytest.mark.server),
-        pytest.param("mariadb", marks=pytest.mark.server),
-    ]
-)
-def opener(request: pytest.FixtureRequest, tmp_path: Any, unique_name: str) -> Iterator[Any]:
-    """A function that opens (another) store on this test's own database."""
-    opened: list[SqlStore] = []
-    if request.param == "sqlite":
-        url, schema = f"sqlite:///{tmp_path / 'branchwatch.db'}", None
-    else:
-        fixture = "postgres_url" if request.param == "postgresql" else "mariadb_url"
-        url, schema = request.getfixturevalue(fixture), unique_name
-
-    def open_store(migrate: bool = True) -> SqlStore:
-        opened.append(SqlStore(url, schema=schema, migrate=migrate))
-        return opened[-1]
-
-    yield open_store
-    for s in opened:
-        s.close()
-    if schema is not None:
-        _drop(url, schema)
-
-
-@pytest.fixture
-def store(opener: Any) -> SqlStore:
-    opened: SqlStore = opener()
-    return opened
-
-
 def _readings(n_minutes: int, tags: list[str], start: datetime = T0) -> pd.DataFrame:
     times = pd.date_range(start, periods=n_minutes, freq="min", tz="UTC")
     frame = pd.DataFrame(
@@ -122,8 +79,10 @@ def _all(store: SqlStore, tags: list[str]) -> pd.DataFrame:
     return store.read_readings(tags, T0 - timedelta(days=1), T0 + timedelta(days=30))
 
 
-def test_migrations_create_schema_and_reopen_is_a_noop(opener: Any) -> None:
-    first = opener()
+def test_migrations_create_schema_and_reopen_is_a_noop(
+    store_opener: Callable[..., SqlStore],
+) -> None:
+    first = store_opener()
     inspector = sa.inspect(first.engine)
     assert set(inspector.get_table_names()) >= ALL_TABLES
     with first.engine.connect() as conn:
@@ -138,7 +97,7 @@ def test_migrations_create_schema_and_reopen_is_a_noop(opener: Any) -> None:
     # Only our version table is not in the metadata; no table, column, type or index differs.
     assert [d[1].name for d in diff] == ["branchwatch_schema_version"]
     first.store_batch(_batch(_readings(3, ["FT-203"])), source="csv")
-    second = opener()  # migrating an up-to-date schema changes nothing, loses nothing
+    second = store_opener()  # migrating an up-to-date schema changes nothing, loses nothing
     assert len(_all(second, ["FT-203"])) == 3
     with second.engine.connect() as conn:
         versions = conn.execute(sa.text("SELECT version_num FROM branchwatch_schema_version"))
@@ -488,11 +447,13 @@ def test_screening_counts_round_trip(store: SqlStore) -> None:
     assert list(back.loc[back["flag"] == "spike", "count"]) == [1, 1]
 
 
-def test_an_old_schema_is_upgraded_in_place(opener: Any) -> None:
+def test_an_old_schema_is_upgraded_in_place(
+    store_opener: Callable[..., SqlStore],
+) -> None:
     from alembic import command
     from alembic.config import Config
 
-    old = opener(migrate=False)
+    old = store_opener(migrate=False)
     cfg = Config()
     cfg.set_main_option("script_location", str(store_module._MIGRATIONS))
     with old.engine.begin() as conn:  # a database left at the first schema version
@@ -511,7 +472,7 @@ def test_an_old_schema_is_upgraded_in_place(opener: Any) -> None:
             "branch": "CW-3", "window_start": T0, "window_end": T0 + timedelta(days=1),
             "computed_at": T0, "r": 1.1, "samples": 1200, "status": "ok",
         }])  # fmt: skip
-    new = opener()  # opening migrates to the newest version, keeping every row
+    new = store_opener()  # opening migrates to the newest version, keeping every row
     assert len(_all(new, ["FT-203"])) == 4
     fits = new.read_fits()
     assert list(fits["r"]) == [1.1] and math.isnan(fits["sum_w"].iloc[0])

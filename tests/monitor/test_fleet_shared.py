@@ -4,7 +4,7 @@ writes there instead of the site files' own stores, and ranks both sites' branch
 
 Invented data: the example site (config/example-site.toml) twice, under two site names,
 simulated for 3 days at 10-minute steps from CSV exports ingested into each site's
-schema; the schemas get unique names (the `unique_name` fixture) and are dropped at the
+schema; the schemas get unique names (the `schema_pair` fixture) and are dropped at the
 end. The cluster: `distributed.LocalCluster` with two single-threaded worker processes.
 """
 
@@ -12,64 +12,41 @@ from __future__ import annotations
 
 import json
 import logging
-import os
-import re
-from collections.abc import Iterator
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 import pytest
-import sqlalchemy as sa
 
 from adapters.store import SqlStore
 from monitor.cli import main
 from monitor.config import load_site
-from monitor.demo import EXAMPLE_SITE, simulate_site, write_exports
 from monitor.fleet import load_fleet
 from monitor.ingest import ingest, open_source
+from tests.monitor.small_site import example_site
 
 START = datetime(2026, 5, 3, 22, tzinfo=UTC)  # local midnight, Europe/Berlin (CEST)
 END = START + timedelta(days=3)
 SPAN = ["--from", START.isoformat(), "--to", END.isoformat()]
 
 
-def _site(folder: Path, name: str, seed: int) -> None:
-    folder.mkdir(parents=True)
-    text = re.sub(r'(?m)^name = ".*"$', f'name = "{name}"', EXAMPLE_SITE.read_text(), count=1)
-    (folder / "site.toml").write_text(text)
-    site = load_site(folder / "site.toml")
-    write_exports(site, simulate_site(site, START, END, step_s=600.0, seed=seed),
-                  folder / "inbox")
-    settled = datetime.now(UTC).timestamp() - 3600  # exports dropped long ago
-    for p in (folder / "inbox").iterdir():
-        os.utime(p, (settled, settled))
-
-
 @pytest.fixture
-def shared_fleet(tmp_path: Path, postgres_url: str, unique_name: str) -> Iterator[Path]:
+def shared_fleet(tmp_path: Path, postgres_url: str, schema_pair: list[str]) -> Path:
     """A fleet file of two sites sharing the test database, their exports ingested into
-    their schemas; the schemas are dropped afterwards."""
-    keys = [f"{unique_name}_a", f"{unique_name}_b"]
-    _site(tmp_path / "a", "Plant A", 3)
-    _site(tmp_path / "b", "Plant B", 4)
+    their schemas (`schema_pair`: dropped afterwards)."""
+    keys = schema_pair
+    example_site(tmp_path / "a", "Plant A", START, END, seed=3)
+    example_site(tmp_path / "b", "Plant B", START, END, seed=4)
     fleet = tmp_path / "fleet.toml"
     fleet.write_text(f'[fleet]\nname = "Shared"\nreport = "out/fleet.html"\n'
                      f'[store]\nurl = "{postgres_url}"\n'
                      f'[[site]]\nfile = "a/site.toml"\nkey = "{keys[0]}"\n'
                      f'[[site]]\nfile = "b/site.toml"\nkey = "{keys[1]}"\n')
-    try:
-        for folder, key in zip("ab", keys, strict=True):
-            site = load_site(tmp_path / folder / "site.toml")
-            store = SqlStore(postgres_url, schema=key)
-            ingest(site, store, open_source(site))
-            store.close()
-        yield fleet
-    finally:
-        engine = sa.create_engine(postgres_url)
-        with engine.begin() as conn:
-            for key in keys:
-                conn.exec_driver_sql(f'DROP SCHEMA IF EXISTS "{key}" CASCADE')
-        engine.dispose()
+    for folder, key in zip("ab", keys, strict=True):
+        site = load_site(tmp_path / folder / "site.toml")
+        store = SqlStore(postgres_url, schema=key)
+        ingest(site, store, open_source(site))
+        store.close()
+    return fleet
 
 
 def _fits_by_schema(postgres_url: str, keys: tuple[str, ...]) -> dict[str, int]:

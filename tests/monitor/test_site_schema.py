@@ -6,16 +6,13 @@ site's key.
 Invented data: the example site (config/example-site.toml) twice, under two site names,
 simulated for 3 days at 10-minute steps in 2029 (a span no other test writes, so rows of
 it in the public schema could only come from here); the schemas get unique names (the
-`unique_name` fixture) and are dropped at the end.
+`schema_pair` fixture) and are dropped at the end.
 """
 
 from __future__ import annotations
 
 import json
 import logging
-import os
-import re
-from collections.abc import Iterator
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
@@ -24,29 +21,12 @@ import sqlalchemy as sa
 
 from adapters.store import SqlStore
 from monitor.cli import main
-from monitor.config import load_site
-from monitor.demo import EXAMPLE_SITE, simulate_site, write_exports
 from monitor.fleet import load_fleet
+from tests.monitor.small_site import example_site
 
 START = datetime(2029, 5, 6, 22, tzinfo=UTC)  # local midnight, Europe/Berlin (CEST)
 END = START + timedelta(days=3)
 SPAN = ["--from", START.isoformat(), "--to", END.isoformat()]
-
-
-def _site(folder: Path, name: str, url: str, schema: str, seed: int) -> Path:
-    folder.mkdir(parents=True)
-    text = re.sub(r'(?m)^name = ".*"$', f'name = "{name}"', EXAMPLE_SITE.read_text(), count=1)
-    text = text.replace('url = "sqlite:///var/branchwatch.db"',
-                        f'url = "{url}"\nschema = "{schema}"')
-    path = folder / "site.toml"
-    path.write_text(text)
-    site = load_site(path)
-    write_exports(site, simulate_site(site, START, END, step_s=600.0, seed=seed),
-                  folder / "inbox")
-    settled = datetime.now(UTC).timestamp() - 3600  # exports dropped long ago
-    for p in (folder / "inbox").iterdir():
-        os.utime(p, (settled, settled))
-    return path
 
 
 def _count(conn: sa.Connection, schema: str, table: str, column: str) -> int:
@@ -58,26 +38,15 @@ def _count(conn: sa.Connection, schema: str, table: str, column: str) -> int:
     ), {"a": START, "b": END}).scalar_one())
 
 
-@pytest.fixture
-def schemas(postgres_url: str, unique_name: str) -> Iterator[list[str]]:
-    names = [f"{unique_name}_a", f"{unique_name}_b"]
-    try:
-        yield names
-    finally:
-        engine = sa.create_engine(postgres_url)
-        with engine.begin() as conn:
-            for name in names:
-                conn.exec_driver_sql(f'DROP SCHEMA IF EXISTS "{name}" CASCADE')
-        engine.dispose()
-
-
 @pytest.mark.server
 def test_a_sites_own_commands_and_the_fleet_use_its_schema(
-    tmp_path: Path, postgres_url: str, schemas: list[str],
+    tmp_path: Path, postgres_url: str, schema_pair: list[str],
     capsys: pytest.CaptureFixture[str], caplog: pytest.LogCaptureFixture,
 ) -> None:
-    a = _site(tmp_path / "a", "Plant A", postgres_url, schemas[0], 3)
-    _site(tmp_path / "b", "Plant B", postgres_url, schemas[1], 4)
+    schemas = schema_pair
+    a = example_site(tmp_path / "a", "Plant A", START, END, seed=3,
+                     store=(postgres_url, schemas[0]))
+    example_site(tmp_path / "b", "Plant B", START, END, seed=4, store=(postgres_url, schemas[1]))
     assert main(["ingest", str(a)]) == 0
     assert main(["analyze", str(a), *SPAN, "--quiet"]) == 0
     capsys.readouterr()
