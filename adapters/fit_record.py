@@ -15,7 +15,7 @@ measured or not fitted is NaN (NULL in the store).
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Mapping
+from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
 from datetime import datetime
 from typing import Any, ClassVar
@@ -33,7 +33,6 @@ __all__ = [
     "FitHistory",
     "FitSums",
     "WindowFit",
-    "fits_frame",
     "fits_of",
 ]
 
@@ -264,11 +263,6 @@ def fits_of(frame: pd.DataFrame) -> list[WindowFit]:
     """The records of a fits frame (`FIT_COLUMNS`, as `read_fits` gives), in row order."""
     return [WindowFit.from_row({str(k): v for k, v in row.items()})
             for row in frame.to_dict("records")]
-
-
-def fits_frame(fits: Iterable[WindowFit]) -> pd.DataFrame:
-    """*fits* as a frame with the store's columns (`FIT_COLUMNS`), as `read_fits` gives."""
-    return pd.DataFrame([f.to_row() for f in fits], columns=list(FIT_COLUMNS))
 
 
 def _numbers(frame: pd.DataFrame, name: str) -> NDArray[np.float64]:

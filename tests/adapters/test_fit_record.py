@@ -7,6 +7,7 @@ Invented numbers; the rules checked are the product's (adapters/fit_record.py).
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from typing import Any
 
 import numpy as np
@@ -19,12 +20,16 @@ from adapters.fit_record import (
     FitHistory,
     FitSums,
     WindowFit,
-    fits_frame,
     fits_of,
 )
 from adapters.migrations.tables import fits_t
 
 T0 = pd.Timestamp("2026-03-02", tz="UTC")
+
+
+def fits_frame(fits: Iterable[WindowFit]) -> pd.DataFrame:
+    """*fits* as the store's frame would hold them (`FIT_COLUMNS`)."""
+    return pd.DataFrame([f.to_row() for f in fits], columns=list(FIT_COLUMNS))
 
 
 def _history(n: int = 3) -> pd.DataFrame:

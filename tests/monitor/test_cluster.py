@@ -25,7 +25,7 @@ import pandas as pd
 import pytest
 import sqlalchemy as sa
 
-from adapters.fit_record import WindowFit, fits_frame
+from adapters.fit_record import WindowFit
 from adapters.store import SqlStore
 from model.simulate import StepRestriction
 from monitor.analysis import analyze_window
@@ -45,6 +45,7 @@ from monitor.demo import EXAMPLE_SITE, simulate_site, write_exports
 from monitor.ingest import ingest, open_source
 from monitor.jobs import analyze
 from monitor.windows import windows
+from tests.adapters.test_fit_record import fits_frame
 
 distributed = pytest.importorskip("distributed")
 
