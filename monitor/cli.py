@@ -408,7 +408,8 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     from monitor.demo import DEMO_START, prepare_demo
     from monitor.diagnose import findings_to_json
     from monitor.ingest import ingest, open_source
-    from monitor.monthly import previous_month, write_monthly
+    from monitor.monthly import write_monthly
+    from monitor.monthly_view import previous_month
     from monitor.morning_report import write_report
     from monitor.plots import plot_system_curve
     from monitor.whatif import CurveRequest, solve_curve
@@ -527,7 +528,8 @@ def _cmd_report(args: argparse.Namespace) -> int:
 
 
 def _monthly_report(site: Site, text: str, now: datetime) -> int:
-    from monitor.monthly import month_bounds, parse_month, write_monthly
+    from monitor.monthly import write_monthly
+    from monitor.monthly_view import month_bounds, parse_month
 
     try:
         month = parse_month(text)

@@ -348,7 +348,8 @@ def site_jobs(site: Site, store: ResultsStore, source: ReadingsSource, notifiers
     from monitor.alarm_watch import ingest_and_watch
     from monitor.ingest import ingest
     from monitor.jobs import catch_up
-    from monitor.monthly import previous_month, write_monthly
+    from monitor.monthly import write_monthly
+    from monitor.monthly_view import previous_month
     from monitor.morning_report import write_report
     from monitor.notifications import deliver, queue_alarms, queue_digest
     from monitor.operations import run_recorded
