@@ -16,13 +16,15 @@ findings carry; it computes in SI, the page shows kWh and m³/h). Days without a
 are not counted, and the page says how many days were.
 
 `build_monthly` is pure: it takes frames read from the store and the time the page is
-generated, and returns HTML text; `write_monthly` reads the store and writes the files.
+generated, and returns HTML text; `write_monthly` reads the store and writes the files;
+`month_fits` says whether the store holds fits of a month before one is asked for.
 """
 
 from __future__ import annotations
 
 import logging
 import re
+from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 
@@ -37,7 +39,9 @@ from monitor.monthly_view import daily_costs, history_start, month_bounds, parse
 log = logging.getLogger(__name__)
 
 __all__ = [
+    "MonthFits",
     "latest_monthly",
+    "month_fits",
     "month_fits_csv",
     "monthly_name",
     "write_monthly",
@@ -120,6 +124,28 @@ def write_monthly(site: Site, store: ResultsStore, *, month: str, generated: dat
         tmp.replace(target)
     log.info("monthly report for %s written to %s (fits in %s)", month, path, csv_path.name)
     return path
+
+
+@dataclass(frozen=True)
+class MonthFits:
+    """Whether the store holds fits of *month*; when it holds none, ``stored_until`` is
+    the end of the newest analysed window of any month (None: no fit stored at all)."""
+
+    month: str
+    held: bool
+    stored_until: datetime | None
+
+
+def month_fits(site: Site, store: ResultsStore, month: str) -> MonthFits:
+    """What the store holds for the monthly report of *month* (``YYYY-MM``; a
+    `ValueError` otherwise): a report of a month without fits says nothing."""
+    month = parse_month(month)
+    start, end = month_bounds(site, month)
+    if not store.read_fits(start=start, end=end).empty:
+        return MonthFits(month, True, None)
+    marks = store.watermarks().fits
+    until = None if marks.empty else pd.Timestamp(marks["last_window_end"].max())
+    return MonthFits(month, False, until)
 
 
 def latest_monthly(folder: Path, *, before: datetime, site: Site) -> tuple[str, str] | None:
