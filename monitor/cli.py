@@ -1,10 +1,11 @@
 """The ``branchwatch`` command line.
 
-Each verb is a thin layer: parse arguments (`monitor.cli_parser`), call the job,
-operation or model function (`monitor.jobs`, `monitor.operations`, ...), print its
-record as readable lines or JSON with ``--json`` (`monitor.cli_text`). Errors a user can
-fix — a bad config, an unreachable database, an impossible what-if — print one line
-naming the cause and exit with status 2; a bug still shows its traceback.
+Each verb is a thin layer: parse arguments (`monitor.cli_parser`), open the site's store
+and source (`monitor.cli_site`), call the job, operation or model function
+(`monitor.jobs`, `monitor.operations`, `monitor.maintenance_log`, ...), print its record
+as readable lines or JSON with ``--json`` (`monitor.cli_text`). Errors a user can fix —
+a bad config, an unreachable database, an impossible what-if — print one line naming the
+cause and exit with status 2; a bug still shows its traceback.
 """
 
 from __future__ import annotations
@@ -32,6 +33,7 @@ from monitor.cli_site import (
     EXIT_USAGE,
     UserError,
     error_text,
+    notifiers,
     open_site,
     operator_name,
     parse_time,
@@ -161,13 +163,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
     finally:
         source.close()
         store.close()
-    from monitor.notifications import build_notifiers
-
-    try:
-        channels = build_notifiers(site)
-    except ValueError as exc:
-        raise UserError(str(exc)) from None
-    for n in channels:  # reaching them sends a message: 'notify --test' does that
+    for n in notifiers(site):  # reaching them sends a message: 'notify --test' does that
         print(f"notify channel {n.name}: {n.describe()} ('branchwatch notify CONFIG --test' "
               "sends a test message)")
     if site.notify is None:
@@ -445,13 +441,9 @@ def _monthly_report(site: Site, text: str, now: datetime) -> int:
 def _cmd_run(args: argparse.Namespace) -> int:
     from monitor.daemon import site_daemon, wait_for
     from monitor.ingest import open_source
-    from monitor.notifications import build_notifiers
 
     site = site_of(args)
-    try:
-        build_notifiers(site)  # a bad [notify] setting stops the start, before waiting
-    except ValueError as exc:
-        raise UserError(str(exc)) from None
+    notifiers(site)  # a bad [notify] setting stops the start, before waiting
     where = f"results store {store_text(site)}"
     # A store that is down at start is waited for, not given up on: the daemon is often
     # started by the system before its database server is ready.
@@ -478,23 +470,20 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 
 def _cmd_notify(args: argparse.Namespace) -> int:
-    from monitor.notifications import build_notifiers, deliver_now
+    from monitor.notifications import deliver_now
 
     site = site_of(args)
-    try:
-        notifiers = build_notifiers(site)
-    except ValueError as exc:
-        raise UserError(str(exc)) from None
-    if not notifiers:
+    channels = notifiers(site)
+    if not channels:
         raise UserError(f"{site.path.name}: no [notify.email] or [notify.webhook] section; "
                         "nobody to tell (see config/example-site.toml)")
     store = site_store(site)
     try:
-        report = deliver_now(site, store, notifiers, now=datetime.now(UTC), test=args.test)
+        report = deliver_now(site, store, channels, now=datetime.now(UTC), test=args.test)
     finally:
         store.close()
     done = report.delivery
-    print_delivery(done, notifiers, waiting=report.waiting, failed=report.failed)
+    print_delivery(done, channels, waiting=report.waiting, failed=report.failed)
     return EXIT_OK if done.failed == 0 and not (args.test and done.sent == 0) else EXIT_USAGE
 
 

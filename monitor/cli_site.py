@@ -13,6 +13,7 @@ from __future__ import annotations
 import argparse
 import logging
 from datetime import datetime
+from typing import Any
 
 import pandas as pd
 
@@ -27,6 +28,7 @@ __all__ = [
     "EXIT_USAGE",
     "UserError",
     "error_text",
+    "notifiers",
     "open_site",
     "operator_name",
     "parse_time",
@@ -113,6 +115,17 @@ def parse_time(text: str, site: Site, what: str) -> datetime:
     if ts.tzinfo is None:
         ts = ts.tz_localize(site.timezone, nonexistent="raise", ambiguous="raise")
     return ts.tz_convert("UTC").to_pydatetime()
+
+
+def notifiers(site: Site) -> list[Any]:
+    """The senders of the site's ``[notify]`` section (`monitor.notifications`); a bad
+    setting in it is a `UserError`."""
+    from monitor.notifications import build_notifiers
+
+    try:
+        return list(build_notifiers(site))
+    except ValueError as exc:
+        raise UserError(str(exc)) from None
 
 
 def operator_name(args: argparse.Namespace) -> str:
