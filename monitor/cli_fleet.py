@@ -15,6 +15,7 @@ from datetime import UTC, datetime
 from typing import Any
 
 from adapters.base import ReadingsSource, ResultsStore
+from monitor.cli_site import EXIT_OK, UserError, open_site, parse_time
 from monitor.cli_text import analyze_with_progress
 from monitor.config import Site, load_site
 
@@ -40,7 +41,6 @@ def cluster_runs(runs: Sequence[Any], start: datetime, end: datetime,
     progress bar; the store is checked before any cluster is started or reached."""
     from tqdm import tqdm
 
-    from monitor.cli import UserError
     from monitor.cluster import ClusterError, analyze_on_cluster, check_shared, connect
 
     try:
@@ -65,7 +65,6 @@ def cluster_runs(runs: Sequence[Any], start: datetime, end: datetime,
 def cmd_fleet(args: argparse.Namespace) -> int:
     """``branchwatch fleet``: analyse the fleet's sites (optional), write and print the
     ranking of their branches by the cost of their open findings."""
-    from monitor.cli import EXIT_OK, UserError, _open, _parse_time
     from monitor.cluster import SiteRun
     from monitor.fleet import build_fleet_report, fleet_ranking, load_fleet
 
@@ -79,14 +78,14 @@ def cmd_fleet(args: argparse.Namespace) -> int:
     try:
         for i, site in enumerate(sites):
             if fleet.store_url is None:
-                opened.append((site, *_open(site)))
+                opened.append((site, *open_site(site)))
                 continue
             key = fleet.keys[i]
             log.info("%s: results in schema %s of the fleet's shared store (the site "
                      "file's own [store] is not used in a fleet run)", site.name, key)
-            opened.append((site, *_open(site, shared=(fleet.store_url, key))))
+            opened.append((site, *open_site(site, shared=(fleet.store_url, key))))
         if args.start is not None:
-            periods = [(_parse_time(args.start, s, "--from"), _parse_time(args.end, s, "--to"))
+            periods = [(parse_time(args.start, s, "--from"), parse_time(args.end, s, "--to"))
                        for s in sites]
             if any(b <= a for a, b in periods):
                 raise UserError("--to must be after --from")

@@ -23,12 +23,17 @@ __all__ = [
     "episodes",
     "event_json",
     "local",
+    "print_alarm_action",
     "print_alarm_events",
     "print_alarms",
+    "print_analysis",
+    "print_delivery",
+    "print_demo",
     "print_findings",
     "print_ingest",
     "print_log",
     "print_status",
+    "watch_json",
     "write_fits_csv",
 ]
 
@@ -251,6 +256,36 @@ def analyze_with_progress(
             store, "analyze",
             lambda: analyze(site, store, source, start, end, progress=progress, jobs=jobs),
         )
+
+
+def print_analysis(site: Site, summary: Any, replayed: Sequence[Any] | None) -> None:
+    """``analyze``: what a `monitor.jobs.AnalyzeSummary` counted, its findings, and the
+    alarm changes of the replay (None: no replay asked for)."""
+    print(f"{summary.windows} windows, {summary.fits} branch fits ({summary.fits_ok} usable), "
+          f"{len(summary.findings)} findings")
+    if summary.refitted or summary.corrections:
+        print(f"{summary.refitted} analysed windows fitted again for "
+              f"{summary.corrections} corrected readings")
+    print_findings(site, summary.findings)
+    if replayed is not None:
+        if not replayed:
+            print("alarm replay: no alarm changed over the period")
+        print_alarm_events(site, replayed)
+
+
+def print_demo(site: Site, result: Any, files: Any, paths: Any) -> None:
+    """``demo``'s closing lines: the analysis (a `monitor.jobs.AnalyzeSummary`), its
+    findings, and the files (`monitor.demo_run.DemoReports`, `monitor.demo.DemoPaths`)."""
+    folder = paths.folder
+    print(f"\n{result.windows} days analysed, {result.fits_ok} of {result.fits} branch fits "
+          f"usable, {len(result.findings)} findings:")
+    print_findings(site, result.findings)
+    print(f"\nfiles in {folder}:")
+    for name in ("site.toml", "findings.json", "fits.csv", "system-curve.png"):
+        print(f"  {name}")
+    print(f"  {files.report.relative_to(folder)}   <- the morning report: open it in a browser")
+    print(f"  {files.monthly.relative_to(folder)}   <- the long view of the last whole month")
+    print(f"\ntry: branchwatch status {paths.site_file}")
 
 
 def watch_json(site: Site, watch: Any) -> dict[str, Any]:

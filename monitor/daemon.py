@@ -61,7 +61,7 @@ from monitor.config import Site
 
 log = logging.getLogger(__name__)
 
-__all__ = ["Daemon", "DaemonStats", "last_ok_run", "site_jobs", "wait_for"]
+__all__ = ["Daemon", "DaemonStats", "last_ok_run", "site_daemon", "site_jobs", "wait_for"]
 
 T = TypeVar("T")
 
@@ -348,7 +348,8 @@ def site_jobs(site: Site, store: ResultsStore, source: ReadingsSource, notifiers
     from monitor.alarm_watch import ingest_and_watch
     from monitor.ingest import ingest
     from monitor.jobs import catch_up
-    from monitor.monthly import previous_month, write_monthly
+    from monitor.monthly import write_monthly
+    from monitor.monthly_view import previous_month
     from monitor.morning_report import write_report
     from monitor.notifications import deliver, queue_alarms, queue_digest
     from monitor.operations import run_recorded
@@ -393,6 +394,20 @@ def site_jobs(site: Site, store: ResultsStore, source: ReadingsSource, notifiers
     if notifiers:
         jobs["notify"] = notify_job
     return jobs
+
+
+def site_daemon(site: Site, store: ResultsStore, source: ReadingsSource, *,
+                health_file: Path | None = None) -> Daemon:
+    """The daemon of *site* on its opened store and source: `site_jobs` with the
+    notifiers of its ``[notify]`` section, the last good run of each job from the store's
+    job log, and the heartbeat in *health_file* (default: ``branchwatch-health.json`` in
+    the report folder)."""
+    from monitor.notifications import build_notifiers
+
+    notifiers = build_notifiers(site)
+    health = health_file or site.report_folder / "branchwatch-health.json"
+    return Daemon(site, site_jobs(site, store, source, notifiers), health_file=health,
+                  last_ok=last_ok_run(store))
 
 
 def last_ok_run(store: ResultsStore) -> Callable[[str], datetime | None]:

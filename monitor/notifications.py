@@ -13,7 +13,8 @@ e-mail's Message-ID and the webhook's Idempotency-Key let a receiver drop the co
   wrote them) with a priority at or above ``[notify] send_at_once``. An older activation
   (a backfill's replay of last month) is not sent.
 * `queue_digest` — after the morning report: a summary in the body, the report attached.
-* `queue_test` — ``branchwatch notify SITE --test``.
+* `queue_test` — ``branchwatch notify SITE --test``; `deliver_now` — ``branchwatch notify``:
+  one `deliver` pass and what is left in the outbox.
 * `deliver` — the ``notify`` job of the daemon (every minute, in its own thread, so a
   slow server never holds up ingest): sends what is due; a transient failure is tried
   again after 1, 2, 4 … minutes (at most an hour apart) until ``[notify] retry_for`` has
@@ -49,9 +50,11 @@ log = logging.getLogger(__name__)
 __all__ = [
     "PRIORITIES",
     "Delivery",
+    "DeliveryReport",
     "alarm_priority",
     "build_notifiers",
     "deliver",
+    "deliver_now",
     "queue_alarms",
     "queue_digest",
     "queue_test",
@@ -236,6 +239,26 @@ class Delivery:
     sent: int
     retrying: int
     failed: int
+
+
+@dataclass(frozen=True)
+class DeliveryReport:
+    """A `deliver` pass a person asked for, and the outbox after it: the messages still
+    waiting for a try (pending) and those given up (failed), as the store lists them."""
+
+    delivery: Delivery
+    waiting: pd.DataFrame
+    failed: pd.DataFrame
+
+
+def deliver_now(site: Site, store: ResultsStore, notifiers: Sequence[Notifier], *,
+                now: datetime, test: bool = False) -> DeliveryReport:
+    """`deliver` at *now* (``branchwatch notify``), after queueing a test message on
+    every channel when *test*."""
+    if test:
+        queue_test(site, store, now=now)
+    done = deliver(site, store, notifiers, now=now)
+    return DeliveryReport(done, store.outbox(status="pending"), store.outbox(status="failed"))
 
 
 def _retry_wait(attempts: int) -> timedelta:

@@ -37,7 +37,16 @@ from monitor.findings import episode_text, flow_pair
 from monitor.plots import png_data_uri
 from monitor.replay_text import pressure_digits
 
-__all__ = ["ReportInputs", "attention_order", "build_report", "page_head"]
+__all__ = [
+    "ReportInputs",
+    "attention_order",
+    "build_report",
+    "escape",
+    "evidence_number",
+    "forecast_html",
+    "local_time",
+    "page_head",
+]
 
 #: Which findings come first when neither is past its cleaning limit: a sudden change
 #: before a slow one.
@@ -91,12 +100,12 @@ def _caution(inputs: ReportInputs) -> str:
         live = a[(a["condition"] == "backflow") & a["active"].fillna(False).astype(bool)]
         for r in live.to_dict(orient="records"):
             named.setdefault(str(r["branch"]), f"{r['branch']} (back-flow alarm active now)")
-    standing = f"<p class=caution>{_e(CAUTION)}</p>"
+    standing = f"<p class=caution>{escape(CAUTION)}</p>"
     if not named:
         return standing
     return (
         f"<p class=caution><strong>Back-flow hazard:</strong> "
-        f"{_e('; '.join(named[k] for k in sorted(named)))}. With no check valve on these "
+        f"{escape('; '.join(named[k] for k in sorted(named)))}. With no check valve on these "
         "branches, water can run back from their tank or header into the supply and "
         "contaminate it. Have a qualified person check the branch and the header pressure "
         "set point against site procedures.</p>\n" + standing
@@ -136,9 +145,9 @@ def build_report(inputs: ReportInputs) -> str:
     local_day = pd.Timestamp(inputs.day).tz_convert(site.timezone)
     parts = [
         _head(f"{site.name} — {local_day:%Y-%m-%d}"),
-        f"<h1>{_e(site.name)}</h1>",
+        f"<h1>{escape(site.name)}</h1>",
         f"<p class=sub>Morning report for {local_day:%A %d %B %Y} (site time "
-        f"{_e(site.timezone)}). Generated {_local(site, inputs.generated)}.</p>",
+        f"{escape(site.timezone)}). Generated {local_time(site, inputs.generated)}.</p>",
         _data_age(inputs),
         _monthly_link(inputs),
         _caution(inputs),
@@ -165,14 +174,14 @@ def _data_age(inputs: ReportInputs) -> str:
     as_of = pd.Timestamp(inputs.as_of or inputs.generated)
     newest = min(pd.Timestamp(newest), as_of)  # a past day's report: the data then
     age = (as_of - newest).total_seconds()
-    text = (f"Data up to {_local(inputs.site, newest)}, {format_age(age)} old at "
-            f"{_local(inputs.site, as_of)}, the time of this report.")
+    text = (f"Data up to {local_time(inputs.site, newest)}, {format_age(age)} old at "
+            f"{local_time(inputs.site, as_of)}, the time of this report.")
     if inputs.stale_after_s is not None and age > inputs.stale_after_s:
-        return (f"<p class=stale>STALE DATA: {_e(text)} No new readings for more than "
-                f"{_e(format_age(inputs.stale_after_s))}: the resistance ratios and findings "
+        return (f"<p class=stale>STALE DATA: {escape(text)} No new readings for more than "
+                f"{escape(format_age(inputs.stale_after_s))}: the resistance ratios and findings "
                 "below describe the plant as it was then, not today. Check the historian "
                 "export or database link.</p>")
-    return f"<p class=sub>{_e(text)}</p>"
+    return f"<p class=sub>{escape(text)}</p>"
 
 
 def _monthly_link(inputs: ReportInputs) -> str:
@@ -180,15 +189,17 @@ def _monthly_link(inputs: ReportInputs) -> str:
         return ""
     name, month = inputs.monthly
     label = f"{pd.Timestamp(month + '-01'):%B %Y}"
-    return (f"<p class=sub>The long view: <a href='{_e(name)}'>monthly report for "
-            f"{_e(label)}</a> (resistance over two years, energy and its cost by month).</p>")
+    return (f"<p class=sub>The long view: <a href='{escape(name)}'>monthly report for "
+            f"{escape(label)}</a> (resistance over two years, energy and its cost by month).</p>")
 
 
-def _e(text: Any) -> str:
+def escape(text: Any) -> str:
+    """*text* as HTML text (``&``, ``<``, ``>`` and quotes escaped)."""
     return html.escape(str(text))
 
 
-def _local(site: Site, when: Any) -> str:
+def local_time(site: Site, when: Any) -> str:
+    """A UTC time as the site's local date and time ('2026-06-10 11:30'); '—' for none."""
     if when is None or (isinstance(when, float) and math.isnan(when)) or pd.isna(when):
         return "—"
     return f"{pd.Timestamp(when).tz_convert(site.timezone):%Y-%m-%d %H:%M}"
@@ -196,7 +207,7 @@ def _local(site: Site, when: Any) -> str:
 
 def _head(title: str, extra_css: str = "") -> str:
     return f"""<!doctype html><html lang=en><head><meta charset=utf-8>
-<title>{_e(title)}</title>
+<title>{escape(title)}</title>
 <style>
 body {{ font: 15px/1.45 system-ui, sans-serif; margin: 2em auto; max-width: 62em;
         color: #1d2433; padding: 0 1em; }}
@@ -224,11 +235,12 @@ img {{ max-width: 100%; }}
 
 def page_head(title: str, extra_css: str = "") -> str:
     """The start of a report page (doctype, title, the reports' style sheet, ``<body>``),
-    for other pages in the same look (the fleet summary)."""
+    for other pages in the same look (the monthly report, the fleet summary)."""
     return _head(title, extra_css)
 
 
-def _num(ev: Mapping[str, Any], key: str) -> float | None:
+def evidence_number(ev: Mapping[str, Any], key: str) -> float | None:
+    """The finite number *key* of a finding's evidence; None when absent or not finite."""
     v = ev.get(key)
     return float(v) if isinstance(v, int | float) and math.isfinite(float(v)) else None
 
@@ -238,13 +250,13 @@ def _limit(site: Site, row: Mapping[Any, Any]) -> float | None:
     try:
         return float(site.branch(str(row["branch"])).cleaning_limit)
     except KeyError:
-        return _num(row.get("evidence") or {}, "cleaning_limit_r")
+        return evidence_number(row.get("evidence") or {}, "cleaning_limit_r")
 
 
 def _r_level(ev: Mapping[str, Any]) -> float | None:
     """The raised resistance ratio a finding stands at (recent level, or after a step)."""
     for key in ("r_recent", "r_now", "r_after"):
-        if (v := _num(ev, key)) is not None:
+        if (v := evidence_number(ev, key)) is not None:
             return v
     return None
 
@@ -272,8 +284,8 @@ def attention_order(site: Site, findings: pd.DataFrame) -> pd.DataFrame:
     def key(i: int) -> tuple[float, ...]:
         r = recs[i]
         ev = r.get("evidence") or {}
-        kwh = _num(ev, "extra_energy_kwh_per_day") or 0.0
-        lost = _num(ev, "lost_flow_m3h") or 0.0
+        kwh = evidence_number(ev, "extra_energy_kwh_per_day") or 0.0
+        lost = evidence_number(ev, "lost_flow_m3h") or 0.0
         start = pd.Timestamp(r["start"]).timestamp()
         costed = 0 if kwh > 0 or lost > 0 else 1  # a cost known and counted comes first
         return (_tier(site, r), costed, -kwh, -lost, _URGENCY.get(str(r["kind"]), 9),
@@ -298,12 +310,13 @@ def _attention(inputs: ReportInputs) -> str:
         level = "urgent" if tier <= 1 or kind == "restriction" else (
             "watch" if kind in ("back_pressure", "fouling") else "info")
         ev = r.get("evidence") or {}
-        forecast = _forecast(site, r) if kind == "fouling" else ""
+        forecast = forecast_html(site, r) if kind == "fouling" else ""
         out.append(
-            f"<div class='finding {level}'><h3><span class=kind>{_e(_KIND_TEXT.get(kind, kind))}"
-            f"</span>{_e(r['branch'])}</h3><p>{_e(r['message'])}</p>{forecast}"
-            f"<p class=ev>since {_local(site, r['start'])} · first reported "
-            f"{_local(site, r['detected'])} · confidence {float(r['confidence']):.0%}"
+            f"<div class='finding {level}'><h3><span class=kind>"
+            f"{escape(_KIND_TEXT.get(kind, kind))}"
+            f"</span>{escape(r['branch'])}</h3><p>{escape(r['message'])}</p>{forecast}"
+            f"<p class=ev>since {local_time(site, r['start'])} · first reported "
+            f"{local_time(site, r['detected'])} · confidence {float(r['confidence']):.0%}"
             f"{_evidence_text(site, kind, ev, branch=str(r['branch']))}</p></div>"
         )
     return "\n".join(out)
@@ -313,27 +326,27 @@ def _day(site: Site, epoch_s: float) -> str:
     return f"{pd.Timestamp(epoch_s, unit='s', tz='UTC').tz_convert(site.timezone):%Y-%m-%d}"
 
 
-def _forecast(site: Site, row: Mapping[Any, Any]) -> str:
+def forecast_html(site: Site, row: Mapping[Any, Any]) -> str:
     """The date r reaches the cleaning limit, with its interval, from the evidence."""
     ev = row.get("evidence") or {}
-    limit = _num(ev, "cleaning_limit_r") or _limit(site, row)
+    limit = evidence_number(ev, "cleaning_limit_r") or _limit(site, row)
     lim = f"{limit:.2f}" if limit is not None else "its cleaning limit"
     level = _r_level(ev)
-    days = _num(ev, "days_to_limit")
+    days = evidence_number(ev, "days_to_limit")
     if (days is not None and days <= 0) or (
             level is not None and limit is not None and level >= limit):
         text = f"at or past the cleaning limit {lim} (r {level:.2f})" if level is not None \
             else f"at or past the cleaning limit {lim}"
-        return f"<p class=forecast><b>Forecast:</b> {_e(text)}.</p>"
-    when = _num(ev, "limit_date_s")
+        return f"<p class=forecast><b>Forecast:</b> {escape(text)}.</p>"
+    when = evidence_number(ev, "limit_date_s")
     if when is None:
         return (f"<p class=forecast><b>Forecast:</b> the rate is too uncertain to say when "
-                f"r reaches the cleaning limit {_e(lim)}.</p>")
-    lo, hi = _num(ev, "limit_date_low_s"), _num(ev, "limit_date_high_s")
+                f"r reaches the cleaning limit {escape(lim)}.</p>")
+    lo, hi = evidence_number(ev, "limit_date_low_s"), evidence_number(ev, "limit_date_high_s")
     span = (f" (between {_day(site, lo) if lo is not None else 'now'} and "
             f"{_day(site, hi) if hi is not None else 'later'})")
-    return (f"<p class=forecast><b>Forecast:</b> r reaches the cleaning limit {_e(lim)} "
-            f"about <b>{_day(site, when)}</b>{_e(span)}.</p>")
+    return (f"<p class=forecast><b>Forecast:</b> r reaches the cleaning limit {escape(lim)} "
+            f"about <b>{_day(site, when)}</b>{escape(span)}.</p>")
 
 
 def _flow_unit(site: Site, kind: str, branch: str) -> str:
@@ -347,14 +360,14 @@ def _flow_unit(site: Site, kind: str, branch: str) -> str:
 def _evidence_text(site: Site, kind: str, ev: dict[str, Any], *, branch: str = "") -> str:
     bits = []
     unit = _flow_unit(site, kind, branch)
-    if (q := _num(ev, "lost_flow_m3h")) is not None:
+    if (q := evidence_number(ev, "lost_flow_m3h")) is not None:
         (lost,), _ = flow_pair([q / 3600.0], 0.0, unit)
         bits.append(f"flow lost {lost} {unit}")
-    if (e := _num(ev, "extra_energy_kwh_per_day")) is not None:
+    if (e := evidence_number(ev, "extra_energy_kwh_per_day")) is not None:
         bits.append(f"extra pumping {e:.0f} kWh/day")
-    if kind == "fouling" and (s := _num(ev, "slope_per_day")) is not None:
+    if kind == "fouling" and (s := evidence_number(ev, "slope_per_day")) is not None:
         bits.append(f"r rising {s * 30:.3f} per month")
-    if kind == "back_pressure" and (s := _num(ev, "step_pa")) is not None:
+    if kind == "back_pressure" and (s := evidence_number(ev, "step_pa")) is not None:
         plain = pressure_labels(site.pressure_unit(branch))[1]
         step = float(from_si(s, plain, "pressure"))
         bits.append(f"step {step:+.{pressure_digits(plain)}f} {plain}")
@@ -362,7 +375,7 @@ def _evidence_text(site: Site, kind: str, ev: dict[str, Any], *, branch: str = "
         bits.append("priority high")
     if episodes := episode_text(ev, timezone=site.timezone, flow_unit=unit):
         bits.append(episodes)
-    return (" · " + " · ".join(_e(b) for b in bits)) if bits else ""
+    return (" · " + " · ".join(escape(b) for b in bits)) if bits else ""
 
 
 def _undelivered(inputs: ReportInputs) -> str:
@@ -371,7 +384,8 @@ def _undelivered(inputs: ReportInputs) -> str:
     if failed.empty:
         return ""
     items = "".join(
-        f"<li>{_e(r['channel'])}: {_e(r['subject'])} — {_e(r.get('last_error') or '')}</li>"
+        f"<li>{escape(r['channel'])}: {escape(r['subject'])} — "
+        f"{escape(r.get('last_error') or '')}</li>"
         for r in failed.to_dict(orient="records"))
     return (f"<p class=stale>{len(failed)} message(s) could not be sent and were given up "
             "(check the [notify] settings; 'branchwatch notify CONFIG --test' tries them):"
@@ -385,8 +399,9 @@ def _alarms(inputs: ReportInputs) -> str:
         return ("<h2>Alarms</h2><p>No alarm standing (low flow, frozen meter, stale data"
                 ").</p>" + _undelivered(inputs))
     rows = "".join(
-        f"<tr><td>{_e(r['branch'])}</td><td>{_e(r['state'])}</td>"
-        f"<td>{_local(inputs.site, r.get('activated'))}</td><td>{_e(r.get('message') or '')}"
+        f"<tr><td>{escape(r['branch'])}</td><td>{escape(r['state'])}</td>"
+        f"<td>{local_time(inputs.site, r.get('activated'))}</td>"
+        f"<td>{escape(r.get('message') or '')}"
         "</td></tr>"
         for r in standing.to_dict(orient="records")
     )
@@ -400,7 +415,7 @@ def _branches(inputs: ReportInputs) -> str:
     for b in site.branches:
         part = fits[(fits["branch"] == b.name) & fits["r"].notna()] if not fits.empty else fits
         if part.empty:
-            rows.append(f"<tr><td>{_e(b.name)}</td><td colspan=6>no usable fit yet</td></tr>")
+            rows.append(f"<tr><td>{escape(b.name)}</td><td colspan=6>no usable fit yet</td></tr>")
             continue
         last = part.iloc[-1]
         week = part[part["window_end"] <= last["window_end"] - pd.Timedelta(days=7)]
@@ -411,12 +426,12 @@ def _branches(inputs: ReportInputs) -> str:
         flow = float(last.get("mean_flow_m3s", math.nan)) * 3600
         low = "" if not math.isfinite(flow) or flow >= b.min_flow_m3s * 3600 else " class=over"
         rows.append(
-            f"<tr><td>{_e(b.name)}<br><span class=ev>{_e(b.description)}</span></td>"
+            f"<tr><td>{escape(b.name)}<br><span class=ev>{escape(b.description)}</span></td>"
             f"<td{cls}>{r:.3f}</td><td class=num>{float(last['r_low']):.3f}–"
             f"{float(last['r_high']):.3f}</td><td class=num>{change}</td>"
             f"<td class=num>{b.cleaning_limit:.2f}</td>"
             f"<td class=num><span{low}>{flow:.1f}</span> / {b.min_flow_m3s * 3600:.0f}</td>"
-            f"<td>{_local(site, last['window_end'])}</td></tr>"
+            f"<td>{local_time(site, last['window_end'])}</td></tr>"
         )
     return ("<h2>Branches</h2><table><tr><th>branch</th><th class=num>resistance ratio r</th>"
             "<th class=num>95 % interval</th><th class=num>7-day change</th>"
@@ -441,15 +456,16 @@ def _maintenance(inputs: ReportInputs) -> str:
         state = ""
         withdrawn = r.get("withdrawn_at")
         if withdrawn is not None and not pd.isna(withdrawn):
-            state = (f"withdrawn {_local(site, withdrawn)} by {r.get('withdrawn_by') or '?'}"
+            state = (f"withdrawn {local_time(site, withdrawn)} by {r.get('withdrawn_by') or '?'}"
                      + (f": {r['withdrawn_note']}" if r.get("withdrawn_note") else ""))
         rows.append(
-            f"<tr{' class=ev' if state else ''}><td class=num>{_e(r.get('id', ''))}</td>"
-            f"<td>{_local(site, r['time'])}</td><td>{_e(r['branch'])}</td>"
-            f"<td>{_e(str(r['kind']).replace('_', ' '))}</td><td>{_e(r.get('note') or '')}</td>"
-            f"<td>{_e(state)}</td></tr>"
+            f"<tr{' class=ev' if state else ''}><td class=num>{escape(r.get('id', ''))}</td>"
+            f"<td>{local_time(site, r['time'])}</td><td>{escape(r['branch'])}</td>"
+            f"<td>{escape(str(r['kind']).replace('_', ' '))}</td>"
+            f"<td>{escape(r.get('note') or '')}</td>"
+            f"<td>{escape(state)}</td></tr>"
         )
-    return (head + f"<table><tr><th class=num>entry</th><th>time ({_e(site.timezone)})</th>"
+    return (head + f"<table><tr><th class=num>entry</th><th>time ({escape(site.timezone)})</th>"
             "<th>branch</th><th>work</th><th>note</th><th>withdrawn</th></tr>"
             + "".join(rows) + "</table>")
 
@@ -488,7 +504,7 @@ def _health(inputs: ReportInputs) -> str:
     h, site = inputs.health, inputs.site
     parts = ["<h2>Data health</h2>"]
     if inputs.quarantine:
-        items = ", ".join(f"{_e(k)}: {v}" for k, v in sorted(inputs.quarantine.items()))
+        items = ", ".join(f"{escape(k)}: {v}" for k, v in sorted(inputs.quarantine.items()))
         parts.append(f"<p>Rows held in quarantine (not used, kept for review): {items}.</p>")
     else:
         parts.append("<p>No rows in quarantine.</p>")
@@ -499,12 +515,12 @@ def _health(inputs: ReportInputs) -> str:
                          fill_value=0)
     shown = [c for c in ("samples", "usable", "frozen", "spike", "out_of_range", "gap",
                          "pump_off", "bad_quality") if c in wide.columns]
-    head = "".join(f"<th class=num>{_e(c.replace('_', ' '))}</th>" for c in shown)
+    head = "".join(f"<th class=num>{escape(c.replace('_', ' '))}</th>" for c in shown)
     body = "".join(
-        f"<tr><td>{_e(tag)}</td>" + "".join(f"<td class=num>{int(row[c])}</td>" for c in shown)
+        f"<tr><td>{escape(tag)}</td>" + "".join(f"<td class=num>{int(row[c])}</td>" for c in shown)
         + "</tr>" for tag, row in wide.iterrows()
     )
-    parts.append(f"<p>Screening of the last day ({_e(site.timezone)} day), samples per tag:</p>"
+    parts.append(f"<p>Screening of the last day ({escape(site.timezone)} day), samples per tag:</p>"
                  f"<table><tr><th>tag</th>{head}</tr>{body}</table>")
     return "\n".join(parts)
 

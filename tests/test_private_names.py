@@ -15,18 +15,6 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 PACKAGES = ("model", "adapters", "monitor")
 
-#: Uses still waiting in modules that were being changed elsewhere when this test came
-#: in; remove an entry when its module stops using the name. Nothing may be added here.
-WAITING = {
-    ("monitor/cli_fleet.py", "monitor.cli._open"),
-    ("monitor/cli_fleet.py", "monitor.cli._parse_time"),
-    ("monitor/monthly.py", "monitor.report._e"),
-    ("monitor/monthly.py", "monitor.report._forecast"),
-    ("monitor/monthly.py", "monitor.report._head"),
-    ("monitor/monthly.py", "monitor.report._local"),
-    ("monitor/monthly.py", "monitor.report._num"),
-}
-
 
 def _private(name: str) -> bool:
     return name.startswith("_") and not name.startswith("__")
@@ -104,4 +92,4 @@ def test_no_product_module_uses_another_modules_private_names() -> None:
         for path in sorted((ROOT / package).rglob("*.py"))
         for name in private_uses(path)
     }
-    assert sorted(found - WAITING) == []
+    assert sorted(found) == []

@@ -74,7 +74,7 @@ def test_monthly_and_morning_figures_are_those_of_before(tmp_path: Path) -> None
     import pandas as pd
 
     from monitor.findings import Finding
-    from monitor.monthly import MonthlyInputs, build_monthly
+    from monitor.monthly_page import MonthlyInputs, build_monthly
     from monitor.site_diagnosis import _with_cost
     from tests.monitor import test_monthly as tm
 

@@ -31,16 +31,9 @@ from monitor.analysis_sections import parse_energy_price
 from monitor.config import ConfigError, Site, load_site
 from monitor.daemon import Daemon, _monthly, last_fire_time
 from monitor.findings import Finding
-from monitor.monthly import (
-    MonthlyInputs,
-    build_monthly,
-    daily_costs,
-    latest_monthly,
-    month_bounds,
-    parse_month,
-    previous_month,
-    write_monthly,
-)
+from monitor.monthly import latest_monthly, write_monthly
+from monitor.monthly_page import MonthlyInputs, build_monthly
+from monitor.monthly_view import daily_costs, month_bounds, parse_month, previous_month
 from monitor.morning_report import write_report
 from monitor.site_diagnosis import _with_cost
 
