@@ -1,6 +1,6 @@
 """One branch's fit over one analysis window, as one typed record, and a history of them.
 
-`WindowFit` is what `monitor.analysis` makes of a branch-window: the main fit (a
+`WindowFit` is what `monitor.analysis.window` makes of a branch-window: the main fit (a
 `model.fit.FitResult` with the window's conditions) and, where a step came part-way
 through the window, `AfterStep`: when it came and the fit of the samples after it. The
 record owns the column list of the ``fits`` table (`FIT_FLOATS`, `FIT_COLUMNS`): the

@@ -10,7 +10,7 @@ Two `Notifier` implementations (interface in `adapters.base`):
 
 Each message carries an idempotency key (`Message.key`): the e-mail's ``Message-ID`` and
 the webhook's ``Idempotency-Key`` header are derived from it, so a receiver that keeps
-them can drop a copy; the outbox in the store (`monitor.notifications`) is what makes
+them can drop a copy; the outbox in the store (`monitor.app.notifications`) is what makes
 branchwatch itself send each key once.
 
 A send either succeeds or raises one of two errors, so the outbox knows whether to try

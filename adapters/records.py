@@ -58,7 +58,7 @@ QUARANTINE_COLUMNS: tuple[str, ...] = ("origin", "line", "reason", "raw")
 
 
 class AlarmStateName(StrEnum):
-    """The ISA-18.2 alarm states, as `monitor.alarms` runs the life cycle (there: `State`)
+    """The ISA-18.2 alarm states, as `monitor.app.alarms` runs the life cycle (there: `State`)
     and the results store keeps them (its ``alarms.state`` column and journal)."""
 
     NORMAL = "normal"

@@ -6,18 +6,20 @@ scaled so that the header pressure stays where it is on the six-branch site). Th
 simulator makes 1-minute historian data, which goes into a SQLite store (a temp file)
 through `SqlStore.store_batch`.
 
-* One day of a big site (goal <= 10 s), in this process as `monitor.jobs.analyze` does
+* One day of a big site (goal <= 10 s), in this process as `monitor.app.jobs.analyze` does
   per window: reading (`SqlStore.read_readings` of every site tag), computing
-  (`monitor.analysis.analyze_window`, then `monitor.diagnose.diagnose` over the fits).
+  (`monitor.analysis.window.analyze_window`, then `monitor.analysis.diagnose.diagnose`
+  over the fits).
 * A year of a 100-branch site (goal <= 5 min), on ``--days`` days:
   first the same in-process loop, for the shares of reading and computing; then the real
-  `monitor.jobs.analyze` (read, compute, write every window, diagnose) in this process
+  `monitor.app.jobs.analyze` (read, compute, write every window, diagnose) in this process
   and with ``--jobs`` worker processes (from the second window on, as a long backfill
   runs), wall and CPU of all processes. The year is estimated from each: the first
   windows (worker start included) once, the steady per-window time of the later windows
   for the rest of the 365, and the diagnosis of a whole year's history timed on its own
-  (`monitor.site_diagnosis.diagnose_site` over 365 windows made by repeating the measured windows'
-  stored fits, screening counts and balances with shifted window times).
+  (`monitor.app.site_diagnosis.diagnose_site` over 365 windows made by repeating the
+  measured windows' stored fits, screening counts and balances with shifted window
+  times).
 
 Wall and CPU time are printed: the machine is shared.
 
@@ -50,12 +52,12 @@ from adapters.fit_record import fits_of
 from adapters.records import Batch, empty_quarantine
 from adapters.store import SqlStore
 from model.simulate import Simulation
-from monitor.analysis import analyze_window
-from monitor.config import Site, parse_site
-from monitor.demo import simulate_site
-from monitor.diagnose import diagnose
-from monitor.jobs import analyze
-from monitor.site_diagnosis import diagnose_site, diagnosis_settings
+from monitor.analysis.diagnose import diagnose
+from monitor.analysis.window import analyze_window
+from monitor.app.demo import simulate_site
+from monitor.app.jobs import analyze
+from monitor.app.site_diagnosis import diagnose_site, diagnosis_settings
+from monitor.site.config import Site, parse_site
 
 EXAMPLE = Path(__file__).resolve().parent.parent / "config" / "example-site.toml"
 START = datetime(2026, 4, 1, tzinfo=UTC)
@@ -160,7 +162,7 @@ def fill_store(site: Site, days: int, folder: Path, seed: int) -> tuple[SqlStore
 
 
 def run(site: Site, store: SqlStore, days: int) -> Timing:
-    """Analyse *days* windows as `monitor.jobs.analyze` does, timing read and compute."""
+    """Analyse *days* windows as `monitor.app.jobs.analyze` does, timing read and compute."""
     timing = Timing()
     fits: list[dict[str, Any]] = []
     screening: list[pd.DataFrame] = []
@@ -266,7 +268,7 @@ class JobsTiming:
 
 
 def run_jobs(site: Site, store: SqlStore, days: int, jobs: int) -> JobsTiming:
-    """`monitor.jobs.analyze` over *days* windows with *jobs* processes, timed."""
+    """`monitor.app.jobs.analyze` over *days* windows with *jobs* processes, timed."""
     marks: list[float] = []
     w0, c0 = time.perf_counter(), cpu_all()
     # Workers whatever the run's length, as a year's backfill would take them.
@@ -309,7 +311,7 @@ def report_jobs(n_branches: int, days: int, par: JobsTiming) -> float:
     """Print one timed `analyze` run; return its estimate for a year's windows [s]."""
     jobs = par.jobs
     procs = f"{jobs} worker processes + this one" if jobs > 1 else "this process only"
-    print(f"  monitor.jobs.analyze, {procs} (read, compute, write {days} windows, "
+    print(f"  monitor.app.jobs.analyze, {procs} (read, compute, write {days} windows, "
           f"diagnose {days} days):")
     print(f"    wall {par.wall:.2f} s, cpu {par.cpu:.2f} s (all processes); first "
           f"{par.head} window(s) written after {par.first_round:.2f} s"

@@ -8,10 +8,11 @@ on the tank branch, ±0.2–0.3 bar on the held process header, whose margin at 
 small) and a frozen flow meter (1–4 days). The other two branches stay clean all year.
 
 The data go through the product's code path without files or a store: per window of
-`monitor.windows.windows` (the site's local days), `monitor.analysis.analyze_window` on the
-simulated readings; then one `monitor.diagnose.diagnose` over the collected fit rows,
+`monitor.app.windows.windows` (the site's local days),
+`monitor.analysis.window.analyze_window` on the simulated readings; then one
+`monitor.analysis.diagnose.diagnose` over the collected fit rows,
 screening counts and balances, with the columns the store keeps — as
-`monitor.site_diagnosis.diagnose_site` does with stored ones.
+`monitor.app.site_diagnosis.diagnose_site` does with stored ones.
 
 Printed per fault kind: recall (found with the right kind within the goal's time, and at
 any time), wrong-kind rate (another resistance, back-pressure or instrument finding on
@@ -21,11 +22,11 @@ faulted branches before their fault); median |r − r_true| / r_true over usable
 windows where r_true is constant and no meter is faulted. Then the goals, met or not.
 
 Then the alarm load (EEMUA 191) of the near-real-time checks the daemon runs at each ingest
-(`monitor.alarm_points.alarm_checks`: low flow per branch, frozen meter per flow and
-pressure tag; `monitor.alarm_process.evaluate_low_flow` /
-`monitor.alarm_instruments.evaluate_frozen` with the site's settings, as
-`monitor.alarm_watch.evaluate_alarms` calls them) over each simulated year, summed by
-`monitor.alarm_rates.alarm_rate_summary`: alarms per operator-hour (one operator for the site),
+(`monitor.app.alarm_points.alarm_checks`: low flow per branch, frozen meter per flow and
+pressure tag; `monitor.app.alarm_process.evaluate_low_flow` /
+`monitor.app.alarm_instruments.evaluate_frozen` with the site's settings, as
+`monitor.app.alarm_watch.evaluate_alarms` calls them) over each simulated year, summed by
+`monitor.app.alarm_rates.alarm_rate_summary`: alarms per operator-hour (one operator for the site),
 the peak count in any 10 minutes, standing alarms (in alarm over 24 h) and chattering
 ones (3 activations within a minute). The stale-data alarm never fires on simulated
 data (no gaps) and is not counted.
@@ -64,17 +65,17 @@ from model.simulate import (
     Simulation,
     StepRestriction,
 )
-from monitor.alarm_instruments import FrozenSettings, evaluate_frozen
-from monitor.alarm_points import alarm_checks, low_flow_settings
-from monitor.alarm_process import evaluate_low_flow
-from monitor.alarm_rates import alarm_rate_summary
-from monitor.alarms import AlarmEvent, AlarmState
-from monitor.analysis import analyze_window
-from monitor.config import Site, parse_site
-from monitor.demo import simulate_site
-from monitor.diagnose import Finding, diagnose
-from monitor.site_diagnosis import diagnosis_settings
-from monitor.windows import windows
+from monitor.analysis.diagnose import Finding, diagnose
+from monitor.analysis.window import analyze_window
+from monitor.app.alarm_instruments import FrozenSettings, evaluate_frozen
+from monitor.app.alarm_points import alarm_checks, low_flow_settings
+from monitor.app.alarm_process import evaluate_low_flow
+from monitor.app.alarm_rates import alarm_rate_summary
+from monitor.app.alarms import AlarmEvent, AlarmState
+from monitor.app.demo import simulate_site
+from monitor.app.site_diagnosis import diagnosis_settings
+from monitor.app.windows import windows
+from monitor.site.config import Site, parse_site
 
 EXAMPLE = Path(__file__).resolve().parent.parent / "config" / "example-site.toml"
 YEAR_START = datetime(2026, 1, 1, tzinfo=UTC)
@@ -294,9 +295,9 @@ def run_site(seed: int, step_s: float, cache: Path | None = None) -> SiteResult:
 
 
 def alarm_journal(site: Site, sim: Simulation) -> list[AlarmEvent]:
-    """The near-real-time checks (`monitor.alarm_points.alarm_checks`) over the year: low flow
-    (`evaluate_low_flow` with `monitor.alarm_points.low_flow_settings`) and frozen meter
-    (`evaluate_frozen`, ``[analysis] frozen_hold``), as `monitor.alarm_watch.evaluate_alarms`
+    """The near-real-time checks (`monitor.app.alarm_points.alarm_checks`) over the year: low flow
+    (`evaluate_low_flow` with `monitor.app.alarm_points.low_flow_settings`) and frozen meter
+    (`evaluate_frozen`, ``[analysis] frozen_hold``), as `monitor.app.alarm_watch.evaluate_alarms`
     runs them at each ingest. The checks are incremental over samples (their state
     carries the delays from one ingest to the next), so one call over the year gives the
     journal the ingests would have written, up to the time each ingest happens."""

@@ -33,7 +33,7 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from monitor.config import load_site  # noqa: E402
+from monitor.site.config import load_site  # noqa: E402
 from tests.faults.harness import (  # noqa: E402
     PrivateMariaDB,
     PrivatePostgres,

@@ -6,12 +6,12 @@ Each site is the example site's six branches repeated to M (new names and tags, 
 seconds and stored in its own PostgreSQL schema. The same analysis (every daily window
 of every site, then each site's diagnosis) is timed
 
-1. serial: `monitor.jobs.analyze` with ``jobs=1``, site after site (today's default on
+1. serial: `monitor.app.jobs.analyze` with ``jobs=1``, site after site (today's default on
    one core);
-2. process pool: `monitor.jobs.analyze` with ``--jobs`` worker processes, site after
+2. process pool: `monitor.app.jobs.analyze` with ``--jobs`` worker processes, site after
    site (today's ``--executor local``; the pool taken however short the run, and started
    once per site, as ``analyze`` does);
-3. Dask: `monitor.cluster.analyze_on_cluster` on a `distributed.LocalCluster` of
+3. Dask: `monitor.app.cluster.analyze_on_cluster` on a `distributed.LocalCluster` of
    ``--jobs`` single-threaded worker processes, all sites in one run (``--executor
    dask``); the cluster's start is timed apart, as a cluster outlives one run. It runs
    twice: with Dask's defaults, and with the workers' statistical profiler (a thread
@@ -65,10 +65,10 @@ from adapters.migrations.tables import (
 )
 from adapters.records import Batch, empty_quarantine
 from adapters.store import SqlStore
-from monitor.cluster import SiteRun, analyze_on_cluster
-from monitor.config import Site
-from monitor.demo import simulate_site
-from monitor.jobs import analyze
+from monitor.app.cluster import SiteRun, analyze_on_cluster
+from monitor.app.demo import simulate_site
+from monitor.app.jobs import analyze
+from monitor.site.config import Site
 
 START = datetime(2026, 4, 1, tzinfo=UTC)
 FULL_SITES, FULL_BRANCHES, FULL_DAYS = 50, 40, 365

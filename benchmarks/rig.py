@@ -10,7 +10,7 @@
    cause, closures caught / 20, median and max delay from the closure's start, missed
    closures by depth, and false alarms (activations outside every closure of their
    branch).
-2. The demo site over a year (`monitor.demo`, 120-s samples) with ``[flow_drop]``
+2. The demo site over a year (`monitor.app.demo`, 120-s samples) with ``[flow_drop]``
    enabled at its defaults on every branch: the activations, split into those at the
    demo's own faults (a valve left throttled, a raised back-pressure) and the rest.
 """
@@ -31,11 +31,11 @@ import pandas as pd
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from adapters.base import open_store
-from monitor.alarm_watch import replay_alarms
-from monitor.config import load_site
-from monitor.demo import DEMO_START, demo_faults, prepare_demo
-from monitor.ingest import ingest, open_source
-from monitor.jobs import analyze
+from monitor.app.alarm_watch import replay_alarms
+from monitor.app.demo import DEMO_START, demo_faults, prepare_demo
+from monitor.app.ingest import ingest, open_source
+from monitor.app.jobs import analyze
+from monitor.site.config import load_site
 from tests.monitor.rig_recording import START, closures_plan, record, site_toml
 
 

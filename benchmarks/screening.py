@@ -19,7 +19,7 @@ import simulate_fit  # sibling script: `python benchmarks/screening.py` puts it 
 
 from model import simulate as sm
 from model.network import ParallelHeader, PumpCurve
-from monitor.quality import FLAGS, ScreenSettings, TagLimits, screen
+from monitor.analysis.quality import FLAGS, ScreenSettings, TagLimits, screen
 
 BAR = 1.0e5
 KINDS = {

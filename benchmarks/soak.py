@@ -2,7 +2,7 @@
 
 The example site (`config/example-site.toml`) is simulated for one day at 1-minute
 samples. A historian exporter drops a wide CSV export into the inbox every 15 minutes,
-and the daemon's ingest job (`monitor.alarm_watch.ingest_and_watch`, what `run` calls on its
+and the daemon's ingest job (`monitor.app.alarm_watch.ingest_and_watch`, what `run` calls on its
 schedule) runs every 15 minutes on a virtual clock, then the daily analysis and the
 morning report run as `run` runs them. On the way the source misbehaves:
 
@@ -49,8 +49,8 @@ sys.path.insert(0, str(ROOT))
 
 from adapters.base import open_store  # noqa: E402
 from adapters.units import from_si  # noqa: E402
-from monitor.config import Site, load_site  # noqa: E402
-from monitor.demo import simulate_site  # noqa: E402
+from monitor.app.demo import simulate_site  # noqa: E402
+from monitor.site.config import Site, load_site  # noqa: E402
 
 DAY = datetime(2026, 6, 10, tzinfo=UTC)
 INGEST = timedelta(minutes=15)
@@ -113,7 +113,7 @@ def live(args: argparse.Namespace) -> int:
 
     def start() -> subprocess.Popen[bytes]:
         return subprocess.Popen(
-            [sys.executable, "-m", "monitor.cli", "--log", "run", str(path)],
+            [sys.executable, "-m", "monitor.app.cli", "--log", "run", str(path)],
             env=env, cwd=ROOT, stdout=log_file, stderr=log_file)
 
     outage = (t_start + timedelta(seconds=0.30 * total), t_start + timedelta(seconds=0.50 * total))
@@ -216,10 +216,10 @@ def main() -> int:
     if args.live:
         return live(args)
 
-    from monitor.alarm_watch import ingest_and_watch
-    from monitor.ingest import open_source
-    from monitor.jobs import catch_up
-    from monitor.morning_report import write_report
+    from monitor.app.alarm_watch import ingest_and_watch
+    from monitor.app.ingest import open_source
+    from monitor.app.jobs import catch_up
+    from monitor.app.morning_report import write_report
 
     folder = args.folder or Path(tempfile.mkdtemp(prefix="bw-soak-"))
     if folder.exists():

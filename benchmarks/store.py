@@ -6,7 +6,7 @@ again (all duplicates), and `read_readings` rows per second; beside them a bare 
 load of the same rows into an identical table (sqlite3 executemany / psycopg COPY /
 pymysql executemany), as the ratio store ÷ bare; and the same batch once more with 1 % of
 its values corrected, under ``corrections = "apply"``. Then screening speed of
-`monitor.quality.screen` in samples per second.
+`monitor.analysis.quality.screen` in samples per second.
 
     .venv/bin/python benchmarks/store.py [--rows 288000] [--repeat 3]
 """
@@ -28,7 +28,7 @@ import sqlalchemy as sa
 
 from adapters.records import Batch, empty_quarantine
 from adapters.store import SqlStore
-from monitor.quality import TagLimits, screen
+from monitor.analysis.quality import TagLimits, screen
 
 POSTGRES = os.environ.get(
     "BRANCHWATCH_TEST_POSTGRES_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/test"

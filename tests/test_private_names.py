@@ -72,16 +72,16 @@ def private_uses(path: Path, module: str | None = None) -> set[str]:
 def test_the_scan_sees_both_forms(tmp_path: Path) -> None:
     probe = tmp_path / "probe.py"
     probe.write_text(
-        "from monitor.alarms import _event, judge_samples\n"
+        "from monitor.app.alarms import _event, judge_samples\n"
         "from .report import _head\n"
-        "from ._own import _fine\n"  # monitor._own is not monitor.probe: still counted
-        "import monitor.report as r\n"
+        "from ._own import _fine\n"  # monitor.app._own is not monitor.app.probe: counted
+        "import monitor.app.report as r\n"
         "r._num, r.build_report\n",
         encoding="utf-8",
     )
-    assert private_uses(probe, "monitor.probe") == {
-        "monitor.alarms._event", "monitor.report._head", "monitor._own._fine",
-        "monitor.report._num",
+    assert private_uses(probe, "monitor.app.probe") == {
+        "monitor.app.alarms._event", "monitor.app.report._head", "monitor.app._own._fine",
+        "monitor.app.report._num",
     }
 
 

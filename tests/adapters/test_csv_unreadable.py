@@ -25,9 +25,9 @@ from adapters.base import ResultsStore, open_store
 from adapters.csv_chunks import MAX_LINE_BYTES
 from adapters.csv_source import CsvSource
 from adapters.records import TagSpec
-from monitor.config import ConfigError, Site, parse_site
-from monitor.demo import EXAMPLE_SITE
-from monitor.ingest import IngestSummary, ingest, open_source
+from monitor.app.demo import EXAMPLE_SITE
+from monitor.app.ingest import IngestSummary, ingest, open_source
+from monitor.site.config import ConfigError, Site, parse_site
 from tests.adapters.ingest_helpers import ingest as ingest_batches
 from tests.adapters.ingest_helpers import write
 

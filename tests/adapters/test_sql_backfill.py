@@ -24,9 +24,9 @@ import sqlalchemy as sa
 from adapters.base import ResultsStore, open_store
 from adapters.records import TagSpec
 from adapters.sql_source import SqlSource
-from monitor.config import ConfigError, Site, parse_site
-from monitor.demo import EXAMPLE_SITE
-from monitor.ingest import IngestSummary, ingest, open_source
+from monitor.app.demo import EXAMPLE_SITE
+from monitor.app.ingest import IngestSummary, ingest, open_source
+from monitor.site.config import ConfigError, Site, parse_site
 from tests.adapters.ingest_helpers import ingest as ingest_batches
 
 T0 = datetime(2026, 6, 1, tzinfo=UTC)

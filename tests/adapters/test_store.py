@@ -28,7 +28,7 @@ from adapters.fit_record import WindowFit
 from adapters.migrations import tables
 from adapters.records import Batch
 from adapters.store import SqlStore
-from monitor.quality import TagLimits, screen
+from monitor.analysis.quality import TagLimits, screen
 
 T0 = datetime(2025, 3, 1, tzinfo=UTC)
 ALL_TABLES = {

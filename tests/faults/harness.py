@@ -39,8 +39,8 @@ import pandas as pd
 
 from adapters.base import open_store
 from adapters.units import from_si, to_si
-from monitor.config import Site, load_site
-from monitor.demo import EXAMPLE_SITE, simulate_site
+from monitor.app.demo import EXAMPLE_SITE, simulate_site
+from monitor.site.config import Site, load_site
 
 ROOT = Path(__file__).resolve().parents[2]
 PYTHON = sys.executable
@@ -145,9 +145,9 @@ class KillLog:
 
 
 def cli(args: Sequence[str], *, log_file: Any = subprocess.DEVNULL) -> subprocess.Popen[bytes]:
-    """``python -m monitor.cli ARGS`` in a process of its own, from the checkout."""
+    """``python -m monitor.app.cli ARGS`` in a process of its own, from the checkout."""
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
-    return subprocess.Popen([PYTHON, "-m", "monitor.cli", *args], cwd=ROOT, env=env,
+    return subprocess.Popen([PYTHON, "-m", "monitor.app.cli", *args], cwd=ROOT, env=env,
                             stdout=log_file, stderr=subprocess.STDOUT)
 
 

@@ -2,7 +2,7 @@
 (issue 9 part 2): no analysis window is analysed twice, none is skipped, none is analysed
 before its readings are in.
 
-The jobs take their time as an argument (`monitor.jobs.catch_up(..., now=...)`,
+The jobs take their time as an argument (`monitor.app.jobs.catch_up(..., now=...)`,
 `ingest_and_watch(..., clock=...)`), so the test drives them with a clock that jumps while
 an exporter drops the readings of each quarter hour of real time. Every write of a
 window's results is counted (`store_window` wrapped): each window must be written once,
@@ -19,11 +19,11 @@ from typing import Any
 import pandas as pd
 
 from adapters.base import open_store
-from monitor.alarm_watch import ingest_and_watch
-from monitor.config import load_site
-from monitor.demo import simulate_site
-from monitor.ingest import open_source
-from monitor.jobs import catch_up
+from monitor.app.alarm_watch import ingest_and_watch
+from monitor.app.demo import simulate_site
+from monitor.app.ingest import open_source
+from monitor.app.jobs import catch_up
+from monitor.site.config import load_site
 from tests.faults.harness import export, site_text
 
 START = datetime(2026, 6, 10, tzinfo=UTC)  # any day: the clock below is virtual

@@ -19,8 +19,8 @@ from pathlib import Path
 import pytest
 
 from adapters.base import open_store
-from monitor.cli import main
-from monitor.ingest import ingest, open_source
+from monitor.app.cli import main
+from monitor.app.ingest import ingest, open_source
 from tests.faults.harness import make_site
 
 
@@ -89,7 +89,7 @@ def test_report_folder_refuses_the_report(
         monkeypatch.setattr(Path, "write_text", refuse)
     print(f"report folder: {'tmpfs' if mounted else 'patched write'}, {fault}")
 
-    assert main(["report", str(path), "--date", day]) == 2  # a user's error (monitor.cli)
+    assert main(["report", str(path), "--date", day]) == 2  # a user's error (monitor.app.cli)
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1, err  # one line (common practice, STYLE.md)
     assert "Traceback" not in err

@@ -44,7 +44,7 @@ def test_daemon_rides_out_a_stopped_store(kind: str, tmp_path: Path) -> None:
     assert run.daemon_rc == 0, tail  # and stopped cleanly on SIGTERM afterwards
     assert run.outage_s >= OUTAGE_S - 1
     # ingest runs failed during the outage (10 s interval, 40 s away: several), each
-    # counted in the heartbeat and logged (monitor.daemon.Daemon._count)
+    # counted in the heartbeat and logged (monitor.app.daemon.Daemon._count)
     assert run.health["failures"].get("ingest", 0) >= 2, run.health
     assert run.failed_runs_logged >= 2, tail
     assert run.health["runs"]["ingest"] > run.health["failures"]["ingest"]  # and recovered

@@ -2,7 +2,7 @@
 
 Each case applies one to three mutations to the parsed example (a key removed, a value
 of the wrong type, a unit that is no unit or of the wrong kind, a negative or zero
-number, an unknown key) and hands the result to `monitor.config.parse_site`. The checks:
+number, an unknown key) and hands the result to `monitor.site.config.parse_site`. The checks:
 it returns a site or raises `ConfigError` and nothing else; every line of the error
 starts with the file name and names a key path of the file (the path of a mutated key,
 or a parent of it) — one line per problem.
@@ -21,7 +21,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from monitor.config import ConfigError, parse_site
+from monitor.site.config import ConfigError, parse_site
 
 EXAMPLE = tomllib.loads(
     (Path(__file__).parents[2] / "config" / "example-site.toml").read_text(encoding="utf-8"))

@@ -28,7 +28,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from monitor.config import Site
+from monitor.site.config import Site
 
 LPM = 1e-3 / 60.0  # L/min in m^3/s (SI Brochure: L = 1e-3 m^3)
 BAR = 1e5  # Pa

@@ -17,9 +17,9 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 from adapters.base import open_store
-from monitor.config import Site, load_site
-from monitor.demo import EXAMPLE_SITE, prepare_demo, simulate_site, write_exports
-from monitor.ingest import ingest, open_source
+from monitor.app.demo import EXAMPLE_SITE, prepare_demo, simulate_site, write_exports
+from monitor.app.ingest import ingest, open_source
+from monitor.site.config import Site, load_site
 
 DAYS = 2
 

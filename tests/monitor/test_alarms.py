@@ -11,9 +11,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from monitor.alarm_process import LowFlowSettings, evaluate_low_flow
-from monitor.alarm_rates import alarm_rate_summary
-from monitor.alarms import (
+from monitor.analysis.diagnose import Finding
+from monitor.app.alarm_process import LowFlowSettings, evaluate_low_flow
+from monitor.app.alarm_rates import alarm_rate_summary
+from monitor.app.alarms import (
     AlarmEvent,
     AlarmState,
     State,
@@ -24,8 +25,7 @@ from monitor.alarms import (
     shelve,
     unshelve,
 )
-from monitor.config import Site
-from monitor.diagnose import Finding
+from monitor.site.config import Site
 
 T0 = datetime(2026, 3, 2, 6, 0, tzinfo=UTC)
 M3H = 1 / 3600  # m³/h in m³/s
@@ -205,7 +205,7 @@ def test_settings_reject_bad_values() -> None:
 
 
 def test_describe_condition_names_which_alarm() -> None:
-    from monitor.alarms import describe_condition
+    from monitor.app.alarms import describe_condition
 
     assert describe_condition("B2", "low_flow") == "low flow on B2"
     assert describe_condition("header", "frozen PT-100") == "frozen PT-100"
@@ -224,8 +224,8 @@ def alarm_site(tmp_path_factory: pytest.TempPathFactory) -> Path:
 def judged_site(alarm_site: Path, tmp_path: Path) -> tuple[Path, Site]:
     """A copy of the site whose alarms were judged now: its April data is stale."""
     from adapters.base import open_store
-    from monitor.alarm_watch import evaluate_alarms
-    from monitor.ingest import open_source
+    from monitor.app.alarm_watch import evaluate_alarms
+    from monitor.app.ingest import open_source
     from tests.monitor.small_site import copy_site
 
     site_file, site = copy_site(alarm_site, tmp_path / "site")
@@ -253,7 +253,7 @@ def test_alarms_verb_shows_site_time_and_the_journal_names_the_alarm(
     judged_site: tuple[Path, Site], capsys: pytest.CaptureFixture[str],
 ) -> None:
     from adapters.base import open_store
-    from monitor.cli import main
+    from monitor.app.cli import main
 
     site_file, site = judged_site
     store = open_store(site.store_url)
@@ -278,7 +278,7 @@ def test_alarms_verb_shows_site_time_and_the_journal_names_the_alarm(
 def test_shelving_into_the_past_is_refused_with_one_line(
     judged_site: tuple[Path, Site], capsys: pytest.CaptureFixture[str],
 ) -> None:
-    from monitor.cli import main
+    from monitor.app.cli import main
 
     site_file, site = judged_site
     code = main(["alarms", str(site_file), "--shelve", "source", "--until",
@@ -314,7 +314,7 @@ def test_low_flow_message_in_the_tags_unit_keeps_the_comparison() -> None:
 
 
 def test_format_pair_never_reverses_or_hides_the_comparison() -> None:
-    from monitor.alarms import format_pair
+    from monitor.app.alarms import format_pair
 
     rng = np.random.default_rng(3)
     for _ in range(2000):  # random pairs near each other: the shown order is the true one
@@ -338,7 +338,7 @@ def test_returned_entry_says_the_condition_cleared() -> None:
 
 
 def test_stale_return_says_fresh_again() -> None:
-    from monitor.alarm_instruments import StaleSettings, evaluate_stale
+    from monitor.app.alarm_instruments import StaleSettings, evaluate_stale
 
     st = StaleSettings(stale_after=timedelta(minutes=15))
     s, ev = evaluate_stale(T0, AlarmState("header", "stale PT-100"), st,
@@ -352,7 +352,7 @@ def test_stale_return_says_fresh_again() -> None:
 
 
 def test_frozen_message_in_the_tags_unit_and_site_time() -> None:
-    from monitor.alarm_instruments import FrozenSettings, evaluate_frozen
+    from monitor.app.alarm_instruments import FrozenSettings, evaluate_frozen
 
     idx = pd.DatetimeIndex([T0 + timedelta(minutes=k) for k in range(70)])
     held = pd.Series(np.full(70, 31.5 * LPM), index=idx)
@@ -363,10 +363,10 @@ def test_frozen_message_in_the_tags_unit_and_site_time() -> None:
 
 
 def test_backflow_alarm_needs_two_samples_and_clears_past_the_deadband() -> None:
-    # the back-flow alarm's own rules (monitor.alarm_process.evaluate_backflow): header below
+    # the back-flow alarm's own rules (monitor.app.alarm_process.evaluate_backflow): header below
     # the static back-pressure on two samples in a row raises it; it returns only once
     # the header is 0.05 bar (deadband, our choice) above for the off-delay
-    from monitor.alarm_process import BackflowAlarmSettings, evaluate_backflow
+    from monitor.app.alarm_process import BackflowAlarmSettings, evaluate_backflow
 
     cfg = BackflowAlarmSettings(off_delay=TWO_MIN, timezone="Europe/Berlin")
     idx = pd.DatetimeIndex([T0 + timedelta(minutes=k) for k in range(12)])
@@ -380,6 +380,6 @@ def test_backflow_alarm_needs_two_samples_and_clears_past_the_deadband() -> None
     assert "header 0.90 bar, below the branch's static back-pressure 1.00 bar" in ev[0].message
     assert "since 2026-03-02 07:03 site time" in ev[0].message
     assert "cleared" in ev[1].message and s.state == State.RTN_UNACK
-    from monitor.alarms import priority_of
+    from monitor.app.alarms import priority_of
 
     assert priority_of("backflow") == "high"

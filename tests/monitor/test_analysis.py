@@ -1,6 +1,6 @@
 """analyze_window against a plain composition of the public screening steps.
 
-The reference below is the readable pandas path — `monitor.quality.to_wide`, then
+The reference below is the readable pandas path — `monitor.analysis.quality.to_wide`, then
 `running_mask` and `steady_mask` (header pressure and the branch's own flow), then
 `model.fit.fit_resistance` per branch — that `analyze_window` does with one numpy grid and
 one rolling pass for all tags. Both must give the same fits and the same header balance
@@ -23,10 +23,10 @@ import pytest
 from adapters.records import READING_COLUMNS
 from model.fit import fit_resistance
 from model.simulate import Fault, FrozenMeter, StepRestriction
-from monitor.analysis import analyze_window, screen_settings
-from monitor.config import Site, parse_site
-from monitor.demo import simulate_site
-from monitor.quality import TagLimits, running_mask, screen, steady_mask, to_wide
+from monitor.analysis.quality import TagLimits, running_mask, screen, steady_mask, to_wide
+from monitor.analysis.window import analyze_window, screen_settings
+from monitor.app.demo import simulate_site
+from monitor.site.config import Site, parse_site
 
 EXAMPLE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"
 START = datetime(2026, 5, 4, tzinfo=UTC)

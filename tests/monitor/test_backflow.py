@@ -32,16 +32,16 @@ import pytest
 
 from adapters.base import ReadingsSource, ResultsStore, open_store
 from model.water import G, density
-from monitor.alarm_instruments import FrozenSettings, evaluate_frozen
-from monitor.alarm_watch import ingest_and_watch, replay_alarms
-from monitor.alarms import AlarmState
-from monitor.backflow import cannot_flow, hazard_branches
-from monitor.cli import main
-from monitor.config import Site, load_site
-from monitor.ingest import ingest, open_source
-from monitor.jobs import analyze
-from monitor.morning_report import write_report
-from monitor.report import CAUTION
+from monitor.analysis.backflow import cannot_flow, hazard_branches
+from monitor.app.alarm_instruments import FrozenSettings, evaluate_frozen
+from monitor.app.alarm_watch import ingest_and_watch, replay_alarms
+from monitor.app.alarms import AlarmState
+from monitor.app.cli import main
+from monitor.app.ingest import ingest, open_source
+from monitor.app.jobs import analyze
+from monitor.app.morning_report import write_report
+from monitor.app.report import CAUTION
+from monitor.site.config import Site, load_site
 
 TZ = "Europe/Berlin"
 #: the first site-local midnight of the data (winter: UTC+1)

@@ -32,9 +32,9 @@ from typing import Any
 
 import pytest
 
-from monitor.config import Site
-from monitor.monthly import write_monthly
-from monitor.morning_report import write_report
+from monitor.app.monthly import write_monthly
+from monitor.app.morning_report import write_report
+from monitor.site.config import Site
 from tests.conftest import REQUIRE_SERVERS
 from tests.monitor.test_monthly import GENERATED, MONTH, filled_store, make_site
 

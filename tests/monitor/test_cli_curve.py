@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 import tomli_w
 
-from monitor.cli import main
+from monitor.app.cli import main
 
 EXAMPLE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"
 

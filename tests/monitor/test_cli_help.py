@@ -13,7 +13,7 @@ import shlex
 
 import pytest
 
-from monitor import cli
+from monitor.app import cli
 
 #: The verbs DESIGN §5 names, and those this project added (ingest, log, notify, fleet).
 DESIGN_VERBS = {"demo", "check", "curve", "analyze", "report", "run", "alarms", "status"}

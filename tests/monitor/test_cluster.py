@@ -28,9 +28,9 @@ import sqlalchemy as sa
 from adapters.fit_record import WindowFit
 from adapters.store import SqlStore
 from model.simulate import StepRestriction
-from monitor.analysis import analyze_window
-from monitor.cli import main
-from monitor.cluster import (
+from monitor.analysis.window import analyze_window
+from monitor.app.cli import main
+from monitor.app.cluster import (
     SchedulerUnreachable,
     SiteRun,
     StoreNotShared,
@@ -40,11 +40,11 @@ from monitor.cluster import (
     group_tags,
     month_tasks,
 )
-from monitor.config import Site, load_site
-from monitor.demo import EXAMPLE_SITE, simulate_site, write_exports
-from monitor.ingest import ingest, open_source
-from monitor.jobs import analyze
-from monitor.windows import windows
+from monitor.app.demo import EXAMPLE_SITE, simulate_site, write_exports
+from monitor.app.ingest import ingest, open_source
+from monitor.app.jobs import analyze
+from monitor.app.windows import windows
+from monitor.site.config import Site, load_site
 from tests.adapters.test_fit_record import fits_frame
 
 distributed = pytest.importorskip("distributed")

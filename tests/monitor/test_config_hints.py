@@ -8,7 +8,7 @@ from typing import Any
 
 import pytest
 
-from monitor.config import ConfigError, parse_site
+from monitor.site.config import ConfigError, parse_site
 
 EXAMPLE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"
 

@@ -20,11 +20,11 @@ import pandas as pd
 import pytest
 
 from adapters.base import ResultsStore, open_store
-from monitor.cli import main
-from monitor.config import Site, load_site
-from monitor.demo import DEMO_START, prepare_demo
-from monitor.ingest import ingest, open_source
-from monitor.jobs import analyze, catch_up
+from monitor.app.cli import main
+from monitor.app.demo import DEMO_START, prepare_demo
+from monitor.app.ingest import ingest, open_source
+from monitor.app.jobs import analyze, catch_up
+from monitor.site.config import Site, load_site
 
 DAYS = 2
 START = DEMO_START - timedelta(days=1)
@@ -223,7 +223,7 @@ def test_corrections_are_logged_once_per_batch(
     runs.append(run)
     ingest(run.site, run.store, run.source)
     _reissue(run.site)
-    with caplog.at_level("WARNING", logger="monitor.ingest"):
+    with caplog.at_level("WARNING", logger="monitor.app.ingest"):
         ingest(run.site, run.store, run.source)
     lines = [r.getMessage() for r in caplog.records if "another value" in r.getMessage()]
     assert len(lines) == 1, lines

@@ -1,4 +1,4 @@
-"""Tests of `monitor.cost`: the SI figures of what added resistance costs, and that the
+"""Tests of `monitor.analysis.cost`: the SI figures of what added resistance costs, and that the
 reports show the same figures as before the cost had a module of its own."""
 
 from __future__ import annotations
@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 
-from monitor.cost import J_PER_KWH, energy_cost, finding_cost, price_per_joule
+from monitor.analysis.cost import J_PER_KWH, energy_cost, finding_cost, price_per_joule
 
 
 def test_finding_cost() -> None:
@@ -32,8 +32,8 @@ def test_finding_cost() -> None:
 
 
 def test_energy_is_priced_per_joule() -> None:
-    from monitor.analysis_sections import EnergyPrice
-    from monitor.config import load_site
+    from monitor.site.analysis_sections import EnergyPrice
+    from monitor.site.config import load_site
 
     site = load_site(Path(__file__).parents[2] / "config" / "example-site.toml")
     priced = dataclasses.replace(site, energy_price=EnergyPrice(0.18, "EUR"))
@@ -45,7 +45,7 @@ def test_energy_is_priced_per_joule() -> None:
 
 # ---------------------------------------------------------------------------------------
 # the same figures as before: the cost figures below were printed by the code before the
-# cost had a module of its own (commit 89770c1, monitor.monthly and monitor.jobs) for the
+# cost had a module of its own (commit 89770c1, monitor.app.monthly and monitor.app.jobs) for the
 # invented store of tests/monitor/test_monthly.py; the morning report shows the
 # evidence a costed finding carries, the monthly report its tables.
 
@@ -73,9 +73,9 @@ EVIDENCE_BEFORE = {"lost_flow_m3h": 22.303637907, "lost_flow_fraction": 0.151631
 def test_monthly_and_morning_figures_are_those_of_before(tmp_path: Path) -> None:
     import pandas as pd
 
-    from monitor.findings import Finding
-    from monitor.monthly_page import MonthlyInputs, build_monthly
-    from monitor.site_diagnosis import _with_cost
+    from monitor.analysis.findings import Finding
+    from monitor.app.monthly_page import MonthlyInputs, build_monthly
+    from monitor.app.site_diagnosis import _with_cost
     from tests.monitor import test_monthly as tm
 
     site = tm.make_site(tmp_path / "site")

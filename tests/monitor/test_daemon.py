@@ -24,10 +24,10 @@ import psutil
 import pytest
 
 from adapters.base import StoreError, open_store
-from monitor import daemon as daemon_module
-from monitor.cli import main
-from monitor.config import Site, load_site
-from monitor.daemon import Daemon, _daily, last_fire_time, wait_for
+from monitor.app import daemon as daemon_module
+from monitor.app.cli import main
+from monitor.app.daemon import Daemon, _daily, last_fire_time, wait_for
+from monitor.site.config import Site, load_site
 
 ROOT = Path(__file__).resolve().parents[2]
 EXAMPLE = ROOT / "config" / "example-site.toml"
@@ -111,7 +111,7 @@ def test_a_failing_job_is_logged_counted_and_retried_on_its_next_run(
             raise StoreError("results store write failed: server closed the connection")
 
     daemon = Daemon(site, {"ingest": ingest_job}, last_ok=lambda job: None)
-    with caplog.at_level(logging.ERROR, logger="monitor.daemon"):
+    with caplog.at_level(logging.ERROR, logger="monitor.app.daemon"):
         stats = _run(daemon, 3.5)
     assert stats.failures["ingest"] == 1 and stats.runs["ingest"] >= 3
     assert "ingest" in stats.last_ok
@@ -135,7 +135,7 @@ def test_wait_for_retries_with_growing_waits_and_masks_the_password(
             raise failures.pop(0)
         return "store"
 
-    with caplog.at_level(logging.WARNING, logger="monitor.daemon"):
+    with caplog.at_level(logging.WARNING, logger="monitor.app.daemon"):
         got = wait_for(opener, what="results store", secret_url=url, first_delay_s=0.2,
                        retry_on=(StoreError,))
     assert got == "store"
@@ -169,7 +169,7 @@ def test_run_waits_for_a_store_that_is_down_instead_of_exiting(
     site_file = tmp_path / "site.toml"
     site_file.write_text(text)
     started = time.monotonic()
-    with caplog.at_level(logging.WARNING, logger="monitor.daemon"):
+    with caplog.at_level(logging.WARNING, logger="monitor.app.daemon"):
         code = main(["run", str(site_file), "--for", "3"])
     assert code == 2 and time.monotonic() - started >= 2.5  # it waited, then gave up
     tries = [r.getMessage() for r in caplog.records if "not reachable" in r.getMessage()]
@@ -201,8 +201,8 @@ def test_run_starts_once_the_store_opens(tmp_path: Path, capsys: pytest.CaptureF
 _POOL_SCRIPT = textwrap.dedent("""
     import pickle, sys, time
     from adapters.base import open_store
-    from monitor.config import load_site
-    from monitor.backfill import worker_pool
+    from monitor.site.config import load_site
+    from monitor.app.backfill import worker_pool
     site = load_site(sys.argv[1])
     store = open_store(site.store_url)
     pool = worker_pool(site, pickle.dumps(store), False, 2)
@@ -252,7 +252,7 @@ _FALLBACK_SCRIPT = textwrap.dedent("""
     import os, subprocess, sys, time
     child = '''
     import sys, time
-    import monitor.backfill as backfill
+    import monitor.app.backfill as backfill
     sys.platform = "no-prctl"   # take the portable path: the parent check thread alone
     backfill._die_with_parent(int(sys.argv[1]))
     print("ready", flush=True)
@@ -315,7 +315,7 @@ def test_a_clock_set_back_runs_the_interval_jobs_now(
         job = daemon.scheduler.get_job("ingest")
         assert job.next_run_time > datetime.now(UTC) + timedelta(minutes=30)
         offset = time.time() - time.monotonic()
-        with caplog.at_level(logging.WARNING, logger="monitor.daemon"):
+        with caplog.at_level(logging.WARNING, logger="monitor.app.daemon"):
             daemon._watch_clock(offset + 3600.0)  # the wall clock is now an hour behind
         assert daemon.scheduler.get_job("ingest").next_run_time <= \
             datetime.now(UTC) + timedelta(seconds=1)

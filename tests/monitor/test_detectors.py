@@ -1,10 +1,11 @@
 """The replay's detectors on their own: each takes a window and returns what it opened
-or ended (`monitor.replay_track.Change`); the sentences come from `monitor.replay_text`.
+or ended (`monitor.analysis.replay_track.Change`); the sentences come from
+`monitor.analysis.replay_text`.
 
 Invented numbers on an invented branch, fixed (a ±0.004 wiggle alternating window by
 window stands for the day-to-day scatter of r; the one random series names its seed);
 the rules checked are the product's (DESIGN §3, thresholds of
-`monitor.findings.DiagnosisSettings`): a logged termination pressure that steps by 6 σ
+`monitor.analysis.findings.DiagnosisSettings`): a logged termination pressure that steps by 6 σ
 and at least 0.1 bar is a back-pressure change; a jump of r of 6 σ and 5 % that the next
 window confirms is a step (one window out of line is an outlier fit); a slow rise that
 passes the Mann–Kendall test is fouling, forecast to reach the cleaning limit at its
@@ -12,7 +13,7 @@ Theil–Sen slope; a fall back to the baseline with no maintenance logged is an 
 cleaning; a window mean flow below the branch minimum is low flow. No published
 reference applies to those rules; the unit factors of the messages' pressures are named
 where they are checked (the example site, `config/example-site.toml`, with its pressure
-tags in kPa or psi). The whole replay is checked through `monitor.diagnose`
+tags in kPa or psi). The whole replay is checked through `monitor.analysis.diagnose`
 (tests/monitor/test_diagnose.py).
 """
 
@@ -30,16 +31,16 @@ import pytest
 from numpy.typing import NDArray
 
 from adapters.fit_record import FitHistory
-from monitor.config import Site, parse_site
-from monitor.detect_fouling import FoulingDetector
-from monitor.detect_low_flow import LowFlowDetector
-from monitor.detect_pressure import PressureDetector
-from monitor.detect_steps import StepDetector
-from monitor.diagnose import diagnose
-from monitor.findings import BranchSettings, DiagnosisSettings
-from monitor.replay_text import back_pressure_changed, back_pressure_moved, on_day
-from monitor.replay_track import BranchTrack, Change
-from monitor.site_diagnosis import diagnosis_settings
+from monitor.analysis.detect_fouling import FoulingDetector
+from monitor.analysis.detect_low_flow import LowFlowDetector
+from monitor.analysis.detect_pressure import PressureDetector
+from monitor.analysis.detect_steps import StepDetector
+from monitor.analysis.diagnose import diagnose
+from monitor.analysis.findings import BranchSettings, DiagnosisSettings
+from monitor.analysis.replay_text import back_pressure_changed, back_pressure_moved, on_day
+from monitor.analysis.replay_track import BranchTrack, Change
+from monitor.app.site_diagnosis import diagnosis_settings
+from monitor.site.config import Site, parse_site
 from tests.monitor.test_diagnose import make_history
 
 EXAMPLE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"
@@ -88,7 +89,7 @@ class _Detector(Protocol):
 def _replay(track: BranchTrack, *detectors: _Detector, upto: int | None = None
             ) -> dict[int, list[Change]]:  # fmt: skip
     """The usable windows (up to window *upto*, else all) through *detectors* as
-    `monitor.replay.BranchReplay` hands them on (the baseline first, then each detector in
+    `monitor.analysis.replay.BranchReplay` hands them on (the baseline first, then each detector in
     turn), with no maintenance logged: what each window opened or ended, for the windows
     that did."""
     out: dict[int, list[Change]] = {}
@@ -167,7 +168,7 @@ def test_dates_are_the_sites_with_the_time_of_day_only_inside_a_window() -> None
 
 def test_a_pressure_step_within_six_sigma_of_a_noisy_logged_pressure_opens_nothing() -> None:
     # ±5 kPa window to window: σ = 1.4826·MAD(differences)/√2 = 1.4826·10 kPa/√2
-    # = 10.5 kPa (monitor.trend.robust_sigma), so 6 σ = 63 kPa: a 0.40 bar step is inside
+    # = 10.5 kPa (monitor.analysis.trend.robust_sigma), so 6 σ = 63 kPa: a 0.40 bar step is inside
     # the scatter, though four times the smallest step reported
     end = list(2.0e5 + _wiggle(N, 5.0e3))
     end[16:] = [e + 0.4e5 for e in end[16:]]

@@ -1,4 +1,4 @@
-"""Tests of monitor.diagnose on synthetic fit histories.
+"""Tests of monitor.analysis.diagnose on synthetic fit histories.
 
 The little generator below makes, per daily window, 96 samples (every 15 min) of a
 branch: a day/night flow swing, the clean dynamic ΔP ``x = a·Q²``, and the observed
@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from monitor.diagnose import (
+from monitor.analysis.diagnose import (
     BranchSettings,
     DiagnosisSettings,
     Finding,
@@ -105,7 +105,7 @@ def make_history(
 
 def _add_tails(hist: pd.DataFrame, tk: np.ndarray, x: np.ndarray, y: np.ndarray,
                faults: tuple[Fault, ...]) -> None:
-    """What `monitor.analysis` adds to a window a step came part-way through: the fit of
+    """What `monitor.analysis.window` adds to a window a step came part-way through: the fit of
     the samples after the step (``tail_*``; here the step time is known)."""
     for f in faults:
         d = int(np.floor(f.day))

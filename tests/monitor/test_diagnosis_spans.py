@@ -12,9 +12,9 @@ import tomllib
 
 import pytest
 
-from monitor.config import ConfigError, parse_site
-from monitor.diagnose import DiagnosisSettings, diagnose
-from monitor.site_diagnosis import diagnosis_settings
+from monitor.analysis.diagnose import DiagnosisSettings, diagnose
+from monitor.app.site_diagnosis import diagnosis_settings
+from monitor.site.config import ConfigError, parse_site
 from tests.monitor.rig_recording import site_toml
 from tests.monitor.test_diagnose import Fault, make_history
 

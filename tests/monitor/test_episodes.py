@@ -18,12 +18,12 @@ import pytest
 
 from adapters.base import open_store
 from adapters.fit_record import fits_of
-from monitor.cli import main
-from monitor.config import load_site
-from monitor.diagnose import BranchSettings, DiagnosisSettings, Finding, diagnose
-from monitor.findings import flow_pair
-from monitor.morning_report import write_report
-from monitor.site_diagnosis import _finding_row, diagnose_site
+from monitor.analysis.diagnose import BranchSettings, DiagnosisSettings, Finding, diagnose
+from monitor.analysis.findings import flow_pair
+from monitor.app.cli import main
+from monitor.app.morning_report import write_report
+from monitor.app.site_diagnosis import _finding_row, diagnose_site
+from monitor.site.config import load_site
 from tests.monitor.test_diagnose import T0, Fault, days_after_t0, make_history, run
 
 EXAMPLE_SITE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"

@@ -1,13 +1,13 @@
 """A healthy simulated site gives no findings — also on sites unlike the one the
 thresholds were tuned on.
 
-The diagnosis thresholds (`monitor.findings.DiagnosisSettings`) were set on the demo: the
+The diagnosis thresholds (`monitor.analysis.findings.DiagnosisSettings`) were set on the demo: the
 example site's six branches, 10-minute samples, the default instrument noise and the
-demo's pump schedule (`monitor.demo.DEMO_OPERATION`). Each case below changes one of
+demo's pump schedule (`monitor.app.demo.DEMO_OPERATION`). Each case below changes one of
 those generator settings — another network (other branch count and terminations: a tank
 with a logged level, a held header, a return header, an open discharge), more or less
 instrument noise, 1-minute or 15-minute sampling, other pump speeds — and runs the
-whole analysis (`monitor.jobs.analyze`: screening, fits, diagnosis, back-flow check and
+whole analysis (`monitor.app.jobs.analyze`: screening, fits, diagnosis, back-flow check and
 cost) on a SQLite store. Healthy means: no injected fault and no pump trip (a trip stops
 the flow, and the low-flow and back-flow findings it brings are true findings).
 
@@ -33,9 +33,9 @@ import pytest
 from adapters.base import ReadingsSource, open_store
 from adapters.records import Batch
 from model.simulate import Fault, NoiseSpec, OperatingSpec, StepRestriction
-from monitor.config import Site, parse_site
-from monitor.demo import DEMO_OPERATION, simulate_site
-from monitor.jobs import AnalyzeSummary, analyze
+from monitor.app.demo import DEMO_OPERATION, simulate_site
+from monitor.app.jobs import AnalyzeSummary, analyze
+from monitor.site.config import Site, parse_site
 
 pytestmark = pytest.mark.slow
 

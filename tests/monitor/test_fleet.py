@@ -3,7 +3,7 @@ findings cost, on one escaped HTML page; `branchwatch fleet` end to end.
 
 Invented data: the example site (config/example-site.toml) twice, under two site names,
 with findings written into SQLite stores by hand; costs are the findings' own evidence
-numbers, so the ranking is checked against the rule in `monitor.fleet.fleet_ranking`.
+numbers, so the ranking is checked against the rule in `monitor.app.fleet.fleet_ranking`.
 """
 
 from __future__ import annotations
@@ -17,10 +17,10 @@ from typing import Any
 import pytest
 
 from adapters.store import SqlStore
-from monitor.cli import main
-from monitor.config import ConfigError, load_site
-from monitor.demo import EXAMPLE_SITE
-from monitor.fleet import build_fleet_report, fleet_ranking, load_fleet, site_key
+from monitor.app.cli import main
+from monitor.app.demo import EXAMPLE_SITE
+from monitor.app.fleet import build_fleet_report, fleet_ranking, load_fleet, site_key
+from monitor.site.config import ConfigError, load_site
 
 T0 = datetime(2026, 6, 1, tzinfo=UTC)
 CONFIG = Path(__file__).resolve().parents[2] / "config"

@@ -18,10 +18,10 @@ from pathlib import Path
 import pytest
 
 from adapters.store import SqlStore
-from monitor.cli import main
-from monitor.config import load_site
-from monitor.fleet import load_fleet
-from monitor.ingest import ingest, open_source
+from monitor.app.cli import main
+from monitor.app.fleet import load_fleet
+from monitor.app.ingest import ingest, open_source
+from monitor.site.config import load_site
 from tests.monitor.small_site import example_site
 
 START = datetime(2026, 5, 3, 22, tzinfo=UTC)  # local midnight, Europe/Berlin (CEST)
@@ -79,7 +79,7 @@ def test_a_fleet_run_keeps_each_site_in_its_own_schema(
     shared_fleet: Path, postgres_url: str, capsys: pytest.CaptureFixture[str],
     caplog: pytest.LogCaptureFixture,
 ) -> None:
-    with caplog.at_level(logging.INFO, logger="monitor.cli_fleet"):
+    with caplog.at_level(logging.INFO, logger="monitor.app.cli_fleet"):
         assert main(["fleet", str(shared_fleet), *SPAN, "--quiet", "--json"]) == 0
     _check_run(shared_fleet, postgres_url, capsys.readouterr().out, caplog)
 
@@ -92,7 +92,7 @@ def test_a_fleet_run_on_a_cluster_uses_the_shared_store(
     distributed = pytest.importorskip("distributed")
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
                                   dashboard_address=":0") as cluster, \
-            caplog.at_level(logging.INFO, logger="monitor.cli_fleet"):
+            caplog.at_level(logging.INFO, logger="monitor.app.cli_fleet"):
         assert main(["fleet", str(shared_fleet), *SPAN, "--executor", "dask", "--scheduler",
                      cluster.scheduler_address, "--quiet", "--json"]) == 0
     _check_run(shared_fleet, postgres_url, capsys.readouterr().out, caplog)

@@ -17,9 +17,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from monitor.alarm_process import FlowDropSettings, evaluate_flow_drop, flow_level
-from monitor.alarms import AlarmState, State
-from monitor.config import ConfigError, parse_site
+from monitor.app.alarm_process import FlowDropSettings, evaluate_flow_drop, flow_level
+from monitor.app.alarms import AlarmState, State
+from monitor.site.config import ConfigError, parse_site
 from tests.monitor.rig_recording import site_toml
 
 T0 = datetime(2026, 5, 11, 9, 0, tzinfo=UTC)
@@ -173,8 +173,8 @@ def test_flow_drop_mistakes_are_one_line_with_their_key() -> None:
 
 
 def test_a_frozen_meter_suppresses_the_drop_check_while_its_alarm_is_in() -> None:
-    from monitor.alarm_watch import _either, _frozen_spans
-    from monitor.alarms import AlarmEvent
+    from monitor.app.alarm_watch import _either, _frozen_spans
+    from monitor.app.alarms import AlarmEvent
 
     tag = "FT 11 loop A"
     on, off = T0 + timedelta(minutes=20), T0 + timedelta(minutes=50)

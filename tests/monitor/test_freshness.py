@@ -4,7 +4,7 @@ morning report's header.
 References: the alarm life cycle is ISA-18.2 / IEC 62682 (REFERENCES.md): one alarm per
 condition, acknowledged, returned to normal, shelved, out of service. The age limit
 (max(1 h, 4 x ingest interval, 3 x sample period)) is this project's choice, documented
-in `monitor.alarm_points.stale_after`. Data: the demo site (invented), see `small_site`.
+in `monitor.app.alarm_points.stale_after`. Data: the demo site (invented), see `small_site`.
 """
 
 from __future__ import annotations
@@ -23,10 +23,10 @@ import pytest
 
 from adapters.base import open_store
 from adapters.records import Batch, empty_quarantine
-from monitor.alarm_instruments import StaleSettings, evaluate_stale
-from monitor.alarm_points import stale_after
-from monitor.alarm_watch import evaluate_alarms, ingest_and_watch, newest_readings
-from monitor.alarms import (
+from monitor.app.alarm_instruments import StaleSettings, evaluate_stale
+from monitor.app.alarm_points import stale_after
+from monitor.app.alarm_watch import evaluate_alarms, ingest_and_watch, newest_readings
+from monitor.app.alarms import (
     AlarmState,
     State,
     acknowledge,
@@ -34,10 +34,10 @@ from monitor.alarms import (
     remove_from_service,
     shelve,
 )
-from monitor.cli import main
-from monitor.config import Site
-from monitor.ingest import open_source
-from monitor.morning_report import write_report
+from monitor.app.cli import main
+from monitor.app.ingest import open_source
+from monitor.app.morning_report import write_report
+from monitor.site.config import Site
 from tests.monitor.small_site import copy_site, ingested_site
 
 T0 = datetime(2026, 12, 2, 6, 0, tzinfo=UTC)
@@ -289,7 +289,7 @@ def test_report_header_gives_the_data_age_and_flags_stale_data(
 
 
 def test_a_bad_age_limit_is_refused_naming_the_key(tmp_path: Path) -> None:
-    from monitor.config import ConfigError, load_site
+    from monitor.site.config import ConfigError, load_site
 
     example = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"
     text = example.read_text().replace('# stale_after = "2 h"', 'stale_after = "0 s"')

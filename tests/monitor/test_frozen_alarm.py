@@ -7,8 +7,8 @@ from datetime import UTC, datetime, timedelta
 import numpy as np
 import pandas as pd
 
-from monitor.alarm_instruments import FrozenSettings, evaluate_frozen
-from monitor.alarms import AlarmState, State
+from monitor.app.alarm_instruments import FrozenSettings, evaluate_frozen
+from monitor.app.alarms import AlarmState, State
 
 T0 = datetime(2026, 5, 1, tzinfo=UTC)
 

@@ -1,4 +1,4 @@
-"""`monitor.jobs.analyze` with worker processes: the same stored results as in-process,
+"""`monitor.app.jobs.analyze` with worker processes: the same stored results as in-process,
 and an interrupted backfill keeps every window before the interruption, with no holes.
 
 Invented data: the example site simulated for a few days at 10-minute steps, ingested
@@ -18,13 +18,13 @@ import pytest
 
 from adapters.base import open_store
 from adapters.store import SqlStore
-from monitor import backfill
-from monitor.cli import main
-from monitor.config import Site, load_site
-from monitor.demo import DEMO_START, prepare_demo
-from monitor.ingest import ingest, open_source
-from monitor.jobs import analyze
-from monitor.windows import windows
+from monitor.app import backfill
+from monitor.app.cli import main
+from monitor.app.demo import DEMO_START, prepare_demo
+from monitor.app.ingest import ingest, open_source
+from monitor.app.jobs import analyze
+from monitor.app.windows import windows
+from monitor.site.config import Site, load_site
 
 DAYS = 6
 END = DEMO_START + timedelta(days=DAYS)

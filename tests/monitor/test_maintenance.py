@@ -23,8 +23,8 @@ import sqlalchemy as sa
 from adapters import store as store_module
 from adapters.migrations.tables import UTCDateTime
 from adapters.store import SqlStore
-from monitor import cli
-from monitor.diagnose import DiagnosisSettings, diagnose
+from monitor.analysis.diagnose import DiagnosisSettings, diagnose
+from monitor.app import cli
 from tests.monitor.test_diagnose import T0, Fault, make_history
 
 EXAMPLE_SITE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"
@@ -308,10 +308,10 @@ def test_simulated_site_logged_cleanings_checked_against_the_fits(tmp_path: Path
     simulator's Cleaning ends its ramp). B1's finding stays open and says so; B5's ends
     at its entry. A third entry, withdrawn, is not read."""
     from model.scenario import Cleaning, FoulingRamp
-    from monitor.config import load_site
-    from monitor.demo import simulate_site, write_exports
-    from monitor.ingest import ingest, open_source
-    from monitor.jobs import analyze
+    from monitor.app.demo import simulate_site, write_exports
+    from monitor.app.ingest import ingest, open_source
+    from monitor.app.jobs import analyze
+    from monitor.site.config import load_site
 
     start, days = datetime(2026, 4, 1, tzinfo=UTC), 75
     day = timedelta(days=1)

@@ -1,4 +1,4 @@
-"""The maintenance log's operations (`monitor.maintenance_log`) on a SQLite store of the
+"""The maintenance log's operations (`monitor.app.maintenance_log`) on a SQLite store of the
 example site: each returns its record, and work dated in the future is refused before
 the store is written. Logging work once it is done is common practice (a log records
 what happened); the few minutes of slack allow for clocks that differ a little.
@@ -13,8 +13,7 @@ from pathlib import Path
 import pytest
 
 from adapters.store import SqlStore
-from monitor.config import Site, load_site
-from monitor.maintenance_log import (
+from monitor.app.maintenance_log import (
     FUTURE_SLACK,
     FutureWorkError,
     MaintenanceCorrected,
@@ -24,6 +23,7 @@ from monitor.maintenance_log import (
     record_entry,
     withdraw_entry,
 )
+from monitor.site.config import Site, load_site
 
 EXAMPLE_SITE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"
 NOW = datetime(2026, 3, 2, 8, 0, tzinfo=UTC)  # the operations' clock; invented

@@ -11,7 +11,7 @@ seeds 101–106, a year each, faults drawn per seed: fouling ramp, restriction s
 back-pressure step, low-flow spells, a frozen meter, an unlogged cleaning) and the example
 site (`config/example-site.toml`) simulated by `model.simulate` for 95 days at 15-minute
 samples (seed 7) with fouling, an unlogged `Cleaning`, a restriction that starves the
-branch, a back-pressure step and a frozen meter, run through `monitor.analysis`.
+branch, a back-pressure step and a frozen meter, run through `monitor.analysis.window`.
 The rules checked are the product's (messages agree with their numbers); no published
 reference applies.
 """
@@ -30,13 +30,13 @@ import pytest
 from adapters.migrations.tables import window_checks_t
 from adapters.units import from_si
 from model.simulate import BackPressureStep, Cleaning, FoulingRamp, FrozenMeter, StepRestriction
-from monitor.analysis import analyze_window
-from monitor.config import parse_site
-from monitor.demo import simulate_site
-from monitor.diagnose import BranchSettings, DiagnosisSettings, Finding, diagnose
-from monitor.findings import percent
-from monitor.site_diagnosis import diagnosis_settings
-from monitor.windows import windows
+from monitor.analysis.diagnose import BranchSettings, DiagnosisSettings, Finding, diagnose
+from monitor.analysis.findings import percent
+from monitor.analysis.window import analyze_window
+from monitor.app.demo import simulate_site
+from monitor.app.site_diagnosis import diagnosis_settings
+from monitor.app.windows import windows
+from monitor.site.config import parse_site
 from tests.monitor.test_diagnose import Fault, make_history
 
 EXAMPLE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"

@@ -26,16 +26,16 @@ import pytest
 
 from adapters.fit_record import WindowFit
 from adapters.store import SqlStore
-from monitor import cli
-from monitor.analysis_sections import parse_energy_price
-from monitor.config import ConfigError, Site, load_site
-from monitor.daemon import Daemon, _monthly, last_fire_time
-from monitor.findings import Finding
-from monitor.monthly import latest_monthly, write_monthly
-from monitor.monthly_page import MonthlyInputs, build_monthly
-from monitor.monthly_view import daily_costs, month_bounds, parse_month, previous_month
-from monitor.morning_report import write_report
-from monitor.site_diagnosis import _with_cost
+from monitor.analysis.findings import Finding
+from monitor.app import cli
+from monitor.app.daemon import Daemon, _monthly, last_fire_time
+from monitor.app.monthly import latest_monthly, write_monthly
+from monitor.app.monthly_page import MonthlyInputs, build_monthly
+from monitor.app.monthly_view import daily_costs, month_bounds, parse_month, previous_month
+from monitor.app.morning_report import write_report
+from monitor.app.site_diagnosis import _with_cost
+from monitor.site.analysis_sections import parse_energy_price
+from monitor.site.config import ConfigError, Site, load_site
 
 EXAMPLE_SITE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"
 T0 = datetime(2025, 9, 1, tzinfo=UTC)
@@ -222,7 +222,7 @@ def test_daily_cost_agrees_with_the_findings_cost_and_scales_with_the_rise(site:
         store.close()
     days = daily_costs(site, fits, findings).set_index(["branch", "window_start"])
     # the cost the daily diagnosis stores in a finding's evidence
-    # (monitor.site_diagnosis._with_cost, from the newest fit) is the monthly report's cost
+    # (monitor.app.site_diagnosis._with_cost, from the newest fit) is the monthly report's cost
     # of that same day: one rule
     f = finding_rows()[0]
     costed = _with_cost(site, fits, Finding(
@@ -246,7 +246,7 @@ def test_daily_cost_agrees_with_the_findings_cost_and_scales_with_the_rise(site:
     b2 = days.loc["B2-compressor"]
     assert float(b2.loc[pd.Timestamp(T0 + timedelta(days=RESTRICT_DAY + 5)), "extra_kwh"]) > 0
     assert float(b2.loc[pd.Timestamp(T0 + timedelta(days=SET_DAY + 1)), "extra_kwh"]) == 0
-    # lost flow is the flow at baseline r less the flow carried (monitor.diagnose)
+    # lost flow is the flow at baseline r less the flow carried (monitor.analysis.diagnose)
     b = site.branch("B1-reactor")
     q_clean = float(b.model.flow(np.asarray(P_S), temperature_c=20.0, **b.nominal))
     row = next(f for f in fit_rows(site) if f["branch"] == "B1-reactor"

@@ -20,10 +20,9 @@ from pathlib import Path
 import pytest
 
 from adapters.base import open_store
-from monitor.cli import main
-from monitor.config import load_site
-from monitor.morning_report import write_report
-from monitor.notifications import (
+from monitor.app.cli import main
+from monitor.app.morning_report import write_report
+from monitor.app.notifications import (
     alarm_priority,
     build_notifiers,
     deliver,
@@ -31,6 +30,7 @@ from monitor.notifications import (
     queue_digest,
     queue_test,
 )
+from monitor.site.config import load_site
 from tests.monitor.small_site import copy_site, ingested_site
 from tests.servers import HookServer, MailServer, free_port
 
@@ -225,8 +225,8 @@ KILLED_AFTER_QUEUEING = """\
 import os, signal, sys
 from datetime import UTC, datetime
 from adapters.base import open_store
-from monitor.config import load_site
-from monitor.notifications import queue_test
+from monitor.site.config import load_site
+from monitor.app.notifications import queue_test
 site = load_site(sys.argv[1])
 store = open_store(site.store_url)
 queue_test(site, store, now=datetime.now(UTC))
@@ -250,10 +250,10 @@ def test_sigkill_between_queueing_and_sending_then_restart_sends_once(
     assert killed.returncode == -signal.SIGKILL
     assert mail.messages == [] and hook.requests == []
     # the real daemon, restarted: its notify job sends what the killed process queued
-    run = subprocess.run([sys.executable, "-m", "monitor.cli", "run", str(site_file),
+    run = subprocess.run([sys.executable, "-m", "monitor.app.cli", "run", str(site_file),
                           "--for", "25"], env=env, cwd=ROOT, capture_output=True, timeout=180)
     assert run.returncode == 0, run.stderr.decode()
-    again = subprocess.run([sys.executable, "-m", "monitor.cli", "run", str(site_file),
+    again = subprocess.run([sys.executable, "-m", "monitor.app.cli", "run", str(site_file),
                             "--for", "15"], env=env, cwd=ROOT, capture_output=True, timeout=180)
     assert again.returncode == 0, again.stderr.decode()
     # exactly once each: the test message queued by the killed process, and what the

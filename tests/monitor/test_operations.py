@@ -16,11 +16,11 @@ import pandas as pd
 import pytest
 
 from adapters.base import open_store
-from monitor.alarm_points import alarm_row, low_flow_settings
-from monitor.alarm_process import evaluate_low_flow
-from monitor.alarms import AlarmState, State
-from monitor.config import Site
-from monitor.operations import AlarmAction, alarm_action, alarm_listing, status_summary
+from monitor.app.alarm_points import alarm_row, low_flow_settings
+from monitor.app.alarm_process import evaluate_low_flow
+from monitor.app.alarms import AlarmState, State
+from monitor.app.operations import AlarmAction, alarm_action, alarm_listing, status_summary
+from monitor.site.config import Site
 
 BRANCH = "B3-quench"  # limit 20 m3/h in the demo site file
 
@@ -68,7 +68,7 @@ def test_the_latching_setting_reaches_the_low_flow_alarm(site: tuple[Path, Site]
 def test_a_latched_alarm_is_reset_only_after_return_to_normal_and_acknowledgement(
     site: tuple[Path, Site], capsys: pytest.CaptureFixture[str],
 ) -> None:
-    from monitor.cli import main
+    from monitor.app.cli import main
 
     site_file, s = site
     s = _latching(s)
@@ -143,7 +143,7 @@ def test_alarm_action_returns_records_and_the_listing_shows_the_change(
 
 
 def test_an_unknown_alarm_is_refused_with_what_to_do(site: tuple[Path, Site]) -> None:
-    from monitor.operations import OperationError
+    from monitor.app.operations import OperationError
 
     _, s = site
     store = open_store(s.store_url)
@@ -161,7 +161,7 @@ def test_the_alarms_verb_prints_its_records_as_json(
 ) -> None:
     import json
 
-    from monitor.cli import main
+    from monitor.app.cli import main
 
     site_file, s = site
     _judge(s, AlarmState(BRANCH), [5.0] * 30, datetime.now(UTC) - timedelta(hours=3))

@@ -19,12 +19,12 @@ import pandas as pd
 import pytest
 
 from adapters.base import open_store
-from monitor.alarm_watch import evaluate_alarms
-from monitor.cli import main
-from monitor.config import load_site
-from monitor.demo import DEMO_START, prepare_demo
-from monitor.ingest import ingest, open_source
-from monitor.jobs import analyze
+from monitor.app.alarm_watch import evaluate_alarms
+from monitor.app.cli import main
+from monitor.app.demo import DEMO_START, prepare_demo
+from monitor.app.ingest import ingest, open_source
+from monitor.app.jobs import analyze
+from monitor.site.config import load_site
 
 DAYS = 130
 STEP_S = 600.0
@@ -206,7 +206,7 @@ def test_cli_analyze_writes_findings_and_fits_files(
 def _report_day(demo: dict[str, Any]) -> tuple[str, Any]:
     from datetime import UTC, datetime
 
-    from monitor.morning_report import write_report
+    from monitor.app.morning_report import write_report
     from tests.monitor.test_report import _Page
 
     site, store = demo["site"], demo["store"]

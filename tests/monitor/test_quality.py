@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from monitor.quality import (
+from monitor.analysis.quality import (
     ScreenSettings,
     TagLimits,
     running_mask,

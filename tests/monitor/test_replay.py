@@ -1,11 +1,11 @@
-"""monitor.replay on its own: `BranchReplay` walks one branch's `FitHistory` window by
+"""monitor.analysis.replay on its own: `BranchReplay` walks one branch's `FitHistory` window by
 window, skips what the screening flagged, reads a window with a step inside it as the state
 after the step, and holds a maintenance event until the fits after it judge it.
 
 The detectors are tested one by one in tests/monitor/test_detectors.py and the whole
-diagnosis through `monitor.diagnose` in tests/monitor/test_diagnose.py and
+diagnosis through `monitor.analysis.diagnose` in tests/monitor/test_diagnose.py and
 test_maintenance.py. Invented numbers on an invented branch; the rules checked are the
-product's (monitor/replay.py's docstring: DESIGN §3).
+product's (monitor/analysis/replay.py's docstring: DESIGN §3).
 """
 
 from __future__ import annotations
@@ -15,8 +15,8 @@ import pandas as pd
 import pytest
 
 from adapters.fit_record import FitHistory
-from monitor.findings import BranchSettings, DiagnosisSettings, Finding
-from monitor.replay import BranchReplay
+from monitor.analysis.findings import BranchSettings, DiagnosisSettings, Finding
+from monitor.analysis.replay import BranchReplay
 
 T0 = pd.Timestamp("2026-03-02", tz="UTC")
 DAY = pd.Timedelta(days=1)

@@ -6,7 +6,7 @@ config/example-site.toml; the page is read back with the standard library's HTML
 and every figure is compared with the row it came from. The urgency order (a branch
 short of water, then resistance at or past the cleaning limit, then the lesser sudden
 changes, then the rest; costliest first within each) is the product's rule
-(monitor/report.py), the cleaning limit as a trigger is common practice.
+(monitor/app/report.py), the cleaning limit as a trigger is common practice.
 """
 
 from __future__ import annotations
@@ -22,9 +22,9 @@ import pytest
 
 from adapters.fit_record import WindowFit
 from adapters.store import SqlStore
-from monitor.config import Site, load_site
-from monitor.morning_report import write_report
-from monitor.report import ReportInputs, attention_order, build_report
+from monitor.app.morning_report import write_report
+from monitor.app.report import ReportInputs, attention_order, build_report
+from monitor.site.config import Site, load_site
 
 EXAMPLE_SITE = Path(__file__).resolve().parents[2] / "config" / "example-site.toml"
 T0 = datetime(2026, 2, 1, tzinfo=UTC)

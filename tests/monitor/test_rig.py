@@ -18,11 +18,11 @@ import numpy as np
 import pytest
 
 from adapters.base import open_store
-from monitor.alarm_watch import replay_alarms
-from monitor.config import load_site, parse_site
-from monitor.ingest import ingest, open_source
-from monitor.jobs import analyze
-from monitor.site_diagnosis import diagnosis_settings
+from monitor.app.alarm_watch import replay_alarms
+from monitor.app.ingest import ingest, open_source
+from monitor.app.jobs import analyze
+from monitor.app.site_diagnosis import diagnosis_settings
+from monitor.site.config import load_site, parse_site
 from tests.monitor.rig_recording import START, Closure, record, site_toml
 
 CLOSURE = Closure(branch=0, start_s=420, length_s=420, depth=0.08)

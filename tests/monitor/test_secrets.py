@@ -38,7 +38,7 @@ from adapters.credentials import (
 from adapters.records import TagSpec
 from adapters.sql_source import CredentialsRefused, SqlSource
 from adapters.store import SqlStore
-from monitor.cli import FILE_UMASK, main
+from monitor.app.cli import FILE_UMASK, main
 from tests.monitor.test_user_errors import one_line_error, write_site
 
 TAGS = [TagSpec("PT-100", "bar", "pressure")]

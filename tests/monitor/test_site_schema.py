@@ -20,8 +20,8 @@ import pytest
 import sqlalchemy as sa
 
 from adapters.store import SqlStore
-from monitor.cli import main
-from monitor.fleet import load_fleet
+from monitor.app.cli import main
+from monitor.app.fleet import load_fleet
 from tests.monitor.small_site import example_site
 
 START = datetime(2029, 5, 6, 22, tzinfo=UTC)  # local midnight, Europe/Berlin (CEST)
@@ -78,7 +78,7 @@ def test_a_sites_own_commands_and_the_fleet_use_its_schema(
                      '[[site]]\nfile = "a/site.toml"\n'
                      f'[[site]]\nfile = "b/site.toml"\nkey = "{schemas[1]}"\n')
     assert load_fleet(fleet).keys == tuple(schemas)  # A's schema is its key
-    with caplog.at_level(logging.INFO, logger="monitor.cli_fleet"):
+    with caplog.at_level(logging.INFO, logger="monitor.app.cli_fleet"):
         assert main(["fleet", str(fleet), "--json"]) == 0
     ranking = json.loads(capsys.readouterr().out)
     assert ranking[0]["site"] == "Plant A" and ranking[0]["branch"] == "B2-compressor"

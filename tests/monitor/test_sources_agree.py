@@ -20,11 +20,11 @@ import sqlalchemy as sa
 
 from adapters.base import open_store
 from adapters.units import from_si
-from monitor.analysis import analyze_window
-from monitor.config import load_site, parse_site
-from monitor.demo import DEMO_START, EXAMPLE_SITE, simulate_site
-from monitor.ingest import ingest, open_source, read_window
-from monitor.windows import windows
+from monitor.analysis.window import analyze_window
+from monitor.app.demo import DEMO_START, EXAMPLE_SITE, simulate_site
+from monitor.app.ingest import ingest, open_source, read_window
+from monitor.app.windows import windows
+from monitor.site.config import load_site, parse_site
 
 DAYS = 4
 

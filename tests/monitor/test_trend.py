@@ -1,4 +1,4 @@
-"""Tests of monitor.trend against reference libraries and published figures."""
+"""Tests of monitor.analysis.trend against reference libraries and published figures."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from monitor.trend import crossing_forecast, cusum, mann_kendall, mean_shift, theil_sen
+from monitor.analysis.trend import crossing_forecast, cusum, mann_kendall, mean_shift, theil_sen
 
 
 def _ar1(rng: np.random.Generator, n: int, rho: float, size: int = 1) -> np.ndarray:

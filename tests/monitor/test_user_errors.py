@@ -1,6 +1,6 @@
 """Mistakes a user makes get one line on stderr and exit status 2, never a traceback.
 
-Each test runs ``monitor.cli.main([...])`` on a copy of ``config/example-site.toml`` with
+Each test runs ``monitor.app.cli.main([...])`` on a copy of ``config/example-site.toml`` with
 one mistake and checks the exit status, that stderr is one line, that it names the site
 file and the key path of the mistake, and that no traceback is printed. Exit status 2
 for a usage error is common practice (argparse uses it for bad arguments).
@@ -22,7 +22,7 @@ import sqlalchemy as sa
 import tomli_w
 
 from adapters import credentials
-from monitor.cli import main
+from monitor.app.cli import main
 
 ROOT = Path(__file__).resolve().parents[2]
 EXAMPLE = ROOT / "config" / "example-site.toml"
@@ -381,7 +381,7 @@ def test_status_into_a_reader_that_stops_exits_quietly(tmp_path: Path) -> None:
     site = write_site(tmp_path)
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     proc = subprocess.Popen(
-        [sys.executable, "-m", "monitor.cli", "status", str(site)],
+        [sys.executable, "-m", "monitor.app.cli", "status", str(site)],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, cwd=ROOT, env=env,
     )
     assert proc.stdout is not None and proc.stderr is not None

@@ -16,8 +16,8 @@ import pandas as pd
 import pytest
 
 from adapters.fit_record import WindowFit
-from monitor.analysis import analyze_window
-from monitor.config import Site, parse_site
+from monitor.analysis.window import analyze_window
+from monitor.site.config import Site, parse_site
 
 START = datetime(2026, 3, 2, 9, 0, tzinfo=UTC)
 WINDOW = timedelta(minutes=5)
@@ -119,7 +119,7 @@ def test_flow_below_the_fits_floor_is_named() -> None:
 
 
 def test_header_and_pump_running_pressures_must_agree() -> None:
-    from monitor.config import ConfigError
+    from monitor.site.config import ConfigError
 
     doc_site = _rig(running_pressure="0.02 bar")
     assert doc_site.running_pressure_pa == pytest.approx(2000.0)

@@ -1,6 +1,6 @@
 """Window alignment: every window in one local day, starting at the site's local midnight.
 
-The rule (`monitor.windows.windows`): sub-day windows must divide 24 h; they start at local
+The rule (`monitor.app.windows.windows`): sub-day windows must divide 24 h; they start at local
 midnight and follow at their size in elapsed time; a day that is not a whole number of
 windows long (a DST change day) has its last window cut at the next local midnight. The
 zone offsets and DST dates are those of the IANA tz database that zoneinfo reads
@@ -19,8 +19,8 @@ from zoneinfo import ZoneInfo
 import pandas as pd
 import pytest
 
-from monitor.config import ConfigError, parse_site
-from monitor.windows import current_fits, windows
+from monitor.app.windows import current_fits, windows
+from monitor.site.config import ConfigError, parse_site
 from tests.monitor.rig_recording import site_toml
 
 ZONES = ("UTC", "Asia/Kolkata", "Australia/Adelaide", "Australia/Lord_Howe",

@@ -14,9 +14,9 @@ import pandas as pd
 import pytest
 
 from adapters.base import open_store
-from monitor.cli import main
-from monitor.config import load_site
-from monitor.windows import current_fits
+from monitor.app.cli import main
+from monitor.app.windows import current_fits
+from monitor.site.config import load_site
 from tests.monitor.small_site import copy_site, ingested_site
 
 
@@ -53,7 +53,7 @@ def test_a_daylight_saving_day_is_a_day() -> None:
     # Sunday of March, Directive 2000/84/EC)
     import tomllib
 
-    from monitor.config import parse_site
+    from monitor.site.config import parse_site
 
     doc = tomllib.loads((Path(__file__).resolve().parents[2] / "config" /
                          "example-site.toml").read_text())

@@ -19,9 +19,9 @@ import tomli_w
 
 from adapters.fit_record import WindowFit
 from adapters.store import SqlStore
-from monitor.config import load_site
-from monitor.morning_report import write_report
-from monitor.notifications import queue_test
+from monitor.app.morning_report import write_report
+from monitor.app.notifications import queue_test
+from monitor.site.config import load_site
 
 EXAMPLE = Path(__file__).parents[2] / "config" / "example-site.toml"
 SCRIPT = "<script>alert(1)</script>"
@@ -87,7 +87,7 @@ def test_markup_in_names_tags_and_notes_is_text_in_the_report(tmp_path: Path) ->
 
 
 def test_markup_in_the_site_name_is_data_in_a_queued_message(tmp_path: Path) -> None:
-    """The outbox body is JSON (json.dumps in monitor/notifications.py): the markup comes
+    """The outbox body is JSON (json.dumps in monitor/app/notifications.py): the markup comes
     back as the same string, never as structure; an HTML part, if any, holds no element
     from the input."""
     doc = tomllib.loads(EXAMPLE.read_text(encoding="utf-8"))

@@ -1,6 +1,6 @@
 """Paths in the site file stay inside the site folder.
 
-What is allowed (decided here and in `monitor/config.py`): the source folder's pattern,
+What is allowed (decided here and in `monitor/site/config.py`): the source folder's pattern,
 the report folder, the SQLite store and every ``secrets_file`` (store, source, e-mail,
 webhook) must lie inside the folder of the site file, unless ``[site]
 allow_paths_outside = true`` says the plant keeps them elsewhere on purpose. A secrets
@@ -18,8 +18,8 @@ from typing import Any
 
 import pytest
 
-from monitor import config
-from monitor.config import ConfigError, parse_site
+from monitor.site import config
+from monitor.site.config import ConfigError, parse_site
 
 EXAMPLE = tomllib.loads(
     (Path(__file__).parents[2] / "config" / "example-site.toml").read_text(encoding="utf-8"))
