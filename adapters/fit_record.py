@@ -18,11 +18,13 @@ import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
 from datetime import datetime
-from typing import Any, ClassVar
+from typing import Any
 
 import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
+
+from model.robust import USABLE_STATUSES
 
 __all__ = [
     "FIT_COLUMNS",
@@ -53,15 +55,14 @@ _AFTER = (
     *("tail_offset_s", "tail_change", "tail_r", "tail_r_low", "tail_r_high", "tail_samples"),
     *("tail_s_pa", "tail_end_pressure_pa"),
 )
+_AFTER_SUMS = tuple(f"tail_{c}" for c in FIT_SUMS)
 #: The ``fits`` table's Double columns, in its order (`adapters.migrations.tables`).
-FIT_FLOATS: tuple[str, ...] = (
-    *_MAIN, *FIT_SUMS, *_AFTER, *(f"tail_{c}" for c in FIT_SUMS),
-)
+FIT_FLOATS: tuple[str, ...] = (*_MAIN, *FIT_SUMS, *_AFTER, *_AFTER_SUMS)
 #: Every column of the ``fits`` table, in its order.
 FIT_COLUMNS: tuple[str, ...] = (
     "branch", "window_start", "window_end", *_MAIN[:6], "identifiable", "samples",
     *_MAIN[6:12], "status", "message", "computed_at", *_MAIN[12:], *FIT_SUMS, *_AFTER,
-    *(f"tail_{c}" for c in FIT_SUMS),
+    *_AFTER_SUMS,
 )  # fmt: skip
 #: The numbers the diagnosis reads of each window besides ``r`` (`FitHistory.numbers`):
 #: the state of a window, after a step inside it where there was one. ``bp_sse_static`` and
@@ -75,7 +76,7 @@ HISTORY_NUMBERS: tuple[str, ...] = (
 _AFTER_REPLACES: dict[str, str] = {
     "r": "tail_r", "r_low": "tail_r_low", "r_high": "tail_r_high",
     "samples": "tail_samples", "s_pa": "tail_s_pa", "end_pressure_pa": "tail_end_pressure_pa",
-    **{c: f"tail_{c}" for c in FIT_SUMS},
+    **dict(zip(FIT_SUMS, _AFTER_SUMS, strict=True)),
 }  # fmt: skip
 
 
@@ -216,14 +217,11 @@ class WindowFit:
     after_step: AfterStep | None = None
     computed_at: datetime | None = None
 
-    #: statuses whose ``r`` the diagnosis may use (`model.fit.FitResult.usable`)
-    USABLE: ClassVar[tuple[str, ...]] = ("ok", "not_identifiable")
-
     @property
     def counts(self) -> bool:
         """The window gave a fit the diagnosis may read (status ``ok`` or
         ``not_identifiable``): the "usable" of the run summaries."""
-        return self.status in self.USABLE
+        return self.status in USABLE_STATUSES
 
     def to_row(self) -> dict[str, Any]:
         """The store's row: every column of `FIT_COLUMNS`, in its order."""
@@ -236,7 +234,7 @@ class WindowFit:
             **self.sums.columns(),
         }  # fmt: skip
         row.update(self.after_step.columns() if self.after_step is not None
-                   else dict.fromkeys((*_AFTER, *(f"tail_{c}" for c in FIT_SUMS)), NAN))
+                   else dict.fromkeys((*_AFTER, *_AFTER_SUMS), NAN))
         return {c: row[c] for c in FIT_COLUMNS}
 
     @classmethod
@@ -250,8 +248,7 @@ class WindowFit:
             window_end=pd.Timestamp(row["window_end"]), status=str(row["status"]),
             message=str(row.get("message") or ""),
             samples=int(samples) if math.isfinite(samples) else 0,
-            identifiable=None if ident is None or ident is pd.NA or (
-                isinstance(ident, float) and math.isnan(ident)) else bool(ident),
+            identifiable=None if pd.isna(ident) else bool(ident),
             **{c: _float(row.get(c)) for c in _MAIN},
             sums=FitSums.from_row(row), after_step=AfterStep.from_row(row),
             computed_at=None if computed is None or pd.isna(computed)

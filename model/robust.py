@@ -67,6 +67,10 @@ _TUNING = {"linear": math.inf, "huber": 1.345, "soft_l1": 1.345}
 _MAD_TO_SIGMA = 1.482602218505602  # 1/Φ⁻¹(3/4): MAD → σ at the normal distribution
 
 
+#: Fit statuses whose ``r`` the diagnosis may use (`FitResult.usable`).
+USABLE_STATUSES: tuple[str, ...] = ("ok", "not_identifiable")
+
+
 @dataclass(frozen=True)
 class FitResult:
     """Resistance fit of one branch over one window.
@@ -132,7 +136,7 @@ class FitResult:
     @property
     def usable(self) -> bool:
         """True when ``r`` is a number the diagnosis may use."""
-        return math.isfinite(self.r) and self.status in ("ok", "not_identifiable")
+        return math.isfinite(self.r) and self.status in USABLE_STATUSES
 
 
 @dataclass(frozen=True)

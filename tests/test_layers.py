@@ -13,6 +13,8 @@ from __future__ import annotations
 import ast
 from pathlib import Path
 
+from tests.test_private_names import imported_from, module_name
+
 ROOT = Path(__file__).resolve().parents[1]
 PROJECT = ("model", "adapters", "monitor")
 #: package → the project packages it may not import (prefixes)
@@ -27,24 +29,14 @@ FORBIDDEN: dict[str, tuple[str, ...]] = {
 def _imports(path: Path, module: str) -> set[str]:
     """The project modules *path* (module *module*) imports, absolute, dotted."""
     out: set[str] = set()
-    package = module.rsplit(".", 1)[0] if path.name != "__init__.py" else module
     for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"), str(path))):
         if isinstance(node, ast.Import):
             out.update(a.name for a in node.names)
         elif isinstance(node, ast.ImportFrom):
-            if node.level:
-                base = package.split(".")[: len(package.split(".")) - node.level + 1]
-                source = ".".join(base + ([node.module] if node.module else []))
-            else:
-                source = node.module or ""
+            source = imported_from(module, node, path.name == "__init__.py")
             out.add(source)
             out.update(f"{source}.{a.name}" for a in node.names)
     return {m for m in out if m.split(".")[0] in PROJECT}
-
-
-def _module(path: Path, root: Path) -> str:
-    parts = list(path.relative_to(root).with_suffix("").parts)
-    return ".".join(parts[:-1] if parts[-1] == "__init__" else parts)
 
 
 def _inside(name: str, prefix: str) -> bool:
@@ -55,7 +47,7 @@ def breaches(paths: list[Path], root: Path = ROOT) -> list[str]:
     """"<module> imports <name>" for each import that runs up a layer."""
     found = []
     for path in paths:
-        module = _module(path, root)
+        module = module_name(path, root)
         for layer, banned in FORBIDDEN.items():
             if not _inside(module, layer):
                 continue

@@ -20,12 +20,14 @@ def _private(name: str) -> bool:
     return name.startswith("_") and not name.startswith("__")
 
 
-def _module_name(path: Path) -> str:
-    parts = list(path.relative_to(ROOT).with_suffix("").parts)
+def module_name(path: Path, root: Path = ROOT) -> str:
+    """The dotted name of the module at *path* under *root*."""
+    parts = list(path.relative_to(root).with_suffix("").parts)
     return ".".join(parts[:-1] if parts[-1] == "__init__" else parts)
 
 
-def _imported_from(module: str, node: ast.ImportFrom, is_package: bool) -> str:
+def imported_from(module: str, node: ast.ImportFrom, is_package: bool) -> str:
+    """The absolute name of the module *node* (in *module*) imports from."""
     if not node.level:
         return node.module or ""
     base = module.split(".")
@@ -36,13 +38,13 @@ def _imported_from(module: str, node: ast.ImportFrom, is_package: bool) -> str:
 def private_uses(path: Path, module: str | None = None) -> set[str]:
     """Dotted names of other product modules' privates that the module at *path* (named
     *module*, by default from its place in the tree) uses."""
-    module = module or _module_name(path)
+    module = module or module_name(path)
     tree = ast.parse(path.read_text(encoding="utf-8"), str(path))
     uses: set[str] = set()
     modules: dict[str, str] = {}  # local name -> product module it stands for
     for node in ast.walk(tree):
         if isinstance(node, ast.ImportFrom):
-            source = _imported_from(module, node, path.name == "__init__.py")
+            source = imported_from(module, node, path.name == "__init__.py")
             if source.split(".")[0] not in PACKAGES:
                 continue
             for alias in node.names:

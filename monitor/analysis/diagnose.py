@@ -141,13 +141,13 @@ def diagnose(
 
     findings: list[Finding] = []
     header = flags.get(cfg.header_name, pd.DataFrame({"window_start": []}))
-    series = FitHistory.of(hist.reset_index(drop=True))
+    hist = hist.reset_index(drop=True)
+    series = FitHistory.of(hist)
     by_window = None
     if bal is not None and not bal.empty:
         by_window = bal.drop_duplicates("window_start").set_index("window_start")
     # the typed arrays once for the whole history, sliced per branch
-    for name, pos in sorted(pd.Series(series.branch).groupby(series.branch, sort=True)
-                            .indices.items()):
+    for name, pos in sorted(hist.groupby("branch", sort=True).indices.items()):
         branch = str(name)
         own = flags.get(branch, pd.DataFrame({"window_start": []}))
         excluded = set(own["window_start"]) | set(header["window_start"])

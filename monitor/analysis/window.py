@@ -15,7 +15,7 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Collection
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, fields, replace
 from datetime import datetime
 from typing import Any
 
@@ -324,17 +324,17 @@ def _tail(
     return out
 
 
+#: `WindowFit`'s fields that a `FitResult` gives under the same name (its message is
+#: extended here, so it is passed on its own)
+_FROM_FIT = tuple(
+    f.name for f in fields(WindowFit)
+    if f.name in {g.name for g in fields(FitResult)} - {"message"}
+)
+
+
 def _fit_fields(fit: FitResult) -> dict[str, Any]:
     """`WindowFit`'s fields that the branch's fit gives."""
-    return {
-        "status": fit.status, "samples": fit.samples, "identifiable": fit.identifiable,
-        "r": fit.r, "r_low": fit.r_low, "r_high": fit.r_high, "s_pa": fit.s_pa,
-        "s_low_pa": fit.s_low_pa, "s_high_pa": fit.s_high_pa, "s_fixed_pa": fit.s_fixed_pa,
-        "flow_min_m3s": fit.flow_min_m3s, "flow_max_m3s": fit.flow_max_m3s,
-        "flow_span": fit.flow_span, "mean_flow_m3s": fit.mean_flow_m3s,
-        "residual_std_pa": fit.residual_std_pa, "residual_autocorr": fit.residual_autocorr,
-        "corr_rs": fit.corr_rs, "sums": FitSums.of(fit),
-    }  # fmt: skip
+    return {**{name: getattr(fit, name) for name in _FROM_FIT}, "sums": FitSums.of(fit)}
 
 
 def _screening_counts(

@@ -354,7 +354,7 @@ def _flow_unit(site: Site, kind: str, branch: str) -> str:
     header imbalance the total flow tag's (m3/h when neither is known)."""
     tag = site.total_flow_tag if kind == "imbalance" else next(
         (b.flow_tag for b in site.branches if b.name == branch), None)
-    return site.tags[tag].unit if tag is not None and tag in site.tags else "m3/h"
+    return site.tag_unit(tag, "m3/h")
 
 
 def _evidence_text(site: Site, kind: str, ev: dict[str, Any], *, branch: str = "") -> str:
